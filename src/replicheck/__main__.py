@@ -1,0 +1,3 @@
+from replicheck.cli import main
+
+main()

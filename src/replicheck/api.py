@@ -1,0 +1,239 @@
+"""The audit: read -> claim -> structure -> clustering -> refit -> verdict -> report.
+
+:func:`audit` is the one entry point used by the command line and by Python
+callers. Each stage is a pure function of the previous stages' results.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from replicheck.claim import Claim, build_claim, load_spec, spec_beside
+from replicheck.clustering import measure_clustering
+from replicheck.errors import InputError
+from replicheck.io import Table, numeric_column, read_table, resolve_column
+from replicheck.reconcile import reconcile
+from replicheck.refit import refit
+from replicheck.report.model import Report
+from replicheck.structure.relations import codes_of
+from replicheck.structure.units import (
+    combined_name,
+    combined_treatment,
+    infer_structure,
+    unit_codes,
+)
+from replicheck.verdict import Evidence, decide
+
+
+def make_claim(
+    source: str | os.PathLike[str] | pd.DataFrame,
+    *,
+    response: str | None = None,
+    treatment: str | Sequence[str] = (),
+    unit: str | None = None,
+    claim: str | None = None,
+    alpha: float | None = None,
+    na: Sequence[str] = (),
+    sheet: str | None = None,
+    spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
+    find_spec: bool = True,
+) -> Claim:
+    """Build the claim from options, an explicit spec, or the spec found beside the data file."""
+    spec_data: Mapping[str, object] | None = None
+    spec_path: str | None = None
+    if isinstance(spec, Mapping):
+        spec_data = spec
+    elif spec is not None:
+        spec_path = os.fspath(spec)
+        spec_data = load_spec(spec_path)
+    elif find_spec and not isinstance(source, pd.DataFrame):
+        found = spec_beside(source)
+        if found is not None:
+            spec_path = str(found)
+            spec_data = load_spec(found)
+    treatments = (treatment,) if isinstance(treatment, str) else tuple(treatment)
+    return build_claim(
+        response=response,
+        treatments=treatments,
+        unit=unit,
+        claim_text=claim,
+        alpha=alpha,
+        na_values=tuple(str(v) for v in na),
+        sheet=sheet,
+        spec=spec_data,
+        spec_path=spec_path,
+    )
+
+
+def _resolve(table: Table, claim: Claim) -> Claim:
+    cols = table.columns
+    response = resolve_column(cols, claim.response, "response")
+    treatments = tuple(resolve_column(cols, t, "treatment") for t in claim.treatments)
+    if len(set(treatments)) != len(treatments):
+        raise InputError(f"the same column is named twice as a treatment: {', '.join(treatments)}")
+    if response in treatments:
+        raise InputError(f"column '{response}' cannot be both the response and a treatment")
+    unit = None if claim.unit is None else resolve_column(cols, claim.unit, "unit")
+    if unit is not None and (unit == response or unit in treatments):
+        raise InputError(f"column '{unit}' cannot be the unit: it is the response or a treatment")
+    return Claim(
+        response,
+        treatments,
+        unit,
+        claim.reported,
+        claim.alpha,
+        claim.na_values,
+        claim.sheet,
+        claim.spec_path,
+    )
+
+
+def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
+    y = numeric_column(table, claim.response, "response")
+    frame = table.data.copy()
+    frame[claim.response] = y
+    keep = frame[claim.response].notna()
+    for t in claim.treatments:
+        keep &= frame[t].notna()
+    frame = frame[keep]
+    if frame.empty:
+        raise InputError("no row has both a response value and every treatment value")
+    for t in claim.treatments:
+        levels = frame[t].nunique()
+        if levels < 2:
+            only = frame[t].iloc[0]
+            raise InputError(
+                f"treatment column '{t}' has a single level ({only!s}) among rows with a "
+                f"response: nothing to compare"
+            )
+    if len(claim.treatments) > 1:
+        frame[combined_name(claim.treatments)] = combined_treatment(frame, claim.treatments)
+    term = combined_name(claim.treatments)
+    counts = frame[term].value_counts()
+    if len(frame) - len(counts) < 1:
+        raise InputError(
+            f"too few rows to test '{term}': {len(frame)} rows in {len(counts)} groups"
+        )
+    return frame
+
+
+def audit(
+    data: str | os.PathLike[str] | pd.DataFrame,
+    *,
+    response: str | None = None,
+    treatment: str | Sequence[str] = (),
+    unit: str | None = None,
+    claim: str | None = None,
+    alpha: float | None = None,
+    na: Sequence[str] = (),
+    sheet: str | None = None,
+    spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
+    find_spec: bool = True,
+    unit_labels: str = "auto",
+) -> Report:
+    """Audit one dataset against its claimed analysis.
+
+    Parameters
+    ----------
+    data:
+        A path (CSV/TSV/text, .xlsx, Parquet) or a DataFrame. Never written to.
+    response, treatment, unit:
+        Column names (matched case- and space-insensitively). ``treatment``
+        may be a list. ``unit`` is the user's belief about the experimental
+        unit: it is checked against the data, not trusted.
+    claim:
+        The reported result, e.g. ``"F(2, 57) = 8.31, p = .001"``.
+    alpha:
+        Significance level (default 0.05).
+    na:
+        Extra missing-value codes, e.g. ``["-99"]``.
+    spec:
+        A TOML spec file or a mapping with the same keys; by default a spec
+        named ``NAME.replicheck.toml`` beside the data file is used.
+    unit_labels:
+        ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
+        each treatment level) or ``global`` (labels name the same unit everywhere).
+
+    Returns
+    -------
+    Report
+        With ``status``, ``to_dict()``, ``to_json()``, ``to_text()`` and
+        ``to_markdown()``.
+
+    Raises
+    ------
+    InputError
+        Bad input, with a one-line message.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> df = pd.DataFrame({"y": [1.0, 1.2, 2.1, 2.3, 3.0, 3.1, 4.2, 4.0],
+    ...                    "feed": list("AAAABBBB"), "tank": [1, 1, 2, 2, 3, 3, 4, 4]})
+    >>> audit(df, response="y", treatment="feed").status
+    'pseudoreplicated'
+    """
+    c = make_claim(
+        data,
+        response=response,
+        treatment=treatment,
+        unit=unit,
+        claim=claim,
+        alpha=alpha,
+        na=na,
+        sheet=sheet,
+        spec=spec,
+        find_spec=find_spec,
+    )
+    table = read_table(
+        data if isinstance(data, pd.DataFrame) else Path(data), sheet=c.sheet, na_values=c.na_values
+    )
+    c = _resolve(table, c)
+    frame = _analysis_frame(table, c)
+    term = combined_name(c.treatments)
+    structure = infer_structure(
+        frame, c.response, c.treatments, stated_unit=c.unit, unit_labels=unit_labels
+    )
+    choice = structure.choice
+    y = frame[c.response].to_numpy(dtype=float)
+    trt, labels = codes_of(frame[term])
+    units = None
+    confounded = choice.relation == "confounded"
+    if choice.unit is not None and not confounded:
+        units = unit_codes(frame, choice)
+    fits = refit(y, trt, labels, term, units, confounded)
+    clustering = None
+    units_per_level: dict[str, int] = {}
+    if units is not None:
+        reml = None
+        if fits.mixed is not None and fits.mixed.converged:
+            reml = (fits.mixed.var_unit, fits.mixed.var_residual)
+        clustering = measure_clustering(y, units, trt, labels, choice.unit or "", reml)
+        for k, label in enumerate(labels):
+            units_per_level[label] = int(np.unique(units[trt == k]).size)
+    counts: dict[str, int] = {"rows": len(frame)}
+    if choice.unit is not None:
+        counts[choice.unit] = choice.n_units
+    for cand in structure.candidates:
+        counts.setdefault(cand.name, cand.n_units)
+    as_claimed = fits.get("as_claimed")
+    assert as_claimed is not None
+    rec = reconcile(c.reported, c.alpha, len(labels), counts, as_claimed, choice.unit)
+    evidence = Evidence(
+        claim=c,
+        term=term,
+        n_rows_read=table.n_rows,
+        n_rows_used=len(frame),
+        structure=structure,
+        clustering=clustering,
+        refit=fits,
+        reconciliation=rec,
+        units_per_level=units_per_level,
+    )
+    verdict = decide(evidence)
+    return Report(table, len(frame), c, term, structure, clustering, fits, rec, verdict)

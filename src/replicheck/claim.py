@@ -1,0 +1,541 @@
+"""Claim stage: what the authors say they analysed and what they report.
+
+A claim names the response column, the treatment column(s), optionally the
+experimental unit the authors state, and the reported result as text
+("F(2, 57) = 8.31, p = .001"). Values come from the command line and from a
+TOML spec file; command-line values win.
+
+The reported-result reader accepts the in-text style of the APA Publication
+Manual (7th ed.), e.g. ``F(2, 57) = 8.31, p = .001``, ``t(38) = -2.90``,
+``chi2(1, N = 90) = 0.89``, and common variants: brackets or subscript-like
+``F2,57``, unicode minus and dashes, ``df =`` given separately, capital
+``P``, ``1.2 x 10^-4`` and ``1.2e-4``, trailing stars, and "n.s.".
+
+Reading rules (documented choices):
+
+* The first statistic in the text is the one read. Its p-value is the first
+  p after it and before the next statistic; when no p follows it, the nearest
+  p before it. Other statistics and p-values are ignored.
+* "ns", "n.s.", "not significant" without a p-value give ``p_relation ==
+  "ns"`` and ``p_value is None``; :meth:`ReportedResult.significant_at` then
+  returns False at any alpha (the authors' own verdict is taken as is).
+* "p = .000" (as printed by some software) is read as "p < .001", the form
+  the APA manual asks for.
+* Lower-case ``f = 0.25`` without df is Cohen's f and ``R = .45``/``R2``
+  without brackets is a multiple correlation; both are ignored.
+* ``n = K ... per WORD`` gives ``n_per_group`` unless WORD names a container,
+  a time block or a subject (tank, cage, day, animal, ...), or the counted noun
+  is a container ("n = 3 tanks per feed"); such phrases are ignored. Any other
+  ``n = K`` / ``N = K`` (the first one) gives ``n_total``. A bare "20 per
+  group" counts only with a group-like word (group, treatment, arm, ...).
+* Decimal commas ("p = 0,01") are not supported: commas separate parts.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import tomllib
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import NamedTuple, cast
+
+from replicheck.errors import InputError
+
+__all__ = [
+    "SPEC_KEYS",
+    "SPEC_SUFFIX",
+    "Claim",
+    "ReportedResult",
+    "build_claim",
+    "load_spec",
+    "parse_reported",
+    "spec_beside",
+]
+
+SPEC_SUFFIX = ".replicheck.toml"
+SPEC_KEYS = ("alpha", "claim", "na", "response", "sheet", "treatment", "unit")
+_EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
+
+
+def _check_alpha(alpha: object) -> float:
+    if isinstance(alpha, bool) or not isinstance(alpha, int | float) or not 0 < alpha < 1:
+        raise InputError(f"alpha must be a number between 0 and 1 (exclusive), got {alpha!r}")
+    return float(alpha)
+
+
+@dataclass(frozen=True)
+class ReportedResult:
+    """A reported test result as read from text; fields are None when not given."""
+
+    text: str
+    test: str | None = None  # "F", "t", "chi2", "z", "r"
+    statistic: float | None = None
+    df: tuple[float, ...] | None = None  # F: (num, den); t, chi2, r: (df,)
+    p_value: float | None = None
+    p_relation: str | None = None  # "=", "<", "<=", ">", ">=", "ns"
+    n_per_group: int | None = None
+    n_total: int | None = None
+
+    def p_upper(self) -> float | None:
+        """Largest p consistent with the report (no allowance for rounding of "=")."""
+        if self.p_relation in ("=", "<", "<="):
+            return self.p_value
+        if self.p_relation in (">", ">=", "ns"):
+            return 1.0
+        return None
+
+    def significant_at(self, alpha: float) -> bool | None:
+        """What the report says about ``p < alpha``; None when it cannot tell.
+
+        "=" on the boundary (p = .05 at alpha .05) is None because the printed
+        value is rounded; "p < .10" or "p > .01" at alpha .05 are None; "ns" is
+        False; no p-value is None (the caller may compute p from the statistic).
+        """
+        a = _check_alpha(alpha)
+        rel, p = self.p_relation, self.p_value
+        if rel == "ns":
+            return False
+        if rel is None or p is None:
+            return None
+        if rel == "=":
+            return None if p == a else p < a
+        if rel == "<":
+            return True if p <= a else None
+        if rel == "<=":
+            return True if p < a else None
+        return False if p >= a else None  # ">" or ">="
+
+
+# --- reading reported text -------------------------------------------------
+
+_TRANSLATE = str.maketrans(
+    {
+        **{c: "-" for c in "\u2212\u2010\u2011\u2012\u2013\u2014\u2015\ufe63\uff0d\u207b\u208b"},
+        **{c: " " for c in "\u00a0\u2002\u2003\u2009\u200a\u202f"},
+        **{c: str(i) for i, c in enumerate("⁰¹²³⁴⁵⁶⁷⁸⁹")},
+        **{c: str(i) for i, c in enumerate("₀₁₂₃₄₅₆₇₈₉")},
+        "≤": "<=",
+        "≦": "<=",
+        "≥": ">=",
+        "≧": ">=",
+        "＝": "=",
+        "＜": "<",
+        "＞": ">",
+        "Χ": "χ",
+        "∗": "*",
+        "⁺": "+",
+        "₊": "+",
+    }
+)
+_NUM = r"[-+]?\s?(?:\d+(?:\.\d+)?|\.\d+)(?:e[-+]?\d+)?(?:\s*[x×*·]\s*10\s*(?:\^|\*\*)?\s*[-+]?\d+)?"
+_NUM_PARTS = re.compile(
+    r"(?P<sign>[-+]?)\s?(?P<mant>(?:\d+(?:\.(?P<dec>\d+))?|\.(?P<dec2>\d+))(?:e[-+]?\d+)?)"
+    r"(?:\s*[x×*·]\s*10\s*(?:\^|\*\*)?\s*(?P<exp>[-+]?\d+))?",
+    re.I,
+)
+_STAT = re.compile(
+    r"(?<![\w.])(?P<name>chi[-\s]?squared?|chi\s*\^?\s*2|χ\s*\^?\s*2|x\^?2|F|t|z|r)"
+    r"(?:\s*[(\[](?P<dfb>[^()\[\]]*)[)\]]|(?P<dfbare>\d+(?:\.\d+)?(?:\s*,\s*\d+(?:\.\d+)?)?))?"
+    rf"\s*=\s*(?P<stat>{_NUM})",
+    re.I,
+)
+_DF_PART = re.compile(rf"(?:dfs?\s*=\s*)?(?P<df>{_NUM})|n\s*=\s*(?P<n>\d+)", re.I)
+_DF_SEP = re.compile(
+    r"(?<![\w.])d\.?fs?\.?\s*[=:]?\s*[(\[]?\s*(?P<a>\d+(?:\.\d+)?)(?:\s*[,/;]\s*(?P<b>\d+(?:\.\d+)?))?",
+    re.I,
+)
+_P = re.compile(
+    rf"(?<![\w.])ps?(?:[-\s]?values?)?\s*(?P<rel><=|>=|=<|=>|<|>|=)\s*(?P<num>{_NUM})", re.I
+)
+_NS = re.compile(
+    r"(?<![\w.])(?:n\.\s?s\b\.?|ns\b|not\s+(?:statistically\s+)?significant"
+    r"|non-?significant|no\s+(?:statistically\s+)?significant)",
+    re.I,
+)
+_N = re.compile(r"(?<![\w.])n\s*=\s*(?P<k>\d{1,3}(?:,\d{3})+(?!\d)|\d+)(?![.]\d|\d)", re.I)
+_COUNT = re.compile(r"(?<![\w.,])(?P<k>\d+)(?![.]\d|\d)")
+_PER = re.compile(
+    r"\s*(?:(?P<noun>[^\W\d_]+)\s+){0,2}?"
+    r"(?:(?:(?:per|in\s+each|for\s+each)\s+|/\s*)(?P<word>[^\W\d_]+)|(?P<each>each)\b(?!\s*[^\W\d_]))",
+    re.I,
+)
+_CONTAINERS = frozenset(
+    {
+        "tank",
+        "aquarium",
+        "cage",
+        "pen",
+        "enclosure",
+        "pond",
+        "plate",
+        "well",
+        "dish",
+        "flask",
+        "jar",
+        "tube",
+        "pot",
+        "tray",
+        "plot",
+        "block",
+        "batch",
+        "run",
+        "day",
+        "session",
+        "litter",
+        "nest",
+        "hive",
+        "colony",
+        "room",
+        "chamber",
+        "replicate",
+        "bench",
+        "shelf",
+        "site",
+        "farm",
+        "herd",
+        "school",
+        "class",
+        "classroom",
+        "hospital",
+        "clinic",
+        "ward",
+        "household",
+        "family",
+        "cluster",
+        "unit",
+    }
+)
+_SUBJECTS = frozenset(
+    {
+        "animal",
+        "subject",
+        "individual",
+        "participant",
+        "patient",
+        "mouse",
+        "mice",
+        "rat",
+        "fish",
+        "plant",
+        "tree",
+        "leaf",
+        "leave",
+        "bird",
+        "dog",
+        "cow",
+        "pig",
+        "sample",
+        "specimen",
+        "mother",
+        "dam",
+    }
+)
+_GROUP_WORDS = frozenset(
+    {"group", "treatment", "condition", "arm", "level", "cell", "diet", "feed", "dose", "genotype"}
+)
+
+
+class _Stat(NamedTuple):
+    test: str
+    statistic: float
+    df: tuple[float, ...] | None
+    start: int
+    end: int
+
+
+def _singular_in(word: str | None, words: frozenset[str]) -> bool:
+    if not word:
+        return False
+    w = word.lower()
+    forms = {w, w[:-1] if w.endswith("s") else w, w[:-2] if w.endswith("es") else w}
+    if w.endswith("ies"):
+        forms.add(w[:-3] + "y")
+    return bool(forms & words)
+
+
+def _number(s: str, what: str) -> float:
+    m = _NUM_PARTS.fullmatch(s.strip())
+    if m is None:  # pragma: no cover - _NUM and _NUM_PARTS accept the same strings
+        raise InputError(f"cannot read the number {s!r} for {what}")
+    value = float(m["mant"]) * (10.0 ** int(m["exp"]) if m["exp"] else 1.0)
+    return -value if m["sign"] == "-" else value
+
+
+def _read_stat(m: re.Match[str], src: str) -> _Stat | None:
+    raw = m["name"]
+    name = raw.lower()
+    test = "chi2" if name[0] in "cχx" else ("F" if name == "f" else name)
+    bracket, bare = m["dfb"], m["dfbare"]
+    if bracket is None and bare is None and raw in ("f", "R"):
+        return None  # Cohen's f / multiple R, not a test statistic
+    if bare is not None and test not in ("F", "t"):
+        return None  # e.g. "R2 = .45"
+    df_text = bracket if bracket is not None else bare
+    dfs: list[float] = []
+    for part in re.split(r"[,;/]", df_text) if df_text is not None else []:
+        pm = _DF_PART.fullmatch(part.strip())
+        if pm is None:
+            return None  # brackets hold something other than df, e.g. "t (two-tailed)"
+        if pm["df"] is not None:
+            dfs.append(_number(pm["df"], "degrees of freedom"))
+    statistic = _number(m["stat"], test)
+    df = tuple(dfs) or None
+    _check_stat(test, statistic, df, src)
+    return _Stat(test, statistic, df, m.start(), m.end())
+
+
+def _check_stat(test: str, statistic: float, df: tuple[float, ...] | None, src: str) -> None:
+    if df is not None:
+        wanted = {"F": 2, "z": 0}.get(test, 1)
+        if len(df) != wanted:
+            need = (
+                "two degrees of freedom (numerator, denominator)"
+                if wanted == 2
+                else ("no degrees of freedom" if wanted == 0 else "one degree-of-freedom value")
+            )
+            raise InputError(f"{test} takes {need}, got {len(df)} in {src!r}")
+        if not all(math.isfinite(d) and d > 0 for d in df):
+            raise InputError(f"degrees of freedom must be positive in {src!r}")
+    if test in ("F", "chi2") and statistic < 0:
+        raise InputError(f"{test} cannot be negative in {src!r}")
+    if test == "r" and abs(statistic) > 1:
+        raise InputError(f"a correlation r must lie between -1 and 1 in {src!r}")
+
+
+def _read_p(m: re.Match[str], src: str) -> tuple[float, str]:
+    rel = {"=<": "<=", "=>": ">="}.get(m["rel"], m["rel"])
+    p = _number(m["num"], "p")
+    if not 0 <= p <= 1 or (p == 0 and rel in ("<", "<=")):
+        raise InputError(f"p-value {m['num'].strip()} is impossible in {src!r}")
+    if p == 0 and rel == "=":  # "p = .000": read as p < .001 (APA manual's advice)
+        parts = _NUM_PARTS.fullmatch(m["num"].strip())
+        decimals = len((parts["dec"] or parts["dec2"] or "") if parts else "")
+        return 10.0**-decimals, "<"
+    return p, rel
+
+
+def _read_n(norm: str, src: str) -> tuple[int | None, int | None]:
+    per_group: int | None = None
+    total: int | None = None
+    for m in _N.finditer(norm):
+        k = int(m["k"].replace(",", ""))
+        if k < 1:
+            raise InputError(f"sample size n = {k} is impossible in {src!r}")
+        per = _PER.match(norm, m.end())
+        if per is None:
+            total = k if total is None else total
+        elif per_group is None and not (
+            _singular_in(per["word"], _CONTAINERS | _SUBJECTS)
+            or _singular_in(per["noun"], _CONTAINERS)
+        ):
+            per_group = k
+    if per_group is None:  # bare "20 per group"
+        for m in _COUNT.finditer(norm):
+            per = _PER.match(norm, m.end())
+            if (
+                per is not None
+                and _singular_in(per["word"], _GROUP_WORDS)
+                and not _singular_in(per["noun"], _CONTAINERS)
+                and int(m["k"]) > 0
+            ):
+                per_group = int(m["k"])
+                break
+    return per_group, total
+
+
+def parse_reported(text: str) -> ReportedResult:
+    """Read a reported result such as ``"F(2, 57) = 8.31, p = .001"``.
+
+    See the module docstring for the accepted styles and reading rules.
+    Raises :class:`InputError` when the text holds no statistic, p-value,
+    "n.s." or sample size, or when a value is impossible (p > 1, F < 0, ...).
+    """
+    if not isinstance(text, str) or not text.strip():
+        raise InputError(f"the reported result is empty: {_EXAMPLE}")
+    norm = " ".join(text.translate(_TRANSLATE).split())
+    stats = [s for s in (_read_stat(m, text) for m in _STAT.finditer(norm)) if s is not None]
+    first = stats[0] if stats else None
+    test: str | None = None
+    statistic: float | None = None
+    df: tuple[float, ...] | None = None
+    ps = list(_P.finditer(norm))
+    chosen = ps[0] if ps else None
+    if first is not None:
+        test, statistic, df = first.test, first.statistic, first.df
+        seg_end = stats[1].start if len(stats) > 1 else len(norm)
+        if df is None and test != "z":
+            sep = _DF_SEP.search(norm, first.end, seg_end) or _DF_SEP.search(norm, 0, first.start)
+            if sep is not None:
+                vals = [float(v) for v in (sep["a"], sep["b"]) if v is not None]
+                df = tuple(vals[:2] if test == "F" else vals[:1])
+                _check_stat(test, statistic, df, text)
+        after = [p for p in ps if first.end <= p.start() < seg_end]
+        before = [p for p in ps if p.start() < first.start]
+        chosen = after[0] if after else (before[-1] if before else None)
+    p_value, p_relation = _read_p(chosen, text) if chosen is not None else (None, None)
+    if p_relation is None and _NS.search(norm):
+        p_relation = "ns"
+    n_per_group, n_total = _read_n(norm, text)
+    if test is None and p_relation is None and n_per_group is None and n_total is None:
+        raise InputError(f"no statistic, p-value or sample size recognised in {text!r}: {_EXAMPLE}")
+    return ReportedResult(text, test, statistic, df, p_value, p_relation, n_per_group, n_total)
+
+
+# --- spec files and the claim -------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Claim:
+    """The analysis the authors claim, with the reported result if given."""
+
+    response: str
+    treatments: tuple[str, ...]
+    unit: str | None = None
+    reported: ReportedResult | None = None
+    alpha: float = 0.05
+    na_values: tuple[str, ...] = ()
+    sheet: str | None = None
+    spec_path: str | None = None
+
+
+def spec_beside(data_path: str | os.PathLike[str]) -> Path | None:
+    """The spec file next to a data file (``trial.csv`` -> ``trial.replicheck.toml``), if any."""
+    p = Path(data_path)
+    candidate = p.with_name(p.stem + SPEC_SUFFIX)
+    return candidate if candidate.is_file() else None
+
+
+def _kind(value: object) -> str:
+    for typ, label in (
+        (bool, "true/false"),
+        (str, "text"),
+        (int, "an integer"),
+        (float, "a number"),
+        (list, "a list"),
+        (dict, "a table"),
+    ):
+        if isinstance(value, typ):
+            return label
+    return type(value).__name__
+
+
+def _text(value: object, key: str, source: str) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise InputError(f"'{key}' in {source} must be a non-empty string, not {_kind(value)}")
+    return value
+
+
+def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
+    unknown = sorted(set(spec) - set(SPEC_KEYS))
+    if unknown:
+        names = ", ".join(repr(k) for k in unknown)
+        raise InputError(f"unknown key {names} in {source}; allowed keys: {', '.join(SPEC_KEYS)}")
+    out: dict[str, object] = {}
+    for key in ("response", "unit", "claim"):
+        if key in spec:
+            out[key] = _text(spec[key], key, source)
+    if "treatment" in spec:
+        value = spec["treatment"]
+        items = list(value) if isinstance(value, list | tuple) else [value]
+        if not items:
+            raise InputError(f"'treatment' in {source} is an empty list: name at least one column")
+        out["treatment"] = tuple(_text(v, "treatment", source) for v in items)
+    if "alpha" in spec:
+        value = spec["alpha"]
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise InputError(f"'alpha' in {source} must be a number, not {_kind(value)}")
+        out["alpha"] = _check_alpha(value)
+    if "na" in spec:
+        value = spec["na"]
+        items = list(value) if isinstance(value, list | tuple) else [value]
+        for v in items:
+            if isinstance(v, bool) or not isinstance(v, str | int | float):
+                raise InputError(f"'na' in {source} must hold strings or numbers, not {_kind(v)}")
+        out["na"] = tuple(str(v) for v in items)
+    if "sheet" in spec:
+        value = spec["sheet"]
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, str | int)
+            or (isinstance(value, int) and value < 0)
+        ):
+            raise InputError(f"'sheet' in {source} must be a sheet name or a number >= 0")
+        out["sheet"] = value
+    return out
+
+
+def load_spec(path: str | os.PathLike[str]) -> dict[str, object]:
+    """Read and check a TOML spec file; values are normalised (treatment and na as tuples)."""
+    p = Path(path)
+    try:
+        raw = p.read_bytes()
+    except FileNotFoundError:
+        raise InputError(f"spec file not found: {p}") from None
+    except OSError as err:
+        raise InputError(f"cannot read spec file {p}: {err.strerror or err}") from None
+    try:
+        data = tomllib.loads(raw.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise InputError(f"spec file {p} is not UTF-8 text, as TOML requires") from None
+    except tomllib.TOMLDecodeError as err:
+        raise InputError(f"spec file {p} is not valid TOML: {err}") from None
+    return _check_spec(data, str(p))
+
+
+def build_claim(
+    *,
+    response: str | None,
+    treatments: Sequence[str],
+    unit: str | None,
+    claim_text: str | None,
+    alpha: float | None,
+    na_values: Sequence[str],
+    sheet: str | None,
+    spec: Mapping[str, object] | None,
+    spec_path: str | None = None,
+) -> Claim:
+    """Merge command-line values with a spec; command-line values win.
+
+    Treatments given on the command line replace the spec's list; na values
+    are the union (spec first); alpha defaults to 0.05. An integer sheet from
+    the spec becomes its string form (the reader decides name or position).
+    """
+    s = _check_spec(spec or {}, spec_path or "the spec")
+    resp = response if response is not None else cast("str | None", s.get("response"))
+    if resp is None:
+        raise InputError("no response column given: use --response COL or 'response' in the spec")
+    resp = _text(resp, "response", "the command line")
+    if isinstance(treatments, str):
+        treatments = (treatments,)
+    treats = tuple(treatments) or cast("tuple[str, ...]", s.get("treatment", ()))
+    if not treats:
+        raise InputError(
+            "no treatment column given: use --treatment COL or 'treatment' in the spec"
+        )
+    treats = tuple(_text(t, "treatment", "the command line") for t in treats)
+    if len(set(treats)) != len(treats):
+        raise InputError(f"a treatment column is given twice: {', '.join(treats)}")
+    if resp in treats:
+        raise InputError(f"column {resp!r} cannot be both the response and a treatment")
+    u = unit if unit is not None else cast("str | None", s.get("unit"))
+    if u is not None and _text(u, "unit", "the command line") == resp:
+        raise InputError(f"column {resp!r} cannot be both the response and the unit")
+    text = claim_text if claim_text is not None else cast("str | None", s.get("claim"))
+    reported = parse_reported(text) if text is not None else None
+    a = _check_alpha(alpha) if alpha is not None else cast(float, s.get("alpha", 0.05))
+    spec_na = cast("tuple[str, ...]", s.get("na", ()))
+    na = tuple(dict.fromkeys([*spec_na, *(str(v) for v in na_values)]))
+    sh = sheet if sheet is not None else cast("str | int | None", s.get("sheet"))
+    return Claim(
+        response=resp,
+        treatments=treats,
+        unit=u,
+        reported=reported,
+        alpha=a,
+        na_values=na,
+        sheet=None if sh is None else str(sh),
+        spec_path=spec_path,
+    )

@@ -1,0 +1,252 @@
+"""Command line: parse options, call the audit, render, set the exit code.
+
+Exit codes: 0 no problem found, 1 problem found, 2 usage or input error,
+3 internal error (a bug: please report it).
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import traceback
+from collections.abc import Sequence
+from pathlib import Path
+
+import click
+
+from replicheck import __version__
+from replicheck.errors import InputError
+
+FORMATS = ("text", "json", "markdown")
+
+
+def _render(report: object, fmt: str) -> str:
+    from replicheck.report.model import Report
+
+    assert isinstance(report, Report)
+    if fmt == "json":
+        return report.to_json() + "\n"
+    if fmt == "markdown":
+        return report.to_markdown()
+    return report.to_text()
+
+
+def _emit(text: str, output: str | None) -> None:
+    if output is None:
+        click.echo(text, nl=False)
+        return
+    try:
+        Path(output).write_text(text, encoding="utf-8")
+    except OSError as err:
+        raise InputError(f"cannot write report to {output}: {err.strerror or err}") from None
+    click.echo(f"report written to {output}", err=True)
+
+
+def _check_output(output: str | None, *inputs: str) -> None:
+    if output is None:
+        return
+    out = os.path.realpath(output)
+    for path in inputs:
+        if path and os.path.realpath(path) == out:
+            raise InputError(f"--output {output} would overwrite the input file")
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(__version__, prog_name="replicheck")
+def cli() -> None:
+    """Screen a finished experimental dataset for pseudo-replication and confounding.
+
+    Give it a data file and the claimed analysis; it finds the experimental
+    unit, measures how alike observations within a unit are, refits the
+    analysis with the unit as the replicate and gives a corrected verdict.
+    It is a screening aid: how the experiment was run decides the unit.
+    """
+
+
+@cli.command()
+@click.argument("data", type=click.Path(dir_okay=True, path_type=str))
+@click.option("-r", "--response", metavar="COL", help="Column holding the measured response.")
+@click.option(
+    "-t",
+    "--treatment",
+    "treatments",
+    metavar="COL",
+    multiple=True,
+    help="Treatment column (repeat for several).",
+)
+@click.option(
+    "-u",
+    "--unit",
+    metavar="COL",
+    help="The column you believe is the experimental unit (checked, not trusted).",
+)
+@click.option(
+    "-c",
+    "--claim",
+    "claim_text",
+    metavar="TEXT",
+    help="The reported result, e.g. 'F(2, 57) = 8.31, p = .001'.",
+)
+@click.option(
+    "--spec",
+    metavar="FILE",
+    type=click.Path(dir_okay=False, path_type=str),
+    help="TOML file with response, treatment, unit, claim, alpha, na, sheet. "
+    "Default: NAME.replicheck.toml beside the data file, if present.",
+)
+@click.option("--no-spec", is_flag=True, help="Ignore a spec file found beside the data.")
+@click.option("--alpha", type=float, metavar="A", help="Significance level (default 0.05).")
+@click.option(
+    "--na",
+    "na_codes",
+    metavar="CODE",
+    multiple=True,
+    help="Extra missing-value code (repeatable); empty, NA, N/A and '.' always count.",
+)
+@click.option("--sheet", metavar="NAME", help="Sheet of an .xlsx workbook (name or 0-based index).")
+@click.option(
+    "--unit-labels",
+    type=click.Choice(["auto", "local", "global"]),
+    default="auto",
+    show_default=True,
+    help="local: unit labels restart within each treatment level ('tank 1' of each "
+    "feed is a different tank); global: a label names one unit everywhere.",
+)
+@click.option(
+    "-f",
+    "--format",
+    "fmt",
+    type=click.Choice(FORMATS),
+    default="text",
+    show_default=True,
+    help="Report format.",
+)
+@click.option("-o", "--output", metavar="PATH", help="Write the report here instead of stdout.")
+def check(
+    data: str,
+    response: str | None,
+    treatments: Sequence[str],
+    unit: str | None,
+    claim_text: str | None,
+    spec: str | None,
+    no_spec: bool,
+    alpha: float | None,
+    na_codes: Sequence[str],
+    sheet: str | None,
+    unit_labels: str,
+    fmt: str,
+    output: str | None,
+) -> None:
+    """Audit DATA against its claimed analysis.
+
+    \b
+    Example:
+      replicheck check fish.csv -r length -t feed -c "F(2, 105) = 9.8, p < .001"
+    """
+    from replicheck.api import audit
+
+    _check_output(output, data, spec or "")
+    report = audit(
+        data,
+        response=response,
+        treatment=treatments,
+        unit=unit,
+        claim=claim_text,
+        alpha=alpha,
+        na=na_codes,
+        sheet=sheet,
+        spec=spec,
+        find_spec=not no_spec,
+        unit_labels=unit_labels,
+    )
+    if report.claim.spec_path and spec is None:
+        click.echo(f"using spec {report.claim.spec_path}", err=True)
+    _emit(_render(report, fmt), output)
+    sys.exit(report.exit_code)
+
+
+@cli.command()
+@click.argument("name", required=False)
+@click.option("--list", "list_", is_flag=True, help="List the demo scenarios.")
+@click.option(
+    "--write",
+    "write_dir",
+    metavar="DIR",
+    help="Write the scenario's data and spec files into DIR instead of auditing.",
+)
+@click.option(
+    "-f",
+    "--format",
+    "fmt",
+    type=click.Choice(FORMATS),
+    default="text",
+    show_default=True,
+    help="Report format.",
+)
+def demo(name: str | None, list_: bool, write_dir: str | None, fmt: str) -> None:
+    """Audit an invented demo dataset (default: the fish-feed scenario).
+
+    The demo exits 0 when it ran, whatever its verdict.
+    """
+    from replicheck.api import audit
+    from replicheck.demo import SCENARIOS, get_scenario
+
+    if list_:
+        for s in SCENARIOS.values():
+            click.echo(f"{s.name:10} {s.expected:17} {s.title}")
+        return
+    scenario = get_scenario(name)
+    if write_dir is not None:
+        for path in scenario.write(Path(write_dir)):
+            click.echo(str(path))
+        return
+    click.echo(f"demo scenario '{scenario.name}' (INVENTED DATA): {scenario.title}", err=True)
+    click.echo(scenario.story, err=True)
+    click.echo(f"command: {scenario.command()}\n", err=True)
+    report = audit(scenario.frame(), spec=scenario.spec(), find_spec=False)
+    click.echo(_render(report, fmt), nl=False)
+
+
+@cli.command()
+def rules() -> None:
+    """List the rules behind the findings."""
+    from replicheck.verdict import RULES
+
+    for name, (_, doc) in RULES.items():
+        click.echo(f"{name:34} {doc}")
+
+
+def main(argv: Sequence[str] | None = None) -> None:
+    """Entry point: one line on stderr and exit 2 for bad input; never a traceback for it."""
+    try:
+        cli.main(
+            args=list(argv) if argv is not None else None,
+            prog_name="replicheck",
+            standalone_mode=False,
+        )
+    except InputError as err:
+        click.echo(f"replicheck: error: {err}", err=True)
+        sys.exit(2)
+    except click.exceptions.Abort:
+        click.echo("replicheck: aborted", err=True)
+        sys.exit(2)
+    except click.ClickException as err:
+        msg = " ".join(err.format_message().split())
+        click.echo(f"replicheck: error: {msg} (see 'replicheck --help')", err=True)
+        sys.exit(2)
+    except SystemExit:
+        raise
+    except Exception as err:  # a bug: one line, and the traceback only on request
+        if os.environ.get("REPLICHECK_DEBUG"):
+            traceback.print_exc()
+        click.echo(
+            f"replicheck: internal error: {type(err).__name__}: {err} "
+            f"(set REPLICHECK_DEBUG=1 for details; please report it)",
+            err=True,
+        )
+        sys.exit(3)
+    sys.exit(0)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,102 @@
+"""Clustering stage: how alike observations within an experimental unit are.
+
+Gives the residual intraclass correlation within treatment levels (one-way
+ANOVA estimator with its F-based interval, and the REML estimate), the
+variance components, the design effect and the effective sample size.
+
+References: Searle, Casella & McCulloch (1992) *Variance Components*, ch. 3;
+Kish (1965) *Survey Sampling*; Donner & Klar (2000) *Design and Analysis of
+Cluster Randomization Trials*; Eldridge, Ashby & Kerry (2006) Int. J.
+Epidemiol. 35:1292-1300 (unequal cluster sizes).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from replicheck.stats.clustering import anova_components, design_effect
+
+
+@dataclass(frozen=True)
+class Clustering:
+    """Clustering of the response within experimental units, within treatment levels."""
+
+    unit: str
+    n_units: int
+    n_observations: int
+    icc: float  # the estimate used for the design effect (REML when available)
+    icc_method: str
+    icc_anova: float
+    icc_anova_raw: float  # before truncation at zero
+    icc_ci: tuple[float, float]
+    icc_reml: float | None
+    var_unit: float
+    var_residual: float
+    design_effect: float
+    design_effect_equal_sizes: float
+    mean_unit_size: float
+    cv_unit_size: float
+    effective_n: float
+    effective_n_per_level: dict[str, float]
+
+
+def measure_clustering(
+    y: np.ndarray,
+    unit: np.ndarray,
+    treatment: np.ndarray,
+    treatment_labels: list[str],
+    unit_name: str,
+    reml_components: tuple[float, float] | None = None,
+    confidence: float = 0.95,
+) -> Clustering | None:
+    """Measure clustering of ``y`` in ``unit`` within ``treatment`` levels.
+
+    ``reml_components`` is (unit variance, residual variance) from the mixed
+    model when it was fitted. Returns None when the units are not replicated
+    within treatment levels (no within-treatment unit variation to measure) or
+    no unit holds two observations.
+    """
+    n_units = int(unit.max()) + 1
+    n_trt = int(treatment.max()) + 1
+    if n_units - n_trt < 1 or y.size - n_units < 1:
+        return None
+    comp = anova_components(y, unit, treatment, conf_level=confidence)
+    icc_reml = None
+    var_unit, var_resid = comp.s2_unit, comp.s2_within
+    method = "one-way ANOVA estimator"
+    if reml_components is not None:
+        var_unit, var_resid = reml_components
+        total = var_unit + var_resid
+        icc_reml = var_unit / total if total > 0 else 0.0
+        method = "REML"
+    icc = icc_reml if icc_reml is not None else comp.icc
+    sizes = np.bincount(unit, minlength=n_units)
+    deff = design_effect(sizes, icc)
+    per_level: dict[str, float] = {}
+    for k, label in enumerate(treatment_labels):
+        in_level = np.unique(unit[treatment == k])
+        if in_level.size == 0:
+            continue
+        d = design_effect(sizes[in_level], icc)
+        per_level[label] = float(d.effective_n)
+    return Clustering(
+        unit=unit_name,
+        n_units=n_units,
+        n_observations=int(y.size),
+        icc=float(icc),
+        icc_method=method,
+        icc_anova=float(comp.icc),
+        icc_anova_raw=float(comp.icc_raw),
+        icc_ci=(float(comp.ci_low), float(comp.ci_high)),
+        icc_reml=icc_reml,
+        var_unit=float(var_unit),
+        var_residual=float(var_resid),
+        design_effect=float(deff.deff),
+        design_effect_equal_sizes=float(deff.deff_equal),
+        mean_unit_size=float(deff.mean_size),
+        cv_unit_size=float(deff.cv_size),
+        effective_n=float(deff.effective_n),
+        effective_n_per_level=per_level,
+    )

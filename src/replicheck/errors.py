@@ -1,0 +1,20 @@
+"""The one error type for bad input and bad usage.
+
+Every stage raises :class:`InputError` with a single-line message when the
+input cannot be used. The command-line layer prints that line and exits with
+code 2; nothing else in the package prints or exits.
+"""
+
+from __future__ import annotations
+
+
+class InputError(Exception):
+    """Bad input or usage: a one-line message for the user, exit code 2."""
+
+    def __init__(self, message: str) -> None:
+        one_line = " ".join(str(message).split())
+        super().__init__(one_line)
+        self.message = one_line
+
+    def __str__(self) -> str:
+        return self.message

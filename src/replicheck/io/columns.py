@@ -1,0 +1,158 @@
+"""Column names: cleaning, uniqueness, lookup by a user's spelling, numeric access."""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+from collections.abc import Iterable, Sequence
+
+import numpy as np
+import pandas as pd
+from pandas.api.types import (
+    is_bool_dtype,
+    is_datetime64_any_dtype,
+    is_numeric_dtype,
+    is_timedelta64_dtype,
+)
+
+from replicheck.errors import InputError
+from replicheck.io.table import Table
+from replicheck.io.text import COMMA_DECIMAL, DOT_DECIMAL
+
+_SEPARATORS = re.compile(r"[\s_.\-]+")
+_LIST_ALL_UP_TO = 8
+
+
+def quote_list(names: Iterable[object], limit: int | None = None) -> str:
+    """``'a', 'b', 'c'``; with ``limit``, the first ``limit`` then ``... (N in all)``."""
+    items = [f"'{name}'" for name in names]
+    if limit is not None and len(items) > limit:
+        return ", ".join(items[:limit]) + f", ... ({len(items)} in all)"
+    return ", ".join(items)
+
+
+def clean_names(raw: Sequence[object]) -> tuple[list[str], set[int]]:
+    """Strip whitespace and byte-order marks; name blank headers ``"Unnamed: i"``.
+
+    Returns the names and the positions whose header was blank.
+    """
+    names: list[str] = []
+    blank: set[int] = set()
+    for i, value in enumerate(raw):
+        missing = value is None or (isinstance(value, float) and math.isnan(value))
+        name = "" if missing else str(value).replace("\ufeff", "").strip()
+        if not name:
+            blank.add(i)
+            name = f"Unnamed: {i}"
+        names.append(name)
+    return names, blank
+
+
+def check_names(names: Sequence[str], blank: set[int], label: str) -> None:
+    """Raise :class:`InputError` for a header without names or with duplicates.
+
+    Names that differ only in case count as duplicates: they would be confused
+    by anyone reading a report, and by :func:`resolve_column`.
+    """
+    if len(names) == len(blank):
+        raise InputError(f"{label}: no column names (the header row is empty)")
+    groups: dict[str, list[str]] = {}
+    for i, name in enumerate(names):
+        if i not in blank:
+            groups.setdefault(name.casefold(), []).append(name)
+    duplicates = [quote_list(group) for group in groups.values() if len(group) > 1]
+    if duplicates:
+        raise InputError(
+            f"{label}: duplicate column names (ignoring case and surrounding spaces): "
+            + "; ".join(duplicates)
+        )
+
+
+def _normalise(name: str) -> str:
+    return _SEPARATORS.sub("", name).casefold()
+
+
+def _column_label(role: str) -> str:
+    return "column" if role == "column" else f"{role} column"
+
+
+def resolve_column(columns: Sequence[str], name: str, role: str = "column") -> str:
+    """Find the column a user meant by ``name``.
+
+    Tries an exact match, then a match ignoring case, then a match ignoring case
+    and the separators space, underscore, dot and hyphen (``"Tank ID"`` finds
+    ``"tank_id"``). Raises :class:`InputError` naming the candidates when the
+    match is ambiguous, or the closest names (``difflib``) when there is none.
+    """
+    columns = [str(c) for c in columns]
+    if name in columns:
+        return name
+    wanted = name.strip()
+    what = _column_label(role)
+    for key in (str.casefold, _normalise):
+        hits = [c for c in columns if key(c) == key(wanted)]
+        if len(hits) == 1:
+            return hits[0]
+        if len(hits) > 1:
+            raise InputError(f"ambiguous {what} '{name}': it matches {quote_list(hits)}")
+    if not columns:
+        raise InputError(f"unknown {what} '{name}'; the table has no columns")
+    by_key: dict[str, list[str]] = {}
+    for c in columns:
+        by_key.setdefault(_normalise(c), []).append(c)
+    close = difflib.get_close_matches(_normalise(wanted), list(by_key), n=3, cutoff=0.6)
+    if close:
+        suggestions = [c for key in close for c in by_key[key]]
+        raise InputError(f"unknown {what} '{name}'; closest: {quote_list(suggestions)}")
+    raise InputError(
+        f"unknown {what} '{name}'; columns are: {quote_list(columns, limit=_LIST_ALL_UP_TO)}"
+    )
+
+
+def parse_numbers(values: pd.Series, decimal: str = ".") -> pd.Series:
+    """Parse cells as floats (NaN where a cell is missing or not a number).
+
+    With ``decimal=","`` cells like ``-12,5`` are read as -12.5.
+    """
+    text = values.astype("string").str.strip()
+    if decimal == ",":
+        text = text.str.replace(r"^([+-]?\d+),(\d+)$", r"\1.\2", regex=True)
+    parsed = pd.to_numeric(text, errors="coerce").astype("Float64")
+    return pd.Series(parsed.to_numpy(dtype=float, na_value=np.nan), index=values.index)
+
+
+def column_decimal(values: pd.Series) -> str:
+    """``","`` when text cells use a decimal comma and none uses a decimal point."""
+    text = values.dropna().astype("string").str.strip()
+    uses_comma = bool(text.str.match(COMMA_DECIMAL.pattern).any())
+    uses_dot = bool(text.str.match(DOT_DECIMAL.pattern).any())
+    return "," if uses_comma and not uses_dot else "."
+
+
+def numeric_column(table: Table, column: str, role: str = "response") -> pd.Series:
+    """The column as a float Series (NaN for missing), or :class:`InputError`.
+
+    ``column`` is looked up with :func:`resolve_column`. Text cells are parsed
+    as numbers, with a decimal comma when the column writes numbers that way;
+    any cell that is neither missing nor a number makes the column non-numeric.
+    """
+    name = resolve_column(table.columns, column, role)
+    what = f"{_column_label(role)} '{name}'"
+    series = table.data[name]
+    if is_bool_dtype(series) or is_numeric_dtype(series):
+        values = series.astype(float)
+    else:
+        if is_datetime64_any_dtype(series) or is_timedelta64_dtype(series):
+            values = pd.Series(np.nan, index=series.index)
+        else:
+            values = parse_numbers(series, column_decimal(series))
+        bad = series[series.notna() & values.isna()]
+        if len(bad):
+            examples = quote_list(pd.unique(bad.astype(str).str.strip())[:3])
+            raise InputError(f"{what} is not numeric (examples: {examples})")
+    if values.notna().sum() == 0:
+        raise InputError(f"{what} has no non-missing values")
+    if np.isinf(values.to_numpy()).any():
+        raise InputError(f"{what} has infinite values")
+    return values.rename(name)

@@ -1,0 +1,115 @@
+"""Markdown rendering of a report dictionary, for pasting into a review letter."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from replicheck.report.text import STATUS_WORDS, analyses_rows, fmt_df, fmt_num, fmt_p
+
+
+def _esc(text: object) -> str:
+    return str(text).replace("|", "\\|").replace("<", "&lt;").replace(">", "&gt;")
+
+
+def _yes_no(flag: bool | None) -> str:
+    return "unknown" if flag is None else ("yes" if flag else "no")
+
+
+def render_markdown(doc: dict[str, Any]) -> str:
+    """Render the report dictionary as Markdown."""
+    v, c, inp = doc["verdict"], doc["claim"], doc["input"]
+    changed = v["conclusion_changed"]
+    lines = [
+        f"## replicheck audit: `{_esc(inp['source'])}`",
+        "",
+        f"**Verdict: {STATUS_WORDS.get(v['status'], v['status'])}.** Conclusion changed at "
+        f"alpha = {c['alpha']}: **{_yes_no(changed)}**.",
+        "",
+        _esc(v["summary"]),
+        "",
+        "### Key figures",
+        "",
+        "| | value |",
+        "|---|---|",
+        f"| response | `{_esc(c['response'])}` |",
+        f"| treatment | {', '.join('`' + _esc(t) + '`' for t in c['treatments'])} |",
+    ]
+    for u in doc["experimental_units"]:
+        lines.append(
+            f"| experimental unit of `{_esc(u['treatment'])}` | "
+            f"{'`' + _esc(u['unit']) + '`' if u['unit'] else 'each row'} ({u['relation']}, "
+            f"{u['n_units']} units, {u['n_observations']} observations) |"
+        )
+    cl = doc["clustering"]
+    if cl.get("icc") is not None:
+        lo, hi = cl["icc_ci"]
+        lines += [
+            f"| ICC | {cl['icc']:.3f} (ANOVA {cl['icc_anova']:.3f}, 95% CI {lo:.3f} to {hi:.3f}) |",
+            f"| design effect | {cl['design_effect']:.2f} |",
+            f"| effective n | {cl['effective_n']:.1f} of {cl['n_observations']} |",
+        ]
+    if c["reported"]:
+        lines.append(f"| reported | {_esc(c['reported']['text'])} |")
+    rc = doc["reported_check"]
+    if rc["explanation"]:
+        lines.append(f"| reported df | {_esc(rc['explanation'])} |")
+    lines += [
+        "",
+        "### Analyses",
+        "",
+        "| analysis | replicates | F | df | p | significant |",
+        "|---|---|---|---|---|---|",
+    ]
+    for r in analyses_rows(doc):
+        lines.append("| " + " | ".join(_esc(x) for x in r) + " |")
+    lines.append("")
+    lines.append("`*` marks the analysis the corrected verdict rests on.")
+    if doc["findings"]:
+        lines += ["", "### Findings", ""]
+        for f in doc["findings"]:
+            lines.append(
+                f"- **{f['severity']}** `{f['rule']}`: {_esc(f['message'])} "
+                f"*What to do:* {_esc(f['advice'])}"
+            )
+    lines += ["", "### Suggested wording", "", "> " + _esc(suggested_wording(doc))]
+    lines += ["", "### Caution", "", _esc(doc["caution"]), ""]
+    return "\n".join(lines)
+
+
+def suggested_wording(doc: dict[str, Any]) -> str:
+    """A sentence a reviewer can adapt for a report to authors or editors."""
+    v = doc["verdict"]
+    units = doc["experimental_units"][-1]
+    trt = ", ".join(doc["claim"]["treatments"])
+    if v["status"] == "confounded":
+        return (
+            f"Each level of {trt} appears to have been applied to a single {units['unit']}; "
+            f"if so, the treatment effect cannot be separated from differences between "
+            f"{units['unit']} levels, and the statistical test reported does not support the "
+            f"conclusion. Could the authors clarify how treatments were allocated?"
+        )
+    if v["status"] == "pseudoreplicated":
+        corrected = next((a for a in doc["analyses"] if a["corrected"]), None)
+        extra = ""
+        if corrected and corrected["p_value"] is not None:
+            extra = (
+                f" Reanalysed with {units['unit']} as the replicate, the data give "
+                f"F({fmt_df(corrected['df'])}) = {fmt_num(corrected['statistic'])}, "
+                f"p = {fmt_p(corrected['p_value'])}."
+            )
+        return (
+            f"The treatment ({trt}) appears to have been applied to {units['unit']} units "
+            f"({units['n_units']} in all), while the analysis treats the "
+            f"{units['n_observations']} individual observations as independent replicates."
+            f"{extra} Please analyse the data with {units['unit']} as the experimental unit "
+            f"(or a mixed model with a random effect for it) and report n accordingly."
+        )
+    if v["status"] == "unclear":
+        return (
+            "From the data file alone it is not clear what the experimental unit was. Could "
+            "the authors state how treatments were allocated and which unit the analysis "
+            "treats as the replicate?"
+        )
+    return (
+        "The data file gives no sign that observations were counted as replicates of a larger unit."
+    )

@@ -1,0 +1,221 @@
+"""The report object: every stage's result in one place, and its plain-data form.
+
+Renderers (text, JSON, Markdown) read the dictionary from :meth:`Report.to_dict`
+and never compute statistics. The JSON schema is documented in
+``docs/report-schema.md``; additions keep old fields working.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import asdict, dataclass
+from typing import Any
+
+from replicheck import __version__
+from replicheck.claim import Claim
+from replicheck.clustering import Clustering
+from replicheck.io import Table
+from replicheck.reconcile import Reconciliation
+from replicheck.refit import Refit
+from replicheck.structure.units import Structure
+from replicheck.verdict import Verdict
+
+SCHEMA = "replicheck/report-v1"
+
+
+def _clean(x: Any) -> Any:
+    """Make a value JSON-safe: NaN and infinities become None, tuples lists."""
+    if isinstance(x, float):
+        return x if math.isfinite(x) else None
+    if isinstance(x, dict):
+        return {str(k): _clean(v) for k, v in x.items()}
+    if isinstance(x, list | tuple):
+        return [_clean(v) for v in x]
+    if hasattr(x, "item") and callable(x.item):  # numpy scalars
+        return _clean(x.item())
+    return x
+
+
+@dataclass(frozen=True)
+class Report:
+    """The result of one audit."""
+
+    table: Table
+    n_rows_used: int
+    claim: Claim
+    term: str
+    structure: Structure
+    clustering: Clustering | None
+    refit: Refit
+    reconciliation: Reconciliation
+    verdict: Verdict
+
+    @property
+    def status(self) -> str:
+        return self.verdict.status
+
+    @property
+    def exit_code(self) -> int:
+        """0 when no problem was found, 1 otherwise."""
+        return 0 if self.verdict.status == "ok" else 1
+
+    def to_dict(self) -> dict[str, Any]:
+        """The report as plain data (the JSON document)."""
+        t, c, s = self.table, self.claim, self.structure
+        alpha = c.alpha
+        rep = None
+        if c.reported is not None:
+            r = c.reported
+            rep = {
+                "text": r.text,
+                "test": r.test,
+                "statistic": r.statistic,
+                "df": list(r.df) if r.df is not None else None,
+                "p_value": r.p_value,
+                "p_relation": r.p_relation,
+                "n_per_group": r.n_per_group,
+                "n_total": r.n_total,
+            }
+        units = [
+            {
+                "treatment": u.treatment,
+                "unit": u.unit,
+                "relation": u.relation,
+                "n_units": u.n_units,
+                "n_observations": u.n_observations,
+                "columns": list(u.columns),
+                "source": u.source,
+                "reading": u.reading,
+                "single_unit_levels": list(u.single_unit_levels),
+            }
+            for u in (s.per_treatment if len(c.treatments) == 1 else (*s.per_treatment, s.choice))
+        ]
+        cl = self.clustering
+        clustering: dict[str, Any] = {
+            "icc": None,
+            "icc_ci": None,
+            "design_effect": None,
+            "effective_n": None,
+        }
+        if cl is not None:
+            clustering = {
+                "icc": cl.icc,
+                "icc_ci": list(cl.icc_ci),
+                "design_effect": cl.design_effect,
+                "effective_n": cl.effective_n,
+                "unit": cl.unit,
+                "icc_method": cl.icc_method,
+                "icc_anova": cl.icc_anova,
+                "icc_reml": cl.icc_reml,
+                "variance_components": {"unit": cl.var_unit, "residual": cl.var_residual},
+                "design_effect_equal_sizes": cl.design_effect_equal_sizes,
+                "mean_unit_size": cl.mean_unit_size,
+                "cv_unit_size": cl.cv_unit_size,
+                "n_units": cl.n_units,
+                "n_observations": cl.n_observations,
+                "effective_n_per_level": cl.effective_n_per_level,
+            }
+        analyses = [
+            {
+                "name": a.name,
+                "label": a.label,
+                "term": a.term,
+                "level": a.level,
+                "n_replicates": a.n_replicates,
+                "statistic": a.statistic,
+                "df": list(a.df) if a.df is not None else None,
+                "p_value": a.p_value,
+                "significant": a.significant(alpha),
+                "t_statistic": a.t_statistic,
+                "estimate": a.estimate,
+                "notes": list(a.notes),
+                "corrected": a.name == self.refit.corrected,
+            }
+            for a in self.refit.analyses
+        ]
+        doc = {
+            "schema": SCHEMA,
+            "tool": {"name": "replicheck", "version": __version__},
+            "input": {
+                "source": t.source,
+                "sha256": t.sha256,
+                "format": t.format,
+                "encoding": t.encoding,
+                "delimiter": t.delimiter,
+                "decimal": t.decimal,
+                "sheet": t.sheet,
+                "n_rows": t.n_rows,
+                "n_rows_used": self.n_rows_used,
+            },
+            "claim": {
+                "response": c.response,
+                "treatments": list(c.treatments),
+                "unit": c.unit,
+                "alpha": alpha,
+                "reported": rep,
+                "spec": c.spec_path,
+            },
+            "verdict": {
+                "status": self.verdict.status,
+                "conclusion_changed": self.verdict.conclusion_changed,
+                "method": self.verdict.method,
+                "summary": self.verdict.summary,
+            },
+            "experimental_units": units,
+            "candidates": [
+                {
+                    "treatment": k.treatment,
+                    "grouping": k.name,
+                    "relation": k.relation,
+                    "n_units": k.n_units,
+                    "mean_size": k.mean_size,
+                    "icc": k.icc,
+                    "icc_p_value": k.icc_p,
+                    "name_hint": k.hint.kind,
+                    "alias": k.alias,
+                    "credible": k.credible,
+                    "score": k.score,
+                    "reasons": list(k.reasons),
+                }
+                for k in s.candidates
+            ],
+            "relations": [
+                {
+                    "column": r.column,
+                    "treatment": r.treatment,
+                    "relation": r.relation,
+                    "n_levels": r.n_levels,
+                    "detail": r.detail,
+                    "exception_rows": list(r.exceptions),
+                }
+                for r in s.relations
+            ],
+            "skipped_columns": dict(s.skipped),
+            "clustering": clustering,
+            "analyses": analyses,
+            "reported_check": {
+                "level": self.reconciliation.level,
+                "grouping": self.reconciliation.level_grouping,
+                "explanation": self.reconciliation.explanation,
+                "mismatches": list(self.reconciliation.mismatches),
+                "claimed_significant": self.reconciliation.claimed_significant,
+            },
+            "findings": [asdict(f) for f in self.verdict.findings],
+            "caution": self.verdict.caution,
+        }
+        return _clean(doc)
+
+    def to_json(self, indent: int | None = 2) -> str:
+        """The JSON document."""
+        return json.dumps(self.to_dict(), indent=indent, ensure_ascii=False)
+
+    def to_text(self) -> str:
+        from replicheck.report.text import render_text
+
+        return render_text(self.to_dict())
+
+    def to_markdown(self) -> str:
+        from replicheck.report.markdown import render_markdown
+
+        return render_markdown(self.to_dict())

