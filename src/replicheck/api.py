@@ -17,17 +17,13 @@ from replicheck.claim import Claim, build_claim, load_spec, spec_beside
 from replicheck.clustering import measure_clustering
 from replicheck.errors import InputError
 from replicheck.io import Table, numeric_column, read_table, resolve_column
-from replicheck.reconcile import reconcile
-from replicheck.refit import refit
+from replicheck.reconcile import Level, reconcile
+from replicheck.refit import TermInput, design_matrix, refit
 from replicheck.report.model import Report
 from replicheck.structure.relations import codes_of
-from replicheck.structure.units import (
-    combined_name,
-    combined_treatment,
-    infer_structure,
-    unit_codes,
-)
-from replicheck.verdict import Evidence, decide
+from replicheck.structure.terms import model_terms, term_values
+from replicheck.structure.units import Structure, UnitChoice, infer_structure, unit_codes
+from replicheck.verdict import Evidence, TermEvidence, decide
 
 
 def make_claim(
@@ -104,22 +100,45 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
     if frame.empty:
         raise InputError("no row has both a response value and every treatment value")
     for t in claim.treatments:
-        levels = frame[t].nunique()
-        if levels < 2:
+        if frame[t].nunique() < 2:
             only = frame[t].iloc[0]
             raise InputError(
                 f"treatment column '{t}' has a single level ({only!s}) among rows with a "
                 f"response: nothing to compare"
             )
-    if len(claim.treatments) > 1:
-        frame[combined_name(claim.treatments)] = combined_treatment(frame, claim.treatments)
-    term = combined_name(claim.treatments)
-    counts = frame[term].value_counts()
-    if len(frame) - len(counts) < 1:
-        raise InputError(
-            f"too few rows to test '{term}': {len(frame)} rows in {len(counts)} groups"
-        )
+    cells = frame[list(claim.treatments)].drop_duplicates().shape[0]
+    if len(frame) - cells < 1:
+        raise InputError(f"too few rows to test the treatment: {len(frame)} rows in {cells} groups")
     return frame
+
+
+def _levels(
+    n: int,
+    first: TermInput,
+    n_params: int,
+    choice: UnitChoice,
+    structure: Structure,
+    single: bool,
+) -> list[Level]:
+    """Levels at which the claimed term could have been analysed, rows first."""
+    k = len(first.labels)
+    rows_removed = f"{k} groups" if single else f"{n_params} model parameters"
+    levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(first.codes)))]
+    if first.unit is not None and choice.unit is not None:
+        per = []
+        for j in range(k):
+            per.append(int(np.unique(first.unit[first.codes == j]).size))
+        levels.append(
+            Level(
+                choice.unit, "units", choice.n_units, choice.n_units - k, f"{k} groups", tuple(per)
+            )
+        )
+    seen = {lv.name for lv in levels}
+    for cand in structure.candidates:
+        if cand.treatment == first.term and cand.name not in seen:
+            seen.add(cand.name)
+            levels.append(Level(cand.name, "other", cand.n_units, cand.n_units - k, f"{k} groups"))
+    return levels
 
 
 def audit(
@@ -195,45 +214,66 @@ def audit(
     )
     c = _resolve(table, c)
     frame = _analysis_frame(table, c)
-    term = combined_name(c.treatments)
+    terms = model_terms(frame, c.treatments)
+    interactions = [t.name for t in terms if t.is_interaction]
+    for t in terms:
+        if t.is_interaction:
+            frame[t.name] = term_values(frame, t.factors)
     structure = infer_structure(
-        frame, c.response, c.treatments, stated_unit=c.unit, unit_labels=unit_labels
+        frame,
+        c.response,
+        [t.name for t in terms],
+        exclude=c.treatments,
+        interactions=interactions,
+        stated_unit=c.unit,
+        unit_labels=unit_labels,
     )
-    choice = structure.choice
     y = frame[c.response].to_numpy(dtype=float)
-    trt, labels = codes_of(frame[term])
-    units = None
-    confounded = choice.relation == "confounded"
-    if choice.unit is not None and not confounded:
-        units = unit_codes(frame, choice)
-    fits = refit(y, trt, labels, term, units, confounded)
-    clustering = None
-    units_per_level: dict[str, int] = {}
-    if units is not None:
-        reml = None
-        if fits.mixed is not None and fits.mixed.converged:
-            reml = (fits.mixed.var_unit, fits.mixed.var_residual)
-        clustering = measure_clustering(y, units, trt, labels, choice.unit or "", reml)
-        for k, label in enumerate(labels):
-            units_per_level[label] = int(np.unique(units[trt == k]).size)
-    counts: dict[str, int] = {"rows": len(frame)}
-    if choice.unit is not None:
-        counts[choice.unit] = choice.n_units
-    for cand in structure.candidates:
-        counts.setdefault(cand.name, cand.n_units)
-    as_claimed = fits.get("as_claimed")
+    inputs: list[TermInput] = []
+    for t in terms:
+        choice = structure.unit_of(t.name)
+        codes, labels = codes_of(frame[t.name])
+        confounded = choice.relation == "confounded"
+        units = unit_codes(frame, choice) if choice.unit is not None and not confounded else None
+        inputs.append(TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded))
+    fits = refit(y, inputs)
+    evidence_terms: list[TermEvidence] = []
+    for i, ti in enumerate(inputs):
+        tr = fits.term(ti.term)
+        clustering = None
+        per_level: dict[str, int] = {}
+        if ti.unit is not None and ti.unit_name is not None:
+            v = tr.unit_variance
+            reml = (v.var_unit, v.var_residual) if v is not None and v.converged else None
+            clustering = measure_clustering(y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml)
+            for k, label in enumerate(ti.labels):
+                per_level[label] = int(np.unique(ti.unit[ti.codes == k]).size)
+        evidence_terms.append(
+            TermEvidence(
+                ti.term, ti.factors, structure.unit_of(ti.term), clustering, tr, per_level, i == 0
+            )
+        )
+    first = inputs[0]
+    first_fit = fits.term(first.term)
+    as_claimed = first_fit.get("as_claimed")
     assert as_claimed is not None
-    rec = reconcile(c.reported, c.alpha, len(labels), counts, as_claimed, choice.unit)
+    n_params = (
+        len(first.labels)
+        if len(terms) == 1
+        else int(np.linalg.matrix_rank(design_matrix(inputs, "sum")[0]))
+    )
+    levels = _levels(
+        len(frame), first, n_params, structure.unit_of(first.term), structure, len(terms) == 1
+    )
+    unit_level = [a for a in first_fit.analyses if a.level == "units" and a.p_value is not None]
+    rec = reconcile(c.reported, c.alpha, levels, as_claimed, len(first.labels) - 1, unit_level)
     evidence = Evidence(
         claim=c,
-        term=term,
         n_rows_read=table.n_rows,
         n_rows_used=len(frame),
         structure=structure,
-        clustering=clustering,
-        refit=fits,
+        terms=tuple(evidence_terms),
         reconciliation=rec,
-        units_per_level=units_per_level,
     )
     verdict = decide(evidence)
-    return Report(table, len(frame), c, term, structure, clustering, fits, rec, verdict)
+    return Report(table, len(frame), c, evidence, fits, verdict)

@@ -1,22 +1,27 @@
 """Refit stage: the analysis as claimed, and the analyses that respect the unit.
 
-* ``as_claimed``: every row a replicate (Student t for two levels, one-way
-  ANOVA otherwise), reproduced from the data;
-* ``unit_means``: the same test on the means of the experimental units;
-* ``mixed_model``: a random intercept for the unit, fitted by REML, with an F
-  test whose denominator degrees of freedom are Satterthwaite's
-  (Satterthwaite 1946, Biometrics Bulletin 2:110-114; Kuznetsova, Brockhoff &
-  Christensen 2017, J. Stat. Softw. 82(13)).
+For every term (a treatment, or an interaction of treatments):
 
-When each treatment level sits in a single unit no test is possible and no
-p-value is given.
+* ``as_claimed``: every row a replicate. One treatment: Student t for two
+  levels, one-way ANOVA otherwise. Several: ordinary least squares with
+  sum-to-zero coded main effects and interactions, F test of each term (the
+  "type III" test; balanced designs give the classical ANOVA table);
+* ``unit_means``: a one-way test of the term on the means of its experimental
+  units;
+* ``mixed_model``: random intercepts for every experimental unit found, fitted
+  by REML, with an F test whose denominator degrees of freedom are
+  Satterthwaite's (Satterthwaite 1946, Biometrics Bulletin 2:110-114;
+  Kuznetsova, Brockhoff & Christensen 2017, J. Stat. Softw. 82(13));
+* ``no_test``: when each level of the term sits in a single unit: no p-value.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import stats as sps
 
 from replicheck.stats.classic import oneway_anova, two_sample_t
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
@@ -24,7 +29,7 @@ from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 
 @dataclass(frozen=True)
 class Analysis:
-    """One test of the treatment."""
+    """One test of one term."""
 
     name: str  # as_claimed | unit_means | mixed_model | no_test
     label: str
@@ -35,7 +40,7 @@ class Analysis:
     df: tuple[float, float] | None
     p_value: float | None
     t_statistic: float | None = None
-    estimate: float | None = None  # difference of the second level's mean from the first's
+    estimate: float | None = None  # second level's mean minus the first's (two levels)
     notes: tuple[str, ...] = ()
 
     def significant(self, alpha: float) -> bool | None:
@@ -44,9 +49,23 @@ class Analysis:
 
 
 @dataclass(frozen=True)
-class MixedSummary:
-    """What the verdict and clustering stages need from the mixed model."""
+class TermInput:
+    """What the refit needs to know about one term."""
 
+    term: str
+    factors: tuple[str, ...]
+    codes: np.ndarray  # level codes 0..k-1 of the term
+    labels: list[str]
+    unit: np.ndarray | None  # unit codes, None when each row is its own unit
+    unit_name: str | None
+    confounded: bool
+
+
+@dataclass(frozen=True)
+class UnitVariance:
+    """The mixed model's variance estimate for one experimental unit."""
+
+    unit: str
     var_unit: float
     var_residual: float
     at_boundary: bool
@@ -54,12 +73,13 @@ class MixedSummary:
 
 
 @dataclass(frozen=True)
-class Refit:
-    """All analyses of the treatment and the one the corrected verdict rests on."""
+class TermRefit:
+    """All analyses of one term and the one its corrected verdict rests on."""
 
+    term: str
     analyses: tuple[Analysis, ...]
-    corrected: str | None  # name of the analysis the verdict rests on; None when no test exists
-    mixed: MixedSummary | None
+    corrected: str | None  # None when no valid test exists
+    unit_variance: UnitVariance | None
 
     def get(self, name: str) -> Analysis | None:
         for a in self.analyses:
@@ -68,94 +88,179 @@ class Refit:
         return None
 
 
-def _plain_test(
-    name: str, label: str, term: str, level: str, y: np.ndarray, groups: np.ndarray
-) -> Analysis:
+@dataclass(frozen=True)
+class Refit:
+    """The refits of every term."""
+
+    terms: tuple[TermRefit, ...]
+
+    @property
+    def analyses(self) -> tuple[Analysis, ...]:
+        return tuple(a for t in self.terms for a in t.analyses)
+
+    def term(self, name: str) -> TermRefit:
+        for t in self.terms:
+            if t.term == name:
+                return t
+        raise KeyError(name)
+
+
+LABELS = {
+    "as_claimed": "as claimed: every row a replicate",
+    "unit_means": "unit means: one value per experimental unit",
+    "mixed_model": "mixed model: random intercept per unit, REML, Satterthwaite df",
+    "no_test": "no valid test: each level sits in a single unit",
+}
+
+
+def _plain_test(name: str, term: str, level: str, y: np.ndarray, groups: np.ndarray) -> Analysis:
     k = int(groups.max()) + 1
     n = int(y.size)
     if k == 2:
         r = two_sample_t(y, groups)
         t = float(r.statistic)
-        return Analysis(
-            name,
-            label,
-            term,
-            level,
-            n,
-            t * t,
-            (1.0, float(r.df[0])),
-            float(r.p_value),
-            t_statistic=t,
-            estimate=None if r.estimate is None else float(r.estimate),
-        )
+        est = None if r.estimate is None else float(r.estimate)
+        df = (1.0, float(r.df[0]))
+        return Analysis(name, LABELS[name], term, level, n, t * t, df, float(r.p_value), t, est)
     r = oneway_anova(y, groups)
-    return Analysis(
-        name,
-        label,
-        term,
-        level,
-        n,
-        float(r.statistic),
-        (float(r.df[0]), float(r.df[1])),
-        float(r.p_value),
-    )
+    df = (float(r.df[0]), float(r.df[1]))
+    return Analysis(name, LABELS[name], term, level, n, float(r.statistic), df, float(r.p_value))
 
 
-def _design(treatment: np.ndarray, k: int) -> np.ndarray:
-    X = np.zeros((treatment.size, k))
-    X[:, 0] = 1.0
-    for j in range(1, k):
-        X[:, j] = treatment == j
-    return X
+def _unit_means(t: TermInput, y: np.ndarray) -> Analysis:
+    assert t.unit is not None
+    n_units = int(t.unit.max()) + 1
+    sums = np.bincount(t.unit, weights=y, minlength=n_units)
+    sizes = np.bincount(t.unit, minlength=n_units)
+    unit_level = np.zeros(n_units, dtype=np.int64)
+    unit_level[t.unit] = t.codes  # units are nested in the term's levels
+    return _plain_test("unit_means", t.term, "units", sums / sizes, unit_level)
 
 
-def canonical_contrasts(X: np.ndarray, k: int) -> np.ndarray:
-    """Contrasts for "all treatment levels equal", whitened so that L (X'X)^-1 L' = I.
+def whitened(L: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """The rows of ``L`` re-expressed so that L (X'X)^-1 L' = I.
 
     The multi-df Satterthwaite F of Fai & Cornelius (1996) rotates the
     contrasts to the eigenvectors of L C L', so its denominator df depend on
     the basis chosen for the hypothesis (lmerTest's type III contrasts depend
     on the order of the levels). Whitening with respect to (X'X)^-1 fixes the
     basis up to an orthogonal rotation, under which the eigen-contrasts do not
-    change: the df then no longer depend on how the levels are named or
-    ordered. The F statistic itself is the same for every basis.
+    change: the df then do not depend on how levels are named or ordered. The
+    F statistic is the same for every basis.
     """
-    L = np.zeros((k - 1, k))
-    L[:, 1:] = np.eye(k - 1)
-    if k <= 2:
+    if L.shape[0] == 1:
         return L
-    s = L @ np.linalg.solve(X.T @ X, L.T)
+    s = L @ np.linalg.pinv(X.T @ X) @ L.T
     w, v = np.linalg.eigh(s)
     return np.asarray((v / np.sqrt(w)) @ v.T @ L)
 
 
-def _mixed(
-    y: np.ndarray, treatment: np.ndarray, unit: np.ndarray, term: str, labels: list[str]
-) -> tuple[Analysis, MixedFit]:
-    k = int(treatment.max()) + 1
-    X = _design(treatment, k)
-    names = ["(Intercept)", *[f"{term}[{labels[j]}]" for j in range(1, k)]]
-    fit = fit_reml(y, X, {"unit": unit}, names)
-    test = satterthwaite_test(fit, canonical_contrasts(X, k))
+def _coded(codes: np.ndarray, k: int, coding: str) -> np.ndarray:
+    """Treatment (first level as baseline) or sum-to-zero (last level -1) coding."""
+    cols = np.zeros((codes.size, k - 1))
+    for j in range(k - 1):
+        if coding == "treatment":
+            cols[:, j] = codes == j + 1
+        else:
+            cols[:, j] = (codes == j).astype(float) - (codes == k - 1)
+    return cols
+
+
+def design_matrix(
+    terms: Sequence[TermInput], coding: str
+) -> tuple[np.ndarray, dict[str, list[int]], list[str]]:
+    """Intercept, main effects and interactions; column indices of each term; names."""
+    n = terms[0].codes.size
+    blocks: dict[str, np.ndarray] = {}
+    main = {t.factors[0]: t for t in terms if len(t.factors) == 1}
+    for t in terms:
+        if len(t.factors) == 1:
+            blocks[t.term] = _coded(t.codes, len(t.labels), coding)
+        else:
+            block = np.ones((n, 1))
+            for f in t.factors:
+                m = main[f]
+                part = _coded(m.codes, len(m.labels), coding)
+                block = (block[:, :, None] * part[:, None, :]).reshape(n, -1)
+            blocks[t.term] = block
+    columns = [np.ones((n, 1))]
+    index: dict[str, list[int]] = {}
+    names = ["(Intercept)"]
+    at = 1
+    for term, block in blocks.items():
+        columns.append(block)
+        index[term] = list(range(at, at + block.shape[1]))
+        names += [f"{term}[{j}]" for j in range(block.shape[1])]
+        at += block.shape[1]
+    return np.hstack(columns), index, names
+
+
+def _contrast(index: list[int], p: int) -> np.ndarray:
+    L = np.zeros((len(index), p))
+    L[np.arange(len(index)), index] = 1.0
+    return L
+
+
+def _ols_term_tests(
+    y: np.ndarray, X: np.ndarray, index: dict[str, list[int]], terms: Sequence[TermInput]
+) -> list[Analysis]:
+    """Row-level F test of every term in the OLS fit of all terms."""
+    xtx_inv = np.linalg.pinv(X.T @ X)
+    beta = xtx_inv @ (X.T @ y)
+    resid = y - X @ beta
+    rank = int(np.linalg.matrix_rank(X))
+    df_res = y.size - rank
+    s2 = float(resid @ resid) / df_res
+    out = []
+    for t in terms:
+        L = _contrast(index[t.term], X.shape[1])
+        lb = L @ beta
+        q = L.shape[0]
+        f = float(lb @ np.linalg.solve(L @ xtx_inv @ L.T, lb)) / q / s2
+        p = float(sps.f.sf(f, q, df_res))
+        name = "as_claimed"
+        out.append(
+            Analysis(
+                name, LABELS[name], t.term, "rows", int(y.size), f, (float(q), float(df_res)), p
+            )
+        )
+    return out
+
+
+def _random_units(terms: Sequence[TermInput], n: int) -> dict[str, np.ndarray]:
+    units: dict[str, np.ndarray] = {}
+    for t in terms:
+        if t.unit is None or t.unit_name is None or t.confounded:
+            continue
+        if int(t.unit.max()) + 1 < n and t.unit_name not in units:
+            units[t.unit_name] = t.unit
+    return units
+
+
+def _mixed_analysis(
+    fit: MixedFit, X: np.ndarray, index: list[int], t: TermInput, n_rep: int, two: bool
+) -> Analysis:
+    L = _contrast(index, X.shape[1])
+    test = satterthwaite_test(fit, whitened(L, X))
     notes = []
-    if "unit" in fit.boundary:
+    if t.unit_name is not None and t.unit_name in fit.boundary:
         notes.append(
-            "the unit variance was estimated at zero, so the mixed model reduces to the "
-            "row-level test"
+            f"the variance between {t.unit_name} units was estimated at zero, so the mixed "
+            "model treats their rows as independent"
         )
     if not fit.converged:
         notes.append("the REML optimiser reported no convergence")
-    t_stat = None
-    estimate = None
-    if k == 2:
-        estimate = float(fit.beta[1])
+    t_stat = estimate = None
+    if two and len(index) == 1:
+        estimate = float(fit.beta[index[0]])
         t_stat = float(np.sign(estimate) * np.sqrt(test.statistic))
-    analysis = Analysis(
-        "mixed_model",
-        "mixed model: random intercept per unit, REML, Satterthwaite df",
-        term,
-        "units",
-        int(unit.max()) + 1,
+    name = "mixed_model"
+    return Analysis(
+        name,
+        LABELS[name],
+        t.term,
+        "units" if t.unit is not None else "rows",
+        n_rep,
         float(test.statistic),
         (float(test.df_num), float(test.df_den)),
         float(test.p_value),
@@ -163,72 +268,69 @@ def _mixed(
         estimate=estimate,
         notes=tuple(notes),
     )
-    return analysis, fit
 
 
-def refit(
-    y: np.ndarray,
-    treatment: np.ndarray,
-    treatment_labels: list[str],
-    term: str,
-    unit: np.ndarray | None,
-    confounded: bool,
-) -> Refit:
-    """Run every analysis of the treatment.
+def refit(y: np.ndarray, terms: Sequence[TermInput]) -> Refit:
+    """Run every analysis of every term.
 
-    ``treatment`` and ``unit`` are integer codes 0..k-1 of the analysed rows;
-    ``unit`` is None when each row is its own unit.
+    With one term the row-level test is Student's t or one-way ANOVA and the
+    mixed model uses treatment coding (its estimate is the difference of the
+    second level from the first); with several, all tests come from models
+    holding every term, sum-to-zero coded.
     """
-    analyses = [
-        _plain_test("as_claimed", "as claimed: every row a replicate", term, "rows", y, treatment)
-    ]
-    k = int(treatment.max()) + 1
-    if confounded or (unit is not None and int(unit.max()) + 1 - k < 1):
-        analyses.append(
-            Analysis(
-                "no_test",
-                "no valid test: each treatment level sits in a single unit",
-                term,
-                "units",
-                k,
-                None,
-                None,
-                None,
-                notes=("treatment and unit cannot be separated, so no p-value is given",),
+    n = int(y.size)
+    single = len(terms) == 1
+    coding = "treatment" if single else "sum"
+    X, index, names = design_matrix(terms, coding)
+    if single:
+        t0 = terms[0]
+        claimed = [_plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
+    else:
+        claimed = _ols_term_tests(y, X, index, terms)
+    random = _random_units(terms, n)
+    fit: MixedFit | None = None
+    if random:
+        fit = fit_reml(y, X, random, names)
+    out: list[TermRefit] = []
+    for t, row_test in zip(terms, claimed, strict=True):
+        analyses = [row_test]
+        if t.confounded:
+            name = "no_test"
+            analyses.append(
+                Analysis(
+                    name,
+                    LABELS[name],
+                    t.term,
+                    "units",
+                    len(t.labels),
+                    None,
+                    None,
+                    None,
+                    notes=("the term and its unit cannot be separated, so no p-value is given",),
+                )
             )
-        )
-        return Refit(tuple(analyses), None, None)
-    if unit is None:
-        return Refit(tuple(analyses), "as_claimed", None)
-    n_units = int(unit.max()) + 1
-    # Unit means: every unit lies in one treatment level (nested), so its level is well defined.
-    sums = np.bincount(unit, weights=y, minlength=n_units)
-    sizes = np.bincount(unit, minlength=n_units)
-    means = sums / sizes
-    unit_trt = np.zeros(n_units, dtype=np.int64)
-    unit_trt[unit] = treatment
-    analyses.append(
-        _plain_test(
-            "unit_means",
-            "unit means: one value per experimental unit",
-            term,
-            "units",
-            means,
-            unit_trt,
-        )
-    )
-    mixed_summary = None
-    corrected = "unit_means"
-    if y.size > n_units:
-        mixed, fit = _mixed(y, treatment, unit, term, treatment_labels)
-        analyses.append(mixed)
-        at_boundary = "unit" in fit.boundary
-        mixed_summary = MixedSummary(
-            float(fit.components["unit"]),
-            float(fit.components["residual"]),
-            at_boundary,
-            bool(fit.converged),
-        )
-        if not at_boundary and fit.converged:
-            corrected = "mixed_model"
-    return Refit(tuple(analyses), corrected, mixed_summary)
+            out.append(TermRefit(t.term, tuple(analyses), None, None))
+            continue
+        has_unit = t.unit is not None and t.unit_name in random
+        if has_unit:
+            analyses.append(_unit_means(t, y))
+        variance = None
+        corrected = "unit_means" if has_unit else "as_claimed"
+        if fit is not None:
+            n_rep = int(t.unit.max()) + 1 if has_unit and t.unit is not None else n
+            analyses.append(_mixed_analysis(fit, X, index[t.term], t, n_rep, single))
+            if has_unit and t.unit_name is not None:
+                at_zero = t.unit_name in fit.boundary
+                variance = UnitVariance(
+                    t.unit_name,
+                    float(fit.components[t.unit_name]),
+                    float(fit.components["residual"]),
+                    at_zero,
+                    bool(fit.converged),
+                )
+                if not at_zero and fit.converged:
+                    corrected = "mixed_model"
+            elif fit.converged:
+                corrected = "mixed_model"
+        out.append(TermRefit(t.term, tuple(analyses), corrected, variance))
+    return Refit(tuple(out))

@@ -9,16 +9,18 @@ in a module imported here), decorate it, and document it.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.reconcile import Reconciliation
-from replicheck.refit import Refit
-from replicheck.structure.units import Structure
+from replicheck.refit import Analysis, TermRefit
+from replicheck.structure.units import Structure, UnitChoice
 
 SEVERITIES = ("error", "warning", "note")
 STATUSES = ("ok", "pseudoreplicated", "confounded", "unclear")
+# worst first: the overall status is the worst status of any term
+STATUS_ORDER = ("confounded", "pseudoreplicated", "unclear", "ok")
 
 CAUTION = (
     "replicheck is a screening aid, not a judgement. How the experiment was actually run "
@@ -44,18 +46,46 @@ class Finding:
 
 
 @dataclass(frozen=True)
+class TermEvidence:
+    """What the audit found for one term."""
+
+    term: str
+    factors: tuple[str, ...]
+    unit: UnitChoice
+    clustering: Clustering | None
+    refit: TermRefit
+    units_per_level: dict[str, int]
+    claimed: bool  # the reported result refers to this term
+
+    def analysis(self, name: str) -> Analysis | None:
+        return self.refit.get(name)
+
+    @property
+    def corrected(self) -> Analysis | None:
+        return self.refit.get(self.refit.corrected or "")
+
+
+@dataclass(frozen=True)
 class Evidence:
     """Everything the rules may look at."""
 
     claim: Claim
-    term: str
     n_rows_read: int
     n_rows_used: int
     structure: Structure
-    clustering: Clustering | None
-    refit: Refit
+    terms: tuple[TermEvidence, ...]
     reconciliation: Reconciliation
-    units_per_level: dict[str, int] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class TermVerdict:
+    """The corrected verdict for one term."""
+
+    term: str
+    status: str
+    conclusion_changed: bool | None
+    claimed_significant: bool | None
+    method: str | None
 
 
 @dataclass(frozen=True)
@@ -67,6 +97,7 @@ class Verdict:
     method: str | None
     summary: str
     findings: tuple[Finding, ...]
+    terms: tuple[TermVerdict, ...]
     caution: str = CAUTION
 
 
@@ -86,64 +117,106 @@ def rule(name: str, doc: str) -> Callable[[Rule], Rule]:
     return register
 
 
-def _unit_label(ev: Evidence) -> str:
-    return ev.structure.choice.unit or "row"
+def _p(p: float | None) -> str:
+    """'p = 0.118', 'p = 0.0031' or 'p < 0.0001'."""
+    if p is None:
+        return "p not available"
+    if p < 1e-4:
+        return "p < 0.0001"
+    return f"p = {p:.2g}" if p < 0.01 else f"p = {p:.3f}"
+
+
+def _f(a: Analysis) -> str:
+    assert a.df is not None and a.statistic is not None
+    return f"F({a.df[0]:.3g}, {a.df[1]:.3g}) = {a.statistic:.3g}, {_p(a.p_value)}"
+
+
+def _cap(text: str) -> str:
+    return text[0].upper() + text[1:] if text else text
+
+
+def claimed_significance(t: TermEvidence, ev: Evidence) -> bool | None:
+    """What the claim says about the term: the reported result, else the row-level test."""
+    if t.claimed and ev.reconciliation.claimed_significant is not None:
+        return ev.reconciliation.claimed_significant
+    row = t.analysis("as_claimed")
+    return None if row is None else row.significant(ev.claim.alpha)
+
+
+def term_status(t: TermEvidence, ev: Evidence) -> str:
+    """The status of one term from its unit and, for the claimed term, the reported df."""
+    u = t.unit
+    if u.relation == "confounded":
+        return "confounded"
+    if u.unit is None or u.n_units >= u.n_observations:
+        return "unclear" if (t.claimed and ev.structure.ambiguous) else "ok"
+    if t.claimed and ev.reconciliation.level == "units":
+        return "ok"
+    return "pseudoreplicated"
+
+
+def _changed(t: TermEvidence, ev: Evidence) -> bool | None:
+    corrected = t.corrected
+    claimed = claimed_significance(t, ev)
+    if corrected is None or claimed is None or corrected.p_value is None:
+        return None
+    return corrected.significant(ev.claim.alpha) != claimed
+
+
+def _pseudo_terms(ev: Evidence) -> Iterator[TermEvidence]:
+    for t in ev.terms:
+        if term_status(t, ev) == "pseudoreplicated":
+            yield t
 
 
 @rule("treatment-confounded-with-unit", "each treatment level sits in a single unit")
 def _confounded(ev: Evidence) -> Iterator[Finding]:
-    c = ev.structure.choice
-    if c.relation != "confounded" or c.unit is None:
-        return
-    yield Finding(
-        "treatment-confounded-with-unit",
-        "error",
-        f"every level of '{ev.term}' sits in a single level of '{c.unit}', so differences "
-        f"between treatment levels cannot be told apart from differences between "
-        f"{c.unit} levels; no valid test of '{ev.term}' exists in these data.",
-        f"Ask the authors whether each '{ev.term}' level really was applied to one "
-        f"{c.unit}. If so, the comparison needs independent replicate units per level; "
-        f"the observations within one {c.unit} cannot replace them.",
-        (ev.term, *c.columns),
-    )
+    for t in ev.terms:
+        u = t.unit
+        if u.relation != "confounded" or u.unit is None:
+            continue
+        yield Finding(
+            "treatment-confounded-with-unit",
+            "error",
+            f"Every level of '{t.term}' sits in a single level of '{u.unit}', so differences "
+            f"between the levels of '{t.term}' cannot be told apart from differences between "
+            f"{u.unit} levels; no valid test of '{t.term}' exists in these data.",
+            f"Ask the authors whether each level of '{t.term}' really was applied to one "
+            f"{u.unit}. If so, the comparison needs independent replicate units per level; "
+            f"the observations within one {u.unit} cannot replace them.",
+            (*t.factors, *u.columns),
+        )
 
 
 @rule("rows-counted-as-replicates", "rows were analysed as replicates of a larger unit")
 def _pseudo(ev: Evidence) -> Iterator[Finding]:
-    c = ev.structure.choice
-    if c.unit is None or c.relation == "confounded" or ev.reconciliation.level == "units":
-        return
-    if c.n_units >= c.n_observations:
-        return
-    changed = _changed(ev)
-    corrected = ev.refit.get(ev.refit.corrected or "")
-    claimed = ev.refit.get("as_claimed")
-    assert claimed is not None
-    how = (
-        f" ({ev.reconciliation.explanation})"
-        if ev.reconciliation.explanation and ev.reconciliation.level == "rows"
-        else ""
-    )
-    msg = (
-        f"'{ev.term}' varies only between levels of '{c.unit}' ({c.n_units} units), "
-        f"but the row-level analysis counts all {c.n_observations} rows as "
-        f"replicates{how}."
-    )
-    if corrected is not None and corrected.p_value is not None and corrected.df is not None:
-        msg += (
-            f" With {c.unit} as the replicate: F({corrected.df[0]:.3g}, {corrected.df[1]:.3g})"
-            f" = {corrected.statistic:.3g}, {_p(corrected.p_value)}"
-            f" (row level: {_p(claimed.p_value)})."
+    for t in _pseudo_terms(ev):
+        u = t.unit
+        claimed = t.analysis("as_claimed")
+        assert claimed is not None
+        rec = ev.reconciliation
+        how = (
+            f" ({rec.explanation})" if t.claimed and rec.explanation and rec.level == "rows" else ""
         )
-    yield Finding(
-        "rows-counted-as-replicates",
-        "error" if changed else "warning",
-        msg,
-        f"Analyse '{ev.term}' with {c.unit} as the experimental unit (unit means, or a "
-        f"mixed model with a random effect for {c.unit}) and report n as the number of "
-        f"{c.unit} levels per treatment level.",
-        (ev.term, *c.columns),
-    )
+        msg = (
+            f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
+            f"row-level analysis counts all {u.n_observations} rows as replicates{how}."
+        )
+        corrected = t.corrected
+        if corrected is not None and corrected.p_value is not None:
+            msg += (
+                f" With {u.unit} as the replicate: {_f(corrected)} "
+                f"(row level: {_p(claimed.p_value)})."
+            )
+        yield Finding(
+            "rows-counted-as-replicates",
+            "error" if _changed(t, ev) else "warning",
+            msg,
+            f"Analyse '{t.term}' with {u.unit} as the experimental unit (unit means, or a mixed "
+            f"model with a random effect for {u.unit}) and report n as the number of {u.unit} "
+            f"units per level.",
+            (*t.factors, *u.columns),
+        )
 
 
 @rule("reported-df-level", "which level the reported degrees of freedom point to")
@@ -154,7 +227,7 @@ def _df_level(ev: Evidence) -> Iterator[Finding]:
     yield Finding(
         "reported-df-level",
         "note",
-        r.explanation[0].upper() + r.explanation[1:] + ".",
+        _cap(r.explanation) + ".",
         "Check the stated n and degrees of freedom against the design in the methods.",
         (),
     )
@@ -166,7 +239,7 @@ def _mismatch(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "reported-result-not-reproduced",
             "warning",
-            m[0].upper() + m[1:] + ".",
+            _cap(m) + ".",
             "Ask which rows, model and test produced the reported result; data exclusions, "
             "covariates or a different test may explain the gap.",
             (ev.claim.response,),
@@ -176,29 +249,25 @@ def _mismatch(ev: Evidence) -> Iterator[Finding]:
 @rule("stated-unit-not-supported", "the user's stated unit disagrees with the data")
 def _stated(ev: Evidence) -> Iterator[Finding]:
     stated = ev.claim.unit
-    c = ev.structure.choice
-    if stated is None:
+    if stated is None or not ev.terms:
         return
+    advice = (
+        "Check how the treatment was applied; the unit is the smallest thing that received a "
+        "treatment level independently."
+    )
     for kind, text in ev.structure.readings:
         if kind == "stated-unit-not-supported":
-            yield Finding(
-                kind,
-                "warning",
-                text[0].upper() + text[1:] + ".",
-                "Check how the treatment was applied; the unit is the smallest "
-                "thing that received a treatment level independently.",
-                (stated,),
-            )
+            yield Finding(kind, "warning", _cap(text) + ".", advice, (stated,))
             return
-    if c.unit is None or stated not in c.columns:
-        where = f"; replicheck used '{c.unit}'" if c.unit else ""
+    t = ev.terms[0]
+    if t.unit.unit is None or stated not in t.unit.columns:
+        where = f"; replicheck used '{t.unit.unit}'" if t.unit.unit else ""
         yield Finding(
             "stated-unit-not-supported",
             "warning",
-            f"The stated unit '{stated}' is not a grouping within which '{ev.term}' is "
+            f"The stated unit '{stated}' is not the coarsest grouping within which '{t.term}' is "
             f"constant{where}.",
-            "Check how the treatment was applied; the unit is the smallest thing that "
-            "received a treatment level independently.",
+            advice,
             (stated,),
         )
 
@@ -209,8 +278,8 @@ def _reading_rule(name: str) -> Rule:
             if kind == name:
                 yield Finding(
                     name,
-                    "warning" if name == "stated-unit-not-supported" else "note",
-                    text[0].upper() + text[1:] + ".",
+                    "note",
+                    _cap(text) + ".",
                     "Say otherwise with --unit or --unit-labels if this reading is wrong.",
                     (),
                 )
@@ -221,23 +290,23 @@ def _reading_rule(name: str) -> Rule:
 rule("labels-local-to-treatment", "unit labels repeat under several treatment levels")(
     _reading_rule("labels-local-to-treatment")
 )
-rule(
-    "column-reads-as-treatment-label",
-    "a column has the treatment's partition and reads as its label",
-)(_reading_rule("column-reads-as-treatment-label"))
+rule("column-reads-as-treatment-label", "a column has the treatment's partition, read as a label")(
+    _reading_rule("column-reads-as-treatment-label")
+)
 
 
 @rule("treatment-coincides-with-column", "treatment coincides with a column of unknown meaning")
 def _ambiguous(ev: Evidence) -> Iterator[Finding]:
+    term = ev.terms[0].term if ev.terms else ""
     for col in ev.structure.ambiguous:
         yield Finding(
             "treatment-coincides-with-column",
             "warning",
-            f"Every level of '{ev.term}' lies in a single level of '{col}'. If '{col}' marks "
-            f"a physical unit or a time of processing, treatment is confounded with it; if it "
-            f"is another label of the treatment, this is harmless. The data cannot tell which.",
+            f"Every level of '{term}' lies in a single level of '{col}'. If '{col}' marks a "
+            f"physical unit or a time of processing, the treatment is confounded with it; if "
+            f"it is another label of the treatment, this is harmless. The data cannot tell which.",
             f"Find out what '{col}' records. If it is a unit, rerun with --unit {col}.",
-            (ev.term, col),
+            (term, col),
         )
 
 
@@ -248,59 +317,63 @@ def _partial(ev: Evidence) -> Iterator[Finding]:
             yield Finding(
                 "partial-alignment",
                 "warning",
-                r.detail[0].upper() + r.detail[1:] + ".",
-                "Check these rows for entry errors; if they are real, the design mixes "
-                "levels and the unit needs to be confirmed with the authors.",
+                _cap(r.detail) + ".",
+                "Check these rows for entry errors; if they are real, the design mixes levels "
+                "and the unit needs to be confirmed with the authors.",
                 (r.column, r.treatment),
             )
 
 
 @rule("single-unit-levels", "some treatment levels have a single unit")
 def _single(ev: Evidence) -> Iterator[Finding]:
-    c = ev.structure.choice
-    if c.relation == "confounded" or not c.single_unit_levels:
-        return
-    levels = ", ".join(f"'{s}'" for s in c.single_unit_levels)
-    yield Finding(
-        "single-unit-levels",
-        "warning",
-        f"The level(s) {levels} of '{ev.term}' sit in a single {c.unit}: their effect cannot "
-        f"be separated from that {c.unit}'s own effect.",
-        "Treat comparisons involving these levels as unreplicated.",
-        (ev.term, *c.columns),
-    )
+    for t in ev.terms:
+        u = t.unit
+        if u.relation == "confounded" or not u.single_unit_levels:
+            continue
+        levels = ", ".join(f"'{s}'" for s in u.single_unit_levels)
+        yield Finding(
+            "single-unit-levels",
+            "warning",
+            f"The level(s) {levels} of '{t.term}' sit in a single {u.unit}: their effect cannot "
+            f"be separated from that {u.unit}'s own effect.",
+            "Treat comparisons involving these levels as unreplicated.",
+            (*t.factors, *u.columns),
+        )
 
 
 @rule("few-units", "fewer than three units per treatment level")
 def _few(ev: Evidence) -> Iterator[Finding]:
-    c = ev.structure.choice
-    if c.unit is None or c.relation == "confounded" or not ev.units_per_level:
-        return
-    least = min(ev.units_per_level.values())
-    if 1 < least < FEW_UNITS:
-        yield Finding(
-            "few-units",
-            "warning",
-            f"Some levels of '{ev.term}' have only {least} {c.unit} units: the corrected "
-            f"test rests on very few error degrees of freedom and has little power.",
-            "Read a non-significant corrected result as 'not shown', not as 'no effect'.",
-            tuple(c.columns),
-        )
+    for t in ev.terms:
+        u = t.unit
+        if u.unit is None or u.relation == "confounded" or not t.units_per_level:
+            continue
+        least = min(t.units_per_level.values())
+        if 1 < least < FEW_UNITS:
+            yield Finding(
+                "few-units",
+                "warning",
+                f"Some levels of '{t.term}' have only {least} {u.unit} units: the corrected test "
+                f"rests on very few error degrees of freedom and has little power.",
+                "Read a non-significant corrected result as 'not shown', not as 'no effect'.",
+                tuple(u.columns),
+            )
 
 
 @rule("unit-variance-zero", "the mixed model put the unit variance at zero")
 def _boundary(ev: Evidence) -> Iterator[Finding]:
-    m = ev.refit.mixed
-    if m is None or not m.at_boundary:
-        return
-    yield Finding(
-        "unit-variance-zero",
-        "note",
-        "The REML estimate of the between-unit variance is zero, so the mixed model equals "
-        "the row-level analysis; the verdict rests on the unit-means test, which stays valid.",
-        "A zero estimate does not prove units are alike; with few units it is often chance.",
-        (),
-    )
+    for t in ev.terms:
+        v = t.refit.unit_variance
+        if v is None or not v.at_boundary:
+            continue
+        yield Finding(
+            "unit-variance-zero",
+            "note",
+            f"The REML estimate of the variance between {v.unit} units is zero, so the mixed "
+            f"model treats their rows as independent; the verdict on '{t.term}' rests on the "
+            f"unit-means test, which stays valid.",
+            "A zero estimate does not prove units are alike; with few units it is often chance.",
+            (),
+        )
 
 
 @rule("rows-dropped", "rows were left out for missing values")
@@ -310,63 +383,29 @@ def _dropped(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "rows-dropped",
             "note",
-            f"{lost} of {ev.n_rows_read} rows were left out because the response or a "
-            f"treatment value is missing.",
+            f"{lost} of {ev.n_rows_read} rows were left out because the response or a treatment "
+            f"value is missing.",
             "Check that the missing values match the paper's stated exclusions.",
             (ev.claim.response, *ev.claim.treatments),
         )
 
 
-@rule("crossed-grouping", "a grouping crossed with treatment shows clustering")
+@rule("crossed-grouping", "a grouping is crossed with treatment")
 def _crossed(ev: Evidence) -> Iterator[Finding]:
-    crossed = [r for r in ev.structure.relations if r.relation == "crossed"]
-    local = {c for ch in ev.structure.per_treatment for c in ch.columns}
-    for r in crossed:
-        if r.column in local:
+    used = {c for t in ev.terms for c in t.unit.columns}
+    derived = {r.column for r in ev.structure.relations if ":" in r.column}
+    for r in ev.structure.relations:
+        if r.relation != "crossed" or r.column in used or r.column in derived:
             continue
         yield Finding(
             "crossed-grouping",
             "note",
-            f"'{r.column}' is crossed with '{r.treatment}': {r.detail}. It is not a unit of "
-            f"the treatment, but it may be a block whose effect belongs in the model.",
+            f"'{r.column}' is crossed with '{r.treatment}': {r.detail}. It is not a unit of the "
+            f"treatment, but it may be a block whose effect belongs in the model.",
             f"If '{r.column}' is a block or a repeatedly measured subject, say so in the "
             f"analysis; it does not inflate n the way a unit does.",
             (r.column, r.treatment),
         )
-
-
-def _p(p: float | None) -> str:
-    """'p = 0.118', 'p = 0.0031' or 'p < 0.0001'."""
-    if p is None:
-        return "p not available"
-    if p < 1e-4:
-        return "p < 0.0001"
-    return f"p = {p:.2g}" if p < 0.01 else f"p = {p:.3f}"
-
-
-def _corrected_sig(ev: Evidence) -> bool | None:
-    a = ev.refit.get(ev.refit.corrected or "")
-    return None if a is None else a.significant(ev.claim.alpha)
-
-
-def _changed(ev: Evidence) -> bool | None:
-    corrected = _corrected_sig(ev)
-    claimed = ev.reconciliation.claimed_significant
-    if corrected is None or claimed is None:
-        return None
-    return corrected != claimed
-
-
-def status_of(ev: Evidence) -> str:
-    """The status from the structure and the claim."""
-    c = ev.structure.choice
-    if c.relation == "confounded":
-        return "confounded"
-    if c.unit is None or c.n_units >= c.n_observations:
-        return "unclear" if ev.structure.ambiguous else "ok"
-    if ev.reconciliation.level == "units":
-        return "ok"
-    return "pseudoreplicated"
 
 
 def decide(ev: Evidence) -> Verdict:
@@ -374,74 +413,92 @@ def decide(ev: Evidence) -> Verdict:
     findings = [f for fn, _ in RULES.values() for f in fn(ev)]
     order = {s: i for i, s in enumerate(SEVERITIES)}
     findings.sort(key=lambda f: order[f.severity])
-    status = status_of(ev)
-    changed = None if status == "confounded" else _changed(ev)
-    method = ev.refit.corrected
-    return Verdict(status, changed, method, summarise(ev, status, changed), tuple(findings))
+    terms = tuple(
+        TermVerdict(
+            t.term,
+            term_status(t, ev),
+            None if term_status(t, ev) == "confounded" else _changed(t, ev),
+            claimed_significance(t, ev),
+            t.refit.corrected,
+        )
+        for t in ev.terms
+    )
+    status = min((tv.status for tv in terms), key=STATUS_ORDER.index)
+    changes = [tv.conclusion_changed for tv in terms if tv.conclusion_changed is not None]
+    changed = None if status == "confounded" or not changes else any(changes)
+    worst = next(tv for tv in terms if tv.status == status)
+    return Verdict(status, changed, worst.method, summarise(ev, terms), tuple(findings), terms)
 
 
-def summarise(ev: Evidence, status: str, changed: bool | None) -> str:
-    """A plain-language paragraph a reviewer can paste into a report."""
-    c = ev.structure.choice
+def _term_summary(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> str:
+    u = t.unit
     alpha = ev.claim.alpha
-    claimed = ev.refit.get("as_claimed")
+    claimed = t.analysis("as_claimed")
     assert claimed is not None
-    if status == "confounded":
+    if tv.status == "confounded":
         return (
-            f"Each level of '{ev.term}' was applied to a single {c.unit}, so the effect of "
-            f"'{ev.term}' cannot be separated from differences between {c.unit} levels. The "
-            f"{c.n_observations} observations are repeated measurements of "
-            f"{c.n_units} units, not independent replicates, and no valid test of "
-            f"'{ev.term}' is possible with these data (the row-level {_p(claimed.p_value)} "
-            f"does not support the claim)."
+            f"Each level of '{t.term}' was applied to a single {u.unit}, so the effect of "
+            f"'{t.term}' cannot be separated from differences between {u.unit} levels. The "
+            f"{u.n_observations} observations are repeated measurements of {u.n_units} units, "
+            f"not independent replicates, and no valid test of '{t.term}' is possible with these "
+            f"data (the row-level {_p(claimed.p_value)} does not support the claim)."
         )
-    corrected = ev.refit.get(ev.refit.corrected or "")
-    if status in {"ok", "unclear"} and (c.unit is None or c.n_units >= c.n_observations):
+    corrected = t.corrected
+    if tv.status in {"ok", "unclear"} and (u.unit is None or u.n_units >= u.n_observations):
         text = (
-            f"No grouping was found within which '{ev.term}' is constant, so the "
-            f"{c.n_observations} rows are taken as independent replicates; the row-level "
-            f"test gives {_p(claimed.p_value)}."
+            f"No grouping was found within which '{t.term}' is constant, so its "
+            f"{u.n_observations} rows are taken as independent replicates"
         )
-        if status == "unclear":
+        if corrected is not None and corrected.name == "mixed_model":
+            text += f"; tested in the mixed model: {_f(corrected)}."
+        else:
+            text += f"; the row-level test gives {_p(claimed.p_value)}."
+        if tv.status == "unclear":
             cols = ", ".join(f"'{a}'" for a in ev.structure.ambiguous)
             text += (
-                f" However, '{ev.term}' coincides with {cols}; if that marks a unit, the "
-                f"design is confounded. The data alone cannot tell."
+                f" However, '{t.term}' coincides with {cols}; if that marks a unit, the design "
+                f"is confounded. The data alone cannot tell."
             )
         return text
-    if status == "ok":
+    if tv.status == "ok":
         return (
-            f"'{ev.term}' was applied to {c.unit} units ({c.n_units} in all) and the reported "
-            f"degrees of freedom show the analysis used them as replicates. "
-            + (f"Reanalysed that way: {_p(corrected.p_value)}." if corrected is not None else "")
+            f"'{t.term}' was applied to {u.unit} units ({u.n_units} in all) and the reported "
+            f"result shows the analysis used them as replicates."
+            + (f" Reanalysed that way: {_p(corrected.p_value)}." if corrected is not None else "")
         )
-    cl = ev.clustering
+    cl = t.clustering
     parts = [
-        f"'{ev.term}' varies only between levels of '{c.unit}' ({c.n_units} units), but "
-        f"the row-level analysis treats all {c.n_observations} rows as independent "
-        f"replicates ({_p(claimed.p_value)})."
+        f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
+        f"row-level analysis treats all {u.n_observations} rows as independent replicates "
+        f"({_p(claimed.p_value)})."
     ]
     if cl is not None:
+        anova = f"; one-way ANOVA estimate {cl.icc_anova:.2f}" if cl.icc_method == "REML" else ""
         parts.append(
-            f"Observations within a {c.unit} are alike (ICC {cl.icc:.2f}, 95% CI "
-            f"{cl.icc_ci[0]:.2f} to {cl.icc_ci[1]:.2f}; design effect {cl.design_effect:.1f}), "
-            f"so the effective sample size is about {cl.effective_n:.0f}, not "
-            f"{cl.n_observations}."
+            f"Observations within a {u.unit} are alike (ICC {cl.icc:.2f} by {cl.icc_method}"
+            f"{anova}, 95% CI {cl.icc_ci[0]:.2f} to {cl.icc_ci[1]:.2f}; design effect "
+            f"{cl.design_effect:.1f}), so the effective sample size is about "
+            f"{cl.effective_n:.0f}, not {cl.n_observations}."
         )
-    if corrected is not None and corrected.p_value is not None and corrected.df is not None:
+    if corrected is not None and corrected.p_value is not None:
         sig = "significant" if corrected.p_value < alpha else "not significant"
+        ending = (
+            ": the conclusion changes."
+            if tv.conclusion_changed
+            else ": the conclusion stands, but the reported n and p-value overstate the evidence."
+            if tv.conclusion_changed is False
+            else "."
+        )
         parts.append(
-            f"With {c.unit} as the replicate ({corrected.label.split(':')[0]}, "
-            f"F({corrected.df[0]:.3g}, {corrected.df[1]:.3g}) = {corrected.statistic:.3g}, "
-            f"{_p(corrected.p_value)}), the effect of '{ev.term}' is {sig} at "
-            f"alpha = {alpha:g}"
-            + (
-                ": the conclusion changes."
-                if changed
-                else ": the conclusion stands, but the reported n and p-value overstate "
-                "the evidence."
-                if changed is False
-                else "."
-            )
+            f"With {u.unit} as the replicate ({corrected.label.split(':')[0]}, {_f(corrected)}), "
+            f"the effect of '{t.term}' is {sig} at alpha = {alpha:g}{ending}"
         )
     return " ".join(parts)
+
+
+def summarise(ev: Evidence, terms: tuple[TermVerdict, ...]) -> str:
+    """A plain-language paragraph a reviewer can paste into a report (worst terms first)."""
+    pairs = sorted(zip(ev.terms, terms, strict=True), key=lambda p: STATUS_ORDER.index(p[1].status))
+    if len(pairs) > 1:
+        pairs = [p for p in pairs if p[1].status != "ok"] or pairs[:1]
+    return " ".join(_term_summary(t, tv, ev) for t, tv in pairs)

@@ -2,13 +2,22 @@
 
 from __future__ import annotations
 
+import re
 from typing import Any
 
-from replicheck.report.text import STATUS_WORDS, analyses_rows, fmt_df, fmt_num, fmt_p
+from replicheck.report.text import (
+    STATUS_WORDS,
+    analyses_header,
+    analyses_rows,
+    fmt_df,
+    fmt_num,
+    fmt_p,
+)
 
 
 def _esc(text: object) -> str:
-    return str(text).replace("|", "\\|").replace("<", "&lt;").replace(">", "&gt;")
+    """Escape table pipes and anything that could open an HTML tag; keep 'p < 0.05' readable."""
+    return re.sub(r"<(?=[A-Za-z/!?])", "&lt;", str(text).replace("|", "\\|"))
 
 
 def _yes_no(flag: bool | None) -> str:
@@ -57,8 +66,8 @@ def render_markdown(doc: dict[str, Any]) -> str:
         "",
         "### Analyses",
         "",
-        "| analysis | replicates | F | df | p | significant |",
-        "|---|---|---|---|---|---|",
+        "| " + " | ".join(analyses_header(doc)) + " |",
+        "|" + "---|" * len(analyses_header(doc)),
     ]
     for r in analyses_rows(doc):
         lines.append("| " + " | ".join(_esc(x) for x in r) + " |")

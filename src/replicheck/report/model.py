@@ -16,10 +16,8 @@ from replicheck import __version__
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.io import Table
-from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit
-from replicheck.structure.units import Structure
-from replicheck.verdict import Verdict
+from replicheck.verdict import Evidence, Verdict
 
 SCHEMA = "replicheck/report-v1"
 
@@ -37,6 +35,28 @@ def _clean(x: Any) -> Any:
     return x
 
 
+def _clustering(cl: Clustering | None) -> dict[str, Any]:
+    if cl is None:
+        return {"icc": None, "icc_ci": None, "design_effect": None, "effective_n": None}
+    return {
+        "icc": cl.icc,
+        "icc_ci": list(cl.icc_ci),
+        "design_effect": cl.design_effect,
+        "effective_n": cl.effective_n,
+        "unit": cl.unit,
+        "icc_method": cl.icc_method,
+        "icc_anova": cl.icc_anova,
+        "icc_reml": cl.icc_reml,
+        "variance_components": {"unit": cl.var_unit, "residual": cl.var_residual},
+        "design_effect_equal_sizes": cl.design_effect_equal_sizes,
+        "mean_unit_size": cl.mean_unit_size,
+        "cv_unit_size": cl.cv_unit_size,
+        "n_units": cl.n_units,
+        "n_observations": cl.n_observations,
+        "effective_n_per_level": cl.effective_n_per_level,
+    }
+
+
 @dataclass(frozen=True)
 class Report:
     """The result of one audit."""
@@ -44,11 +64,8 @@ class Report:
     table: Table
     n_rows_used: int
     claim: Claim
-    term: str
-    structure: Structure
-    clustering: Clustering | None
+    evidence: Evidence
     refit: Refit
-    reconciliation: Reconciliation
     verdict: Verdict
 
     @property
@@ -62,7 +79,8 @@ class Report:
 
     def to_dict(self) -> dict[str, Any]:
         """The report as plain data (the JSON document)."""
-        t, c, s = self.table, self.claim, self.structure
+        t, c, ev = self.table, self.claim, self.evidence
+        s = ev.structure
         alpha = c.alpha
         rep = None
         if c.reported is not None:
@@ -79,61 +97,63 @@ class Report:
             }
         units = [
             {
-                "treatment": u.treatment,
-                "unit": u.unit,
-                "relation": u.relation,
-                "n_units": u.n_units,
-                "n_observations": u.n_observations,
-                "columns": list(u.columns),
-                "source": u.source,
-                "reading": u.reading,
-                "single_unit_levels": list(u.single_unit_levels),
+                "treatment": te.term,
+                "unit": te.unit.unit,
+                "relation": te.unit.relation,
+                "n_units": te.unit.n_units,
+                "n_observations": te.unit.n_observations,
+                "columns": list(te.unit.columns),
+                "source": te.unit.source,
+                "reading": te.unit.reading,
+                "single_unit_levels": list(te.unit.single_unit_levels),
             }
-            for u in (s.per_treatment if len(c.treatments) == 1 else (*s.per_treatment, s.choice))
+            for te in ev.terms
         ]
-        cl = self.clustering
-        clustering: dict[str, Any] = {
-            "icc": None,
-            "icc_ci": None,
-            "design_effect": None,
-            "effective_n": None,
-        }
-        if cl is not None:
-            clustering = {
-                "icc": cl.icc,
-                "icc_ci": list(cl.icc_ci),
-                "design_effect": cl.design_effect,
-                "effective_n": cl.effective_n,
-                "unit": cl.unit,
-                "icc_method": cl.icc_method,
-                "icc_anova": cl.icc_anova,
-                "icc_reml": cl.icc_reml,
-                "variance_components": {"unit": cl.var_unit, "residual": cl.var_residual},
-                "design_effect_equal_sizes": cl.design_effect_equal_sizes,
-                "mean_unit_size": cl.mean_unit_size,
-                "cv_unit_size": cl.cv_unit_size,
-                "n_units": cl.n_units,
-                "n_observations": cl.n_observations,
-                "effective_n_per_level": cl.effective_n_per_level,
-            }
-        analyses = [
-            {
-                "name": a.name,
-                "label": a.label,
-                "term": a.term,
-                "level": a.level,
-                "n_replicates": a.n_replicates,
-                "statistic": a.statistic,
-                "df": list(a.df) if a.df is not None else None,
-                "p_value": a.p_value,
-                "significant": a.significant(alpha),
-                "t_statistic": a.t_statistic,
-                "estimate": a.estimate,
-                "notes": list(a.notes),
-                "corrected": a.name == self.refit.corrected,
-            }
-            for a in self.refit.analyses
-        ]
+        main = next((te for te in ev.terms if te.clustering is not None), ev.terms[0])
+        analyses = []
+        for tr in self.refit.terms:
+            for a in tr.analyses:
+                analyses.append(
+                    {
+                        "name": a.name,
+                        "label": a.label,
+                        "term": a.term,
+                        "level": a.level,
+                        "n_replicates": a.n_replicates,
+                        "statistic": a.statistic,
+                        "df": list(a.df) if a.df is not None else None,
+                        "p_value": a.p_value,
+                        "significant": a.significant(alpha),
+                        "t_statistic": a.t_statistic,
+                        "estimate": a.estimate,
+                        "notes": list(a.notes),
+                        "corrected": a.name == tr.corrected,
+                    }
+                )
+        terms = []
+        for te, tv in zip(ev.terms, self.verdict.terms, strict=True):
+            corrected = te.corrected
+            row = te.analysis("as_claimed")
+            claimed_p = row.p_value if row is not None else None
+            if te.claimed and c.reported is not None and c.reported.p_value is not None:
+                claimed_p = c.reported.p_value
+            terms.append(
+                {
+                    "term": te.term,
+                    "factors": list(te.factors),
+                    "unit": te.unit.unit,
+                    "status": tv.status,
+                    "method": tv.method,
+                    "statistic": corrected.statistic if corrected else None,
+                    "df": list(corrected.df) if corrected and corrected.df else None,
+                    "p_value": corrected.p_value if corrected else None,
+                    "claimed_p_value": claimed_p,
+                    "claimed_significant": tv.claimed_significant,
+                    "testable": corrected is not None,
+                    "conclusion_changed": tv.conclusion_changed,
+                    "clustering": _clustering(te.clustering),
+                }
+            )
         doc = {
             "schema": SCHEMA,
             "tool": {"name": "replicheck", "version": __version__},
@@ -154,6 +174,7 @@ class Report:
                 "unit": c.unit,
                 "alpha": alpha,
                 "reported": rep,
+                "reported_term": ev.terms[0].term,
                 "spec": c.spec_path,
             },
             "verdict": {
@@ -163,6 +184,7 @@ class Report:
                 "summary": self.verdict.summary,
             },
             "experimental_units": units,
+            "terms": terms,
             "candidates": [
                 {
                     "treatment": k.treatment,
@@ -192,14 +214,14 @@ class Report:
                 for r in s.relations
             ],
             "skipped_columns": dict(s.skipped),
-            "clustering": clustering,
+            "clustering": _clustering(main.clustering),
             "analyses": analyses,
             "reported_check": {
-                "level": self.reconciliation.level,
-                "grouping": self.reconciliation.level_grouping,
-                "explanation": self.reconciliation.explanation,
-                "mismatches": list(self.reconciliation.mismatches),
-                "claimed_significant": self.reconciliation.claimed_significant,
+                "level": ev.reconciliation.level,
+                "grouping": ev.reconciliation.level_grouping,
+                "explanation": ev.reconciliation.explanation,
+                "mismatches": list(ev.reconciliation.mismatches),
+                "claimed_significant": ev.reconciliation.claimed_significant,
             },
             "findings": [asdict(f) for f in self.verdict.findings],
             "caution": self.verdict.caution,

@@ -36,8 +36,15 @@ def fmt_df(df: list[float] | None) -> str:
     return ", ".join(f"{d:.4g}" if abs(d - round(d)) > 1e-9 else f"{round(d)}" for d in df)
 
 
-def _wrap(text: str, indent: str = "  ") -> str:
-    return textwrap.fill(text, WIDTH, initial_indent=indent, subsequent_indent=indent)
+def _wrap(text: str, indent: str = "  ", first: str | None = None) -> str:
+    return textwrap.fill(
+        text,
+        WIDTH,
+        initial_indent=indent if first is None else first,
+        subsequent_indent=indent,
+        break_on_hyphens=False,
+        break_long_words=False,
+    )
 
 
 def _table(rows: list[list[str]], header: list[str]) -> list[str]:
@@ -51,22 +58,57 @@ def _table(rows: list[list[str]], header: list[str]) -> list[str]:
     return out
 
 
+def analyses_header(doc: dict[str, Any]) -> list[str]:
+    """Column names of the analyses table (a term column when there are several terms)."""
+    head = ["analysis", "replicates", "F", "df", "p", "signif."]
+    return ["term", *head] if len(doc["terms"]) > 1 else head
+
+
 def analyses_rows(doc: dict[str, Any]) -> list[list[str]]:
     """Rows of the analyses table shared by the text and Markdown renderers."""
+    several = len(doc["terms"]) > 1
     rows = []
     for a in doc["analyses"]:
         mark = " *" if a["corrected"] else ""
-        rows.append(
-            [
-                a["name"] + mark,
-                f"{a['n_replicates']} {a['level']}",
-                fmt_num(a["statistic"], 4),
-                fmt_df(a["df"]),
-                fmt_p(a["p_value"]),
-                "-" if a["significant"] is None else ("yes" if a["significant"] else "no"),
-            ]
-        )
+        row = [
+            a["name"] + mark,
+            f"{a['n_replicates']} {a['level']}",
+            fmt_num(a["statistic"], 4),
+            fmt_df(a["df"]),
+            fmt_p(a["p_value"]),
+            "-" if a["significant"] is None else ("yes" if a["significant"] else "no"),
+        ]
+        rows.append([a["term"], *row] if several else row)
     return rows
+
+
+def shown_candidates(doc: dict[str, Any], limit: int = 6) -> list[dict[str, Any]]:
+    """Candidates worth showing: credible ones, and the others of the claimed term."""
+    first = doc["claim"]["reported_term"]
+    seen: set[tuple[str, str]] = set()
+    out = []
+    for k in doc["candidates"]:
+        key = (k["treatment"], k["grouping"])
+        if key in seen or not (k["credible"] or k["treatment"] == first):
+            continue
+        seen.add(key)
+        out.append(k)
+    return out[:limit]
+
+
+def _clustering_lines(cl: dict[str, Any], title: str) -> list[str]:
+    lo, hi = cl["icc_ci"]
+    vc = cl["variance_components"]
+    return [
+        title,
+        f"  ICC {cl['icc']:.3f} ({cl['icc_method']}); one-way ANOVA estimate "
+        f"{cl['icc_anova']:.3f}, 95% CI {lo:.3f} to {hi:.3f}",
+        f"  variance: between units {fmt_num(vc['unit'], 4)}, "
+        f"within units {fmt_num(vc['residual'], 4)}",
+        f"  design effect {cl['design_effect']:.2f} (mean unit size {cl['mean_unit_size']:.1f}, "
+        f"CV {cl['cv_unit_size']:.2f}); effective n {cl['effective_n']:.1f} of "
+        f"{cl['n_observations']}",
+    ]
 
 
 def render_text(doc: dict[str, Any]) -> str:
@@ -74,90 +116,65 @@ def render_text(doc: dict[str, Any]) -> str:
     v = doc["verdict"]
     c = doc["claim"]
     inp = doc["input"]
-    out: list[str] = []
-    out.append(f"replicheck {doc['tool']['version']}: {inp['source']}")
-    out.append("")
+    several = len(doc["terms"]) > 1
+    out: list[str] = [f"replicheck {doc['tool']['version']}: {inp['source']}", ""]
     out.append(f"VERDICT: {STATUS_WORDS.get(v['status'], v['status'])}")
     changed = v["conclusion_changed"]
-    out.append(
-        "  conclusion changed at alpha {}: {}".format(
-            c["alpha"], "unknown" if changed is None else ("YES" if changed else "no")
-        )
-    )
+    yes_no = "unknown" if changed is None else ("YES" if changed else "no")
+    out.append(f"  conclusion changed at alpha {c['alpha']}: {yes_no}")
     if v["method"]:
         out.append(f"  corrected verdict rests on: {v['method']}")
-    out.append("")
-    out.append(_wrap(v["summary"]))
-    out.append("")
-    out.append("CLAIM")
+    if several:
+        for t in doc["terms"]:
+            out.append(
+                f"  term {t['term']}: {t['status']}, corrected p {fmt_p(t['p_value'])} "
+                f"({t['method'] or 'no test'})"
+            )
+    out += ["", _wrap(v["summary"]), "", "CLAIM"]
     out.append(
         f"  response: {c['response']}   treatment: {', '.join(c['treatments'])}"
         + (f"   stated unit: {c['unit']}" if c["unit"] else "")
     )
     if c["reported"]:
-        out.append(f"  reported: {c['reported']['text']}")
+        where = f" (read as the result for '{c['reported_term']}')" if several else ""
+        out.append(f"  reported: {c['reported']['text']}{where}")
     rc = doc["reported_check"]
     if rc["explanation"]:
         out.append(_wrap(f"reading: {rc['explanation']}"))
     out.append(f"  rows: {inp['n_rows']} read, {inp['n_rows_used']} analysed")
-    out.append("")
-    out.append("EXPERIMENTAL UNIT")
+    out += ["", "EXPERIMENTAL UNIT"]
     for u in doc["experimental_units"]:
         unit = u["unit"] or "(each row)"
         out.append(
             f"  {u['treatment']}: {unit} - {u['relation']}, {u['n_units']} units, "
             f"{u['n_observations']} observations ({u['source']})"
         )
-    cands = [k for k in doc["candidates"]][:5]
+    cands = shown_candidates(doc)
     if cands:
         out.append("  candidates (coarsest credible first):")
         for k in cands:
             flag = "" if k["credible"] else " [not taken]"
-            out.append(f"    {k['grouping']} (score {k['score']:g}){flag}")
+            of = f" for {k['treatment']}" if several else ""
+            out.append(f"    {k['grouping']}{of} (score {k['score']:g}){flag}")
             for r in k["reasons"]:
-                out.append(
-                    textwrap.fill(r, WIDTH, initial_indent="      - ", subsequent_indent="        ")
-                )
-    cl = doc["clustering"]
-    if cl.get("icc") is not None:
-        out.append("")
-        out.append("CLUSTERING WITHIN UNITS")
-        lo, hi = cl["icc_ci"]
-        out.append(
-            f"  ICC {cl['icc']:.3f} ({cl['icc_method']}); ANOVA estimate "
-            f"{cl['icc_anova']:.3f}, 95% CI {lo:.3f} to {hi:.3f}"
-        )
-        vc = cl["variance_components"]
-        out.append(
-            f"  variance: between units {fmt_num(vc['unit'], 4)}, "
-            f"within units {fmt_num(vc['residual'], 4)}"
-        )
-        out.append(
-            f"  design effect {cl['design_effect']:.2f} (mean unit size "
-            f"{cl['mean_unit_size']:.1f}, CV {cl['cv_unit_size']:.2f}); effective n "
-            f"{cl['effective_n']:.1f} of {cl['n_observations']}"
-        )
-    out.append("")
-    out.append("ANALYSES (* = corrected verdict)")
-    out += _table(analyses_rows(doc), ["analysis", "replicates", "F", "df", "p", "signif."])
+                out.append(_wrap(r, "        ", "      - "))
+    for t in doc["terms"]:
+        cl = t["clustering"]
+        if cl.get("icc") is not None:
+            title = (
+                f"CLUSTERING WITHIN UNITS ({cl['unit']})" if several else "CLUSTERING WITHIN UNITS"
+            )
+            out += ["", *_clustering_lines(cl, title)]
+    out += ["", "ANALYSES (* = corrected verdict)"]
+    out += _table(analyses_rows(doc), analyses_header(doc))
     for a in doc["analyses"]:
         for note in a["notes"]:
-            out.append(
-                textwrap.fill(
-                    f"{a['name']}: {note}",
-                    WIDTH,
-                    initial_indent="  note: ",
-                    subsequent_indent="        ",
-                )
-            )
+            out.append(_wrap(f"{a['name']} ({a['term']}): {note}", "        ", "  note: "))
     if doc["findings"]:
-        out.append("")
-        out.append("FINDINGS")
+        out += ["", "FINDINGS"]
         for f in doc["findings"]:
             out.append(f"  [{f['severity']}] {f['rule']}")
             out.append(_wrap(f["message"], "    "))
             out.append(_wrap("what to do: " + f["advice"], "    "))
-    out.append("")
-    out.append("CAUTION")
-    out.append(_wrap(doc["caution"]))
+    out += ["", "CAUTION", _wrap(doc["caution"])]
     return "\n".join(out) + "\n"

@@ -4,26 +4,36 @@ Model (random intercepts only, nested or crossed factors)::
 
     y = X beta + sum_k Z_k u_k + e,   u_k ~ N(0, s2_k I),   e ~ N(0, s2_e I)
 
-where ``Z_k`` is the indicator matrix of factor ``k``. Write ``lam_k = s2_k / s2_e``,
-``Lam`` the diagonal matrix holding ``lam_k`` for every column of ``Z = [Z_1..Z_K]``,
-``H = I + Z Lam Z'`` so that ``V = s2_e H``. With ``D = Lam^{1/2}`` and
-``M = I_q + D Z'Z D`` the Woodbury identity gives::
+where ``Z_k`` is the indicator matrix of factor ``k``. Write ``lam_k = s2_k / s2_e``
+and ``H = I + sum_k lam_k Z_k Z_k'`` so that ``V = s2_e H``.
 
-    H^{-1} = I - Z D M^{-1} D Z',      log|H| = log|M|,
+Computation never forms an n x n matrix. ``Z'Z = U diag(e) U'`` (q x q, computed
+once; positive eigenvalues kept) gives ``Q = Z U e^{-1/2}``, an orthonormal basis
+of ``col(Z)``, and ``Z_k Z_k' = Q T_k Q'``. Then::
 
-so every quantity below is computed from the cross-products ``Z'Z, Z'X, Z'y, X'X,
-X'y`` (sizes q x q, q x p, ...) and never from an n x n matrix. Profiling out
+    H = (I - QQ') + Q N Q',   N = I_r + sum_k lam_k T_k,
+    H^{-1} = (I - QQ') + Q N^{-1} Q',   log|H| = log|N|,
+
+so every quantity splits into a *within* part (projections of X and y on the
+orthogonal complement of ``col(Z)``, computed once in n-space; for one factor
+these are deviations from unit means) and an r-dimensional *between* part
+(``Q'X``, ``Q'y``). This is the Woodbury form ``H^{-1} = I - Z D M^{-1} D Z'``
+with ``M = I + D Z'Z D`` (``log|M| = log|N|``) rewritten so that nothing is
+obtained as a small difference of large numbers when some ``lam_k`` is large
+(residual variance tiny compared with a unit variance). Profiling out
 ``s2_e`` gives the REML criterion that lme4 reports (Bates, Maechler, Bolker &
 Walker 2015, J. Stat. Software 67(1), eq. 41)::
 
-    d(theta) = log|M| + log|X'H^{-1}X| + (n-p) [1 + log(2 pi r'H^{-1}r / (n-p))],
+    d(theta) = log|N| + log|X'H^{-1}X| + (n-p) [1 + log(2 pi r'H^{-1}r / (n-p))],
 
 minimised over ``theta_k = sqrt(lam_k) >= 0`` (the relative standard deviations
-lme4 calls theta) by L-BFGS-B from several starts with the analytic gradient
-``d d / d lam_k = tr(Z_k' P_H Z_k) - ||Z_k' P_H y||^2 / s2_e``. The optimum is
-then refined by Newton steps on the unprofiled REML deviance in the variance
-parameters; components whose optimum lies on the boundary are set to exactly 0
-(detected by the Karush-Kuhn-Tucker condition ``d d / d lam_k >= 0`` at 0).
+lme4 calls theta) by L-BFGS-B (three starts unless the problem is large) with
+the analytic gradient ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e``.
+The optimum is then refined by Newton steps on the unprofiled REML deviance in
+log-variance coordinates; components whose optimum lies on the boundary are
+set to exactly 0 (Karush-Kuhn-Tucker condition ``d d / d lam_k >= 0`` at 0).
+When ``y`` lies in ``col([X, Z])`` the REML likelihood is unbounded (residual
+variance 0) and the fit is refused.
 
 Satterthwaite degrees of freedom follow lmerTest (Kuznetsova, Brockhoff &
 Christensen 2017, J. Stat. Software 82(13); Satterthwaite 1946, Biometrics
@@ -35,8 +45,9 @@ REML deviance ``-2 log L_R`` (observed information), and the Jacobian of
     d C / d s2_k = C X'V^{-1} Z_k Z_k' V^{-1} X C,   d C / d s2_e = C X'V^{-2} X C,
     d^2 (-2 log L_R) / d s2_i d s2_j = -tr(P V_i P V_j) + 2 y'P V_i P V_j P y,
 
-with ``V_k = Z_k Z_k'``, ``V_e = I`` and ``P = V^{-1} - V^{-1}X C X'V^{-1}``. The
-traces are reduced to q x q matrices with ``P_H H P_H = P_H`` (``P_H = s2_e P``).
+with ``V_k = Z_k Z_k'``, ``V_e = I`` and ``P = V^{-1} - V^{-1}X C X'V^{-1}``; the
+traces reduce to r x r and p x p matrices through the within/between split
+(see ``_second_order``). The Hessian is inverted in log-variance coordinates.
 lmerTest differentiates numerically with respect to ``(theta, sigma)``; at an
 interior optimum the Satterthwaite df are invariant to that change of
 parameters. Components estimated at 0 are left out of the variance parameters
@@ -132,61 +143,56 @@ class TTest:
 
 
 # ---------------------------------------------------------------------------
-# design and cross-products
+# design: within/between decomposition
 
 
 @dataclass(frozen=True, eq=False)
 class _Design:
+    """Fixed quantities of the problem, computed once.
+
+    ``Z'Z = U diag(e) U'`` with the ``r`` positive eigenvalues kept; ``Q = Z U e^{-1/2}``
+    (never formed) has orthonormal columns spanning ``col(Z)``. ``xb = Q'X``,
+    ``yb = Q'y``; ``xw``, ``yw`` are the projections of X and y on the orthogonal
+    complement of ``col(Z)`` (computed in n-space). ``t_mats[k] = Q' Z_k Z_k' Q``
+    (a vector, the unit sizes, when there is a single factor).
+    """
+
     n: int
     p: int
     names: tuple[str, ...]
     sizes: tuple[int, ...]
-    col_factor: np.ndarray  # (q,) factor index of every column of Z
-    diagonal: bool  # Z'Z is diagonal (a single factor)
-    ztz: np.ndarray  # (q, q), or (q,) when diagonal
-    ztx: np.ndarray  # (q, p)
-    zty: np.ndarray  # (q,)
-    xtx: np.ndarray
-    xty: np.ndarray
-    yty: float
-    x: np.ndarray
-    y: np.ndarray
-    z_codes: tuple[np.ndarray, ...]  # per factor, compressed codes
+    diagonal: bool
+    r: int
+    e: np.ndarray
+    t_mats: tuple[np.ndarray, ...]
+    xb: np.ndarray
+    yb: np.ndarray
+    xw: np.ndarray
+    yw: np.ndarray
+    sw: np.ndarray  # xw'xw
+    n_within: int  # n - r
+    scale: float  # largest eigenvalue of Z'Z (for tolerances)
 
-    @property
-    def q(self) -> int:
-        return int(self.col_factor.shape[0])
+    def t_times(self, k: int, mat: np.ndarray) -> np.ndarray:
+        """T_k @ mat."""
+        t = self.t_mats[k]
+        if self.diagonal:
+            return t * mat if mat.ndim == 1 else t[:, None] * mat
+        return np.asarray(t @ mat)
 
-    def blocks(self) -> list[slice]:
-        out: list[slice] = []
-        start = 0
-        for s in self.sizes:
-            out.append(slice(start, start + s))
-            start += s
+    def n_matrix(self, lam: np.ndarray) -> np.ndarray:
+        """N = I + sum_k lam_k T_k (a vector in the single-factor case)."""
+        if self.diagonal:
+            return 1.0 + lam[0] * self.t_mats[0]
+        out = np.eye(self.r)
+        for k, t in enumerate(self.t_mats):
+            out += lam[k] * t
         return out
 
-    def zt(self, v: np.ndarray) -> np.ndarray:
-        """Z'v for a vector or matrix v with n rows."""
-        parts = []
-        for codes, size in zip(self.z_codes, self.sizes, strict=True):
-            if v.ndim == 1:
-                parts.append(np.bincount(codes, weights=v, minlength=size))
-            else:
-                parts.append(
-                    np.column_stack(
-                        [np.bincount(codes, weights=v[:, j], minlength=size)
-                         for j in range(v.shape[1])]
-                    ).reshape(size, v.shape[1])
-                )
-        return np.concatenate(parts, axis=0)
 
-
-def _build_design(
-    y: np.ndarray,
-    x: np.ndarray,
-    factors: Mapping[str, np.ndarray],
-    fixed_names: Sequence[str],
-) -> _Design:
+def _check_inputs(
+    y: np.ndarray, x: np.ndarray, factors: Mapping[str, np.ndarray], fixed_names: Sequence[str]
+) -> tuple[np.ndarray, np.ndarray, list[str], list[np.ndarray], list[int]]:
     yy = np.asarray(y, dtype=float)
     xx = np.asarray(x, dtype=float)
     if yy.ndim != 1:
@@ -222,172 +228,246 @@ def _build_design(
         codes = codes.reshape(-1).astype(np.intp)
         k = int(codes.max()) + 1
         if k < 2:
-            raise DesignError(f"random factor {name!r} has a single level; its variance is "
-                              "not estimable")
+            raise DesignError(
+                f"random factor {name!r} has a single level; its variance is not estimable"
+            )
         if k == n:
-            raise DesignError(f"random factor {name!r} has one observation per level; its "
-                              "variance cannot be separated from the residual")
+            raise DesignError(
+                f"random factor {name!r} has one observation per level; its variance "
+                "cannot be separated from the residual"
+            )
+        for other_name, other, other_k in zip(names, codes_list, sizes, strict=True):
+            pairs = np.unique(np.column_stack([codes, other]), axis=0).shape[0]
+            if pairs == k == other_k:
+                raise DesignError(
+                    f"random factors {other_name!r} and {name!r} group the observations "
+                    "identically; their variances cannot be separated"
+                )
+        # a factor whose indicator columns lie in col(X) has no estimable variance
+        m_k = np.bincount(codes, minlength=k).astype(float)
+        zkx = np.column_stack(
+            [np.bincount(codes, weights=xx[:, j], minlength=k) for j in range(p)]
+        ).reshape(k, p)
+        resid = np.diag(m_k) - zkx @ np.linalg.solve(xx.T @ xx, zkx.T)
+        if float(np.max(np.abs(resid))) <= 1e-8 * float(np.max(m_k)):
+            raise DesignError(
+                f"random factor {name!r} is confounded with the fixed effects (each of its "
+                "levels is determined by them); its variance cannot be estimated"
+            )
         names.append(name)
         codes_list.append(codes)
         sizes.append(k)
+    return yy, xx, names, codes_list, sizes
+
+
+def _zt(codes_list: Sequence[np.ndarray], sizes: Sequence[int], v: np.ndarray) -> np.ndarray:
+    """Z'v for a vector or an (n, p) matrix."""
+    parts = []
+    for codes, size in zip(codes_list, sizes, strict=True):
+        if v.ndim == 1:
+            parts.append(np.bincount(codes, weights=v, minlength=size))
+        else:
+            parts.append(
+                np.column_stack(
+                    [np.bincount(codes, weights=v[:, j], minlength=size) for j in range(v.shape[1])]
+                ).reshape(size, v.shape[1])
+            )
+    return np.concatenate(parts, axis=0)
+
+
+def _z(codes_list: Sequence[np.ndarray], sizes: Sequence[int], c: np.ndarray) -> np.ndarray:
+    """Z c for a (q,) vector or (q, p) matrix c."""
+    out = np.zeros((codes_list[0].shape[0], *c.shape[1:]))
+    start = 0
+    for codes, size in zip(codes_list, sizes, strict=True):
+        out += c[start : start + size][codes]
+        start += size
+    return out
+
+
+def _build_design(
+    y: np.ndarray,
+    x: np.ndarray,
+    factors: Mapping[str, np.ndarray],
+    fixed_names: Sequence[str],
+) -> _Design:
+    yy, xx, names, codes_list, sizes = _check_inputs(y, x, factors, fixed_names)
+    n, p = xx.shape
     q = sum(sizes)
-    col_factor = np.repeat(np.arange(len(sizes)), sizes)
-    offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(int)
+    ztx = _zt(codes_list, sizes, xx)
+    zty = _zt(codes_list, sizes, yy)
     diagonal = len(sizes) == 1
     if diagonal:
-        ztz: np.ndarray = np.bincount(codes_list[0], minlength=sizes[0]).astype(float)
+        e = np.bincount(codes_list[0], minlength=sizes[0]).astype(float)
+        inv_sqrt = 1.0 / np.sqrt(e)
+        xb = inv_sqrt[:, None] * ztx
+        yb = inv_sqrt * zty
+        # projection on col(Z): unit means
+        xw = xx - (ztx / e[:, None])[codes_list[0]]
+        yw = yy - (zty / e)[codes_list[0]]
+        t_mats: tuple[np.ndarray, ...] = (e,)
+        r = sizes[0]
     else:
         ztz = np.zeros((q, q))
-        for a, (ca, sa, oa) in enumerate(zip(codes_list, sizes, offsets, strict=True)):
-            for b, (cb, sb, ob) in enumerate(zip(codes_list, sizes, offsets, strict=True)):
-                if b < a:
-                    continue
-                block = np.bincount(ca * sb + cb, minlength=sa * sb).reshape(sa, sb)
+        for a in range(len(sizes)):
+            for b in range(a, len(sizes)):
+                sa, sb = sizes[a], sizes[b]
+                block = np.bincount(codes_list[a] * sb + codes_list[b], minlength=sa * sb)
+                block = block.reshape(sa, sb).astype(float)
+                oa, ob = offsets[a], offsets[b]
                 ztz[oa : oa + sa, ob : ob + sb] = block
                 ztz[ob : ob + sb, oa : oa + sa] = block.T
-    design = _Design(
+        evals, evecs = np.linalg.eigh(ztz)
+        keep = evals > 1e-9 * float(evals[-1])
+        e = evals[keep]
+        ur = evecs[:, keep]
+        r = int(keep.sum())
+        inv_sqrt = 1.0 / np.sqrt(e)
+        xb = inv_sqrt[:, None] * (ur.T @ ztx)
+        yb = inv_sqrt * (ur.T @ zty)
+        pinv_ztz = (ur / e) @ ur.T
+        xw = xx - _z(codes_list, sizes, pinv_ztz @ ztx)
+        yw = yy - _z(codes_list, sizes, pinv_ztz @ zty)
+        mats = []
+        for k in range(len(sizes)):
+            rows = ur[offsets[k] : offsets[k] + sizes[k]] * np.sqrt(e)[None, :]
+            mats.append(rows.T @ rows)
+        t_mats = tuple(mats)
+    return _Design(
         n=n,
         p=p,
         names=tuple(names),
         sizes=tuple(sizes),
-        col_factor=col_factor,
         diagonal=diagonal,
-        ztz=ztz,
-        ztx=np.empty((0, 0)),
-        zty=np.empty(0),
-        xtx=xx.T @ xx,
-        xty=xx.T @ yy,
-        yty=float(yy @ yy),
-        x=xx,
-        y=yy,
-        z_codes=tuple(codes_list),
+        r=r,
+        e=e,
+        t_mats=t_mats,
+        xb=xb,
+        yb=yb,
+        xw=xw,
+        yw=yw,
+        sw=xw.T @ xw,
+        n_within=n - r,
+        scale=float(np.max(e)),
     )
-    object.__setattr__(design, "ztx", design.zt(xx))
-    object.__setattr__(design, "zty", design.zt(yy))
-    return design
+
+
+def _check_residual_identifiable(design: _Design) -> None:
+    """The REML likelihood is unbounded when y lies in col([X, Z])."""
+    coef, *_ = np.linalg.lstsq(design.xw, design.yw, rcond=None)
+    rss_within = float(np.sum((design.yw - design.xw @ coef) ** 2))
+    total = float(np.sum(design.yb**2) + np.sum(design.yw**2))  # = y'y
+    if design.n_within - np.linalg.matrix_rank(design.xw) < 1 or rss_within <= 1e-20 * total:
+        raise DesignError(
+            "the response does not vary within the levels of the random factors beyond "
+            "what the fixed effects explain (e.g. one value copied to every row of a unit); "
+            "the residual variance is zero, so analyse the unit-level values instead"
+        )
 
 
 # ---------------------------------------------------------------------------
-# evaluation at a given theta
+# evaluation at given relative variances lam = theta^2
+
+
+class _NSolver:
+    """Applies N^{-1} for N = I + sum_k lam_k T_k (diagonal or dense Cholesky)."""
+
+    def __init__(self, design: _Design, lam: np.ndarray) -> None:
+        self.diagonal = design.diagonal
+        nmat = design.n_matrix(lam)
+        if self.diagonal:
+            self.diag = nmat
+            self.logdet = float(np.sum(np.log(nmat)))
+            self.chol: tuple[np.ndarray, bool] | None = None
+        else:
+            self.diag = np.empty(0)
+            self.chol = linalg.cho_factor(nmat, lower=True, check_finite=False)
+            self.logdet = float(2.0 * np.sum(np.log(np.diag(self.chol[0]))))
+        self.r = design.r
+
+    def __call__(self, v: np.ndarray) -> np.ndarray:
+        if self.diagonal:
+            return v / (self.diag if v.ndim == 1 else self.diag[:, None])
+        assert self.chol is not None
+        return np.asarray(linalg.cho_solve(self.chol, v, check_finite=False))
+
+    def inverse(self) -> np.ndarray:
+        """N^{-1} as a vector (single factor) or a dense matrix."""
+        if self.diagonal:
+            return 1.0 / self.diag
+        assert self.chol is not None
+        inv, info = linalg.lapack.dpotri(self.chol[0], lower=1)
+        if info != 0:
+            return self(np.eye(self.r))
+        lower = np.tril(inv)
+        return np.asarray(lower + np.tril(lower, -1).T)
 
 
 @dataclass(frozen=True, eq=False)
 class _Eval:
-    theta: np.ndarray
-    lam_col: np.ndarray
-    d_col: np.ndarray
-    logdet_m: float
+    lam: np.ndarray
+    solver: _NSolver
+    c_h: np.ndarray  # (X'H^{-1}X)^{-1}
     logdet_x: float
     beta: np.ndarray
+    r_w: np.ndarray  # within part of r = y - X beta (n-vector)
+    u_b: np.ndarray  # N^{-1} Q'r
+    w_b: np.ndarray  # N^{-1} Q'X
     rhr: float  # r'H^{-1}r
-    deviance: float  # profiled REML criterion
-    chol_x: tuple[np.ndarray, bool]
+    deviance: float  # profiled REML criterion (lme4's REMLcrit)
 
 
-class _MSolver:
-    """Applies M^{-1} for M = I + D Z'Z D (diagonal or dense Cholesky)."""
-
-    def __init__(self, design: _Design, d_col: np.ndarray) -> None:
-        self.diagonal = design.diagonal
-        if design.diagonal:
-            self.m = 1.0 + d_col * d_col * design.ztz
-            self.logdet = float(np.sum(np.log(self.m)))
-            self.chol: tuple[np.ndarray, bool] | None = None
-        else:
-            mat = d_col[:, None] * design.ztz * d_col[None, :]
-            mat[np.diag_indices_from(mat)] += 1.0
-            self.chol = linalg.cho_factor(mat, lower=True, check_finite=False)
-            self.logdet = float(2.0 * np.sum(np.log(np.diag(self.chol[0]))))
-            self.m = np.empty(0)
-
-    def diag_inverse(self) -> np.ndarray:
-        """Diagonal of M^{-1} (from the inverse Cholesky factor, q^3/3 flops)."""
-        if self.diagonal:
-            return 1.0 / self.m
-        assert self.chol is not None
-        lower = np.tril(self.chol[0])
-        linv = linalg.solve_triangular(lower, np.eye(lower.shape[0]), lower=True,
-                                       check_finite=False)
-        return np.asarray(np.sum(linv * linv, axis=0))
-
-    def __call__(self, v: np.ndarray) -> np.ndarray:
-        if self.diagonal:
-            return v / (self.m if v.ndim == 1 else self.m[:, None])
-        assert self.chol is not None
-        return np.asarray(linalg.cho_solve(self.chol, v, check_finite=False))
-
-
-def _ztz_times(design: _Design, v: np.ndarray) -> np.ndarray:
-    if design.diagonal:
-        return design.ztz * v if v.ndim == 1 else design.ztz[:, None] * v
-    return np.asarray(design.ztz @ v)
-
-
-def _evaluate(design: _Design, theta: np.ndarray) -> tuple[_Eval, _MSolver]:
-    d_col = np.asarray(theta, dtype=float)[design.col_factor]
-    solver = _MSolver(design, d_col)
-    dztx = d_col[:, None] * design.ztx
-    wx = solver(dztx)
-    xhx = design.xtx - dztx.T @ wx
+def _evaluate(design: _Design, lam: np.ndarray) -> _Eval:
+    """H^{-1} = (I - QQ') + Q N^{-1} Q' splits every quantity into a within part
+    (fixed) and a between part (r-dimensional)."""
+    lam = np.asarray(lam, dtype=float)
+    solver = _NSolver(design, lam)
+    w_b = solver(design.xb)
+    xhx = design.sw + design.xb.T @ w_b
     chol_x = linalg.cho_factor(xhx, lower=True, check_finite=False)
     logdet_x = float(2.0 * np.sum(np.log(np.diag(chol_x[0]))))
-    dzty = d_col * design.zty
-    wy = solver(dzty)
-    xhy = design.xty - dztx.T @ wy
+    xhy = design.xw.T @ design.yw + w_b.T @ design.yb
     beta = np.asarray(linalg.cho_solve(chol_x, xhy, check_finite=False))
-    # r'H^{-1}r from the residual itself (avoids cancellation in y'H^{-1}y - b'X'H^{-1}y)
-    r = design.y - design.x @ beta
-    dztr = d_col * (design.zty - design.ztx @ beta)
-    rhr = float(r @ r - dztr @ solver(dztr))
+    c_h = np.asarray(linalg.cho_solve(chol_x, np.eye(design.p), check_finite=False))
+    r_w = design.yw - design.xw @ beta
+    r_b = design.yb - design.xb @ beta
+    u_b = solver(r_b)
+    rhr = float(r_w @ r_w + r_b @ u_b)
     nmp = design.n - design.p
     if not rhr > 0.0:
         raise DesignError("the model fits the response exactly; residual variance is zero")
     dev = solver.logdet + logdet_x + nmp * (1.0 + _LOG_2PI + np.log(rhr / nmp))
-    ev = _Eval(
-        theta=np.asarray(theta, dtype=float).copy(),
-        lam_col=d_col * d_col,
-        d_col=d_col,
-        logdet_m=solver.logdet,
+    return _Eval(
+        lam=lam.copy(),
+        solver=solver,
+        c_h=c_h,
         logdet_x=logdet_x,
         beta=beta,
+        r_w=r_w,
+        u_b=u_b,
+        w_b=w_b,
         rhr=rhr,
         deviance=float(dev),
-        chol_x=chol_x,
     )
-    return ev, solver
 
 
-def _gradient_lam(
-    design: _Design, ev: _Eval, solver: _MSolver, *, all_columns: bool = True
-) -> np.ndarray:
+def _gradient_lam(design: _Design, ev: _Eval) -> np.ndarray:
     """Gradient of the profiled REML criterion with respect to lam_k.
 
-    ``d d / d lam_k = tr(Z_k' P_H Z_k) - ||Z_k' P_H y||^2 / s2_e``. With
-    ``all_columns=False`` (used inside the optimiser, where the gradient with
-    respect to theta_k = 2 theta_k d d / d lam_k is needed) the diagonal of
-    ``Z'H^{-1}Z`` is taken from ``D^{-1}(I - M^{-1})D^{-1}``, which is exact for
-    ``theta_k > 0``; entries of components at ``theta_k = 0`` are then left at 0.
+    ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e`` with
+    ``tr(P_H V_k) = tr(P_bb T_k)``, ``P_bb = N^{-1} - W C W'``, ``W = N^{-1} Q'X``
+    and ``P_H y = r_w + Q u_b``.
     """
-    d = ev.d_col
     sigma2 = ev.rhr / (design.n - design.p)
-    dztx = d[:, None] * design.ztx
-    f = design.ztx - _ztz_times(design, d[:, None] * solver(dztx))  # Z'H^{-1}X
-    zhy = design.zty - _ztz_times(design, d * solver(d * design.zty))  # Z'H^{-1}y
-    a = zhy - f @ ev.beta  # Z'P_H y
-    c_h = linalg.cho_solve(ev.chol_x, np.eye(design.p), check_finite=False)
-    if design.diagonal:
-        diag_b = design.ztz / solver.m
-    elif all_columns:
-        t = solver(d[:, None] * design.ztz)
-        diag_b = np.diag(design.ztz) - np.einsum("ij,ji->i", design.ztz * d[None, :], t)
-    else:
-        pos = d > 0
-        diag_b = np.zeros(design.q)
-        diag_b[pos] = (1.0 - solver.diag_inverse()[pos]) / (d[pos] * d[pos])
-    diag_a = diag_b - np.einsum("ij,jk,ik->i", f, c_h, f)
+    ninv = ev.solver.inverse()
     grad = np.empty(len(design.sizes))
-    for k, sl in enumerate(design.blocks()):
-        grad[k] = float(np.sum(diag_a[sl]) - np.sum(a[sl] ** 2) / sigma2)
+    for k in range(len(design.sizes)):
+        t = design.t_mats[k]
+        tr_ninv_t = float(np.sum(ninv * t))  # tr(N^{-1} T_k), both symmetric
+        wtw = ev.w_b.T @ design.t_times(k, ev.w_b)
+        tr_pbb_t = tr_ninv_t - float(np.sum(ev.c_h * wtw))
+        grad[k] = tr_pbb_t - float(ev.u_b @ design.t_times(k, ev.u_b)) / sigma2
     return grad
 
 
@@ -401,129 +481,138 @@ class _Second:
     hessian: np.ndarray
     jac: np.ndarray  # (m, p, p)
     cov_beta: np.ndarray
-    sigma2: float
 
 
-def _second_order(
-    design: _Design, ev: _Eval, solver: _MSolver, active: Sequence[int], sigma2: float
-) -> _Second:
-    """Score, Hessian of -2 log L_R and d cov(beta) / d s2 at (theta, sigma2).
+def _second_order(design: _Design, ev: _Eval, active: Sequence[int], sigma2: float) -> _Second:
+    """Score, Hessian of -2 log L_R and d cov(beta) / d s2 at (lam, sigma2).
 
-    ``active`` lists the random factors kept as parameters; the residual
-    variance is always the last parameter.
+    With ``P_H = s2_e P``, ``T_k = Q'V_kQ``, ``P_bb = Q'P_H Q``,
+    ``K = N^{-1} Q'X C``, ``S_w = X_w'X_w``, ``g_w = X_w'r_w``:
+
+    * ``tr(P_H V_k P_H V_l) = tr(P_bb T_k P_bb T_l)``,
+      ``y'P_H V_k P_H V_l P_H y = u'T_k P_bb T_l u``;
+    * ``tr(P_H V_k P_H) = tr(T_k (P_bb^2 + K S_w K'))``,
+      ``y'P_H V_k P_H^2 y = u'P_bb T_k u - g_w'K'T_k u``;
+    * ``tr(P_H^2) = n_w - 2 tr(C S_w) + tr((C S_w)^2) + 2 tr(K S_w K') + tr(P_bb^2)``,
+      ``y'P_H^3 y = r_w'r_w - g_w'C g_w - 2 g_w'C h + u'P_bb u`` with ``h = W'u``.
+
+    No term is a difference of quantities much larger than the result, so the
+    Hessian stays accurate when the residual variance is tiny compared with
+    the unit variances (large lam).
     """
-    d = ev.d_col
-    lam = ev.lam_col
     p = design.p
-    n = design.n
-    c_h = np.asarray(linalg.cho_solve(ev.chol_x, np.eye(p), check_finite=False))
-    lower = np.tril(ev.chol_x[0])
-    xhx = lower @ lower.T  # X'H^{-1}X
-    dztx = d[:, None] * design.ztx
-    f = design.ztx - _ztz_times(design, d[:, None] * solver(dztx))  # Z'H^{-1}X
-    zhy = design.zty - _ztz_times(design, d * solver(d * design.zty))
-    a = zhy - f @ ev.beta  # Z'P_H y
-    if design.diagonal:
-        b_mat = np.diag(design.ztz / solver.m)
-    else:
-        t = solver(d[:, None] * design.ztz)
-        b_mat = design.ztz - (design.ztz * d[None, :]) @ t
-        b_mat = 0.5 * (b_mat + b_mat.T)
-    a_mat = b_mat - f @ c_h @ f.T  # Z'P_H Z
-    a2_mat = a_mat - a_mat @ (lam[:, None] * a_mat)  # Z'P_H^2 Z
-    b_vec = a - a_mat @ (lam * a)  # Z'P_H^2 y
-    blocks = design.blocks()
-    sl = [blocks[k] for k in active]
+    c = ev.c_h
+    w = ev.w_b
+    u = ev.u_b
+    ninv = ev.solver.inverse()
+    pbb = (np.diag(ninv) if design.diagonal else ninv) - w @ c @ w.T
+    pbb = 0.5 * (pbb + pbb.T)
+    kb = w @ c  # N^{-1} Q'X C
+    sw = design.sw
+    g_w = design.xw.T @ ev.r_w
+    h = w.T @ u
     m = len(active) + 1
     g_mat = np.empty((m, m))
     q_mat = np.empty((m, m))
-    for i, si in enumerate(sl):
-        for j, sj in enumerate(sl):
-            if j < i:
-                continue
-            blk = a_mat[si, sj]
-            g_mat[i, j] = g_mat[j, i] = float(np.sum(blk * blk))
-            q_mat[i, j] = q_mat[j, i] = float(a[si] @ blk @ a[sj])
-        g_mat[i, -1] = g_mat[-1, i] = float(np.trace(a2_mat[si, si]))
-        q_mat[i, -1] = q_mat[-1, i] = float(a[si] @ b_vec[si])
-    tr_p = n - p - float(np.sum(lam * np.diag(a_mat)))
-    tr_p2 = tr_p - float(np.sum(lam * np.diag(a2_mat)))
-    ypy = ev.rhr
-    yp2y = ypy - float(a @ (lam * a))
-    yp3y = yp2y - float((lam * a) @ b_vec)
-    g_mat[-1, -1] = tr_p2
-    q_mat[-1, -1] = yp3y
+    pt = [design.t_times(k, pbb).T for k in active]  # P_bb T_k
+    tu = [design.t_times(k, u) for k in active]  # T_k u
+    for i, k in enumerate(active):
+        for j in range(i, len(active)):
+            g_mat[i, j] = g_mat[j, i] = float(np.sum(pt[i] * pt[j].T))
+            q_mat[i, j] = q_mat[j, i] = float(tu[i] @ pbb @ tu[j])
+        ktk = kb.T @ design.t_times(k, kb)
+        g_mat[i, -1] = g_mat[-1, i] = float(np.sum(pt[i] * pbb) + np.sum(ktk * sw))
+        q_mat[i, -1] = q_mat[-1, i] = float(u @ pbb @ tu[i] - g_w @ (kb.T @ tu[i]))
+    csw = c @ sw
+    ksk = float(np.sum((kb.T @ kb) * sw))
+    tr_pbb = float(np.trace(pbb))
+    g_mat[-1, -1] = (
+        design.n_within - 2.0 * float(np.trace(csw)) + float(np.sum(csw * csw.T))
+        + 2.0 * ksk + float(np.sum(pbb * pbb))
+    )
+    q_mat[-1, -1] = (
+        float(ev.r_w @ ev.r_w) - float(g_w @ c @ g_w) - 2.0 * float(g_w @ c @ h)
+        + float(u @ pbb @ u)
+    )
     s2 = sigma2
     hessian = -g_mat / s2**2 + 2.0 * q_mat / s2**3
     score = np.empty(m)
-    for i, si in enumerate(sl):
-        score[i] = float(np.trace(a_mat[si, si])) / s2 - float(a[si] @ a[si]) / s2**2
+    for i, _k in enumerate(active):
+        score[i] = float(np.trace(pt[i])) / s2 - float(u @ tu[i]) / s2**2
+    tr_p = design.n_within - float(np.trace(csw)) + tr_pbb
+    yp2y = float(ev.r_w @ ev.r_w + u @ u)
     score[-1] = tr_p / s2 - yp2y / s2**2
     jac = np.empty((m, p, p))
-    for i, si in enumerate(sl):
-        fk = f[si]
-        jac[i] = c_h @ (fk.T @ fk) @ c_h
-    jac[-1] = c_h @ (xhx - f.T @ (lam[:, None] * f)) @ c_h
+    for i, k in enumerate(active):
+        jac[i] = kb.T @ design.t_times(k, kb)
+    jac[-1] = c @ (sw + w.T @ w) @ c
     jac = 0.5 * (jac + np.transpose(jac, (0, 2, 1)))
-    return _Second(score=score, hessian=hessian, jac=jac, cov_beta=s2 * c_h, sigma2=s2)
+    return _Second(score=score, hessian=hessian, jac=jac, cov_beta=s2 * c)
 
 
 def _unprofiled_deviance(design: _Design, ev: _Eval, sigma2: float) -> float:
     nmp = design.n - design.p
     return float(
-        nmp * np.log(sigma2) + ev.logdet_m + ev.logdet_x + ev.rhr / sigma2 + nmp * _LOG_2PI
+        nmp * np.log(sigma2) + ev.solver.logdet + ev.logdet_x + ev.rhr / sigma2 + nmp * _LOG_2PI
     )
 
 
-def _theta_from_s2(design: _Design, active: Sequence[int], s: np.ndarray) -> np.ndarray:
-    theta = np.zeros(len(design.sizes))
+def _lam_from_s2(design: _Design, active: Sequence[int], s: np.ndarray) -> np.ndarray:
+    lam = np.zeros(len(design.sizes))
     for i, k in enumerate(active):
-        theta[k] = np.sqrt(s[i] / s[-1])
-    return theta
+        lam[k] = s[i] / s[-1]
+    return lam
 
 
 def _newton_polish(
-    design: _Design, theta: np.ndarray, active: Sequence[int], max_iter: int = 40
+    design: _Design, lam: np.ndarray, active: Sequence[int], max_iter: int = 40
 ) -> np.ndarray:
-    """Newton steps on the unprofiled REML deviance in (s2_active, s2_e)."""
-    ev, solver = _evaluate(design, theta)
+    """Newton steps on the unprofiled REML deviance in log(s2_active), log(s2_e).
+
+    Log coordinates keep the Hessian well scaled when the variances differ by
+    orders of magnitude and keep every variance positive.
+    """
+    ev = _evaluate(design, lam)
     sigma2 = ev.rhr / (design.n - design.p)
-    s = np.array([theta[k] ** 2 * sigma2 for k in active] + [sigma2])
+    s = np.array([lam[k] * sigma2 for k in active] + [sigma2])
     dev = _unprofiled_deviance(design, ev, sigma2)
     for _ in range(max_iter):
-        sec = _second_order(design, ev, solver, active, s[-1])
+        sec = _second_order(design, ev, active, s[-1])
+        grad = sec.score * s
+        hess = sec.hessian * np.outer(s, s) + np.diag(grad)
         try:
-            chol = linalg.cho_factor(sec.hessian, lower=True)
+            chol = linalg.cho_factor(hess, lower=True)
         except linalg.LinAlgError:
             break
-        step = np.asarray(linalg.cho_solve(chol, sec.score))
+        step = np.asarray(linalg.cho_solve(chol, grad))
         t = 1.0
         accepted = False
         while t > 1e-6:
-            s_new = s - t * step
-            if np.all(s_new > 0):
-                th_new = _theta_from_s2(design, active, s_new)
-                try:
-                    ev_new, solver_new = _evaluate(design, th_new)
-                except (linalg.LinAlgError, DesignError):
-                    t *= 0.5
-                    continue
-                dev_new = _unprofiled_deviance(design, ev_new, s_new[-1])
-                if dev_new <= dev + 1e-10 * max(1.0, abs(dev)):
-                    accepted = True
-                    break
+            s_new = s * np.exp(-t * np.clip(step, -20.0, 20.0))
+            try:
+                ev_new = _evaluate(design, _lam_from_s2(design, active, s_new))
+            except (linalg.LinAlgError, DesignError):
+                t *= 0.5
+                continue
+            dev_new = _unprofiled_deviance(design, ev_new, s_new[-1])
+            if dev_new <= dev + 1e-10 * max(1.0, abs(dev)):
+                accepted = True
+                break
             t *= 0.5
         if not accepted:
             break
-        rel = float(np.max(np.abs(s_new - s) / s))
-        s, ev, solver, dev = s_new, ev_new, solver_new, dev_new
+        rel = float(np.max(np.abs(t * step)))
+        s, ev, dev = s_new, ev_new, dev_new
         if rel < 1e-13:
             break
-    return _theta_from_s2(design, active, s)
+    return _lam_from_s2(design, active, s)
 
 
 def _minimise(design: _Design, fixed_zero: Sequence[int], starts: list[np.ndarray]) -> np.ndarray:
-    """L-BFGS-B over theta >= 0 with some components pinned at 0."""
+    """L-BFGS-B over theta = sqrt(lam) >= 0 with some components pinned at 0.
+
+    Returns lam.
+    """
     k_all = len(design.sizes)
     free = [k for k in range(k_all) if k not in set(fixed_zero)]
     if not free:
@@ -537,10 +626,10 @@ def _minimise(design: _Design, fixed_zero: Sequence[int], starts: list[np.ndarra
     def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
         th = expand(x)
         try:
-            ev, solver = _evaluate(design, th)
-        except linalg.LinAlgError:
+            ev = _evaluate(design, th * th)
+        except (linalg.LinAlgError, DesignError):
             return float("inf"), np.zeros_like(x)
-        g_lam = _gradient_lam(design, ev, solver, all_columns=False)
+        g_lam = _gradient_lam(design, ev)
         return ev.deviance, 2.0 * x * g_lam[free]
 
     best_x: np.ndarray | None = None
@@ -548,7 +637,7 @@ def _minimise(design: _Design, fixed_zero: Sequence[int], starts: list[np.ndarra
     for start in starts:
         res = optimize.minimize(
             fun,
-            np.asarray(start, dtype=float)[free],
+            np.sqrt(np.asarray(start, dtype=float))[free],
             jac=True,
             method="L-BFGS-B",
             bounds=[(0.0, None)] * len(free),
@@ -557,22 +646,23 @@ def _minimise(design: _Design, fixed_zero: Sequence[int], starts: list[np.ndarra
         if float(res.fun) < best_f:
             best_f = float(res.fun)
             best_x = np.asarray(res.x, dtype=float)
-    assert best_x is not None
-    return expand(best_x)
+    if best_x is None:
+        raise DesignError("REML optimisation failed: the criterion could not be evaluated")
+    th = expand(best_x)
+    return th * th
 
 
-def _kkt(design: _Design, theta: np.ndarray, active: Sequence[int]) -> tuple[bool, np.ndarray]:
-    """Check first-order optimality; returns (ok, gradient w.r.t. lam)."""
-    ev, solver = _evaluate(design, theta)
-    g = _gradient_lam(design, ev, solver)
+def _kkt(design: _Design, lam: np.ndarray, active: Sequence[int]) -> bool:
+    """First-order optimality: zero gradient for active, non-negative for pinned."""
+    g = _gradient_lam(design, _evaluate(design, lam))
     ok = True
     for k in range(len(design.sizes)):
         if k in active:
             # dimensionless: change in deviance for a relative change in lam_k
-            ok = ok and abs(g[k] * theta[k] ** 2) < 1e-5
+            ok = ok and abs(g[k] * lam[k]) < 1e-5
         else:
-            ok = ok and g[k] >= -_KKT_TOL * max(1.0, float(np.max(design.ztz)))
-    return ok, g
+            ok = ok and g[k] >= -_KKT_TOL * max(1.0, design.scale)
+    return ok
 
 
 def fit_reml(
@@ -591,55 +681,63 @@ def fit_reml(
     67(1)). Raises :class:`DesignError` for unusable input.
     """
     design = _build_design(y, X, factors, fixed_names)
+    _check_residual_identifiable(design)
     k_all = len(design.sizes)
-    starts = [np.full(k_all, v) for v in (1.0, 0.25, 4.0)]
-    theta0 = _minimise(design, [], starts)
-    dev0 = _evaluate(design, theta0)[0].deviance
+    # several starts for small problems; one (lme4's theta = 1) when every
+    # evaluation costs a large dense factorisation
+    values = (1.0, 0.0625, 16.0) if design.r <= 300 or design.diagonal else (1.0,)
+    starts = [np.full(k_all, v) for v in values]
+    lam0 = _minimise(design, [], starts)
+    dev0 = _evaluate(design, lam0).deviance
 
     # Active-set refinement: pin small components at 0, polish the others by
     # Newton's method, release any pinned component whose gradient says it
     # should be positive, repeat.
-    pinned = {k for k in range(k_all) if theta0[k] < _BOUNDARY_THETA}
-    theta = theta0
+    pinned = {k for k in range(k_all) if lam0[k] < _BOUNDARY_THETA**2}
+    lam = lam0
     messages: list[str] = []
+    need_minimise = bool(pinned)
     for _ in range(k_all + 2):
-        if pinned:
-            theta = _minimise(design, sorted(pinned), [np.where(theta > 0, theta, 0.5)])
+        if need_minimise:
+            lam = _minimise(design, sorted(pinned), [np.where(lam > 0, lam, 0.25)])
         active = [k for k in range(k_all) if k not in pinned]
-        theta = _newton_polish(design, theta, active)
-        ev, solver = _evaluate(design, theta)
-        g = _gradient_lam(design, ev, solver)
-        release = {k for k in pinned
-                   if g[k] < -_KKT_TOL * max(1.0, float(np.max(design.ztz)))}
+        lam = _newton_polish(design, lam, active)
+        g = _gradient_lam(design, _evaluate(design, lam))
+        release = {k for k in pinned if g[k] < -_KKT_TOL * max(1.0, design.scale)}
         if not release:
             break
         pinned -= release
+        need_minimise = True
         for k in release:
-            theta[k] = _BOUNDARY_THETA
+            lam[k] = (10.0 * _BOUNDARY_THETA) ** 2
     active = [k for k in range(k_all) if k not in pinned]
-    ev, solver = _evaluate(design, theta)
+    ev = _evaluate(design, lam)
     if ev.deviance > dev0 + 1e-8 * max(1.0, abs(dev0)):
         # should not happen; keep the better optimum and report it
         messages.append("active-set refinement did not improve the L-BFGS-B optimum")
-        theta = theta0
-        pinned = {k for k in range(k_all) if theta[k] == 0.0}
+        lam = lam0
+        pinned = {k for k in range(k_all) if lam[k] == 0.0}
         active = [k for k in range(k_all) if k not in pinned]
-        ev, solver = _evaluate(design, theta)
-    converged, _ = _kkt(design, theta, active)
+        ev = _evaluate(design, lam)
+    converged = _kkt(design, lam, active)
     if not converged:
         messages.append("REML optimisation did not meet the first-order optimality check")
 
     sigma2 = ev.rhr / (design.n - design.p)
-    sec = _second_order(design, ev, solver, active, sigma2)
-    evals, evecs = np.linalg.eigh(sec.hessian)
+    sec = _second_order(design, ev, active, sigma2)
+    # invert in log-variance coordinates, where the Hessian is well scaled
+    # (s_i s_j H_ij; the gradient term vanishes at the optimum)
+    s_act = np.array([lam[k] * sigma2 for k in active] + [sigma2])
+    h_log = sec.hessian * np.outer(s_act, s_act)
+    evals, evecs = np.linalg.eigh(0.5 * (h_log + h_log.T))
     pos = evals > 1e-10 * max(float(np.max(np.abs(evals))), 1e-300)
     hessian_ok = bool(np.all(pos))
     if not hessian_ok:
         messages.append("Hessian of the REML deviance is not positive definite")
-    h_inv = (evecs[:, pos] / evals[pos]) @ evecs[:, pos].T
-    vcov_varpar = 2.0 * h_inv
+    h_log_inv = (evecs[:, pos] / evals[pos]) @ evecs[:, pos].T
+    vcov_varpar = 2.0 * h_log_inv * np.outer(s_act, s_act)
 
-    components = {name: float(theta[k] ** 2 * sigma2) for k, name in enumerate(design.names)}
+    components = {name: float(lam[k] * sigma2) for k, name in enumerate(design.names)}
     for k in pinned:
         components[design.names[k]] = 0.0
     components["residual"] = float(sigma2)
@@ -655,7 +753,7 @@ def fit_reml(
         n_fixed=design.p,
         converged=bool(converged),
         boundary=tuple(design.names[k] for k in sorted(pinned)),
-        theta={name: float(theta[k]) for k, name in enumerate(design.names)},
+        theta={name: float(np.sqrt(lam[k])) for k, name in enumerate(design.names)},
         n_levels=dict(zip(design.names, design.sizes, strict=True)),
         varpar_names=varpar_names,
         varpar=varpar,
@@ -736,7 +834,10 @@ def satterthwaite_test(fit: MixedFit, L: np.ndarray) -> FTest:
     ``F = sum_m (P_m' L b)^2 / d_m / q``; each rotated contrast gets
     ``nu_m = 2 d_m^2 / (g_m' A g_m)`` and the denominator df combines them by
     Fai & Cornelius (1996, J. Stat. Comput. Simul. 54:363-378) as in
-    :func:`_fstat_ddf`.
+    :func:`_fstat_ddf`. F and its numerator df depend only on the row space
+    of ``L``; the denominator df (like lmerTest's) also depends on the rows
+    chosen, slightly when the design is unbalanced. To reproduce lmerTest's
+    ``anova()`` pass the matrix it reports with ``show_tests()``.
     """
     mat = _contrast_matrix(fit, L)
     if mat.shape[0] == 1:

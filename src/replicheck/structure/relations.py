@@ -132,7 +132,8 @@ def classify(
             return rel(
                 "partial",
                 f"'{column}' would be {shape} with '{treatment}' but for {bad.size} "
-                f"row(s) (data rows {shown})",
+                f"{'row' if bad.size == 1 else 'rows'} (data "
+                f"{'row' if bad.size == 1 else 'rows'} {shown})",
                 rows,
             )
     if np.mean(ct.treatments_per_level >= 2) >= 0.5:

@@ -72,12 +72,18 @@ class Structure:
 
     relations: tuple[Relation, ...]
     candidates: tuple[Candidate, ...]
-    choice: UnitChoice
-    per_treatment: tuple[UnitChoice, ...]
+    units: tuple[UnitChoice, ...]  # one per term, in the order of the terms
     skipped: dict[str, str] = field(default_factory=dict)
     # (rule name, text): which reading was taken where the data alone cannot tell
     readings: tuple[tuple[str, str], ...] = ()
     ambiguous: tuple[str, ...] = ()  # groupings that might be units but cannot be told from labels
+
+    def unit_of(self, term: str) -> UnitChoice:
+        """The unit chosen for a term."""
+        for u in self.units:
+            if u.treatment == term:
+                return u
+        raise KeyError(term)
 
 
 def _norm(s: str) -> str:
@@ -217,13 +223,94 @@ def _candidate(
     )
 
 
-def _labels_local(column: str, relation: Relation, mode: str, stated: bool) -> bool:
-    """Whether labels of a column crossed with treatment restart within each treatment level."""
-    if relation.relation != "crossed" or mode == "global":
-        return False
-    if mode == "local" or stated:
-        return True
-    return name_hint(column).kind == "container"
+def _drop_aliases(
+    data: pd.DataFrame, cols: list[str], treatments: Sequence[str], stated_unit: str | None
+) -> tuple[list[str], list[tuple[str, str]]]:
+    """Remove columns that are other labels of a treatment (same partition, label-like)."""
+    keep: list[str] = []
+    readings: list[tuple[str, str]] = []
+    for col in cols:
+        alias_of = None
+        if col != stated_unit:
+            for trt in treatments:
+                rel = classify(col, trt, data[col], data[trt])
+                same = rel.relation == "confounded" and rel.n_levels == len(
+                    rel.levels_per_treatment
+                )
+                if same and _is_alias(col, trt, data[col], data[trt]):
+                    alias_of = trt
+                    break
+        if alias_of is None:
+            keep.append(col)
+            continue
+        readings.append(
+            (
+                "column-reads-as-treatment-label",
+                f"'{col}' has exactly one level per level of '{alias_of}' and reads as another "
+                f"label of it, so it was not taken as a unit; if '{col}' names physical units, "
+                f"the design is confounded (state --unit {col})",
+            )
+        )
+    return keep, readings
+
+
+def _localise(
+    data: pd.DataFrame,
+    cols: list[str],
+    treatments: Sequence[str],
+    stated_unit: str | None,
+    unit_labels: str,
+) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, str]], list[tuple[str, str]]]:
+    """Replace unit labels that restart within treatment levels by treatment:label groupings.
+
+    A container-like column ("tank", "cage", "replicate"), a stated unit, or
+    any column under ``--unit-labels local``, that is crossed with a treatment
+    is read as numbering units afresh within each level of the treatment
+    ("tank 1" of every feed is a different tank). When it is crossed with
+    several treatments, its labels are taken as local to the one with the
+    fewest treatment x label cells (the coarsest), so that in a split-plot
+    design the whole plots are found for the whole-plot treatment and stay
+    whole plots for the others.
+    """
+    if unit_labels == "global":
+        return data, cols, {}, []
+    derived: dict[str, tuple[str, str]] = {}
+    readings: list[tuple[str, str]] = []
+    new_cols: list[str] = []
+    extra: dict[str, pd.Series] = {}
+    for col in cols:
+        wanted = (
+            unit_labels == "local" or col == stated_unit or (name_hint(col).kind == "container")
+        )
+        crossing = []
+        if wanted:
+            for trt in treatments:
+                rel = classify(col, trt, data[col], data[trt])
+                if rel.relation == "crossed":
+                    cells = data[[trt, col]].drop_duplicates().shape[0]
+                    crossing.append((cells, trt))
+        if not crossing:
+            new_cols.append(col)
+            continue
+        _, trt = min(crossing)
+        name = f"{trt}:{col}"
+        derived[name] = (trt, col)
+        extra[name] = data[trt].astype(str) + " / " + data[col].astype(str)
+        new_cols.append(name)
+        example = data[col].dropna().iloc[0]
+        readings.append(
+            (
+                "labels-local-to-treatment",
+                f"labels of '{col}' repeat under several levels of '{trt}' ('{col}' "
+                f"{example!s} appears under more than one); units that received different "
+                f"treatments must be different units, so replicheck read each {col} within its "
+                f"{trt} ('{name}') as a unit; if the same physical {col} received every "
+                f"treatment, rerun with --unit-labels global",
+            )
+        )
+    if extra:
+        data = data.assign(**extra)
+    return data, new_cols, derived, readings
 
 
 def _one_treatment(
@@ -232,7 +319,7 @@ def _one_treatment(
     treatment: str,
     cols: list[str],
     stated_unit: str | None,
-    unit_labels: str,
+    derived: dict[str, tuple[str, str]],
 ) -> tuple[list[Relation], list[Candidate], UnitChoice, list[tuple[str, str]], list[str]]:
     relations: list[Relation] = []
     candidates: list[Candidate] = []
@@ -241,49 +328,25 @@ def _one_treatment(
     for col in cols:
         rel = classify(col, treatment, data[col], data[treatment])
         relations.append(rel)
-        stated = col == stated_unit
-        if rel.relation in {"nested", "partial"}:
-            candidates.append(_candidate(data, y, treatment, (col,), rel, col, False, stated))
+        source = derived.get(col, (col,))
+        stated = source[-1] == stated_unit
+        if rel.relation == "nested":
+            candidates.append(_candidate(data, y, treatment, source, rel, col, False, stated))
+        elif rel.relation == "partial":
+            # the exceptions make the column cross the treatment; within each treatment
+            # level its labels still name units, so the unit is treatment x column
+            candidates.append(
+                _candidate(data, y, treatment, (treatment, col), rel, col, False, stated)
+            )
         elif rel.relation == "confounded":
             same = rel.n_levels == len(rel.levels_per_treatment)
             alias = same and not stated and _is_alias(col, treatment, data[col], data[treatment])
             cand = _candidate(data, y, treatment, (col,), rel, col, alias, stated)
             candidates.append(cand)
             if alias:
-                readings.append(
-                    (
-                        "column-reads-as-treatment-label",
-                        f"'{col}' has exactly one level per level of '{treatment}' and reads as "
-                        f"another label of it, so it was not taken as a unit; if '{col}' names "
-                        f"physical units, the design is confounded (state --unit {col})",
-                    )
-                )
+                pass  # aliases of main treatments were removed before; this is a coarser one
             elif not cand.credible:
                 ambiguous.append(col)
-        elif _labels_local(col, rel, unit_labels, stated):
-            local = classify(
-                f"{treatment}:{col}",
-                treatment,
-                pd.Series(_local_codes(data, (treatment, col)), index=data.index),
-                data[treatment],
-            )
-            candidates.append(
-                _candidate(
-                    data, y, treatment, (treatment, col), local, f"{treatment}:{col}", False, stated
-                )
-            )
-            example = data[col].dropna().iloc[0]
-            readings.append(
-                (
-                    "labels-local-to-treatment",
-                    f"labels of '{col}' repeat under several levels of '{treatment}' "
-                    f"('{col}' {example!s} appears under more than one); units that received "
-                    f"different treatments must be different units, so replicheck analysed "
-                    f"'{treatment}:{col}' (each {col} within its {treatment}) as the unit; if the "
-                    f"same physical {col} received every treatment, rerun with "
-                    "--unit-labels global",
-                )
-            )
         elif stated:
             readings.append(
                 (
@@ -296,32 +359,29 @@ def _one_treatment(
     return relations, candidates, _choose(data, treatment, candidates), readings, ambiguous
 
 
-def combined_treatment(data: pd.DataFrame, treatments: Sequence[str]) -> pd.Series:
-    """One factor whose levels are the observed combinations of several treatment columns."""
-    if len(treatments) == 1:
-        return data[treatments[0]]
-    return data[list(treatments)].astype(str).agg(" & ".join, axis=1)
-
-
 def infer_structure(
     data: pd.DataFrame,
     response: str,
-    treatments: Sequence[str],
+    terms: Sequence[str],
     *,
+    exclude: Sequence[str] = (),
+    interactions: Sequence[str] = (),
     stated_unit: str | None = None,
     unit_labels: str = "auto",
 ) -> Structure:
-    """Relations, ranked candidate units and the chosen unit.
+    """Relations, ranked candidate units and the chosen unit of every term.
 
-    ``data`` holds only the analysed rows (response and every treatment present).
-    With several treatment columns, the unit used for the analysis is the one
-    of their combination (column ``combined_name(treatments)``); units are also
-    reported per treatment column.
+    ``data`` holds only the analysed rows. ``terms`` are factor columns of
+    ``data`` (treatment columns, and columns holding the combinations of
+    several treatments for interaction terms); ``exclude`` lists further
+    columns that are not groupings (the treatment columns themselves). Terms
+    named in ``interactions`` get a unit but add no relations or readings of
+    their own, and the stated unit is checked against main terms only.
     """
     if unit_labels not in UNIT_LABEL_MODES:
         raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
     y = data[response].to_numpy(dtype=float)
-    cols, skipped = grouping_columns(data, (response, *treatments))
+    cols, skipped = grouping_columns(data, (response, *terms, *exclude))
     if stated_unit is not None and stated_unit not in cols:
         reason = skipped.get(stated_unit, "it is the response or a treatment column")
         if reason.startswith("a row identifier"):
@@ -331,37 +391,31 @@ def infer_structure(
             raise InputError(f"the stated unit '{stated_unit}' cannot be a grouping: {reason}")
     relations: list[Relation] = []
     candidates: list[Candidate] = []
-    readings: list[tuple[str, str]] = []
     ambiguous: list[str] = []
-    per: list[UnitChoice] = []
-    for trt in treatments:
-        r, c, choice, rd, amb = _one_treatment(data, y, trt, cols, stated_unit, unit_labels)
-        relations += r
+    units: list[UnitChoice] = []
+    main_terms = [t for t in terms if t not in interactions]
+    cols, readings = _drop_aliases(data, cols, main_terms, stated_unit)
+    data, cols, derived, local = _localise(data, cols, main_terms, stated_unit, unit_labels)
+    readings += local
+    for term in terms:
+        main = term not in interactions
+        r, c, choice, rd, amb = _one_treatment(
+            data, y, term, cols, stated_unit if main else None, derived
+        )
+        if main:
+            relations += r
+            readings += rd
+            ambiguous += [a for a in amb if a not in ambiguous]
         candidates += c
-        readings += rd
-        ambiguous += [a for a in amb if a not in ambiguous]
-        per.append(choice)
-    if len(treatments) == 1:
-        combined = per[0]
-    else:
-        name = combined_name(treatments)
-        frame = data.assign(**{name: combined_treatment(data, treatments)})
-        _, c, combined, rd, amb = _one_treatment(frame, y, name, cols, stated_unit, unit_labels)
-        candidates += [x for x in c if x.credible]
+        units.append(choice)
     return Structure(
         relations=tuple(relations),
         candidates=tuple(candidates),
-        choice=combined,
-        per_treatment=tuple(per),
+        units=tuple(units),
         skipped=skipped,
         readings=tuple(dict.fromkeys(readings)),
         ambiguous=tuple(ambiguous),
     )
-
-
-def combined_name(treatments: Sequence[str]) -> str:
-    """Name of the factor formed by several treatment columns."""
-    return " x ".join(treatments)
 
 
 def _choose(data: pd.DataFrame, treatment: str, candidates: list[Candidate]) -> UnitChoice:
