@@ -343,6 +343,37 @@ def test_balanced_nested_boundary_reduces_to_ols(t: int) -> None:
     assert ft.p_value == pytest.approx(p_ols, rel=1e-8)
 
 
+@pytest.mark.parametrize("excess", [2e-3, 1e-5, -2e-3])
+def test_small_unit_variance_balanced_one_way(excess: float) -> None:
+    # Balanced one-way layout: the REML estimate of the unit variance is the ANOVA
+    # estimator (MSB - MSW)/m truncated at 0 (Searle, Casella & McCulloch 1992,
+    # ch. 6; theory). Seeded data rescaled so that MSB = (1 + excess) MSW exactly:
+    # a tiny positive estimate (theta ~ 0.02 and ~ 0.002) must not be lost at the
+    # boundary, and a negative one must give exactly 0.
+    rng = np.random.default_rng(1)
+    units, m = 50, 4
+    unit = np.repeat(np.arange(units), m)
+    raw = rng.normal(size=units * m)
+    means = np.bincount(unit, weights=raw) / m
+    within = raw - means[unit]
+    msw = float(np.sum(within**2)) / (units * (m - 1))
+    centred = means - means.mean()
+    scale = np.sqrt((1 + excess) * msw * (units - 1) / (m * float(np.sum(centred**2))))
+    y = 10.0 + scale * centred[unit] + within
+    fit = fit_reml(y, np.ones((y.size, 1)), {"unit": unit}, ["(Intercept)"])
+    expected = max(0.0, excess * msw / m)
+    assert fit.converged
+    if expected > 0:
+        assert fit.components["unit"] == pytest.approx(expected, rel=1e-6)
+        assert fit.boundary == ()
+    else:
+        assert fit.components["unit"] == 0.0
+        assert fit.boundary == ("unit",)
+    assert fit.components["residual"] == pytest.approx(
+        msw if expected > 0 else float(np.sum((y - y.mean()) ** 2)) / (y.size - 1), rel=1e-9
+    )
+
+
 def test_two_level_nested_intercept_df() -> None:
     # Balanced two-level nesting (cask within batch, as in Pastes): the variance of
     # the grand mean is E[MS_batch] / n, so the Satterthwaite df of the intercept

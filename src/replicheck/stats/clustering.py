@@ -129,8 +129,9 @@ def anova_components(
     # every unit must sit in exactly one group
     pairs = np.unique(np.column_stack([ucodes, gcodes]), axis=0)
     if pairs.shape[0] != n_units:
-        raise DesignError("some units appear in more than one group; units must be nested "
-                          "in groups")
+        raise DesignError(
+            "some units appear in more than one group; units must be nested in groups"
+        )
     unit_group = np.empty(n_units, dtype=np.intp)
     unit_group[pairs[:, 0]] = pairs[:, 1]
     df_b = n_units - n_groups
@@ -138,8 +139,7 @@ def anova_components(
     if df_b < 1:
         raise DesignError("need more units than groups to estimate the between-unit variance")
     if df_w < 1:
-        raise DesignError("need more observations than units to estimate the within-unit "
-                          "variance")
+        raise DesignError("need more observations than units to estimate the within-unit variance")
     m_u = np.bincount(ucodes, minlength=n_units).astype(float)
     unit_mean = np.bincount(ucodes, weights=arr, minlength=n_units) / m_u
     n_g = np.bincount(gcodes, minlength=n_groups).astype(float)
@@ -199,8 +199,7 @@ def icc_from_components(s2_unit: float, s2_resid: float) -> float:
 
     Returns ``nan`` when both components are 0 (no variation).
     """
-    if s2_unit < 0.0 or s2_resid < 0.0 or not (math.isfinite(s2_unit)
-                                              and math.isfinite(s2_resid)):
+    if s2_unit < 0.0 or s2_resid < 0.0 or not (math.isfinite(s2_unit) and math.isfinite(s2_resid)):
         raise DesignError("variance components must be finite and non-negative")
     total = s2_unit + s2_resid
     return float(s2_unit / total) if total > 0.0 else float("nan")

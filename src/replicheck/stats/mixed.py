@@ -76,7 +76,7 @@ __all__ = [
 ]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
-_BOUNDARY_THETA = 1e-2  # relative sd below which a component is tried at exactly 0
+_TINY = 1e-6  # lam_k * mean level size below which a component is tried at exactly 0
 _KKT_TOL = 1e-7  # tolerance on the scaled gradient for declaring a boundary optimum
 
 
@@ -94,6 +94,11 @@ class MixedFit:
     components (the residual variance last), ``vcov_varpar`` their asymptotic
     covariance (2 x inverse Hessian of the REML deviance) and ``jac_cov_beta``
     has shape ``(len(varpar), p, p)`` with ``d cov_beta / d varpar[i]``.
+
+    ``theta`` holds lme4's relative standard deviations ``sqrt(s2_k / s2_e)``.
+    ``converged`` is the first-order optimality check; ``hessian_ok`` is False
+    when the Hessian was not positive definite (Satterthwaite df are then
+    unreliable); ``messages`` explains any problem.
     """
 
     components: dict[str, float]
@@ -171,7 +176,8 @@ class _Design:
     yw: np.ndarray
     sw: np.ndarray  # xw'xw
     n_within: int  # n - r
-    scale: float  # largest eigenvalue of Z'Z (for tolerances)
+    scale: float  # largest eigenvalue of Z'Z
+    mean_sizes: tuple[float, ...]  # mean number of observations per level, per factor
 
     def t_times(self, k: int, mat: np.ndarray) -> np.ndarray:
         """T_k @ mat."""
@@ -350,6 +356,7 @@ def _build_design(
         sw=xw.T @ xw,
         n_within=n - r,
         scale=float(np.max(e)),
+        mean_sizes=tuple(n / k for k in sizes),
     )
 
 
@@ -527,11 +534,16 @@ def _second_order(design: _Design, ev: _Eval, active: Sequence[int], sigma2: flo
     ksk = float(np.sum((kb.T @ kb) * sw))
     tr_pbb = float(np.trace(pbb))
     g_mat[-1, -1] = (
-        design.n_within - 2.0 * float(np.trace(csw)) + float(np.sum(csw * csw.T))
-        + 2.0 * ksk + float(np.sum(pbb * pbb))
+        design.n_within
+        - 2.0 * float(np.trace(csw))
+        + float(np.sum(csw * csw.T))
+        + 2.0 * ksk
+        + float(np.sum(pbb * pbb))
     )
     q_mat[-1, -1] = (
-        float(ev.r_w @ ev.r_w) - float(g_w @ c @ g_w) - 2.0 * float(g_w @ c @ h)
+        float(ev.r_w @ ev.r_w)
+        - float(g_w @ c @ g_w)
+        - 2.0 * float(g_w @ c @ h)
         + float(u @ pbb @ u)
     )
     s2 = sigma2
@@ -652,6 +664,42 @@ def _minimise(design: _Design, fixed_zero: Sequence[int], starts: list[np.ndarra
     return th * th
 
 
+def _minimise_lam(design: _Design, fixed_zero: Sequence[int], start: np.ndarray) -> np.ndarray:
+    """L-BFGS-B over lam >= 0 (scaled by the mean level size), some pinned at 0.
+
+    Unlike the theta parametrisation, whose gradient vanishes at theta = 0,
+    the gradient in lam is informative at the boundary: a component stays at
+    0 only if the criterion increases into the interior.
+    """
+    k_all = len(design.sizes)
+    free = [k for k in range(k_all) if k not in set(fixed_zero)]
+    if not free:
+        return np.zeros(k_all)
+    scale = np.array([design.mean_sizes[k] for k in free])
+
+    def expand(x: np.ndarray) -> np.ndarray:
+        lam = np.zeros(k_all)
+        lam[free] = x / scale
+        return lam
+
+    def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
+        try:
+            ev = _evaluate(design, expand(x))
+        except (linalg.LinAlgError, DesignError):
+            return float("inf"), np.zeros_like(x)
+        return ev.deviance, _gradient_lam(design, ev)[free] / scale
+
+    res = optimize.minimize(
+        fun,
+        np.asarray(start, dtype=float)[free] * scale,
+        jac=True,
+        method="L-BFGS-B",
+        bounds=[(0.0, None)] * len(free),
+        options={"ftol": 1e-15, "gtol": 1e-12, "maxiter": 2000},
+    )
+    return expand(np.asarray(res.x, dtype=float))
+
+
 def _kkt(design: _Design, lam: np.ndarray, active: Sequence[int]) -> bool:
     """First-order optimality: zero gradient for active, non-negative for pinned."""
     g = _gradient_lam(design, _evaluate(design, lam))
@@ -661,7 +709,7 @@ def _kkt(design: _Design, lam: np.ndarray, active: Sequence[int]) -> bool:
             # dimensionless: change in deviance for a relative change in lam_k
             ok = ok and abs(g[k] * lam[k]) < 1e-5
         else:
-            ok = ok and g[k] >= -_KKT_TOL * max(1.0, design.scale)
+            ok = ok and g[k] >= -_KKT_TOL * design.mean_sizes[k]
     return ok
 
 
@@ -688,28 +736,39 @@ def fit_reml(
     values = (1.0, 0.0625, 16.0) if design.r <= 300 or design.diagonal else (1.0,)
     starts = [np.full(k_all, v) for v in values]
     lam0 = _minimise(design, [], starts)
+    # the theta search can stall at theta_k = 0 (zero gradient there): continue
+    # in lam, where the gradient at the boundary is informative
+    lam1 = _minimise_lam(design, [], lam0)
     dev0 = _evaluate(design, lam0).deviance
+    if _evaluate(design, lam1).deviance <= dev0:
+        lam0, dev0 = lam1, _evaluate(design, lam1).deviance
 
-    # Active-set refinement: pin small components at 0, polish the others by
-    # Newton's method, release any pinned component whose gradient says it
-    # should be positive, repeat.
-    pinned = {k for k in range(k_all) if lam0[k] < _BOUNDARY_THETA**2}
-    lam = lam0
+    # Active-set refinement: pin negligible components at exactly 0, polish the
+    # others by Newton's method, release a pinned component whose gradient at 0
+    # is negative (it then stays free), repeat.
+    def negligible(lam: np.ndarray, k: int) -> bool:
+        return bool(lam[k] * design.mean_sizes[k] < _TINY)
+
+    never_pin: set[int] = set()
+    lam = lam0.copy()
     messages: list[str] = []
-    need_minimise = bool(pinned)
+    pinned: set[int] = set()
     for _ in range(k_all + 2):
-        if need_minimise:
-            lam = _minimise(design, sorted(pinned), [np.where(lam > 0, lam, 0.25)])
+        pinned = {k for k in range(k_all) if negligible(lam, k) and k not in never_pin}
+        if pinned:
+            lam = _minimise_lam(design, sorted(pinned), lam)
         active = [k for k in range(k_all) if k not in pinned]
-        lam = _newton_polish(design, lam, active)
+        if any(lam[k] <= 0.0 for k in active):
+            # a released component: move it off 0 along its (negative) gradient
+            lam = _minimise_lam(design, sorted(pinned), lam)
+        if all(lam[k] > 0.0 for k in active):
+            lam = _newton_polish(design, lam, active)
         g = _gradient_lam(design, _evaluate(design, lam))
-        release = {k for k in pinned if g[k] < -_KKT_TOL * max(1.0, design.scale)}
+        release = {k for k in pinned if g[k] < -_KKT_TOL * design.mean_sizes[k]}
         if not release:
             break
-        pinned -= release
-        need_minimise = True
-        for k in release:
-            lam[k] = (10.0 * _BOUNDARY_THETA) ** 2
+        never_pin |= release
+    pinned = {k for k in range(k_all) if lam[k] == 0.0}
     active = [k for k in range(k_all) if k not in pinned]
     ev = _evaluate(design, lam)
     if ev.deviance > dev0 + 1e-8 * max(1.0, abs(dev0)):

@@ -19,6 +19,7 @@ Comparative Experiments*, ch. 10, and Lohr (1995) The American Statistician
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -57,6 +58,26 @@ def codes_of(values: pd.Series) -> tuple[np.ndarray, list[str]]:
     """Integer codes 0..k-1 and level labels of a column (missing -> -1)."""
     codes, uniques = pd.factorize(values, sort=True)
     return codes.astype(np.int64), [str(u) for u in uniques]
+
+
+def group_codes(data: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
+    """Codes 0..k-1 of the observed combinations of several columns (vectorised).
+
+    A row missing any of the columns gets -1.
+    """
+    combined = np.zeros(len(data), dtype=np.int64)
+    missing = np.zeros(len(data), dtype=bool)
+    for col in columns:
+        codes, uniques = pd.factorize(data[col], sort=True)
+        missing |= codes < 0
+        combined = combined * (len(uniques) + 1) + codes
+        combined, _ = pd.factorize(combined, sort=True)
+    combined = combined.astype(np.int64)
+    if missing.any():
+        combined[missing] = -1
+        kept = combined >= 0
+        combined[kept] = pd.factorize(combined[kept], sort=True)[0]
+    return combined
 
 
 def contingency(col: np.ndarray, trt: np.ndarray) -> Contingency:

