@@ -28,8 +28,10 @@ Walker 2015, J. Stat. Software 67(1), eq. 41)::
 
 minimised over ``theta_k = sqrt(lam_k) >= 0`` (the relative standard deviations
 lme4 calls theta) by L-BFGS-B (three starts unless the problem is large) with
-the analytic gradient ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e``.
-The optimum is then refined by Newton steps on the unprofiled REML deviance in
+the analytic gradient ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e``,
+then continued by L-BFGS-B in ``lam`` itself (the theta gradient vanishes at
+``theta_k = 0``, so a theta search can stall there although a small positive
+variance is optimal). The optimum is then refined by Newton steps on the unprofiled REML deviance in
 log-variance coordinates; components whose optimum lies on the boundary are
 set to exactly 0 (Karush-Kuhn-Tucker condition ``d d / d lam_k >= 0`` at 0).
 When ``y`` lies in ``col([X, Z])`` the REML likelihood is unbounded (residual
