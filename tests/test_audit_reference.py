@@ -187,3 +187,19 @@ def test_cake_row_level_terms_match_statsmodels_type3() -> None:
         assert rows[term]["statistic"] == pytest.approx(table.loc[key, "F"], rel=1e-9)
         assert rows[term]["p_value"] == pytest.approx(table.loc[key, "PR(>F)"], rel=1e-7)
         assert rows[term]["df"] == [table.loc[key, "df"], fit.df_resid]
+
+
+def test_value_copied_to_every_row_of_a_unit_falls_back_to_unit_means(ratpup) -> None:  # type: ignore[no-untyped-def]
+    # Lsize (litter size) is one value per litter copied to every pup: a common way a
+    # unit-level measurement gets counted once per observation. The residual variance
+    # is zero, the mixed model cannot be fitted, and the unit-means test equals scipy's
+    # one-way ANOVA on the 27 litter values.
+    doc = audit(ratpup, response="Lsize", treatment="Treatment").to_dict()
+    assert doc["verdict"]["status"] == "pseudoreplicated"
+    assert doc["verdict"]["method"] == "unit_means"
+    litters = ratpup.groupby(["Treatment", "Litter"])["Lsize"].first().reset_index()
+    ref = stats.f_oneway(*[g["Lsize"].to_numpy() for _, g in litters.groupby("Treatment")])
+    um = next(a for a in doc["analyses"] if a["name"] == "unit_means")
+    assert um["statistic"] == pytest.approx(float(ref.statistic), rel=1e-9)
+    assert um["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-9)
+    assert doc["clustering"]["icc"] == pytest.approx(1.0)

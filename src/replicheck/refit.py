@@ -18,12 +18,12 @@ For every term (a treatment, or an interaction of treatments):
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import stats as sps
 
-from replicheck.stats.classic import oneway_anova, two_sample_t
+from replicheck.stats.classic import DesignError, oneway_anova, two_sample_t
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 
 
@@ -228,24 +228,39 @@ def _ols_term_tests(
 
 
 def _random_units(terms: Sequence[TermInput], n: int) -> dict[str, np.ndarray]:
+    """One random intercept per distinct grouping of the rows (the same grouping once)."""
     units: dict[str, np.ndarray] = {}
     for t in terms:
         if t.unit is None or t.unit_name is None or t.confounded:
             continue
-        if int(t.unit.max()) + 1 < n and t.unit_name not in units:
-            units[t.unit_name] = t.unit
+        if int(t.unit.max()) + 1 >= n or t.unit_name in units:
+            continue
+        if any(_same_partition(t.unit, other) for other in units.values()):
+            continue
+        units[t.unit_name] = t.unit
     return units
 
 
+def _same_partition(a: np.ndarray, b: np.ndarray) -> bool:
+    pairs = np.unique(a * (int(b.max()) + 1) + b).size
+    return pairs == int(a.max()) + 1 == int(b.max()) + 1
+
+
 def _mixed_analysis(
-    fit: MixedFit, X: np.ndarray, index: list[int], t: TermInput, n_rep: int, two: bool
+    fit: MixedFit,
+    X: np.ndarray,
+    index: list[int],
+    t: TermInput,
+    rname: str | None,
+    n_rep: int,
+    two: bool,
 ) -> Analysis:
     L = _contrast(index, X.shape[1])
     test = satterthwaite_test(fit, whitened(L, X))
     notes = []
-    if t.unit_name is not None and t.unit_name in fit.boundary:
+    if rname is not None and rname in fit.boundary:
         notes.append(
-            f"the variance between {t.unit_name} units was estimated at zero, so the mixed "
+            f"the variance between {rname} units was estimated at zero, so the mixed "
             "model treats their rows as independent"
         )
     if not fit.converged:
@@ -259,7 +274,7 @@ def _mixed_analysis(
         name,
         LABELS[name],
         t.term,
-        "units" if t.unit is not None else "rows",
+        "units" if rname is not None else "rows",
         n_rep,
         float(test.statistic),
         (float(test.df_num), float(test.df_den)),
@@ -289,8 +304,12 @@ def refit(y: np.ndarray, terms: Sequence[TermInput]) -> Refit:
         claimed = _ols_term_tests(y, X, index, terms)
     random = _random_units(terms, n)
     fit: MixedFit | None = None
+    not_fitted = None
     if random:
-        fit = fit_reml(y, X, random, names)
+        try:
+            fit = fit_reml(y, X, random, names)
+        except DesignError as err:
+            not_fitted = f"the mixed model could not be fitted ({err}); the unit means are used"
     out: list[TermRefit] = []
     for t, row_test in zip(terms, claimed, strict=True):
         analyses = [row_test]
@@ -311,19 +330,25 @@ def refit(y: np.ndarray, terms: Sequence[TermInput]) -> Refit:
             )
             out.append(TermRefit(t.term, tuple(analyses), None, None))
             continue
-        has_unit = t.unit is not None and t.unit_name in random
+        rname = None
+        if t.unit is not None:
+            rname = next((k for k, u in random.items() if _same_partition(t.unit, u)), None)
+        has_unit = rname is not None
         if has_unit:
-            analyses.append(_unit_means(t, y))
+            um = _unit_means(t, y)
+            if not_fitted is not None:
+                um = replace(um, notes=(*um.notes, not_fitted))
+            analyses.append(um)
         variance = None
         corrected = "unit_means" if has_unit else "as_claimed"
         if fit is not None:
             n_rep = int(t.unit.max()) + 1 if has_unit and t.unit is not None else n
-            analyses.append(_mixed_analysis(fit, X, index[t.term], t, n_rep, single))
-            if has_unit and t.unit_name is not None:
-                at_zero = t.unit_name in fit.boundary
+            analyses.append(_mixed_analysis(fit, X, index[t.term], t, rname, n_rep, single))
+            if rname is not None:
+                at_zero = rname in fit.boundary
                 variance = UnitVariance(
-                    t.unit_name,
-                    float(fit.components[t.unit_name]),
+                    rname,
+                    float(fit.components[rname]),
                     float(fit.components["residual"]),
                     at_zero,
                     bool(fit.converged),
