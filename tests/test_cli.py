@@ -177,3 +177,33 @@ def test_help_is_exit_0() -> None:
     assert "check" in r.stdout and "demo" in r.stdout
     r = run("check", "--help")
     assert r.returncode == 0 and "--unit-labels" in r.stdout
+
+
+def test_european_spreadsheet_export_gives_the_same_report(
+    ratpup_csv: Path, tmp_path: Path
+) -> None:
+    # The same data as a semicolon-separated, decimal-comma, cp1252 file with a
+    # non-ASCII header (as a European spreadsheet exports it; written by pandas), and
+    # as .xlsx (written by openpyxl through pandas) and Parquet (pyarrow).
+    d = pd.read_csv(ratpup_csv).rename(columns={"weight": "Gewicht (g)"})
+    euro = tmp_path / "pups_eu.csv"
+    d.to_csv(euro, sep=";", decimal=",", index=False, encoding="cp1252")
+    xlsx = tmp_path / "pups.xlsx"
+    d.to_excel(xlsx, index=False, sheet_name="Daten")
+    parquet = tmp_path / "pups.parquet"
+    d.to_parquet(parquet, index=False)
+    p_values = []
+    for path, extra in ((euro, []), (xlsx, ["--sheet", "Daten"]), (parquet, [])):
+        r = run("check", str(path), "-r", "gewicht (g)", "-t", "treatment", "-f", "json", *extra)
+        assert r.returncode == 1, r.stderr
+        doc = json.loads(r.stdout)
+        assert doc["claim"]["response"] == "Gewicht (g)"
+        p_values.append([a["p_value"] for a in doc["analyses"]])
+    assert p_values[0] == pytest.approx(p_values[1], rel=1e-12)
+    assert p_values[0] == pytest.approx(p_values[2], rel=1e-12)
+
+
+def test_output_may_not_overwrite_the_input(ratpup_csv: Path) -> None:
+    r = run("check", str(ratpup_csv), "-r", "weight", "-t", "Treatment", "-o", str(ratpup_csv))
+    assert r.returncode == 2
+    assert "overwrite the input" in r.stderr
