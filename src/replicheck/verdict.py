@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
+from replicheck.numbers import p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
 from replicheck.structure.units import Structure, UnitChoice
@@ -117,13 +118,7 @@ def rule(name: str, doc: str) -> Callable[[Rule], Rule]:
     return register
 
 
-def _p(p: float | None) -> str:
-    """'p = 0.118', 'p = 0.0031' or 'p < 0.0001'."""
-    if p is None:
-        return "p not available"
-    if p < 1e-4:
-        return "p < 0.0001"
-    return f"p = {p:.2g}" if p < 0.01 else f"p = {p:.3f}"
+_p = p_phrase
 
 
 def _f(a: Analysis) -> str:

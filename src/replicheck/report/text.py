@@ -5,6 +5,8 @@ from __future__ import annotations
 import textwrap
 from typing import Any
 
+from replicheck.numbers import format_p
+
 WIDTH = 88
 
 STATUS_WORDS = {
@@ -15,13 +17,7 @@ STATUS_WORDS = {
 }
 
 
-def fmt_p(p: float | None) -> str:
-    """A p-value as printed in reports."""
-    if p is None:
-        return "-"
-    if p < 1e-4:
-        return "<0.0001"
-    return f"{p:.4f}" if p < 0.01 else f"{p:.3f}"
+fmt_p = format_p
 
 
 def fmt_num(x: float | None, digits: int = 3) -> str:
