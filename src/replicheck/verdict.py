@@ -285,6 +285,9 @@ def _reading_rule(name: str) -> Rule:
 rule("labels-local-to-treatment", "unit labels repeat under several treatment levels")(
     _reading_rule("labels-local-to-treatment")
 )
+rule("unit-reading-uncertain", "the data allow plots (cells) or rows within blocks as units")(
+    _reading_rule("unit-reading-uncertain")
+)
 rule("column-reads-as-treatment-label", "a column has the treatment's partition, read as a label")(
     _reading_rule("column-reads-as-treatment-label")
 )
@@ -389,8 +392,23 @@ def _dropped(ev: Evidence) -> Iterator[Finding]:
 def _crossed(ev: Evidence) -> Iterator[Finding]:
     used = {c for t in ev.terms for c in t.unit.columns}
     derived = {r.column for r in ev.structure.relations if ":" in r.column}
+    blocks = {b.name for b in ev.structure.blocks}
+    seen: set[str] = set()
     for r in ev.structure.relations:
         if r.relation != "crossed" or r.column in used or r.column in derived:
+            continue
+        if r.column in blocks:
+            if r.column not in seen:
+                seen.add(r.column)
+                yield Finding(
+                    "crossed-grouping",
+                    "note",
+                    f"'{r.column}' is crossed with the treatments ({r.detail}); it is not a unit "
+                    f"of the treatments but a block, and the corrected model holds it as a "
+                    f"random effect.",
+                    f"Check that '{r.column}' was a blocking or subject factor in the design.",
+                    (r.column,),
+                )
             continue
         yield Finding(
             "crossed-grouping",

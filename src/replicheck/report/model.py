@@ -17,7 +17,8 @@ from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.io import Table
 from replicheck.refit import Refit
-from replicheck.verdict import Evidence, Verdict
+from replicheck.structure.units import Structure
+from replicheck.verdict import Evidence, TermEvidence, Verdict
 
 SCHEMA = "replicheck/report-v1"
 
@@ -55,6 +56,16 @@ def _clustering(cl: Clustering | None) -> dict[str, Any]:
         "n_observations": cl.n_observations,
         "effective_n_per_level": cl.effective_n_per_level,
     }
+
+
+def _error_term(te: TermEvidence, s: Structure) -> str | None:
+    """The stratum a term is tested in: its unit, the residual, or None when untestable."""
+    if te.unit.relation == "confounded":
+        return None
+    for st in s.strata:
+        if te.term in st.terms:
+            return "residual" if st.kind == "rows" else st.name
+    return te.unit.unit or "residual"
 
 
 @dataclass(frozen=True)
@@ -142,6 +153,7 @@ class Report:
                     "term": te.term,
                     "factors": list(te.factors),
                     "unit": te.unit.unit,
+                    "error_term": _error_term(te, s),
                     "status": tv.status,
                     "method": tv.method,
                     "statistic": corrected.statistic if corrected else None,
@@ -184,6 +196,22 @@ class Report:
                 "summary": self.verdict.summary,
             },
             "experimental_units": units,
+            "design": {
+                "strata": [
+                    {
+                        "name": st.name,
+                        "kind": st.kind,
+                        "n_levels": st.n_levels,
+                        "parent": st.parent,
+                        "columns": list(st.columns),
+                        "terms": list(st.terms),
+                    }
+                    for st in s.strata
+                ],
+                "blocks": [
+                    {"name": b.name, "n_levels": b.n_levels, "reason": b.reason} for b in s.blocks
+                ],
+            },
             "terms": terms,
             "candidates": [
                 {

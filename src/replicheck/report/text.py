@@ -107,6 +107,30 @@ def _clustering_lines(cl: dict[str, Any], title: str) -> list[str]:
     ]
 
 
+def design_tree(doc: dict[str, Any]) -> list[str]:
+    """The strata as an indented tree, each with the terms tested in it."""
+    strata = doc.get("design", {}).get("strata", [])
+    if len(strata) <= 1 and not any(s["terms"] for s in strata if s["kind"] != "rows"):
+        return []
+    children: dict[str | None, list[dict[str, Any]]] = {}
+    for s in strata:
+        children.setdefault(s["parent"], []).append(s)
+    lines = ["  design structure (each grouping under the one it is nested in):"]
+
+    def walk(parent: str | None, depth: int) -> None:
+        for s in children.get(parent, []):
+            what = {"unit": "unit", "block": "block", "subunit": "sub-unit", "rows": "rows"}
+            terms = f"  <- tests {', '.join(s['terms'])}" if s["terms"] else ""
+            lines.append(
+                f"  {'  ' * (depth + 1)}{s['name']} ({what.get(s['kind'], s['kind'])}, "
+                f"{s['n_levels']}){terms}"
+            )
+            walk(s["name"], depth + 1)
+
+    walk(None, 0)
+    return lines
+
+
 def render_text(doc: dict[str, Any]) -> str:
     """Render the report dictionary as terminal text."""
     v = doc["verdict"]
@@ -145,6 +169,7 @@ def render_text(doc: dict[str, Any]) -> str:
             f"  {u['treatment']}: {unit} - {u['relation']}, {u['n_units']} units, "
             f"{u['n_observations']} observations ({u['source']})"
         )
+    out += design_tree(doc)
     cands = shown_candidates(doc)
     if cands:
         out.append("  candidates (coarsest credible first):")

@@ -13,8 +13,8 @@ observations cluster within it.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass, field
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -23,6 +23,13 @@ from replicheck.errors import InputError
 from replicheck.stats.clustering import anova_components
 from replicheck.structure.names import NameHint, name_hint, tokens
 from replicheck.structure.relations import Relation, classify, codes_of, group_codes
+from replicheck.structure.strata import (
+    CellGrouping,
+    Stratum,
+    block_evidence,
+    build_strata,
+    crossed_cells,
+)
 
 # Common practice (no published threshold): clustering counts as evidence for
 # an unnamed grouping when the one-way F test of units within treatment has
@@ -77,6 +84,8 @@ class Structure:
     # (rule name, text): which reading was taken where the data alone cannot tell
     readings: tuple[tuple[str, str], ...] = ()
     ambiguous: tuple[str, ...] = ()  # groupings that might be units but cannot be told from labels
+    strata: tuple[Stratum, ...] = ()  # coarse to fine, ending with the rows
+    blocks: tuple[Block, ...] = ()
 
     def unit_of(self, term: str) -> UnitChoice:
         """The unit chosen for a term."""
@@ -314,8 +323,9 @@ def _one_treatment(
     y: np.ndarray,
     treatment: str,
     cols: list[str],
-    stated_unit: str | None,
+    stated: tuple[str, ...],
     derived: dict[str, tuple[str, str]],
+    cells: Mapping[str, CellGrouping],
 ) -> tuple[list[Relation], list[Candidate], UnitChoice, list[tuple[str, str]], list[str]]:
     relations: list[Relation] = []
     candidates: list[Candidate] = []
@@ -325,25 +335,43 @@ def _one_treatment(
         rel = classify(col, treatment, data[col], data[treatment])
         relations.append(rel)
         source = derived.get(col, (col,))
-        stated = source[-1] == stated_unit
+        is_stated = bool(stated) and (
+            set(source) == set(stated) if len(stated) > 1 else source[-1] == stated[0]
+        )
+        if col in cells and rel.relation != "nested":
+            continue
         if rel.relation == "nested":
-            candidates.append(_candidate(data, y, treatment, source, rel, col, False, stated))
+            cand = _candidate(data, y, treatment, source, rel, col, False, is_stated)
+            if col in cells:
+                cell = cells[col]
+                p = "not computed" if cell.p_value is None else f"p = {cell.p_value:.2g}"
+                cand = replace(
+                    cand,
+                    credible=cell.credible,
+                    reasons=(
+                        *cand.reasons[:-1],
+                        f"cells of '{cell.block}' x '{cell.treatment}' "
+                        + ("differ" if cell.credible else "do not differ")
+                        + f" beyond the block and treatment effects ({p})",
+                    ),
+                )
+            candidates.append(cand)
         elif rel.relation == "partial":
             # the exceptions make the column cross the treatment; within each treatment
             # level its labels still name units, so the unit is treatment x column
             candidates.append(
-                _candidate(data, y, treatment, (treatment, col), rel, col, False, stated)
+                _candidate(data, y, treatment, (treatment, col), rel, col, False, is_stated)
             )
         elif rel.relation == "confounded":
             same = rel.n_levels == len(rel.levels_per_treatment)
-            alias = same and not stated and _is_alias(col, treatment, data[col], data[treatment])
-            cand = _candidate(data, y, treatment, (col,), rel, col, alias, stated)
+            alias = same and not is_stated and _is_alias(col, treatment, data[col], data[treatment])
+            cand = _candidate(data, y, treatment, source, rel, col, alias, is_stated)
             candidates.append(cand)
             if alias:
                 pass  # aliases of main treatments were removed before; this is a coarser one
             elif not cand.credible:
                 ambiguous.append(col)
-        elif stated:
+        elif is_stated:
             readings.append(
                 (
                     "stated-unit-not-supported",
@@ -362,48 +390,69 @@ def infer_structure(
     *,
     exclude: Sequence[str] = (),
     interactions: Sequence[str] = (),
-    stated_unit: str | None = None,
+    stated_unit: str | Sequence[str] | None = None,
     unit_labels: str = "auto",
 ) -> Structure:
-    """Relations, ranked candidate units and the chosen unit of every term.
+    """Relations, ranked candidate units, the chosen unit of every term, and the strata.
 
     ``data`` holds only the analysed rows. ``terms`` are factor columns of
     ``data`` (treatment columns, and columns holding the combinations of
     several treatments for interaction terms); ``exclude`` lists further
     columns that are not groupings (the treatment columns themselves). Terms
     named in ``interactions`` get a unit but add no relations or readings of
-    their own, and the stated unit is checked against main terms only.
+    their own, and the stated unit is checked against main terms only. A
+    stated unit may be one column or several (an implicit plot such as
+    block x variety).
     """
     if unit_labels not in UNIT_LABEL_MODES:
         raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
+    stated: tuple[str, ...] = (
+        ()
+        if stated_unit is None
+        else (stated_unit,)
+        if isinstance(stated_unit, str)
+        else tuple(stated_unit)
+    )
+    single = stated[0] if len(stated) == 1 else None
     y = data[response].to_numpy(dtype=float)
     cols, skipped = grouping_columns(data, (response, *terms, *exclude))
-    if stated_unit is not None and stated_unit not in cols:
-        reason = skipped.get(stated_unit, "it is the response or a treatment column")
+    for col in stated:
+        if col in cols or (len(stated) > 1 and col in terms):
+            continue
+        reason = skipped.get(col, "it is the response or a treatment column")
         if reason.startswith("a row identifier"):
-            cols.append(stated_unit)
-            skipped.pop(stated_unit)
+            cols.append(col)
+            skipped.pop(col)
         else:
-            raise InputError(f"the stated unit '{stated_unit}' cannot be a grouping: {reason}")
+            raise InputError(f"the stated unit '{col}' cannot be a grouping: {reason}")
     relations: list[Relation] = []
     candidates: list[Candidate] = []
     ambiguous: list[str] = []
     units: list[UnitChoice] = []
     main_terms = [t for t in terms if t not in interactions]
-    cols, readings = _drop_aliases(data, cols, main_terms, stated_unit)
-    data, cols, derived, local = _localise(data, cols, main_terms, stated_unit, unit_labels)
+    cols, readings = _drop_aliases(data, cols, main_terms, single)
+    data, cols, derived, local = _localise(data, cols, main_terms, single, unit_labels)
     readings += local
+    originals = [
+        c for c in cols if c not in derived and (name_hint(c).suggests_unit or c in stated)
+    ]
+    data, cell_cols, cell_parts, cells = crossed_cells(data, y, originals, main_terms, stated)
+    derived.update(cell_parts)
+    evidence = {c.name: c for c in cells}
     for term in terms:
         main = term not in interactions
         r, c, choice, rd, amb = _one_treatment(
-            data, y, term, cols, stated_unit if main else None, derived
+            data, y, term, cols + cell_cols, stated if main else (), derived, evidence
         )
         if main:
-            relations += r
+            relations += [x for x in r if x.column not in evidence]
             readings += rd
             ambiguous += [a for a in amb if a not in ambiguous]
         candidates += c
         units.append(choice)
+    readings += _cell_readings(cells, units)
+    blocks = _blocks(data, y, cols, main_terms, relations, derived)
+    strata = _strata(data, terms, units, candidates, blocks)
     return Structure(
         relations=tuple(relations),
         candidates=tuple(candidates),
@@ -411,7 +460,139 @@ def infer_structure(
         skipped=skipped,
         readings=tuple(dict.fromkeys(readings)),
         ambiguous=tuple(ambiguous),
+        strata=strata,
+        blocks=tuple(blocks),
     )
+
+
+@dataclass(frozen=True)
+class Block:
+    """A grouping crossed with the treatments that carries an effect of its own."""
+
+    name: str
+    columns: tuple[str, ...]
+    n_levels: int
+    p_value: float | None
+    reason: str
+
+
+def _blocks(
+    data: pd.DataFrame,
+    y: np.ndarray,
+    cols: Sequence[str],
+    treatments: Sequence[str],
+    relations: Sequence[Relation],
+    derived: Mapping[str, tuple[str, ...]],
+) -> list[Block]:
+    """Groupings crossed with every treatment whose names say block, place, time or subject.
+
+    A crossed column with an effect but no such name (sex, genotype) is more
+    likely a covariate than a block and is left out of the random structure.
+    """
+    crossed: dict[str, int] = {}
+    for r in relations:
+        if r.relation == "crossed":
+            crossed[r.column] = crossed.get(r.column, 0) + 1
+    all_trt = group_codes(data, treatments)
+    out: list[Block] = []
+    for col in cols:
+        if crossed.get(col, 0) != len(treatments):
+            continue
+        source = tuple(derived.get(col, (col,)))
+        codes = group_codes(data, (col,))
+        hint = name_hint(source[-1])
+        p = block_evidence(y, codes, all_trt)
+        if not hint.suggests_unit:
+            continue  # an unnamed crossed column with an effect is more likely a covariate
+        reason = f"the name suggests a {hint.kind} ('{hint.word}')"
+        if p is not None:
+            reason += f"; rows differ between its levels beyond the treatment effects: p = {p:.2g}"
+        out.append(Block(col, source, int(codes.max()) + 1, p, reason))
+    return out
+
+
+def _strata(
+    data: pd.DataFrame,
+    terms: Sequence[str],
+    units: Sequence[UnitChoice],
+    candidates: Sequence[Candidate],
+    blocks: Sequence[Block],
+) -> tuple[Stratum, ...]:
+    n = len(data)
+    groupings: dict[str, tuple[tuple[str, ...], np.ndarray, str]] = {}
+    term_strata: dict[str, str | None] = {}
+
+    def add(name: str, columns: tuple[str, ...], kind: str) -> str:
+        codes = group_codes(data, columns)
+        for other, (_, oc, _) in groupings.items():
+            if _same(codes, oc):
+                return other
+        groupings[name] = (columns, codes, kind)
+        return name
+
+    for b in blocks:
+        add(b.name, b.columns, "block")
+    for u in units:
+        if u.unit is None or u.relation == "confounded" or u.n_units >= n:
+            term_strata[u.treatment] = None
+            continue
+        term_strata[u.treatment] = add(u.unit, u.columns, "unit")
+    for u in units:
+        if u.unit is None or u.relation == "confounded" or u.n_units >= n:
+            continue
+        unit_codes_ = group_codes(data, u.columns)
+        for c in candidates:
+            if c.treatment != u.treatment or not c.credible or c.relation != "nested":
+                continue
+            if c.n_units <= u.n_units or c.n_units >= n:
+                continue
+            codes = group_codes(data, c.columns)
+            if _nested(codes, unit_codes_):
+                add(c.name, c.columns, "subunit")
+    return build_strata(groupings, term_strata, n)
+
+
+def _same(a: np.ndarray, b: np.ndarray) -> bool:
+    k = int(b.max()) + 1
+    return np.unique(a * k + b).size == int(a.max()) + 1 == k
+
+
+def _nested(fine: np.ndarray, coarse: np.ndarray) -> bool:
+    return np.unique(fine * (int(coarse.max()) + 1) + coarse).size == int(fine.max()) + 1
+
+
+def _cell_readings(
+    cells: Sequence[CellGrouping], units: Sequence[UnitChoice]
+) -> list[tuple[str, str]]:
+    chosen = {u.unit for u in units}
+    out: list[tuple[str, str]] = []
+    for c in cells:
+        p = "not computed" if c.p_value is None else f"p = {c.p_value:.2g}"
+        if c.name in chosen:
+            out.append(
+                (
+                    "unit-reading-uncertain",
+                    f"each '{c.block}' x '{c.treatment}' cell holds {c.mean_size:.3g} rows on "
+                    f"average and the cells differ beyond the {c.block} and treatment effects "
+                    f"({p}), so replicheck took each cell as the unit that received "
+                    f"'{c.treatment}' (a plot in a split-plot or randomised-block design); if the "
+                    f"rows were instead allocated to '{c.treatment}' one by one within each "
+                    f"{c.block}, the rows are the units and '{c.block}' is a block",
+                )
+            )
+        elif not c.credible:
+            out.append(
+                (
+                    "unit-reading-uncertain",
+                    f"each '{c.block}' x '{c.treatment}' cell holds {c.mean_size:.3g} rows on "
+                    f"average; the cells do not differ beyond the {c.block} and treatment "
+                    f"effects ({p}), so replicheck took the rows within each {c.block} as the "
+                    f"units of '{c.treatment}' and '{c.block}' as a block; if each cell was one "
+                    f"plot that received its '{c.treatment}', state --unit "
+                    f'"{c.block}:{c.treatment}"',
+                )
+            )
+    return out
 
 
 def _choose(data: pd.DataFrame, treatment: str, candidates: list[Candidate]) -> UnitChoice:

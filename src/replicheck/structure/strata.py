@@ -1,0 +1,184 @@
+"""Blocks, implicit plots and the strata of the design.
+
+A grouping crossed with a treatment (a block, a day, a subject that saw every
+level) is not that treatment's unit, but its cells (block x treatment) may be:
+in a split plot without a plot column, or in randomised blocks with
+subsamples, the cell is the plot that received the treatment. The data cannot
+fully tell a plot from rows randomised one by one inside a block; replicheck
+takes the cells as units when they cluster beyond the block and treatment
+effects (an F test of the block x treatment cells against the rows within
+cells, p < 0.01: common practice), and otherwise reports the alternative
+reading.
+
+The strata of the design are the groupings that become random effects: every
+term's experimental unit, blocks crossed with the treatments, and sub-units
+nested below a unit (wells in plates). They form a tree by nesting, which the
+text report prints (the Hasse diagram of the block structure: Lohr 1995, The
+American Statistician 49:16-23; Bailey 2008, Design of Comparative
+Experiments, ch. 10).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from replicheck.stats.classic import DesignError, ols_term_f
+from replicheck.structure.names import name_hint
+from replicheck.structure.relations import classify, group_codes
+
+# Common practice (no published threshold): cells or blocks count as real
+# groupings when their F test against the rows within them has p < 0.01.
+EVIDENCE_P = 0.01
+# Dense least squares on more cell columns than this is too slow for a screen.
+MAX_CELLS = 2000
+
+
+@dataclass(frozen=True)
+class CellGrouping:
+    """The cells of a crossed grouping and a treatment, as a candidate unit."""
+
+    name: str  # "block:treatment"
+    block: str
+    treatment: str
+    n_cells: int
+    mean_size: float
+    p_value: float | None  # F test of the cells beyond block + treatments
+    credible: bool
+
+
+@dataclass(frozen=True)
+class Stratum:
+    """A grouping of the rows that is a random effect of the corrected model."""
+
+    name: str
+    columns: tuple[str, ...]
+    n_levels: int
+    kind: str  # unit | block | subunit | rows
+    parent: str | None
+    terms: tuple[str, ...]  # terms whose error stratum this is
+
+
+def _dummies(codes: np.ndarray) -> np.ndarray:
+    k = int(codes.max()) + 1
+    out = np.zeros((codes.size, k))
+    out[np.arange(codes.size), codes] = 1.0
+    return out
+
+
+def cell_evidence(
+    y: np.ndarray, block: np.ndarray, cells: np.ndarray, treatment_cells: np.ndarray
+) -> float | None:
+    """p-value of the block x treatment cells beyond additive block and full treatment effects.
+
+    ``treatment_cells`` codes every combination of all treatment columns, so
+    the reduced model holds every treatment term and the block; the full model
+    adds the cells of the block and the treatment in question.
+    """
+    if int(cells.max()) + 1 > MAX_CELLS:
+        return None
+    reduced = np.hstack([_dummies(block), _dummies(treatment_cells)])
+    full = np.hstack([reduced, _dummies(cells)])
+    try:
+        return float(ols_term_f(y, full, reduced).p_value)
+    except DesignError:
+        return None
+
+
+def crossed_cells(
+    data: pd.DataFrame,
+    y: np.ndarray,
+    cols: Sequence[str],
+    treatments: Sequence[str],
+    stated: tuple[str, ...],
+) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, str]], list[CellGrouping]]:
+    """Add block x treatment cell columns for groupings crossed with a treatment.
+
+    The caller passes only groupings whose names say block, place, time or
+    subject (or the stated unit's parts): for an unnamed column, cells that
+    differ beyond the main effects are more likely a covariate x treatment
+    interaction than plots.
+
+    Returns the data with the cell columns added, their names, the columns
+    each is made of, and the evidence for each.
+    """
+    all_trt = group_codes(data, treatments)
+    extra: dict[str, pd.Series] = {}
+    derived: dict[str, tuple[str, str]] = {}
+    found: list[CellGrouping] = []
+    for col in cols:
+        for trt in treatments:
+            rel = classify(col, trt, data[col], data[trt])
+            if rel.relation != "crossed":
+                continue
+            cells = group_codes(data, (col, trt))
+            n_cells = int(cells.max()) + 1
+            mean_size = len(data) / n_cells
+            if mean_size < 1.5:
+                continue
+            name = f"{col}:{trt}"
+            p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt)
+            is_stated = set(stated) == {col, trt}
+            credible = is_stated or (p is not None and p < EVIDENCE_P)
+            extra[name] = pd.Series(cells, index=data.index)
+            derived[name] = (col, trt)
+            found.append(CellGrouping(name, col, trt, n_cells, mean_size, p, credible))
+    if extra:
+        data = data.assign(**extra)
+    return data, list(extra), derived, found
+
+
+def block_evidence(y: np.ndarray, block: np.ndarray, treatment_cells: np.ndarray) -> float | None:
+    """p-value of a crossed grouping beyond the full treatment model (OLS F test)."""
+    if int(block.max()) + 1 > MAX_CELLS:
+        return None
+    reduced = _dummies(treatment_cells)
+    full = np.hstack([reduced, _dummies(block)])
+    try:
+        return float(ols_term_f(y, full, reduced).p_value)
+    except DesignError:
+        return None
+
+
+def _nested_in(fine: np.ndarray, coarse: np.ndarray) -> bool:
+    """Whether every level of ``fine`` lies inside one level of ``coarse``."""
+    pairs = np.unique(fine * (int(coarse.max()) + 1) + coarse)
+    return pairs.size == int(fine.max()) + 1
+
+
+def build_strata(
+    groupings: Mapping[str, tuple[tuple[str, ...], np.ndarray, str]],
+    term_strata: Mapping[str, str | None],
+    n_rows: int,
+) -> tuple[Stratum, ...]:
+    """Order groupings coarse to fine, link each to the finest grouping it is nested in.
+
+    ``groupings`` maps a name to (columns, codes, kind); ``term_strata`` maps
+    every term to the name of its error stratum (None for the rows).
+    """
+    names = sorted(groupings, key=lambda g: (int(groupings[g][1].max()) + 1, g))
+    out: list[Stratum] = []
+    for g in names:
+        cols, codes, kind = groupings[g]
+        parents = [
+            h
+            for h in names
+            if h != g
+            and int(groupings[h][1].max()) < int(codes.max())
+            and _nested_in(codes, groupings[h][1])
+        ]
+        parent = max(parents, key=lambda h: int(groupings[h][1].max())) if parents else None
+        terms = tuple(t for t, s in term_strata.items() if s == g)
+        out.append(Stratum(g, cols, int(codes.max()) + 1, kind, parent, terms))
+    rows_terms = tuple(t for t, s in term_strata.items() if s is None)
+    finest = [s.name for s in out]
+    out.append(Stratum("rows", (), n_rows, "rows", finest[-1] if finest else None, rows_terms))
+    return tuple(out)
+
+
+def is_blocklike(column: str) -> bool:
+    """Whether a crossed column's name suggests a grouping that carries its own effect."""
+    return name_hint(column).suggests_unit
