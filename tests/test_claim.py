@@ -9,6 +9,9 @@ Sources of the reporting formats:
   "p < .001" instead (recalled from memory).
 * Older styles: subscript df ("F2,57"), "t = 2.9, df = 38", "n.s." (common practice).
 * TOML 1.0.0 specification (toml.io) for what is valid TOML.
+* Per-term results as in ANOVA tables and APA-style text, one line per effect:
+  "variety: F(2, 55) = 3.51, p = .037", interaction labels "a:b" (R, patsy) and
+  "a x b" / "a × b" (common practice in papers).
 The expected fields are what the quoted text says, read by a person.
 """
 
@@ -23,15 +26,20 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from replicheck.claim import (
+    SPEC_KEYS,
     SPEC_SUFFIX,
     Claim,
     ReportedResult,
     build_claim,
     load_spec,
+    match_term,
+    normalise_term,
     parse_reported,
+    parse_term_claim,
     spec_beside,
 )
 from replicheck.errors import InputError
+from replicheck.formula import parse_formula
 
 # text -> (test, statistic, df, p_value, p_relation, n_per_group, n_total)
 Row = tuple[
@@ -392,3 +400,294 @@ def test_build_claim_rejects(kw: dict[str, Any], pattern: str) -> None:
 
 def test_build_claim_single_treatment_string() -> None:
     assert _claim(response="y", treatments="feed").treatments == ("feed",)
+
+
+# --- results per term ----------------------------------------------------------
+
+# text -> (term, test, statistic, df, p_value, p_relation, result text)
+TermRow = tuple[
+    str | None, str | None, float | None, tuple[float, ...] | None, float | None, str | None, str
+]
+TERM_TABLE: list[tuple[str, TermRow]] = [
+    (
+        "variety: F(2, 55) = 3.51, p = .037",
+        ("variety", "F", 3.51, (2, 55), 0.037, "=", "F(2, 55) = 3.51, p = .037"),
+    ),
+    (
+        "variety:nitrogen: F(6, 45) = 0.30, p = .93",
+        ("variety:nitrogen", "F", 0.30, (6, 45), 0.93, "=", "F(6, 45) = 0.30, p = .93"),
+    ),
+    (
+        "F(2, 57) = 8.31, p = .001",
+        (None, "F", 8.31, (2, 57), 0.001, "=", "F(2, 57) = 8.31, p = .001"),
+    ),
+    (
+        "variety × nitrogen: F(6,45)=0.3",
+        ("variety × nitrogen", "F", 0.3, (6, 45), None, None, "F(6,45)=0.3"),
+    ),
+    ("feed x temp : t(38) = -2.9", ("feed x temp", "t", -2.9, (38,), None, None, "t(38) = -2.9")),
+    ("feed:temp:F(2,54)=1.2", ("feed:temp", "F", 1.2, (2, 54), None, None, "F(2,54)=1.2")),
+    ("Tank ID: p < .05", ("Tank ID", None, None, None, 0.05, "<", "p < .05")),
+    ("feed: n.s.", ("feed", None, None, None, None, "ns", "n.s.")),
+    (
+        "dose: χ2(1, N = 90) = 0.89",
+        ("dose", "chi2", 0.89, (1,), None, None, "χ2(1, N = 90) = 0.89"),
+    ),
+    # a factor called F or p in an interaction is not taken for the statistic
+    ("sex:F: F(1, 20) = 4.1", ("sex:F", "F", 4.1, (1, 20), None, None, "F(1, 20) = 4.1")),
+    ("a:p: F(1, 20) = 4.1", ("a:p", "F", 4.1, (1, 20), None, None, "F(1, 20) = 4.1")),
+    # a colon inside the result, or before a non-result, is not a term prefix
+    (
+        "F(2, 57) = 8.31, p = .001; temp: F(1, 57) = 2.0",
+        (None, "F", 8.31, (2, 57), 0.001, "=", "F(2, 57) = 8.31, p = .001; temp: F(1, 57) = 2.0"),
+    ),
+    (
+        "Table 2: F(2, 57) = 8.31",  # taken as a term name; matching it to a term fails later
+        ("Table 2", "F", 8.31, (2, 57), None, None, "F(2, 57) = 8.31"),
+    ),
+]
+
+
+@pytest.mark.parametrize(("text", "expected"), TERM_TABLE, ids=[t for t, _ in TERM_TABLE])
+def test_parse_term_claim_table(text: str, expected: TermRow) -> None:
+    term, test, statistic, df, p_value, relation, rest = expected
+    name, r = parse_term_claim(text)
+    assert name == term
+    assert (r.text, r.test, r.p_relation) == (rest, test, relation)
+    assert r.statistic == (None if statistic is None else pytest.approx(statistic))
+    assert r.df == (None if df is None else pytest.approx(df))
+    assert r.p_value == (None if p_value is None else pytest.approx(p_value))
+
+
+@pytest.mark.parametrize(
+    ("text", "pattern"),
+    [
+        ("", "empty"),
+        (": F(2, 57) = 8.31", "no term name"),
+        ("feed: F(2, 57) = 8.31, p = .001; temp: F(1, 57) = 2.0", "one claim per term"),
+        ("feed: the effect was large", "no statistic"),
+        ("feed: F(2, 57) = -1", "cannot be negative"),
+    ],
+)
+def test_parse_term_claim_rejects(text: str, pattern: str) -> None:
+    with pytest.raises(InputError, match=pattern) as info:
+        parse_term_claim(text)
+    assert "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize(
+    ("name", "factors"),
+    [
+        ("variety", {"variety"}),
+        ("variety:nitrogen", {"variety", "nitrogen"}),
+        ("Nitrogen:Variety", {"variety", "nitrogen"}),
+        ("variety x nitrogen", {"variety", "nitrogen"}),
+        ("Variety X Nitrogen", {"variety", "nitrogen"}),
+        ("variety×nitrogen", {"variety", "nitrogen"}),
+        ("variety × nitrogen × block", {"variety", "nitrogen", "block"}),
+        ("Tank ID", {"tankid"}),  # separators ignored as for column names
+        ("tank_id:feed-type", {"tankid", "feedtype"}),
+        ("C(feed):Q('tank id')", {"feed", "tankid"}),
+        ("`feed`:temp", {"feed", "temp"}),
+        ("taxon", {"taxon"}),  # an x inside a word does not split
+        ("a*b", {"a*b"}),  # '*' is formula notation, not an interaction label
+    ],
+)
+def test_normalise_term(name: str, factors: set[str]) -> None:
+    assert normalise_term(name) == frozenset(factors)
+
+
+@pytest.mark.parametrize("name", ["", "  ", "a:", ":b", "a × "])
+def test_normalise_term_rejects(name: str) -> None:
+    with pytest.raises(InputError):
+        normalise_term(name)
+
+
+def test_match_term() -> None:
+    terms = parse_formula("yield ~ Variety * N_rate + block").terms
+    assert match_term("n rate x variety", terms) == ("Variety", "N_rate")
+    assert match_term("BLOCK", terms) == ("block",)
+    with pytest.raises(InputError, match="not in the model; its terms are: Variety, N_rate"):
+        match_term("variety:block", terms)
+
+
+# --- spec with formula and several claims ----------------------------------------
+
+
+def test_spec_keys() -> None:
+    assert SPEC_KEYS == (
+        "alpha",
+        "claim",
+        "formula",
+        "na",
+        "response",
+        "sheet",
+        "treatment",
+        "unit",
+    )
+
+
+def test_load_spec_formula_and_claim_list(tmp_path: Path) -> None:
+    path = _write(
+        tmp_path,
+        'formula = "yield ~ variety * nitrogen + block"\n'
+        "claim = [\n"
+        '  "variety: F(2, 10) = 1.49, p = .27",\n'
+        '  "variety:nitrogen: F(6, 45) = 0.30, p = .93",\n'
+        "]\n",
+    )
+    assert load_spec(path) == {
+        "formula": "yield ~ variety * nitrogen + block",
+        "claim": (
+            "variety: F(2, 10) = 1.49, p = .27",
+            "variety:nitrogen: F(6, 45) = 0.30, p = .93",
+        ),
+    }
+    spec = load_spec(_write(tmp_path, 'formula = "y ~ a"\nresponse = "y"\ntreatment = "a"\n'))
+    assert spec["formula"] == "y ~ a"  # agreeing keys are allowed
+
+
+@pytest.mark.parametrize(
+    ("body", "pattern"),
+    [
+        ("formula = 3\n", "'formula'.*string"),
+        ('formula = "yield"\n', r"'formula' in .*trial\.replicheck\.toml: .*no '~'"),
+        ('formula = "log(mass) ~ variety"\n', r"log\(\) is not supported"),
+        ('formula = "yield ~ variety"\nresponse = "mass"\n', "response 'mass'.*differs"),
+        ('formula = "yield ~ variety"\ntreatment = ["block"]\n', "treatments block.*differ"),
+        ("claim = []\n", "'claim'.*empty list"),
+        ('claim = ["F(1, 8) = 3.1", 3]\n', "'claim'.*non-empty strings"),
+        ("claim = 3\n", "'claim'.*string or a list of strings"),
+        ('claim = ""\n', "'claim'.*string or a list of strings"),
+    ],
+)
+def test_load_spec_rejects_formula_and_claims(tmp_path: Path, body: str, pattern: str) -> None:
+    with pytest.raises(InputError, match=pattern) as info:
+        load_spec(_write(tmp_path, body))
+    assert "\n" not in str(info.value)
+
+
+# --- build_claim with formulas and per-term claims ----------------------------------
+
+
+def test_build_claim_from_formula() -> None:
+    c = _claim(formula="yield ~ variety * nitrogen + block")
+    assert c.response == "yield"
+    assert c.treatments == ("variety", "nitrogen", "block")
+    assert c.formula is not None
+    assert c.formula.terms == (("variety",), ("nitrogen",), ("block",), ("variety", "nitrogen"))
+    assert (c.reported, c.reported_terms) == (None, ())
+
+
+def test_build_claim_formula_with_agreeing_columns() -> None:
+    c = _claim(formula="y ~ a*b", response="y", treatments=["b", "a"])
+    assert (c.response, c.treatments) == ("y", ("a", "b"))  # the formula's order
+
+
+@pytest.mark.parametrize(
+    ("kw", "pattern"),
+    [
+        ({"formula": "y ~ a*b", "response": "z"}, "response 'z' on the command line differs"),
+        ({"formula": "y ~ a*b", "treatments": ["a"]}, "treatments a on the command line differ"),
+        ({"formula": "y ~ a", "treatments": ["a", "c"]}, "differ"),
+        ({"formula": "y ~ a + (1|tank)"}, "random structure"),
+        ({"formula": ""}, "'formula'.*non-empty string"),
+        ({"formula": "y ~ a", "claim_texts": ["b: F(1, 8) = 3.1"]}, "'b' is not in the model"),
+        (
+            {"formula": "y ~ a + b", "claim_texts": ["a:b: F(1, 8) = 3.1"]},
+            "'a:b' is not in the model; its terms are: a, b",
+        ),
+        (
+            {"formula": "y ~ a*b", "claim_texts": ["F(3, 8) = 3.1", "t(8) = 2.0"]},
+            "two results without a term name",
+        ),
+        (
+            {"formula": "y ~ a*b", "claim_texts": ["a:b: F(1, 8) = 3.1", "B x A: F(1, 8) = 3.1"]},
+            "two results for the same term: 'a:b' and 'B x A'",
+        ),
+        (
+            {"response": "y", "treatments": ["a"], "claim_texts": ["tank: F(1, 8) = 3.1"]},
+            "'tank' names a column that is not a treatment",
+        ),
+        ({"response": "y", "treatments": ["a"], "claim_texts": ["a: hello"]}, "no statistic"),
+    ],
+)
+def test_build_claim_formula_conflicts(kw: dict[str, Any], pattern: str) -> None:
+    with pytest.raises(InputError, match=pattern) as info:
+        _claim(**kw)
+    assert "\n" not in str(info.value)
+
+
+def test_build_claim_per_term_results() -> None:
+    c = _claim(
+        formula="yield ~ variety * nitrogen",
+        claim_text="F(11, 60) = 2.2, p = .03",
+        claim_texts=["nitrogen x variety: F(6, 45) = 0.30, p = .93", "Variety: F(2, 10) = 1.49"],
+    )
+    assert c.reported is not None and c.reported.df == (11.0, 60.0)
+    assert [name for name, _ in c.reported_terms] == ["nitrogen x variety", "Variety"]
+    first, second = (r for _, r in c.reported_terms)
+    assert (first.statistic, first.df, first.p_value) == (0.30, (6.0, 45.0), 0.93)
+    assert (second.statistic, second.df, second.p_value) == (1.49, (2.0, 10.0), None)
+
+
+def test_build_claim_terms_without_formula() -> None:
+    c = _claim(
+        response="y",
+        treatments=["feed", "temp"],
+        claim_texts="temp x feed: F(1, 36) = 4.2, p = .048",  # a single string is one claim
+    )
+    assert c.formula is None and c.reported is None
+    assert c.reported_terms[0][0] == "temp x feed"
+    assert c.reported_terms[0][1].p_value == 0.048
+
+
+SPEC_F = {
+    "formula": "yield ~ variety * nitrogen",
+    "claim": ["variety: F(2, 10) = 1.49, p = .27", "F(11, 45) = 2.2"],
+    "unit": "plot",
+}
+
+
+def test_build_claim_spec_formula_and_claims() -> None:
+    c = _claim(spec=SPEC_F)
+    assert (c.response, c.treatments, c.unit) == ("yield", ("variety", "nitrogen"), "plot")
+    assert c.formula is not None and c.formula.text == "yield ~ variety * nitrogen"
+    assert c.formula.terms == (("variety",), ("nitrogen",), ("variety", "nitrogen"))
+    assert c.reported is not None and c.reported.text == "F(11, 45) = 2.2"
+    assert [n for n, _ in c.reported_terms] == ["variety"]
+
+
+def test_build_claim_command_line_claims_replace_spec_claims() -> None:
+    c = _claim(spec=SPEC_F, claim_texts=["nitrogen: F(3, 45) = 37.7, p < .001"])
+    assert c.reported is None
+    assert [n for n, _ in c.reported_terms] == ["nitrogen"]
+    c = _claim(spec={**SPEC_F, "claim": "F(11, 45) = 2.2"}, claim_text="p = .04")
+    assert c.reported is not None and c.reported.p_value == 0.04
+
+
+def test_build_claim_command_line_formula_replaces_spec_model() -> None:
+    c = _claim(spec={**SPEC_F, "claim": "block: F(3, 15) = 2.0"}, formula="mass ~ block")
+    assert (c.response, c.treatments) == ("mass", ("block",))
+    assert c.formula is not None and c.formula.text == "mass ~ block"
+    assert [n for n, _ in c.reported_terms] == ["block"]
+
+
+def test_build_claim_command_line_response_keeps_spec_terms() -> None:
+    c = _claim(spec=SPEC_F, response="protein", claim_text="F(11, 45) = 2.2")
+    assert c.response == "protein"
+    assert c.formula is not None
+    assert c.formula.response == "protein"
+    assert c.formula.terms == (("variety",), ("nitrogen",), ("variety", "nitrogen"))
+
+
+def test_build_claim_command_line_treatments_replace_spec_formula() -> None:
+    c = _claim(spec=SPEC_F, treatments=["variety"], claim_text="F(2, 10) = 1.49")
+    assert (c.response, c.treatments, c.formula) == ("yield", ("variety",), None)
+    same = _claim(spec=SPEC_F, treatments=["nitrogen", "variety"], claim_text="p = .2")
+    assert same.formula is not None and same.formula.text == "yield ~ variety * nitrogen"
+
+
+def test_build_claim_spec_response_and_treatment_without_formula_unchanged() -> None:
+    c = _claim(spec=SPEC)
+    assert (c.formula, c.reported_terms) == (None, ())

@@ -29,6 +29,16 @@ Reading rules (documented choices):
   ``n = K`` / ``N = K`` (the first one) gives ``n_total``. A bare "20 per
   group" counts only with a group-like word (group, treatment, arm, ...).
 * Decimal commas ("p = 0,01") are not supported: commas separate parts.
+
+Results for single terms of a factorial or nested model are written with the
+term name and a colon before the result, as in an ANOVA table:
+``"variety: F(2, 55) = 3.51, p = .037"`` or ``"variety:nitrogen: F(6, 45) =
+0.30, p = .93"`` (see :func:`parse_term_claim`). Interaction names may be
+written ``a:b``, ``a x b`` or ``a × b``, in any order (:func:`normalise_term`).
+
+The analysis is given either as a model formula (``--formula "yield ~
+variety * nitrogen"``, see :mod:`replicheck.formula`) or as a response and
+treatment columns; see :func:`build_claim` for how they combine.
 """
 
 from __future__ import annotations
@@ -43,6 +53,7 @@ from pathlib import Path
 from typing import NamedTuple, cast
 
 from replicheck.errors import InputError
+from replicheck.formula import ModelFormula, factor_name, parse_formula, replace_response
 
 __all__ = [
     "SPEC_KEYS",
@@ -51,12 +62,15 @@ __all__ = [
     "ReportedResult",
     "build_claim",
     "load_spec",
+    "match_term",
+    "normalise_term",
     "parse_reported",
+    "parse_term_claim",
     "spec_beside",
 ]
 
 SPEC_SUFFIX = ".replicheck.toml"
-SPEC_KEYS = ("alpha", "claim", "na", "response", "sheet", "treatment", "unit")
+SPEC_KEYS = ("alpha", "claim", "formula", "na", "response", "sheet", "treatment", "unit")
 _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
 
 
@@ -384,12 +398,100 @@ def parse_reported(text: str) -> ReportedResult:
     return ReportedResult(text, test, statistic, df, p_value, p_relation, n_per_group, n_total)
 
 
+# --- results for single terms --------------------------------------------------
+
+_TERM_COLON = re.compile(r"\s*:\s*")
+_TERM_SPLIT = re.compile(r"\s*:\s*|\s+x\s+|\s*×\s*", re.I)
+_NAME_SEPARATORS = re.compile(r"[\s_.\-]+")  # as for column names (io.columns)
+
+
+def _starts_with_result(text: str) -> bool:
+    norm = " ".join(text.translate(_TRANSLATE).split())
+    m = _STAT.match(norm)
+    if m is not None and _read_stat(m, text) is not None:
+        return True
+    return bool(_P.match(norm) or _NS.match(norm))
+
+
+def parse_term_claim(text: str) -> tuple[str | None, ReportedResult]:
+    """Split ``"TERM: RESULT"`` into the term name and the reported result.
+
+    The term name is the text before the first colon that is directly followed
+    (after optional spaces) by a statistic, a p-value or "n.s.", so that
+    interaction names written with colons work: ``"variety:nitrogen: F(6, 45)
+    = 0.30, p = .93"`` gives ``("variety:nitrogen", ...)``. A text without such
+    a colon, e.g. ``"F(2, 57) = 8.31, p = .001"``, gives ``(None, ...)``. The
+    result's ``text`` is the part after the colon. Two term results in one
+    text are refused (give one claim per term). Names containing ``=``, ``<``
+    or ``>`` are not term names (the colon then belongs to the result).
+    """
+    if not isinstance(text, str) or not text.strip():
+        raise InputError(f"the reported result is empty: {_EXAMPLE}")
+    starts = [m for m in _TERM_COLON.finditer(text) if _starts_with_result(text[m.end() :])]
+    for i, m in enumerate(starts):
+        name = text[: m.start()].strip()
+        if re.search(r"[=<>≤≥]", name):
+            continue
+        if not name:
+            raise InputError(f"no term name before ':' in {text!r}: write 'feed: F(2, 57) = 8.31'")
+        if len(starts) > i + 1:
+            raise InputError(
+                f"more than one term result in {text!r}: give one claim per term, "
+                "e.g. 'feed: F(2, 57) = 8.31, p = .001'"
+            )
+        return name, parse_reported(text[m.end() :].strip())
+    return None, parse_reported(text)
+
+
+def _name_key(name: str) -> str:
+    return _NAME_SEPARATORS.sub("", factor_name(name)).casefold()
+
+
+def normalise_term(name: str) -> frozenset[str]:
+    """The factors of a term name, for matching claims to model terms.
+
+    ``"variety:nitrogen"``, ``"Nitrogen:Variety"``, ``"variety x nitrogen"``
+    and ``"variety × nitrogen"`` all give ``{"variety", "nitrogen"}``. As for
+    column names, case and the separators space, underscore, dot and hyphen are
+    ignored; ``C(a)``, ``Q("a")`` and ```a``` mean ``a``. ``*`` is not an
+    interaction sign here (``a*b`` is a formula, not one term).
+    """
+    if not isinstance(name, str) or not name.strip():
+        raise InputError("a term name is empty")
+    keys = [_name_key(part) for part in _TERM_SPLIT.split(name.strip())]
+    if not all(keys):
+        raise InputError(f"cannot read the term name {name!r}: write 'a' or 'a:b'")
+    return frozenset(keys)
+
+
+def match_term(name: str, terms: Sequence[Sequence[str]]) -> tuple[str, ...]:
+    """The model term (a tuple of column names) that a claimed term name means.
+
+    Raises :class:`InputError` naming the model's terms when none matches.
+    """
+    key = normalise_term(name)
+    hits = [tuple(t) for t in terms if frozenset(_name_key(c) for c in t) == key]
+    if len(hits) == 1:
+        return hits[0]
+    labels = ", ".join(":".join(t) for t in terms)
+    if hits:
+        raise InputError(f"the claimed term {name!r} matches several model terms: {labels}")
+    raise InputError(f"the claimed term {name!r} is not in the model; its terms are: {labels}")
+
+
 # --- spec files and the claim -------------------------------------------------
 
 
 @dataclass(frozen=True)
 class Claim:
-    """The analysis the authors claim, with the reported result if given."""
+    """The analysis the authors claim, with the reported results if given.
+
+    ``reported`` is the result given without a term name (the one test of a
+    one-way design, or the authors' headline result); ``reported_terms`` holds
+    ``(term name as written, result)`` pairs for results given per term.
+    ``formula`` is the model formula when one was given; ``treatments`` are
+    then its factors.
+    """
 
     response: str
     treatments: tuple[str, ...]
@@ -399,6 +501,8 @@ class Claim:
     na_values: tuple[str, ...] = ()
     sheet: str | None = None
     spec_path: str | None = None
+    reported_terms: tuple[tuple[str, ReportedResult], ...] = ()
+    formula: ModelFormula | None = None
 
 
 def spec_beside(data_path: str | os.PathLike[str]) -> Path | None:
@@ -428,21 +532,71 @@ def _text(value: object, key: str, source: str) -> str:
     return value
 
 
+def _agree(
+    formula: ModelFormula,
+    response: str | None,
+    treatments: Sequence[str],
+    formula_label: str,
+    where: str,
+) -> None:
+    """Refuse a response or treatments that differ from the formula's."""
+    if response is not None and response != formula.response:
+        raise InputError(
+            f"the response {response!r} {where} differs from the response "
+            f"{formula.response!r} of {formula_label}: give the formula or the columns, not both"
+        )
+    if treatments and sorted(treatments) != sorted(formula.factors):
+        raise InputError(
+            f"the treatments {', '.join(treatments)} {where} differ from the columns "
+            f"{', '.join(formula.factors)} of {formula_label}: give the formula or the columns, "
+            "not both"
+        )
+
+
 def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
     unknown = sorted(set(spec) - set(SPEC_KEYS))
     if unknown:
         names = ", ".join(repr(k) for k in unknown)
         raise InputError(f"unknown key {names} in {source}; allowed keys: {', '.join(SPEC_KEYS)}")
     out: dict[str, object] = {}
-    for key in ("response", "unit", "claim"):
+    for key in ("response", "unit", "formula"):
         if key in spec:
             out[key] = _text(spec[key], key, source)
+    if "claim" in spec:
+        value = spec["claim"]
+        if isinstance(value, list | tuple):
+            if not value:
+                raise InputError(f"'claim' in {source} is an empty list: give at least one result")
+            for v in value:
+                if not isinstance(v, str) or not v.strip():
+                    raise InputError(
+                        f"'claim' in {source} must hold non-empty strings, not {_kind(v)}"
+                    )
+            out["claim"] = tuple(value)
+        elif isinstance(value, str) and value.strip():
+            out["claim"] = value
+        else:
+            raise InputError(
+                f"'claim' in {source} must be a string or a list of strings, not {_kind(value)}"
+            )
     if "treatment" in spec:
         value = spec["treatment"]
         items = list(value) if isinstance(value, list | tuple) else [value]
         if not items:
             raise InputError(f"'treatment' in {source} is an empty list: name at least one column")
         out["treatment"] = tuple(_text(v, "treatment", source) for v in items)
+    if "formula" in out:
+        try:
+            spec_formula = parse_formula(cast(str, out["formula"]))
+        except InputError as err:
+            raise InputError(f"'formula' in {source}: {err}") from None
+        _agree(
+            spec_formula,
+            cast("str | None", out.get("response")),
+            cast("tuple[str, ...]", out.get("treatment", ())),
+            f"'formula' in {source}",
+            f"in {source}",
+        )
     if "alpha" in spec:
         value = spec["alpha"]
         if isinstance(value, bool) or not isinstance(value, int | float):
@@ -485,6 +639,62 @@ def load_spec(path: str | os.PathLike[str]) -> dict[str, object]:
     return _check_spec(data, str(p))
 
 
+def _model(
+    response: str | None,
+    treatments: tuple[str, ...],
+    formula: str | None,
+    s: Mapping[str, object],
+) -> tuple[str | None, tuple[str, ...], ModelFormula | None]:
+    """Response, treatments and formula from the command line and the checked spec."""
+    if formula is not None:
+        model = parse_formula(formula)
+        _agree(model, response, treatments, "--formula", "on the command line")
+        return model.response, model.factors, model
+    spec_formula = parse_formula(cast(str, s["formula"])) if "formula" in s else None
+    resp = response if response is not None else cast("str | None", s.get("response"))
+    treats = treatments or cast("tuple[str, ...]", s.get("treatment", ()))
+    if spec_formula is None:
+        return resp, treats, None
+    resp = resp if resp is not None else spec_formula.response
+    treats = treats or spec_formula.factors
+    if sorted(treats) != sorted(spec_formula.factors):
+        return resp, treats, None  # the command line's treatments replace the spec's formula
+    return resp, treats, spec_formula
+
+
+def _results(
+    texts: Sequence[str], model: ModelFormula | None, treatments: tuple[str, ...]
+) -> tuple[ReportedResult | None, tuple[tuple[str, ReportedResult], ...]]:
+    """Split claims into the one without a term name and those per term; check term names."""
+    reported: ReportedResult | None = None
+    per_term: list[tuple[str, ReportedResult]] = []
+    seen: dict[frozenset[str], str] = {}
+    treatment_keys = {_name_key(t) for t in treatments}
+    for text in texts:
+        name, result = parse_term_claim(text)
+        if name is None:
+            if reported is not None:
+                raise InputError(
+                    f"two results without a term name ({reported.text!r} and {text!r}): "
+                    "start each with its term, e.g. 'feed: F(2, 57) = 8.31, p = .001'"
+                )
+            reported = result
+            continue
+        key = normalise_term(name)
+        if key in seen:
+            raise InputError(f"two results for the same term: {seen[key]!r} and {name!r}")
+        seen[key] = name
+        if model is not None:
+            match_term(name, model.terms)
+        elif not key <= treatment_keys:
+            raise InputError(
+                f"the claimed term {name!r} names a column that is not a treatment; "
+                f"treatments: {', '.join(treatments)}"
+            )
+        per_term.append((name, result))
+    return reported, tuple(per_term)
+
+
 def build_claim(
     *,
     response: str | None,
@@ -496,35 +706,71 @@ def build_claim(
     sheet: str | None,
     spec: Mapping[str, object] | None,
     spec_path: str | None = None,
+    formula: str | None = None,
+    claim_texts: Sequence[str] = (),
 ) -> Claim:
     """Merge command-line values with a spec; command-line values win.
+
+    The model is given by a formula or by response and treatment columns:
+
+    * ``formula`` (``--formula``) sets the response and the treatments (the
+      formula's factors, in order of appearance); a ``response`` or
+      ``treatments`` given with it must agree (same response, same set of
+      columns), else :class:`InputError`. The spec's model keys are then unused.
+      The same rule holds within a spec for its ``formula``, ``response`` and
+      ``treatment`` keys.
+    * Without ``formula``, the response and treatments come from the command
+      line, else from the spec (its formula included). A spec formula is kept
+      when the treatments are its factors; a different command-line response
+      then replaces its left-hand side. Command-line treatments naming other
+      columns replace the spec's formula (the claim then has no formula).
+
+    Reported results: ``claim_text`` and ``claim_texts`` (``--claim``,
+    repeatable) together replace the spec's ``claim`` (a string or a list).
+    Each is read by :func:`parse_term_claim`; at most one may lack a term name
+    (it becomes ``reported``), the others go to ``reported_terms`` in the order
+    given. Term names must name a formula term, or treatments when there is no
+    formula; two results for the same term are refused.
 
     Treatments given on the command line replace the spec's list; na values
     are the union (spec first); alpha defaults to 0.05. An integer sheet from
     the spec becomes its string form (the reader decides name or position).
     """
     s = _check_spec(spec or {}, spec_path or "the spec")
-    resp = response if response is not None else cast("str | None", s.get("response"))
-    if resp is None:
-        raise InputError("no response column given: use --response COL or 'response' in the spec")
-    resp = _text(resp, "response", "the command line")
     if isinstance(treatments, str):
         treatments = (treatments,)
-    treats = tuple(treatments) or cast("tuple[str, ...]", s.get("treatment", ()))
+    cli_treats = tuple(_text(t, "treatment", "the command line") for t in treatments)
+    if response is not None:
+        _text(response, "response", "the command line")
+    if formula is not None:
+        _text(formula, "formula", "the command line")
+    resp, treats, model = _model(response, cli_treats, formula, s)
+    if resp is None:
+        raise InputError(
+            "no response column given: use --response COL, --formula 'y ~ ...' "
+            "or 'response' in the spec"
+        )
     if not treats:
         raise InputError(
-            "no treatment column given: use --treatment COL or 'treatment' in the spec"
+            "no treatment column given: use --treatment COL, --formula 'y ~ ...' "
+            "or 'treatment' in the spec"
         )
-    treats = tuple(_text(t, "treatment", "the command line") for t in treats)
     if len(set(treats)) != len(treats):
         raise InputError(f"a treatment column is given twice: {', '.join(treats)}")
     if resp in treats:
         raise InputError(f"column {resp!r} cannot be both the response and a treatment")
+    if model is not None and model.response != resp:
+        model = replace_response(model, resp)
     u = unit if unit is not None else cast("str | None", s.get("unit"))
     if u is not None and _text(u, "unit", "the command line") == resp:
         raise InputError(f"column {resp!r} cannot be both the response and the unit")
-    text = claim_text if claim_text is not None else cast("str | None", s.get("claim"))
-    reported = parse_reported(text) if text is not None else None
+    if isinstance(claim_texts, str):
+        claim_texts = (claim_texts,)
+    texts = [*([claim_text] if claim_text is not None else []), *claim_texts]
+    if not texts and "claim" in s:
+        spec_claim = cast("str | tuple[str, ...]", s["claim"])
+        texts = [spec_claim] if isinstance(spec_claim, str) else list(spec_claim)
+    reported, per_term = _results(texts, model, treats)
     a = _check_alpha(alpha) if alpha is not None else cast(float, s.get("alpha", 0.05))
     spec_na = cast("tuple[str, ...]", s.get("na", ()))
     na = tuple(dict.fromkeys([*spec_na, *(str(v) for v in na_values)]))
@@ -538,4 +784,6 @@ def build_claim(
         na_values=na,
         sheet=None if sh is None else str(sh),
         spec_path=spec_path,
+        reported_terms=per_term,
+        formula=model,
     )

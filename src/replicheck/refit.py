@@ -25,6 +25,7 @@ from scipy import stats as sps
 
 from replicheck.stats.classic import DesignError, ols_term_f, oneway_anova, two_sample_t
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
+from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
 
 
 @dataclass(frozen=True)
@@ -42,6 +43,7 @@ class Analysis:
     t_statistic: float | None = None
     estimate: float | None = None  # second level's mean minus the first's (two levels)
     notes: tuple[str, ...] = ()
+    stratum: str | None = None  # error stratum of a multi-stratum ANOVA
 
     def significant(self, alpha: float) -> bool | None:
         """Whether the p-value is below ``alpha`` (None when there is no test)."""
@@ -110,6 +112,7 @@ LABELS = {
     "unit_means": "unit means: one value per experimental unit",
     "mixed_model": "mixed model: random intercept per unit, REML, Satterthwaite df",
     "no_test": "no valid test: each level sits in a single unit",
+    "strata_anova": "multi-stratum ANOVA: each term against the residual of its own stratum",
 }
 
 
@@ -283,6 +286,60 @@ def _random_units(terms: Sequence[TermInput], n: int) -> dict[str, np.ndarray]:
     return units
 
 
+def _strata_table(
+    y: np.ndarray,
+    X: np.ndarray,
+    index: Mapping[str, list[int]],
+    terms: Sequence[TermInput],
+    random: Mapping[str, np.ndarray],
+) -> MultiStratumAnova | None:
+    """The exact multi-stratum ANOVA when the design is balanced and orthogonal, else None."""
+    if not random:
+        return None
+    columns = [(t.term, X[:, index[t.term]]) for t in terms]
+    try:
+        if not is_balanced_orthogonal(random, columns):
+            return None
+        return multistratum_anova(y, random, columns)
+    except DesignError:
+        return None
+
+
+def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis | None:
+    """The term's row of the multi-stratum table, when it lies wholly in one stratum."""
+    rows = [r for r in table.terms if r.term == t.term]
+    if len(rows) != 1 or rows[0].efficiency < 1 - 1e-9:
+        return None
+    r = rows[0]
+    name = "strata_anova"
+    level = "rows" if r.stratum == "residual" else "units"
+    n_rep = n if t.unit is None or level == "rows" else int(t.unit.max()) + 1
+    if r.f_statistic is None or r.error_df is None:
+        return Analysis(
+            name,
+            LABELS[name],
+            t.term,
+            level,
+            n_rep,
+            None,
+            None,
+            None,
+            notes=(f"the '{r.stratum}' stratum has no residual degrees of freedom: untestable",),
+            stratum=r.stratum,
+        )
+    return Analysis(
+        name,
+        LABELS[name],
+        t.term,
+        level,
+        n_rep,
+        float(r.f_statistic),
+        (float(r.df), float(r.error_df)),
+        float(r.p_value) if r.p_value is not None else None,
+        stratum=r.stratum,
+    )
+
+
 def _distinct(strata: Mapping[str, np.ndarray], n: int) -> dict[str, np.ndarray]:
     out: dict[str, np.ndarray] = {}
     for name, codes in strata.items():
@@ -369,6 +426,7 @@ def refit(
             fit = fit_reml(y, X, random, names)
         except DesignError as err:
             not_fitted = f"the mixed model could not be fitted ({err}); the unit means are used"
+    table = _strata_table(y, X, index, terms, random)
     out: list[TermRefit] = []
     for t, row_test in zip(terms, claimed, strict=True):
         analyses = [row_test]
@@ -416,5 +474,9 @@ def refit(
                     corrected = "mixed_model"
             elif fit.converged:
                 corrected = "mixed_model"
+        exact = _strata_analysis(table, t, n) if table is not None else None
+        if exact is not None:
+            analyses.append(exact)
+            corrected = "strata_anova"
         out.append(TermRefit(t.term, tuple(analyses), corrected, variance))
     return Refit(tuple(out))

@@ -18,6 +18,8 @@ from dataclasses import dataclass
 CONTAINER_WORDS: frozenset[str] = frozenset(
     [
         "tank",
+        "wafer",
+        "slide",
         "aquarium",
         "aquaria",
         "cage",

@@ -273,11 +273,14 @@ def _localise(
     A container-like column ("tank", "cage", "replicate"), or any column under
     ``--unit-labels local``, that is crossed with a treatment
     is read as numbering units afresh within each level of the treatment
-    ("tank 1" of every feed is a different tank). When it is crossed with
-    several treatments, its labels are taken as local to the one with the
-    fewest treatment x label cells (the coarsest), so that in a split-plot
-    design the whole plots are found for the whole-plot treatment and stay
-    whole plots for the others.
+    ("tank 1" of every feed is a different tank). The labels may also restart
+    within a grouping that is itself nested in a treatment (wafer 1, 2, 3 of
+    every lot, lots within sources). Of the possible parents with which the
+    column is crossed, one that has a finer possible parent nested in it is
+    dropped (the labels restart within the finest of a chain: lot, not
+    source); of the rest, the one with the fewest parent x label cells is
+    taken (the coarsest), so that in a split-plot design the whole plots are
+    found for the whole-plot treatment and stay whole plots for the others.
     """
     if unit_labels == "global":
         return data, cols, {}, []
@@ -285,15 +288,27 @@ def _localise(
     readings: list[tuple[str, str]] = []
     new_cols: list[str] = []
     extra: dict[str, pd.Series] = {}
+    codes = {c: group_codes(data, (c,)) for c in [*cols, *treatments]}
+    nested_groupings = [
+        c
+        for c in cols
+        if any(_nested(codes[c], codes[t]) for t in treatments) and len(np.unique(codes[c])) > 1
+    ]
     for col in cols:
         wanted = unit_labels == "local" or name_hint(col).kind == "container"
-        crossing = []
+        crossing: list[tuple[int, str]] = []
         if wanted:
-            for trt in treatments:
-                rel = classify(col, trt, data[col], data[trt])
+            for parent in [*treatments, *[g for g in nested_groupings if g != col]]:
+                rel = classify(col, parent, data[col], data[parent])
                 if rel.relation == "crossed":
-                    cells = data[[trt, col]].drop_duplicates().shape[0]
-                    crossing.append((cells, trt))
+                    cells = int(np.unique(group_codes(data, (parent, col))).size)
+                    crossing.append((cells, parent))
+        parents = {p for _, p in crossing}
+        crossing = [
+            (cells, p)
+            for cells, p in crossing
+            if not any(q != p and _nested(codes[q], codes[p]) for q in parents)
+        ]
         if not crossing:
             new_cols.append(col)
             continue

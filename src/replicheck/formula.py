@@ -1,0 +1,275 @@
+"""Model formulas in Wilkinson-Rogers notation: the fixed terms the authors claim.
+
+A formula such as ``"weight ~ feed * temp + block"`` names the response on the
+left of ``~`` and the fixed-effect terms on the right. The notation is that of
+Wilkinson & Rogers (1973), "Symbolic description of factorial models for
+analysis of variance", *Applied Statistics* 22:392-399, as used by R's
+``stats::formula`` and by the Python libraries patsy and formulaic:
+
+* ``a + b``: both terms; ``a:b``: the interaction of a and b;
+* ``a * b`` = ``a + b + a:b`` (crossing);
+* ``a / b`` = ``a + a:b`` (b nested in a); ``(a + b) / c`` = ``a + b + a:b:c``;
+* ``(a + b + c) ** 2`` or ``^ 2``: all terms up to two-way interactions;
+* ``- term`` removes a term; ``1``, ``0``, ``-1`` (the intercept) are ignored;
+* ``C(a)`` and ``C(a, Sum)`` mean column ``a``; ``Q("odd name")`` and
+  ```odd name``` name columns that are not plain identifiers.
+
+Parsing and term expansion are done by the formulaic library; this module
+unwraps ``C()``/``Q()`` first, so that removal (``-``) and duplicates work on
+column names, and refuses what replicheck cannot use: transformations such as
+``log(y)``, random-effect syntax ``(1|block)`` and ``Error()`` strata (the
+random structure is found from the data), ``%in%`` and ``.``.
+"""
+
+from __future__ import annotations
+
+import ast
+import re
+import warnings
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import TypeVar
+
+from formulaic import Formula
+from formulaic.errors import FormulaicError
+from formulaic.parser import DefaultFormulaParser
+from formulaic.parser.types import Token
+
+from replicheck.errors import InputError
+
+__all__ = ["ModelFormula", "factor_name", "parse_formula", "rename_columns", "replace_response"]
+
+_T = TypeVar("_T")
+# formulaic raises its own errors for bad formulas, and on some malformed input
+# (unbalanced brackets in Python code, stray operators) Python's own exceptions
+_PARSE_ERRORS = (FormulaicError, SyntaxError, ValueError, IndexError, AttributeError, TypeError)
+_RANDOM = "replicheck finds the random structure from the data; give the fixed terms only"
+_ANSI = re.compile(r"\x1b\[[0-9;]*m")
+
+
+@dataclass(frozen=True)
+class ModelFormula:
+    """A parsed model formula.
+
+    ``terms`` lists every fixed term as a tuple of column names, main effects
+    first, then two-way interactions, and so on; within an order, terms keep
+    the order in which the expanded formula gives them. The intercept is not a
+    term. ``factors`` are the distinct column names of the terms, in order of
+    first appearance in the text.
+    """
+
+    text: str
+    response: str
+    terms: tuple[tuple[str, ...], ...]
+    factors: tuple[str, ...]
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        """Term labels as written in ANOVA tables: ``("a", "b", "a:b")``."""
+        return tuple(":".join(term) for term in self.terms)
+
+
+def _fail(text: str, problem: str) -> InputError:
+    return InputError(f"cannot use the formula {text!r}: {problem}")
+
+
+def _called(node: ast.expr) -> str:
+    if isinstance(node, ast.Name):
+        return node.id
+    if isinstance(node, ast.Attribute):
+        return f"{_called(node.value)}.{node.attr}"
+    return ast.unparse(node)
+
+
+def _from_python(code: str, text: str) -> str:
+    """The column named by a Python factor ``C(...)`` or ``Q(...)``."""
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", SyntaxWarning)
+            node = ast.parse(code.strip(), mode="eval").body
+    except SyntaxError:
+        raise _fail(text, f"cannot read {code!r}") from None
+    if not isinstance(node, ast.Call):
+        raise _fail(
+            text,
+            f"{code!r} is an expression, not a column; give column names joined by "
+            "+ * : / ** and -, with C() and Q() if needed",
+        )
+    func = _called(node.func)
+    if func == "Q":
+        arg = node.args[0] if len(node.args) == 1 and not node.keywords else None
+        if not (isinstance(arg, ast.Constant) and isinstance(arg.value, str)):
+            raise _fail(text, f"Q() takes one quoted column name, e.g. Q('dry mass'), not {code!r}")
+        return arg.value
+    if func == "C":
+        first = node.args[0] if node.args else None
+        if isinstance(first, ast.Name):
+            return first.id
+        if isinstance(first, ast.Call) and _called(first.func) == "Q":
+            return _from_python(ast.unparse(first), text)
+        raise _fail(text, f"C() takes a column name as its first argument, not {code!r}")
+    if func == "Error":
+        raise _fail(text, f"{code} is an error-stratum term: {_RANDOM}")
+    raise _fail(
+        text,
+        f"the function {func}() is not supported (only C() and Q() are); "
+        "transform the column in the data file first",
+    )
+
+
+def _quoted(name: str, text: str) -> str:
+    if "`" in name:
+        raise _fail(text, f"the column name {name!r} contains a backtick")
+    return f"`{name}`"
+
+
+def _quietly(text: str, run: Callable[[], _T]) -> _T:
+    """Run a formulaic step, turning its exceptions into one-line InputErrors."""
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", SyntaxWarning)
+            return run()
+    except FormulaicError as err:
+        raise _fail(text, _first_line(err)) from None
+    except _PARSE_ERRORS:
+        raise _fail(text, "cannot read it; check brackets, quotes and operators") from None
+
+
+def _tokens(text: str) -> list[Token]:
+    return _quietly(text, lambda: list(DefaultFormulaParser().get_tokens(text)))
+
+
+def _first_line(err: Exception) -> str:
+    lines = [ln for ln in _ANSI.sub("", str(err)).splitlines() if ln.strip()]
+    return lines[0].strip() if lines else type(err).__name__
+
+
+def _rewrite(text: str) -> tuple[str, list[str]]:
+    """Check the tokens, replace C()/Q() by quoted names; also the names in text order."""
+    tokens = _tokens(text)
+    tildes = [t for t in tokens if t.kind is Token.Kind.OPERATOR and t.token == "~"]
+    if not tildes:
+        raise _fail(text, "no '~': write it as 'response ~ treatment', e.g. 'weight ~ feed'")
+    if len(tildes) > 1:
+        raise _fail(text, "more than one '~'")
+    if tokens[0] is tildes[0]:
+        raise _fail(text, "no response before '~'")
+    pieces: list[str] = []
+    names: list[str] = []
+    cursor = 0
+    after_tilde = False
+    for tok in tokens:
+        kind, word = tok.kind, tok.token
+        if kind is Token.Kind.OPERATOR:
+            if "|" in word:
+                raise _fail(text, f"random-effect terms such as (1|block) are refused: {_RANDOM}")
+            if word == "~":
+                after_tilde = True
+            elif word == ".":
+                raise _fail(text, "'.' (all other columns) is not supported: name the treatments")
+            elif word == "in":
+                raise _fail(text, "%in% is not supported: write nesting as a/b")
+        if kind is Token.Kind.NAME and after_tilde:
+            names.append(word)
+        if kind is not Token.Kind.PYTHON:
+            continue
+        start, end = tok.source_start, tok.source_end
+        if start is None or end is None:  # pragma: no cover - formulaic always sets both
+            raise _fail(text, f"cannot locate {word!r}")
+        name = _from_python(word, text)
+        if after_tilde:
+            names.append(name)
+        pieces.extend([text[cursor:start], _quoted(name, text)])
+        cursor = end + 1
+    pieces.append(text[cursor:])
+    return "".join(pieces), names
+
+
+def parse_formula(text: str) -> ModelFormula:
+    """Read a model formula such as ``"yield ~ variety * nitrogen + block"``.
+
+    Returns the response, the expanded fixed terms and the factor names (see
+    :class:`ModelFormula`). Raises :class:`InputError` for a formula without
+    ``~``, with no response or no terms, with functions other than ``C()`` and
+    ``Q()``, or with random-effect syntax.
+    """
+    if not isinstance(text, str) or not text.strip():
+        raise InputError("the formula is empty: write it as 'response ~ treatment'")
+    text = text.strip()
+    rewritten, names = _rewrite(text)
+    parsed = _quietly(text, lambda: Formula(rewritten, _ordering="none"))
+    lhs = getattr(parsed, "lhs", None)
+    rhs = getattr(parsed, "rhs", None)
+    if lhs is None or rhs is None or not hasattr(rhs, "__iter__") or isinstance(rhs, tuple):
+        raise _fail(text, "expected one response and one right-hand side")
+    response = _response(list(lhs), text)
+    terms: dict[frozenset[str], tuple[str, ...]] = {}
+    for term in rhs:
+        factors = list(term.factors)
+        if all(f.eval_method.value == "literal" and f.expr == "1" for f in factors):
+            continue  # the intercept
+        for f in factors:
+            if f.eval_method.value != "lookup":
+                raise _fail(text, f"{f.expr!r} is not a column name")
+        cols = tuple(dict.fromkeys(str(f.expr) for f in factors))
+        terms.setdefault(frozenset(cols), cols)
+    if not terms:
+        raise _fail(
+            text, "no terms on the right of '~': name the treatment columns, e.g. 'weight ~ feed'"
+        )
+    ordered = tuple(sorted(terms.values(), key=len))
+    if any(response in term for term in ordered):
+        raise _fail(text, f"the response {response!r} also appears on the right of '~'")
+    used = {c for term in ordered for c in term}
+    factors = [n for n in dict.fromkeys(names) if n in used]
+    factors += [c for term in ordered for c in term if c not in factors]
+    return ModelFormula(text, response, ordered, tuple(dict.fromkeys(factors)))
+
+
+def _response(lhs_terms: list[object], text: str) -> str:
+    if len(lhs_terms) != 1:
+        raise _fail(text, "give exactly one response column before '~'")
+    factors = list(getattr(lhs_terms[0], "factors", ()))
+    if len(factors) != 1 or factors[0].eval_method.value != "lookup":
+        raise _fail(text, "give exactly one response column before '~'")
+    return str(factors[0].expr)
+
+
+def factor_name(expr: str) -> str:
+    """The column named by ``a``, ```odd name```, ``Q("odd name")`` or ``C(a, Sum)``.
+
+    Anything else, including a malformed ``C(``, is returned stripped but unchanged.
+    """
+    s = expr.strip()
+    if len(s) >= 2 and s[0] == s[-1] == "`":
+        return s[1:-1]
+    if re.match(r"[CQ]\s*\(", s) and s.endswith(")"):
+        try:
+            return _from_python(s, s)
+        except InputError:
+            return s
+    return s
+
+
+def replace_response(formula: ModelFormula, response: str) -> ModelFormula:
+    """The same right-hand side with another response column (like R's ``update(f, y2 ~ .)``)."""
+    tokens = _tokens(formula.text)
+    tilde = next(t for t in tokens if t.kind is Token.Kind.OPERATOR and t.token == "~")
+    end = tilde.source_end if tilde.source_end is not None else formula.text.index("~")
+    rhs = formula.text[end + 1 :].strip()
+    return parse_formula(f"{_quoted(response, formula.text)} ~ {rhs}")
+
+
+def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelFormula:
+    """The formula with column names replaced (e.g. by the data file's spelling).
+
+    ``names`` maps names as written to new names; names not in it are kept.
+    The text is kept as written. Raises :class:`InputError` when two columns
+    of the formula would become one.
+    """
+    response = names.get(formula.response, formula.response)
+    factors = tuple(names.get(c, c) for c in formula.factors)
+    if len(set(factors)) != len(factors) or response in factors:
+        raise _fail(formula.text, "two of its names refer to the same column")
+    terms = tuple(tuple(names.get(c, c) for c in term) for term in formula.terms)
+    return ModelFormula(formula.text, response, terms, factors)
