@@ -8,20 +8,30 @@ from __future__ import annotations
 
 import os
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from replicheck.claim import Claim, build_claim, load_spec, spec_beside
+from replicheck.claim import (
+    Claim,
+    ReportedResult,
+    build_claim,
+    load_spec,
+    match_term,
+    spec_beside,
+)
 from replicheck.clustering import measure_clustering
 from replicheck.errors import InputError
+from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.reconcile import Level, reconcile
-from replicheck.refit import TermInput, design_matrix, refit
+from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
+from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
-from replicheck.structure.terms import model_terms, term_values
+from replicheck.structure.terms import Term, model_terms, term_values
 from replicheck.structure.units import Structure, UnitChoice, infer_structure, unit_codes
 from replicheck.verdict import Evidence, TermEvidence, decide
 
@@ -32,12 +42,13 @@ def make_claim(
     response: str | None = None,
     treatment: str | Sequence[str] = (),
     unit: str | None = None,
-    claim: str | None = None,
+    claim: str | Sequence[str] | None = None,
     alpha: float | None = None,
     na: Sequence[str] = (),
     sheet: str | None = None,
     spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
     find_spec: bool = True,
+    formula: str | None = None,
 ) -> Claim:
     """Build the claim from options, an explicit spec, or the spec found beside the data file."""
     spec_data: Mapping[str, object] | None = None
@@ -57,7 +68,9 @@ def make_claim(
         response=response,
         treatments=treatments,
         unit=unit,
-        claim_text=claim,
+        claim_text=claim if isinstance(claim, str) else None,
+        claim_texts=() if claim is None or isinstance(claim, str) else tuple(claim),
+        formula=formula,
         alpha=alpha,
         na_values=tuple(str(v) for v in na),
         sheet=sheet,
@@ -66,7 +79,18 @@ def make_claim(
     )
 
 
-def _resolve(table: Table, claim: Claim) -> Claim:
+def _resolve_unit(cols: Sequence[str], unit: str) -> tuple[str, ...]:
+    """A stated unit: one column, or an implicit grouping 'a:b' of several."""
+    try:
+        return (resolve_column(cols, unit, "unit"),)
+    except InputError:
+        if ":" not in unit:
+            raise
+    return tuple(resolve_column(cols, part.strip(), "unit") for part in unit.split(":"))
+
+
+def _resolve(table: Table, claim: Claim) -> tuple[Claim, tuple[str, ...]]:
+    """Column names as the data spell them; the stated unit as a tuple of columns."""
     cols = table.columns
     response = resolve_column(cols, claim.response, "response")
     treatments = tuple(resolve_column(cols, t, "treatment") for t in claim.treatments)
@@ -74,19 +98,44 @@ def _resolve(table: Table, claim: Claim) -> Claim:
         raise InputError(f"the same column is named twice as a treatment: {', '.join(treatments)}")
     if response in treatments:
         raise InputError(f"column '{response}' cannot be both the response and a treatment")
-    unit = None if claim.unit is None else resolve_column(cols, claim.unit, "unit")
-    if unit is not None and (unit == response or unit in treatments):
-        raise InputError(f"column '{unit}' cannot be the unit: it is the response or a treatment")
-    return Claim(
-        response,
-        treatments,
-        unit,
-        claim.reported,
-        claim.alpha,
-        claim.na_values,
-        claim.sheet,
-        claim.spec_path,
+    unit: tuple[str, ...] = () if claim.unit is None else _resolve_unit(cols, claim.unit)
+    if response in unit or (len(unit) == 1 and unit[0] in treatments):
+        raise InputError(
+            f"'{claim.unit}' cannot be the unit: it is the response or a treatment column"
+        )
+    formula = claim.formula
+    if formula is not None:
+        mapping = {claim.response: response}
+        mapping.update(dict(zip(claim.treatments, treatments, strict=True)))
+        formula = rename_columns(formula, mapping)
+    resolved = replace(
+        claim,
+        response=response,
+        treatments=treatments,
+        unit=":".join(unit) if unit else None,
+        formula=formula,
     )
+    return resolved, unit
+
+
+def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[str]]:
+    """Model terms of a formula, and the factors read as blocks rather than treatments.
+
+    A factor that enters the formula only as a main effect, whose name says
+    block, place, time or subject, beside at least one other factor, is a
+    block of the design: replicheck puts it in the random structure.
+    """
+    assert claim.formula is not None
+    in_interaction = {f for t in claim.formula.terms if len(t) > 1 for f in t}
+    blocks = [
+        f
+        for f in claim.treatments
+        if f not in in_interaction and name_hint(f).suggests_unit and len(claim.treatments) > 1
+    ]
+    terms = [
+        Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
+    ]
+    return terms, blocks
 
 
 def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
@@ -114,31 +163,46 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
 
 def _levels(
     n: int,
-    first: TermInput,
+    term: TermInput,
     n_params: int,
     choice: UnitChoice,
     structure: Structure,
     single: bool,
+    unit_analyses: Sequence[Analysis],
 ) -> list[Level]:
-    """Levels at which the claimed term could have been analysed, rows first."""
-    k = len(first.labels)
+    """Levels at which a term could have been analysed, rows first."""
+    k = len(term.labels)
     rows_removed = f"{k} groups" if single else f"{n_params} model parameters"
-    levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(first.codes)))]
-    if first.unit is not None and choice.unit is not None:
-        per = []
-        for j in range(k):
-            per.append(int(np.unique(first.unit[first.codes == j]).size))
+    levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(term.codes)))]
+    if term.unit is not None and choice.unit is not None:
+        per = tuple(int(np.unique(term.unit[term.codes == j]).size) for j in range(k))
         levels.append(
-            Level(
-                choice.unit, "units", choice.n_units, choice.n_units - k, f"{k} groups", tuple(per)
-            )
+            Level(choice.unit, "units", choice.n_units, choice.n_units - k, f"{k} groups", per)
         )
+        for a in unit_analyses:
+            if a.df is not None and abs(a.df[1] - (choice.n_units - k)) > 0.5:
+                removed = f"{choice.n_units - a.df[1]:g} parameters of the {choice.unit} level"
+                levels.append(Level(choice.unit, "units", choice.n_units, a.df[1], removed, per))
     seen = {lv.name for lv in levels}
     for cand in structure.candidates:
-        if cand.treatment == first.term and cand.name not in seen:
+        if cand.treatment == term.term and cand.name not in seen:
             seen.add(cand.name)
             levels.append(Level(cand.name, "other", cand.n_units, cand.n_units - k, f"{k} groups"))
     return levels
+
+
+def _reported_by_term(claim: Claim, terms: Sequence[Term]) -> dict[str, ReportedResult]:
+    """Reported results keyed by term name; an unprefixed result is the first term's."""
+    out: dict[str, ReportedResult] = {}
+    if claim.reported is not None:
+        out[terms[0].name] = claim.reported
+    for name, result in claim.reported_terms:
+        factors = match_term(name, [t.factors for t in terms])
+        key = next(t.name for t in terms if t.factors == factors)
+        if key in out:
+            raise InputError(f"two reported results are given for the term '{key}'")
+        out[key] = result
+    return out
 
 
 def audit(
@@ -147,13 +211,14 @@ def audit(
     response: str | None = None,
     treatment: str | Sequence[str] = (),
     unit: str | None = None,
-    claim: str | None = None,
+    claim: str | Sequence[str] | None = None,
     alpha: float | None = None,
     na: Sequence[str] = (),
     sheet: str | None = None,
     spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
     find_spec: bool = True,
     unit_labels: str = "auto",
+    formula: str | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -166,7 +231,8 @@ def audit(
         may be a list. ``unit`` is the user's belief about the experimental
         unit: it is checked against the data, not trusted.
     claim:
-        The reported result, e.g. ``"F(2, 57) = 8.31, p = .001"``.
+        The reported result, e.g. ``"F(2, 57) = 8.31, p = .001"``, or several,
+        each prefixed with its term: ``["variety: F(2, 10) = 1.49, p = .27"]``.
     alpha:
         Significance level (default 0.05).
     na:
@@ -174,6 +240,10 @@ def audit(
     spec:
         A TOML spec file or a mapping with the same keys; by default a spec
         named ``NAME.replicheck.toml`` beside the data file is used.
+    formula:
+        A model formula such as ``"yield ~ variety * nitro + block"``, instead of
+        ``response`` and ``treatment``; main-effect factors named like blocks
+        (block, day, subject, ...) are taken as blocks of the design.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
         each treatment level) or ``global`` (labels name the same unit everywhere).
@@ -208,13 +278,20 @@ def audit(
         sheet=sheet,
         spec=spec,
         find_spec=find_spec,
+        formula=formula,
     )
     table = read_table(
         data if isinstance(data, pd.DataFrame) else Path(data), sheet=c.sheet, na_values=c.na_values
     )
-    c = _resolve(table, c)
+    c, stated = _resolve(table, c)
+    formula_blocks: list[str] = []
+    if c.formula is not None:
+        terms, formula_blocks = _formula_terms(c, table.data)
+        c = replace(c, treatments=tuple(f for f in c.treatments if f not in formula_blocks))
     frame = _analysis_frame(table, c)
-    terms = model_terms(frame, c.treatments)
+    if c.formula is None:
+        terms = model_terms(frame, c.treatments)
+    reported = _reported_by_term(c, terms)
     interactions = [t.name for t in terms if t.is_interaction]
     for t in terms:
         if t.is_interaction:
@@ -225,7 +302,7 @@ def audit(
         [t.name for t in terms],
         exclude=c.treatments,
         interactions=interactions,
-        stated_unit=c.unit,
+        stated_unit=stated or None,
         unit_labels=unit_labels,
     )
     y = frame[c.response].to_numpy(dtype=float)
@@ -240,7 +317,13 @@ def audit(
     blocks = {
         s.name: strata[s.name] for s in structure.strata if s.kind == "block" and s.name in strata
     }
-    fits = refit(y, inputs, strata, blocks)
+    fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
+    fits = refit(y, inputs, strata, blocks, fixed_blocks)
+    single = len(terms) == 1 and not fixed_blocks
+    X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
+    for b in fixed_blocks:
+        X = np.hstack([X, np.eye(int(b.max()) + 1)[b]])
+    n_params = int(np.linalg.matrix_rank(X))
     evidence_terms: list[TermEvidence] = []
     for i, ti in enumerate(inputs):
         tr = fits.term(ti.term)
@@ -252,32 +335,43 @@ def audit(
             clustering = measure_clustering(y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml)
             for k, label in enumerate(ti.labels):
                 per_level[label] = int(np.unique(ti.unit[ti.codes == k]).size)
+        rec = None
+        if ti.term in reported:
+            as_claimed = tr.get("as_claimed")
+            assert as_claimed is not None
+            unit_level = [a for a in tr.analyses if a.level == "units" and a.p_value is not None]
+            levels = _levels(
+                len(frame), ti, n_params, structure.unit_of(ti.term), structure, single, unit_level
+            )
+            rec = reconcile(
+                reported[ti.term], c.alpha, levels, as_claimed, len(index[ti.term]), unit_level
+            )
         evidence_terms.append(
             TermEvidence(
-                ti.term, ti.factors, structure.unit_of(ti.term), clustering, tr, per_level, i == 0
+                ti.term,
+                ti.factors,
+                structure.unit_of(ti.term),
+                clustering,
+                tr,
+                per_level,
+                i == 0,
+                rec,
             )
         )
-    first = inputs[0]
-    first_fit = fits.term(first.term)
-    as_claimed = first_fit.get("as_claimed")
-    assert as_claimed is not None
-    n_params = (
-        len(first.labels)
-        if len(terms) == 1
-        else int(np.linalg.matrix_rank(design_matrix(inputs, "sum")[0]))
+    primary = next((t for t in evidence_terms if t.reconciliation is not None), evidence_terms[0])
+    first_claimed = primary.analysis("as_claimed")
+    assert first_claimed is not None
+    overall = primary.reconciliation or reconcile(
+        None, c.alpha, [], first_claimed, len(index[primary.term])
     )
-    levels = _levels(
-        len(frame), first, n_params, structure.unit_of(first.term), structure, len(terms) == 1
-    )
-    unit_level = [a for a in first_fit.analyses if a.level == "units" and a.p_value is not None]
-    rec = reconcile(c.reported, c.alpha, levels, as_claimed, len(first.labels) - 1, unit_level)
     evidence = Evidence(
         claim=c,
         n_rows_read=table.n_rows,
         n_rows_used=len(frame),
         structure=structure,
         terms=tuple(evidence_terms),
-        reconciliation=rec,
+        reconciliation=overall,
+        formula_blocks=tuple(formula_blocks),
     )
     verdict = decide(evidence)
     return Report(table, len(frame), c, evidence, fits, verdict)

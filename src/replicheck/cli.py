@@ -75,23 +75,33 @@ def cli() -> None:
     help="Treatment column (repeat for several).",
 )
 @click.option(
+    "--formula",
+    metavar="FORMULA",
+    help="The claimed model instead of -r/-t, e.g. 'yield ~ variety * nitrogen + block'; "
+    "main-effect factors named like blocks (block, day, subject) are blocks of the design.",
+)
+@click.option(
     "-u",
     "--unit",
     metavar="COL",
-    help="The column you believe is the experimental unit (checked, not trusted).",
+    help="The column you believe is the experimental unit (checked, not trusted); an "
+    "implicit plot as 'block:variety'.",
 )
 @click.option(
     "-c",
     "--claim",
-    "claim_text",
+    "claim_texts",
     metavar="TEXT",
-    help="The reported result, e.g. 'F(2, 57) = 8.31, p = .001'.",
+    multiple=True,
+    help="The reported result, e.g. 'F(2, 57) = 8.31, p = .001'; repeat with the term "
+    "first for several: 'variety: F(2, 10) = 1.49, p = .27'.",
 )
 @click.option(
     "--spec",
     metavar="FILE",
     type=click.Path(dir_okay=False, path_type=str),
-    help="TOML file with response, treatment, unit, claim, alpha, na, sheet. "
+    help="TOML file with response, treatment (or formula), unit, claim (one or a list), "
+    "alpha, na, sheet. "
     "Default: NAME.replicheck.toml beside the data file, if present.",
 )
 @click.option("--no-spec", is_flag=True, help="Ignore a spec file found beside the data.")
@@ -126,8 +136,9 @@ def check(
     data: str,
     response: str | None,
     treatments: Sequence[str],
+    formula: str | None,
     unit: str | None,
-    claim_text: str | None,
+    claim_texts: Sequence[str],
     spec: str | None,
     no_spec: bool,
     alpha: float | None,
@@ -151,7 +162,8 @@ def check(
         response=response,
         treatment=treatments,
         unit=unit,
-        claim=claim_text,
+        claim=tuple(claim_texts) or None,
+        formula=formula,
         alpha=alpha,
         na=na_codes,
         sheet=sheet,

@@ -30,6 +30,7 @@ class Reconciliation:
     explanation: str | None
     mismatches: tuple[str, ...]
     claimed_significant: bool | None
+    reported_p: float | None = None  # the reported p-value (its bound for "p < x")
 
 
 def _p_matches(reported: float, computed: float) -> bool:
@@ -166,4 +167,6 @@ def reconcile(
     claimed_sig = reported.significant_at(alpha)
     if claimed_sig is None:
         claimed_sig = as_claimed.significant(alpha)
-    return Reconciliation(level, grouping, explanation, tuple(mismatches), claimed_sig)
+    return Reconciliation(
+        level, grouping, explanation, tuple(mismatches), claimed_sig, reported.p_value
+    )

@@ -258,6 +258,26 @@ def _ols_term_tests(
     s2 = float(resid @ resid) / df_res
     out = []
     for t in terms:
+        others = [j for j in range(X.shape[1]) if j not in set(index[t.term])]
+        if int(np.linalg.matrix_rank(X[:, others])) == rank:
+            name = "as_claimed"
+            out.append(
+                Analysis(
+                    name,
+                    LABELS[name],
+                    t.term,
+                    "rows",
+                    int(y.size),
+                    None,
+                    None,
+                    None,
+                    notes=(
+                        "aliased with other terms or blocks of the claimed model: not "
+                        "estimable there",
+                    ),
+                )
+            )
+            continue
         L = _contrast(index[t.term], X.shape[1])
         lb = L @ beta
         q = L.shape[0]
@@ -398,6 +418,7 @@ def refit(
     terms: Sequence[TermInput],
     strata: Mapping[str, np.ndarray] | None = None,
     blocks: Mapping[str, np.ndarray] | None = None,
+    fixed_blocks: Sequence[np.ndarray] = (),
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -408,12 +429,20 @@ def refit(
     groupings of the design (units, blocks, sub-units) as codes; by default
     the terms' units. ``blocks`` are the strata that are blocks (crossed
     with the treatments); the unit-means test fits those that hold whole units.
+    ``fixed_blocks`` are blocks the claimed model held as fixed effects: they
+    enter the row-level (as claimed) model.
     """
     n = int(y.size)
     single = len(terms) == 1
     coding = "treatment" if single else "sum"
     X, index, names = design_matrix(terms, coding)
-    if single:
+    if fixed_blocks:
+        x_rows = np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in fixed_blocks)])
+        claimed = [
+            replace(a, label=LABELS["as_claimed"] + ", blocks as fixed effects")
+            for a in _ols_term_tests(y, x_rows, index, terms)
+        ]
+    elif single:
         t0 = terms[0]
         claimed = [_plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
     else:

@@ -56,7 +56,8 @@ class TermEvidence:
     clustering: Clustering | None
     refit: TermRefit
     units_per_level: dict[str, int]
-    claimed: bool  # the reported result refers to this term
+    claimed: bool  # the primary term: the first treatment
+    reconciliation: Reconciliation | None = None  # when a result was reported for this term
 
     def analysis(self, name: str) -> Analysis | None:
         return self.refit.get(name)
@@ -76,6 +77,7 @@ class Evidence:
     structure: Structure
     terms: tuple[TermEvidence, ...]
     reconciliation: Reconciliation
+    formula_blocks: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -132,10 +134,16 @@ def _cap(text: str) -> str:
 
 def claimed_significance(t: TermEvidence, ev: Evidence) -> bool | None:
     """What the claim says about the term: the reported result, else the row-level test."""
-    if t.claimed and ev.reconciliation.claimed_significant is not None:
-        return ev.reconciliation.claimed_significant
+    if t.reconciliation is not None and t.reconciliation.claimed_significant is not None:
+        return t.reconciliation.claimed_significant
     row = t.analysis("as_claimed")
     return None if row is None else row.significant(ev.claim.alpha)
+
+
+def stratum_of(t: TermEvidence) -> str | None:
+    """The error stratum of the exact multi-stratum ANOVA, when it was computed."""
+    exact = t.analysis("strata_anova")
+    return None if exact is None else exact.stratum
 
 
 def term_status(t: TermEvidence, ev: Evidence) -> str:
@@ -143,9 +151,16 @@ def term_status(t: TermEvidence, ev: Evidence) -> str:
     u = t.unit
     if u.relation == "confounded":
         return "confounded"
+    stratum = stratum_of(t)
+    if u.unit is None and stratum not in (None, "residual"):
+        # aliased with a block (an interaction confounded with blocks): its error is the
+        # block stratum, not the rows
+        if t.reconciliation is not None and t.reconciliation.level == "units":
+            return "ok"
+        return "pseudoreplicated"
     if u.unit is None or u.n_units >= u.n_observations:
         return "unclear" if (t.claimed and ev.structure.ambiguous) else "ok"
-    if t.claimed and ev.reconciliation.level == "units":
+    if t.reconciliation is not None and t.reconciliation.level == "units":
         return "ok"
     return "pseudoreplicated"
 
@@ -187,11 +202,15 @@ def _confounded(ev: Evidence) -> Iterator[Finding]:
 def _pseudo(ev: Evidence) -> Iterator[Finding]:
     for t in _pseudo_terms(ev):
         u = t.unit
+        if u.unit is None:
+            continue  # reported by term-in-block-stratum
         claimed = t.analysis("as_claimed")
         assert claimed is not None
-        rec = ev.reconciliation
+        rec = t.reconciliation
         how = (
-            f" ({rec.explanation})" if t.claimed and rec.explanation and rec.level == "rows" else ""
+            f" ({rec.explanation})"
+            if rec is not None and rec.explanation and rec.level == "rows"
+            else ""
         )
         msg = (
             f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
@@ -214,31 +233,63 @@ def _pseudo(ev: Evidence) -> Iterator[Finding]:
         )
 
 
+def _reconciled(ev: Evidence) -> Iterator[tuple[str, Reconciliation]]:
+    several = len(ev.terms) > 1
+    for t in ev.terms:
+        if t.reconciliation is not None:
+            yield (f"'{t.term}': " if several else ""), t.reconciliation
+
+
+@rule("term-in-block-stratum", "an interaction is confounded with blocks")
+def _block_stratum(ev: Evidence) -> Iterator[Finding]:
+    for t in ev.terms:
+        stratum = stratum_of(t)
+        if t.unit.unit is not None or stratum in (None, "residual"):
+            continue
+        exact = t.analysis("strata_anova")
+        assert exact is not None
+        test = (
+            f"tested against the {stratum} stratum: {_f(exact)}"
+            if exact.p_value is not None
+            else f"the {stratum} stratum has no residual degrees of freedom, so it is untestable"
+        )
+        yield Finding(
+            "term-in-block-stratum",
+            "error" if _changed(t, ev) else "warning",
+            f"'{t.term}' is constant within each level of '{stratum}' (the design confounds it "
+            f"with the blocks), so it is estimated between blocks, not between rows; {test}.",
+            f"Test '{t.term}' against the variation between {stratum} levels, or report it as "
+            f"confounded with blocks.",
+            (*t.factors, stratum),
+        )
+
+
 @rule("reported-df-level", "which level the reported degrees of freedom point to")
 def _df_level(ev: Evidence) -> Iterator[Finding]:
-    r = ev.reconciliation
-    if r.explanation is None:
-        return
-    yield Finding(
-        "reported-df-level",
-        "note",
-        _cap(r.explanation) + ".",
-        "Check the stated n and degrees of freedom against the design in the methods.",
-        (),
-    )
+    for prefix, r in _reconciled(ev):
+        if r.explanation is None:
+            continue
+        yield Finding(
+            "reported-df-level",
+            "note",
+            prefix + _cap(r.explanation) + ".",
+            "Check the stated n and degrees of freedom against the design in the methods.",
+            (),
+        )
 
 
 @rule("reported-result-not-reproduced", "the reported numbers differ from the data")
 def _mismatch(ev: Evidence) -> Iterator[Finding]:
-    for m in ev.reconciliation.mismatches:
-        yield Finding(
-            "reported-result-not-reproduced",
-            "warning",
-            _cap(m) + ".",
-            "Ask which rows, model and test produced the reported result; data exclusions, "
-            "covariates or a different test may explain the gap.",
-            (ev.claim.response,),
-        )
+    for prefix, r in _reconciled(ev):
+        for m in r.mismatches:
+            yield Finding(
+                "reported-result-not-reproduced",
+                "warning",
+                prefix + _cap(m) + ".",
+                "Ask which rows, model and test produced the reported result; data exclusions, "
+                "covariates or a different test may explain the gap.",
+                (ev.claim.response,),
+            )
 
 
 @rule("stated-unit-not-supported", "the user's stated unit disagrees with the data")
@@ -305,6 +356,20 @@ def _ambiguous(ev: Evidence) -> Iterator[Finding]:
             f"it is another label of the treatment, this is harmless. The data cannot tell which.",
             f"Find out what '{col}' records. If it is a unit, rerun with --unit {col}.",
             (term, col),
+        )
+
+
+@rule("formula-block-as-stratum", "a blocking factor of the formula is taken as a stratum")
+def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
+    for b in ev.formula_blocks:
+        yield Finding(
+            "formula-block-as-stratum",
+            "note",
+            f"'{b}' enters the formula as a main effect and its name says block, place, time or "
+            f"subject, so replicheck took it as a block of the design (a random stratum), not "
+            f"as a treatment to test.",
+            f"If '{b}' is a treatment of interest, give it with --treatment instead.",
+            (b,),
         )
 
 

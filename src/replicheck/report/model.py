@@ -16,6 +16,7 @@ from replicheck import __version__
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.io import Table
+from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit
 from replicheck.structure.units import Structure
 from replicheck.verdict import Evidence, TermEvidence, Verdict
@@ -58,10 +59,25 @@ def _clustering(cl: Clustering | None) -> dict[str, Any]:
     }
 
 
+def _reported_check(rec: Reconciliation | None) -> dict[str, Any] | None:
+    if rec is None:
+        return None
+    return {
+        "level": rec.level,
+        "grouping": rec.level_grouping,
+        "explanation": rec.explanation,
+        "mismatches": list(rec.mismatches),
+        "claimed_significant": rec.claimed_significant,
+    }
+
+
 def _error_term(te: TermEvidence, s: Structure) -> str | None:
     """The stratum a term is tested in: its unit, the residual, or None when untestable."""
     if te.unit.relation == "confounded":
         return None
+    exact = te.analysis("strata_anova")
+    if exact is not None and exact.stratum is not None:
+        return exact.stratum
     for st in s.strata:
         if te.term in st.terms:
             return "residual" if st.kind == "rows" else st.name
@@ -146,8 +162,9 @@ class Report:
             corrected = te.corrected
             row = te.analysis("as_claimed")
             claimed_p = row.p_value if row is not None else None
-            if te.claimed and c.reported is not None and c.reported.p_value is not None:
-                claimed_p = c.reported.p_value
+            rec = te.reconciliation
+            if rec is not None and rec.reported_p is not None:
+                claimed_p = rec.reported_p
             terms.append(
                 {
                     "term": te.term,
@@ -164,6 +181,7 @@ class Report:
                     "testable": corrected is not None,
                     "conclusion_changed": tv.conclusion_changed,
                     "clustering": _clustering(te.clustering),
+                    "reported_check": _reported_check(rec),
                 }
             )
         doc = {
@@ -244,13 +262,7 @@ class Report:
             "skipped_columns": dict(s.skipped),
             "clustering": _clustering(main.clustering),
             "analyses": analyses,
-            "reported_check": {
-                "level": ev.reconciliation.level,
-                "grouping": ev.reconciliation.level_grouping,
-                "explanation": ev.reconciliation.explanation,
-                "mismatches": list(ev.reconciliation.mismatches),
-                "claimed_significant": ev.reconciliation.claimed_significant,
-            },
+            "reported_check": _reported_check(ev.reconciliation),
             "findings": [asdict(f) for f in self.verdict.findings],
             "caution": self.verdict.caution,
         }

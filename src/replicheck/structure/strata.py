@@ -48,6 +48,7 @@ class CellGrouping:
     mean_size: float
     p_value: float | None  # F test of the cells beyond block + treatments
     credible: bool
+    other_treatments_inside: bool  # another treatment varies within the cells
 
 
 @dataclass(frozen=True)
@@ -125,7 +126,8 @@ def crossed_cells(
             credible = is_stated or (p is not None and p < EVIDENCE_P)
             extra[name] = pd.Series(cells, index=data.index)
             derived[name] = (col, trt)
-            found.append(CellGrouping(name, col, trt, n_cells, mean_size, p, credible))
+            inside = int(np.unique(group_codes(data, (col, *treatments))).size) > n_cells
+            found.append(CellGrouping(name, col, trt, n_cells, mean_size, p, credible, inside))
     if extra:
         data = data.assign(**extra)
     return data, list(extra), derived, found

@@ -595,7 +595,7 @@ def _cell_readings(
                     f"{c.block}, the rows are the units and '{c.block}' is a block",
                 )
             )
-        elif not c.credible:
+        elif not c.credible and not c.other_treatments_inside:
             out.append(
                 (
                     "unit-reading-uncertain",
