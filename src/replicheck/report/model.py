@@ -155,6 +155,7 @@ class Report:
                         "estimate": a.estimate,
                         "notes": list(a.notes),
                         "corrected": a.name == tr.corrected,
+                        "stratum": a.stratum,
                     }
                 )
         terms = []
