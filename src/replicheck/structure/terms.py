@@ -34,6 +34,31 @@ def term_values(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
     return out
 
 
+def unreplicated(data: pd.DataFrame, treatments: Sequence[str]) -> bool:
+    """Whether every combination of the treatments occurs at most once (no replication)."""
+    if len(treatments) < 2:
+        return False
+    return int(data[list(treatments)].drop_duplicates().shape[0]) == len(data)
+
+
+def drop_unreplicated(
+    data: pd.DataFrame, terms: Sequence[Term], treatments: Sequence[str]
+) -> tuple[list[Term], list[Term]]:
+    """Without replication, the highest interaction is the only error: drop it from the model.
+
+    Returns the terms kept and the interaction terms dropped (they cannot be
+    tested; their variation is the residual of the main-effects model).
+    """
+    if not unreplicated(data, treatments):
+        return list(terms), []
+    top = len(treatments)
+    kept = [t for t in terms if len(t.factors) < top]
+    dropped = [t for t in terms if len(t.factors) == top]
+    if not dropped:
+        dropped = [Term(SEPARATOR.join(treatments), tuple(treatments))]
+    return kept, dropped
+
+
 def model_terms(data: pd.DataFrame, treatments: Sequence[str]) -> list[Term]:
     """Main effects, and every interaction when all combinations of levels occur.
 
