@@ -71,6 +71,10 @@ def test_split_plot_from_a_formula_with_per_term_claims() -> None:
     assert t["nitro"]["conclusion_changed"] is False
     assert doc["verdict"]["status"] == "pseudoreplicated"
     assert doc["verdict"]["conclusion_changed"] is True
+    rel = {(r["first"], r["second"]): r["relation"] for r in doc["design"]["factor_relations"]}
+    assert rel[("Variety", "Block:Variety")] == "contains"  # whole plots nested in varieties
+    assert rel[("Block", "Block:Variety")] == "contains"  # and in blocks
+    assert rel[("Variety", "Block")] == "crossed"
     rules = {f["rule"] for f in doc["findings"]}
     assert {"rows-counted-as-replicates", "formula-block-as-stratum"} <= rules
     assert "reported-result-not-reproduced" not in rules

@@ -230,6 +230,10 @@ class Report:
                 "blocks": [
                     {"name": b.name, "n_levels": b.n_levels, "reason": b.reason} for b in s.blocks
                 ],
+                "factor_relations": [
+                    {"first": r.first, "second": r.second, "relation": r.relation}
+                    for r in s.factor_relations
+                ],
             },
             "terms": terms,
             "candidates": [

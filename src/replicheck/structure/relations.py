@@ -165,3 +165,32 @@ def classify(
             + (" (every level sees every treatment)" if full else ""),
         )
     return rel("unrelated", f"'{column}' shows no simple relation to '{treatment}'")
+
+
+@dataclass(frozen=True)
+class PairRelation:
+    """How two factors of the design relate."""
+
+    first: str
+    second: str
+    relation: str  # aliased | nested | contains | crossed | partially aliased | unrelated
+
+
+def pair_relation(first: str, second: str, a: pd.Series, b: pd.Series) -> PairRelation:
+    """The relation of factor ``first`` to factor ``second`` on rows where both are present.
+
+    ``aliased``: the same partition; ``nested``: every level of the first lies
+    inside one level of the second; ``contains``: the reverse; ``crossed``:
+    levels of each hold several levels of the other; ``partially aliased``:
+    nested or contained but for a few rows.
+    """
+    r = classify(first, second, a, b)
+    same = r.relation == "confounded" and r.n_levels == len(r.levels_per_treatment)
+    name = {
+        "nested": "nested",
+        "confounded": "aliased" if same else "contains",
+        "partial": "partially aliased",
+        "crossed": "crossed",
+        "unrelated": "unrelated",
+    }[r.relation]
+    return PairRelation(first, second, name)

@@ -22,7 +22,14 @@ import pandas as pd
 from replicheck.errors import InputError
 from replicheck.stats.clustering import anova_components
 from replicheck.structure.names import NameHint, name_hint, tokens
-from replicheck.structure.relations import Relation, classify, codes_of, group_codes
+from replicheck.structure.relations import (
+    PairRelation,
+    Relation,
+    classify,
+    codes_of,
+    group_codes,
+    pair_relation,
+)
 from replicheck.structure.strata import (
     CellGrouping,
     Stratum,
@@ -85,6 +92,7 @@ class Structure:
     readings: tuple[tuple[str, str], ...] = ()
     ambiguous: tuple[str, ...] = ()  # groupings that might be units but cannot be told from labels
     strata: tuple[Stratum, ...] = ()  # coarse to fine, ending with the rows
+    factor_relations: tuple[PairRelation, ...] = ()  # every pair of treatments and strata
     blocks: tuple[Block, ...] = ()
 
     def unit_of(self, term: str) -> UnitChoice:
@@ -468,6 +476,16 @@ def infer_structure(
     readings += _cell_readings(cells, units)
     blocks = _blocks(data, y, cols, main_terms, relations, derived)
     strata = _strata(data, terms, units, candidates, blocks)
+    factors = {t: data[t] for t in main_terms}
+    for st in strata:
+        if st.kind != "rows" and st.name not in factors:
+            factors[st.name] = pd.Series(group_codes(data, st.columns), index=data.index)
+    names = list(factors)
+    pairs = tuple(
+        pair_relation(a, b, factors[a], factors[b])
+        for i, a in enumerate(names)
+        for b in names[i + 1 :]
+    )
     return Structure(
         relations=tuple(relations),
         candidates=tuple(candidates),
@@ -477,6 +495,7 @@ def infer_structure(
         ambiguous=tuple(ambiguous),
         strata=strata,
         blocks=tuple(blocks),
+        factor_relations=pairs,
     )
 
 
