@@ -7,11 +7,13 @@ from typing import Any
 
 from replicheck.report.text import (
     STATUS_WORDS,
+    TERMS_HEADER,
     analyses_header,
     analyses_rows,
     fmt_df,
     fmt_num,
     fmt_p,
+    terms_rows,
 )
 
 
@@ -62,6 +64,16 @@ def render_markdown(doc: dict[str, Any]) -> str:
     rc = doc["reported_check"]
     if rc["explanation"]:
         lines.append(f"| reported df | {_esc(rc['explanation'])} |")
+    if len(doc["terms"]) > 1:
+        lines += [
+            "",
+            "### Terms: claimed and corrected",
+            "",
+            "| " + " | ".join(TERMS_HEADER) + " |",
+            "|" + "---|" * len(TERMS_HEADER),
+        ]
+        for r in terms_rows(doc):
+            lines.append("| " + " | ".join(_esc(x) for x in r) + " |")
     lines += [
         "",
         "### Analyses",

@@ -107,6 +107,33 @@ def _clustering_lines(cl: dict[str, Any], title: str) -> list[str]:
     ]
 
 
+def terms_rows(doc: dict[str, Any]) -> list[list[str]]:
+    """One row per term: claimed p beside the corrected test and its error stratum."""
+    rows = []
+    for t in doc["terms"]:
+        changed = t["conclusion_changed"]
+        rows.append(
+            [
+                t["term"],
+                t["status"],
+                fmt_p(t["claimed_p_value"]),
+                f"F({fmt_df(t['df'])}) = {fmt_num(t['statistic'])}" if t["df"] else "no test",
+                fmt_p(t["p_value"]),
+                t["error_term"] or "-",
+                "-" if changed is None else ("YES" if changed else "no"),
+            ]
+        )
+    return rows
+
+
+TERMS_HEADER = ["term", "status", "claimed p", "corrected test", "p", "error stratum", "changed"]
+
+
+def terms_table(doc: dict[str, Any]) -> list[str]:
+    """The per-term table of the text report."""
+    return _table(terms_rows(doc), TERMS_HEADER)
+
+
 def design_tree(doc: dict[str, Any]) -> list[str]:
     """The strata as an indented tree, each with the terms tested in it."""
     strata = doc.get("design", {}).get("strata", [])
@@ -145,11 +172,7 @@ def render_text(doc: dict[str, Any]) -> str:
     if v["method"]:
         out.append(f"  corrected verdict rests on: {v['method']}")
     if several:
-        for t in doc["terms"]:
-            out.append(
-                f"  term {t['term']}: {t['status']}, corrected p {fmt_p(t['p_value'])} "
-                f"({t['method'] or 'no test'})"
-            )
+        out += ["", *terms_table(doc)]
     out += ["", _wrap(v["summary"]), "", "CLAIM"]
     out.append(
         f"  response: {c['response']}   treatment: {', '.join(c['treatments'])}"
