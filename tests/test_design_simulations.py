@@ -288,21 +288,7 @@ def test_split_plot_balanced(seed: int, labels: str) -> None:
     assert "rows-counted-as-replicates" in _rules(doc)
 
 
-@pytest.mark.parametrize(
-    "seed",
-    [
-        pytest.param(
-            s,
-            marks=_xfail(
-                "plot numbered 1..3 within every block: the labels are read as local to "
-                "variety ('variety:plot', 7-9 units, pairing plots of different blocks) "
-                "instead of to block; variety is tested against 'variety:plot' by the mixed "
-                "model with 2 to 4 df instead of the whole plots with 6 df"
-            ),
-        )
-        for s in SEEDS[:2]
-    ],
-)
+@pytest.mark.parametrize("seed", SEEDS[:2])
 def test_split_plot_plot_labels_restart_within_block(seed: int) -> None:
     d = ds.split_plot(seed, labels="within_block")
     doc = _run(d, treatment=["variety", "nitro"])
@@ -359,7 +345,7 @@ SPLIT_SPLIT_WRONG = (
     ("seed", "labels"),
     [
         pytest.param(1, "global", marks=_xfail(SPLIT_SPLIT_WRONG)),
-        pytest.param(2, "global", marks=_xfail(SPLIT_SPLIT_WRONG)),
+        pytest.param(2, "global"),
         pytest.param(
             1,
             "none",
@@ -570,13 +556,13 @@ def test_crossover_drug_within_subjects(seed: int) -> None:
     check_strata(d, doc, [("block", ("subject",), None)])
     assert doc["verdict"]["status"] == "ok"
     assert "formula-block-as-stratum" in _rules(doc)
-    # Drug alone: 'period' is not a block word, so the model is subject + drug,
-    # error df 36 - 12 - 2 = 22 (valid here: periods are balanced over drugs).
+    # Drug alone: 'period' is a time word crossed with drug, so it is taken as a block
+    # beside the subjects; the model is subject + period + drug, error df 20 again
+    # (periods are balanced over drugs, so random or fixed periods give the same F).
     doc = _run(d, treatment="drug")
-    ref = {"drug": _f(d, "y ~ C(subject) + C(drug)", "C(drug)")}
-    assert ref["drug"][1:] == (2, 22)
-    check_terms(d, doc, [Expect("drug", None, "ok")], ref)
-    check_strata(d, doc, [("block", ("subject",), None)])
+    assert ref["drug"][1:] == (2, 20)
+    check_terms(d, doc, [Expect("drug", None, "ok")], {"drug": ref["drug"]})
+    check_strata(d, doc, [("block", ("period",), None), ("block", ("subject",), None)])
     assert doc["verdict"]["status"] == "ok"
 
 
@@ -584,7 +570,7 @@ def test_crossover_drug_within_subjects(seed: int) -> None:
 def test_crossover_alias_and_unbalanced(seed: int) -> None:
     d = ds.crossover(seed, alias=True)
     doc = _run(d, treatment="drug")
-    ref = {"drug": _f(d, "y ~ C(subject) + C(drug)", "C(drug)")}
+    ref = {"drug": _f(d, "y ~ C(subject) + C(period) + C(drug)", "C(drug)")}
     check_terms(d, doc, [Expect("drug", None, "ok")], ref)
     check_alias(doc, "drug_code")
     d = ds.crossover(seed, drop=0.1)
@@ -594,12 +580,6 @@ def test_crossover_alias_and_unbalanced(seed: int) -> None:
     assert doc["verdict"]["status"] == "ok"
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="subject numbered 1..2 within each Williams sequence (each label has six rows in "
-    "period 1) is read as a 2-level block: drug is tested with 30 error df instead of 20 "
-    "and the subject stratum has 2 levels instead of 12",
-)
 def test_crossover_subjects_numbered_within_sequence() -> None:
     d = ds.crossover(1, labels="within_sequence")
     doc = _run(d, formula="y ~ drug + period + subject")
@@ -650,12 +630,6 @@ def test_nested_plates_compound_against_plates(seed: int) -> None:
     check_strata(d, doc, PLATES_STRATA)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="wells numbered 1..3 within every plate are read as a 3-level block 'well' "
-    "crossed with compound (well is a location word, so its labels are not localised) "
-    "instead of 54 sub-units of the plates; the compound test itself is right",
-)
 def test_nested_plates_wells_numbered_within_plate() -> None:
     d = ds.nested_plates(1)
     doc = _run(d, treatment="compound")

@@ -122,7 +122,8 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
     """Model terms of a formula, and the factors read as blocks rather than treatments.
 
     A factor that enters the formula only as a main effect, whose name says
-    block, place, time or subject, beside at least one other factor, is a
+    block, place, unit or subject (not time: periods and days are usually
+    fixed effects of a claimed model), beside at least one other factor, is a
     block of the design: replicheck puts it in the random structure.
     """
     assert claim.formula is not None
@@ -130,7 +131,10 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
     blocks = [
         f
         for f in claim.treatments
-        if f not in in_interaction and name_hint(f).suggests_unit and len(claim.treatments) > 1
+        if f not in in_interaction
+        and name_hint(f).suggests_unit
+        and name_hint(f).kind != "time"
+        and len(claim.treatments) > 1
     ]
     terms = [
         Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)

@@ -137,13 +137,6 @@ PROCESS_WORDS: frozenset[str] = frozenset(
     {
         "batch",
         "run",
-        "day",
-        "date",
-        "session",
-        "week",
-        "month",
-        "time",
-        "shift",
         "lot",
         "litter",
         "clutch",
@@ -186,35 +179,52 @@ PROCESS_WORDS: frozenset[str] = frozenset(
         "experiment",
         "exp",
         "trial",
-        "round",
-        "wave",
-        "harvest",
-        "season",
-        "year",
         # German, French, Spanish, Portuguese, Italian, Dutch
         "charge",
         "lauf",
-        "tag",
-        "datum",
-        "sitzung",
         "wurf",
         "standort",
-        "jour",
-        "seance",
         "portee",
         "lote",
-        "dia",
-        "fecha",
-        "sesion",
         "camada",
         "sitio",
         "corrida",
-        "sessao",
         "ninhada",
-        "giorno",
-        "sessione",
         "nidiata",
         "partij",
+    }
+)
+
+# Times: groupings of when things were done or measured. They hold units
+# (a day can be a unit of a treatment processed that day) but never restart
+# another column's labels: subjects are measured again in every period.
+TIME_WORDS: frozenset[str] = frozenset(
+    {
+        "day",
+        "date",
+        "session",
+        "week",
+        "month",
+        "time",
+        "shift",
+        "wave",
+        "round",
+        "season",
+        "year",
+        "period",
+        "visit",
+        "harvest",
+        "tag",
+        "datum",
+        "sitzung",
+        "jour",
+        "seance",
+        "dia",
+        "fecha",
+        "sesion",
+        "sessao",
+        "giorno",
+        "sessione",
         "dag",
     }
 )
@@ -341,12 +351,12 @@ def _fold(token: str) -> str:
 class NameHint:
     """What a column's name suggests."""
 
-    kind: str  # container, location, process, individual, label, identifier or none
+    kind: str  # container, location, time, process, individual, label, identifier or none
     word: str | None
 
     @property
     def suggests_unit(self) -> bool:
-        return self.kind in {"container", "location", "process", "individual"}
+        return self.kind in {"container", "location", "time", "process", "individual"}
 
 
 def name_hint(name: str) -> NameHint:
@@ -359,6 +369,7 @@ def name_hint(name: str) -> NameHint:
     for kind, words in (
         ("container", CONTAINER_WORDS),
         ("location", LOCATION_WORDS),
+        ("time", TIME_WORDS),
         ("process", PROCESS_WORDS),
         ("individual", INDIVIDUAL_WORDS),
     ):

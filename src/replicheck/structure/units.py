@@ -275,70 +275,102 @@ def _localise(
     treatments: Sequence[str],
     stated_unit: str | None,
     unit_labels: str,
-) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, str]], list[tuple[str, str]]]:
-    """Replace unit labels that restart within treatment levels by treatment:label groupings.
+) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, ...]], list[tuple[str, str]]]:
+    """Replace unit labels that restart within a parent by parent:label groupings.
 
-    A container-like column ("tank", "cage", "replicate"), or any column under
-    ``--unit-labels local``, that is crossed with a treatment
-    is read as numbering units afresh within each level of the treatment
-    ("tank 1" of every feed is a different tank). The labels may also restart
-    within a grouping that is itself nested in a treatment (wafer 1, 2, 3 of
-    every lot, lots within sources). Of the possible parents with which the
-    column is crossed, one that has a finer possible parent nested in it is
-    dropped (the labels restart within the finest of a chain: lot, not
-    source); of the rest, the one with the fewest parent x label cells is
-    taken (the coarsest), so that in a split-plot design the whole plots are
-    found for the whole-plot treatment and stay whole plots for the others.
+    Labels often restart: tank 1 of every feed, plot 1 of every block, wafer 1
+    of every lot, well 1 of every plate, subject 1 of every sequence. A column
+    is read that way when it is crossed with a possible parent and its name
+    says container (tank, cage, pot, plot, wafer, a replicate number), or,
+    for a parent that is itself a grouping, container, location or individual
+    (plot, well, subject); under ``--unit-labels local`` any column qualifies.
+    Possible parents: treatments (for containers only: a container receives a
+    treatment), and groupings whose names say unit, block, place or subject,
+    or that are nested in a treatment; for subjects any grouping (subject 1
+    of every sequence or cohort). Times never are: subjects are measured
+    again in every period.
+
+    Of the possible parents, one with a finer possible parent nested in it is
+    dropped (labels restart within the finest of a chain: lot, not source).
+    Of the rest, the parent within whose cells the most other treatments are
+    constant is taken (plots within blocks keep their whole-plot treatment),
+    then the one with the fewest cells (the coarsest: in a split plot the
+    whole plots belong to the whole-plot treatment).
     """
     if unit_labels == "global":
         return data, cols, {}, []
-    derived: dict[str, tuple[str, str]] = {}
+    local_mode = unit_labels == "local"
+    current: dict[str, tuple[tuple[str, ...], np.ndarray]] = {
+        c: ((c,), group_codes(data, (c,))) for c in [*cols, *treatments]
+    }
+    trt_codes = {t: current[t][1] for t in treatments}
+
+    def parent_ok(g: str) -> bool:
+        kind = name_hint(g).kind
+        if kind == "time":
+            return False  # subjects are measured again in every period: no restart
+        if name_hint(g).suggests_unit:
+            return True
+        return any(_nested(current[g][1], trt_codes[t]) for t in treatments)
+
+    derived: dict[str, tuple[str, ...]] = {}
     readings: list[tuple[str, str]] = []
-    new_cols: list[str] = []
+    renamed: dict[str, str] = {}
     extra: dict[str, pd.Series] = {}
-    codes = {c: group_codes(data, (c,)) for c in [*cols, *treatments]}
-    nested_groupings = [
-        c
-        for c in cols
-        if any(_nested(codes[c], codes[t]) for t in treatments) and len(np.unique(codes[c])) > 1
-    ]
-    for col in cols:
-        wanted = unit_labels == "local" or name_hint(col).kind == "container"
-        crossing: list[tuple[int, str]] = []
-        if wanted:
-            for parent in [*treatments, *[g for g in nested_groupings if g != col]]:
-                rel = classify(col, parent, data[col], data[parent])
-                if rel.relation == "crossed":
-                    cells = int(np.unique(group_codes(data, (parent, col))).size)
-                    crossing.append((cells, parent))
-        parents = {p for _, p in crossing}
+    order = sorted(cols, key=lambda c: int(current[c][1].max()))
+    for col in order:
+        kind = name_hint(col).kind
+        child_of_trt = local_mode or kind == "container"
+        child_of_group = local_mode or kind in {"container", "location", "individual"}
+        options = [t for t in treatments if child_of_trt]
+        options += [
+            g
+            for g in cols
+            if g != col
+            and child_of_group
+            and name_hint(g).kind != "time"
+            and (parent_ok(g) or kind == "individual")
+        ]
+        codes = current[col][1]
+        crossing: list[str] = []
+        for parent in options:
+            rel = classify(col, parent, pd.Series(codes), pd.Series(current[parent][1]))
+            if rel.relation == "crossed":
+                crossing.append(parent)
         crossing = [
-            (cells, p)
-            for cells, p in crossing
-            if not any(q != p and _nested(codes[q], codes[p]) for q in parents)
+            p
+            for p in crossing
+            if not any(q != p and _nested(current[q][1], current[p][1]) for q in crossing)
         ]
         if not crossing:
-            new_cols.append(col)
             continue
-        _, trt = min(crossing)
-        name = f"{trt}:{col}"
-        derived[name] = (trt, col)
-        extra[name] = pd.Series(group_codes(data, (trt, col)), index=data.index)
-        new_cols.append(name)
+
+        def rank(parent: str, codes: np.ndarray = codes) -> tuple[int, int]:
+            cells = group_codes(pd.DataFrame({"p": current[parent][1], "c": codes}), ("p", "c"))
+            constant = sum(1 for t in treatments if t != parent and _nested(cells, trt_codes[t]))
+            return (-constant, int(cells.max()) + 1)
+
+        parent = min(crossing, key=rank)
+        source = (*current[parent][0], col)
+        name = f"{renamed.get(parent, parent)}:{col}"
+        new_codes = group_codes(data, source)
+        current[col] = (source, new_codes)
+        renamed[col] = name
+        derived[name] = source
+        extra[name] = pd.Series(new_codes, index=data.index)
         example = data[col].dropna().iloc[0]
         readings.append(
             (
                 "labels-local-to-treatment",
-                f"labels of '{col}' repeat under several levels of '{trt}' ('{col}' "
-                f"{example!s} appears under more than one); units that received different "
-                f"treatments must be different units, so replicheck read each {col} within its "
-                f"{trt} ('{name}') as a unit; if the same physical {col} received every "
-                f"treatment, rerun with --unit-labels global",
+                f"labels of '{col}' repeat under several levels of '{parent}' ('{col}' "
+                f"{example!s} appears under more than one), so replicheck read each {col} "
+                f"within its {parent} ('{name}') as a distinct unit; if one physical {col} "
+                f"carries the same label everywhere, rerun with --unit-labels global",
             )
         )
     if extra:
         data = data.assign(**extra)
-    return data, new_cols, derived, readings
+    return data, [renamed.get(c, c) for c in cols], derived, readings
 
 
 def _one_treatment(
@@ -347,7 +379,7 @@ def _one_treatment(
     treatment: str,
     cols: list[str],
     stated: tuple[str, ...],
-    derived: dict[str, tuple[str, str]],
+    derived: dict[str, tuple[str, ...]],
     cells: Mapping[str, CellGrouping],
 ) -> tuple[list[Relation], list[Candidate], UnitChoice, list[tuple[str, str]], list[str]]:
     relations: list[Relation] = []
