@@ -333,18 +333,12 @@ SPLIT_SPLIT_STRATA = [
     ("unit", ("block", "irrigation"), ("block",)),
     ("unit", ("block", "irrigation", "variety"), ("block", "irrigation")),
 ]
-SPLIT_SPLIT_WRONG = (
-    "main_plot and sub_plot are read as labels local to nitro ('nitro:main_plot', "
-    "'nitro:sub_plot'); the sub-plot stratum (block x irrigation x variety, 24 units) "
-    "is never formed: variety is tested against 'block:variety' (6 df) or the residual "
-    "instead of the sub-plots (12 df), and irrigation or nitro against 'nitro:main_plot'"
-)
 
 
 @pytest.mark.parametrize(
     ("seed", "labels"),
     [
-        pytest.param(1, "global", marks=_xfail(SPLIT_SPLIT_WRONG)),
+        pytest.param(1, "global"),
         pytest.param(2, "global"),
         pytest.param(
             1,
@@ -355,26 +349,8 @@ SPLIT_SPLIT_WRONG = (
                 "variety against 'block:variety' with 6 df instead of the sub-plots with 12"
             ),
         ),
-        pytest.param(
-            1,
-            "within_main",
-            marks=_xfail(
-                "sub_plot numbered 1..3 within every main plot is read as local to nitro "
-                "('nitro:sub_plot', 9 units): nitro is tested against it with 3.8 df, "
-                "variety against 'block:variety' with 6 df, irrigation against "
-                "'nitro:main_plot' with 15 df"
-            ),
-        ),
-        pytest.param(
-            1,
-            "within_irrigation",
-            marks=_xfail(
-                "irrigation is right (3 df) but variety is tested against 'block:variety' "
-                "with 6 df and irrigation:variety against a stratum named "
-                "'irrigation:main_plot:block:variety' with 6 df, instead of the sub-plots "
-                "with 12 df"
-            ),
-        ),
+        pytest.param(1, "within_main"),
+        pytest.param(1, "within_irrigation"),
     ],
 )
 def test_split_split_plot_balanced(seed: int, labels: str) -> None:
@@ -388,14 +364,12 @@ def test_split_split_plot_balanced(seed: int, labels: str) -> None:
     check_strata(d, doc, SPLIT_SPLIT_STRATA)
 
 
-@pytest.mark.xfail(strict=True, reason=SPLIT_SPLIT_WRONG)
 def test_split_split_plot_alias_column() -> None:
     d = ds.split_split_plot(1, alias=True)
     doc = _run(d, treatment=["irrigation", "variety", "nitro"])
     check_terms(d, doc, SPLIT_SPLIT, ref_split_split_plot(d))
 
 
-@pytest.mark.xfail(strict=True, reason=SPLIT_SPLIT_WRONG)
 def test_split_split_plot_unbalanced() -> None:
     d = ds.split_split_plot(1, drop=0.1)
     doc = _run(d, treatment=["irrigation", "variety", "nitro"])
@@ -597,20 +571,14 @@ PLATES_STRATA = [
     ("unit", ("compound", "plate"), ("run",)),
     ("subunit", ("compound", "plate", "well"), ("compound", "plate")),
 ]
-CELL_NOT_PLATE = (
-    "run x compound cells are taken as the unit (9 units, error df 4) instead of the "
-    "plates (18 units, error df 13): the cell F test compares cells with rows, so plate "
-    "clustering inside the cells makes them look like units (cells against plates: "
-    "statsmodels p > 0.01)"
-)
 
 
 @pytest.mark.parametrize(
     "seed",
     [
         1,
-        pytest.param(2, marks=_xfail(CELL_NOT_PLATE)),
-        pytest.param(3, marks=_xfail(CELL_NOT_PLATE)),
+        pytest.param(2),
+        pytest.param(3),
     ],
 )
 def test_nested_plates_compound_against_plates(seed: int) -> None:
@@ -657,7 +625,6 @@ def test_nested_plates_alias_column() -> None:
     check_alias(doc, "compound_code")
 
 
-@pytest.mark.xfail(strict=True, reason=CELL_NOT_PLATE + " (here with 10% of reads dropped)")
 def test_nested_plates_unbalanced() -> None:
     d = ds.nested_plates(1, labels="all_global", drop=0.1)
     doc = _run(d, treatment="compound")

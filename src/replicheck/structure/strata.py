@@ -71,16 +71,33 @@ def _dummies(codes: np.ndarray) -> np.ndarray:
 
 
 def cell_evidence(
-    y: np.ndarray, block: np.ndarray, cells: np.ndarray, treatment_cells: np.ndarray
+    y: np.ndarray,
+    block: np.ndarray,
+    cells: np.ndarray,
+    treatment_cells: np.ndarray,
+    within: np.ndarray | None = None,
 ) -> float | None:
     """p-value of the block x treatment cells beyond additive block and full treatment effects.
 
     ``treatment_cells`` codes every combination of all treatment columns, so
     the reduced model holds every treatment term and the block; the full model
-    adds the cells of the block and the treatment in question.
+    adds the cells of the block and the treatment in question. ``within`` is a
+    grouping nested in the cells (plates inside a run x compound cell): the
+    test is then made on its means, so that clustering inside the cells is not
+    mistaken for differences between cells.
     """
     if int(cells.max()) + 1 > MAX_CELLS:
         return None
+    if within is not None:
+        k = int(within.max()) + 1
+        sizes = np.bincount(within, minlength=k)
+        y = np.bincount(within, weights=y, minlength=k) / sizes
+        first = np.zeros(k, dtype=np.int64)
+        first[within[::-1]] = np.arange(within.size)[::-1]
+        block, cells, treatment_cells = block[first], cells[first], treatment_cells[first]
+        block = np.unique(block, return_inverse=True)[1]
+        cells = np.unique(cells, return_inverse=True)[1]
+        treatment_cells = np.unique(treatment_cells, return_inverse=True)[1]
     reduced = np.hstack([_dummies(block), _dummies(treatment_cells)])
     full = np.hstack([reduced, _dummies(cells)])
     try:
@@ -95,6 +112,7 @@ def crossed_cells(
     cols: Sequence[str],
     treatments: Sequence[str],
     stated: tuple[str, ...],
+    groupings: Sequence[str] = (),
 ) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, str]], list[CellGrouping]]:
     """Add block x treatment cell columns for groupings crossed with a treatment.
 
@@ -121,7 +139,8 @@ def crossed_cells(
             if mean_size < 1.5:
                 continue
             name = f"{col}:{trt}"
-            p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt)
+            inner = _coarsest_inside(data, cells, groupings)
+            p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt, inner)
             is_stated = set(stated) == {col, trt}
             credible = is_stated or (p is not None and p < EVIDENCE_P)
             extra[name] = pd.Series(cells, index=data.index)
@@ -131,6 +150,22 @@ def crossed_cells(
     if extra:
         data = data.assign(**extra)
     return data, list(extra), derived, found
+
+
+def _coarsest_inside(
+    data: pd.DataFrame, cells: np.ndarray, groupings: Sequence[str]
+) -> np.ndarray | None:
+    """The coarsest grouping nested in the cells with more levels than cells and fewer than rows."""
+    n_cells = int(cells.max()) + 1
+    best: np.ndarray | None = None
+    for g in groupings:
+        codes = group_codes(data, (g,))
+        k = int(codes.max()) + 1
+        if k <= n_cells or k >= len(data) or not _nested_in(codes, cells):
+            continue
+        if best is None or k < int(best.max()) + 1:
+            best = codes
+    return best
 
 
 def block_evidence(y: np.ndarray, block: np.ndarray, treatment_cells: np.ndarray) -> float | None:

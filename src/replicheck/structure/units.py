@@ -332,6 +332,8 @@ def _localise(
             and (parent_ok(g) or kind == "individual")
         ]
         codes = current[col][1]
+        if any(_nested(codes, trt_codes[t]) for t in treatments):
+            continue  # already a unit of a treatment: its labels are its own
         crossing: list[str] = []
         for parent in options:
             rel = classify(col, parent, pd.Series(codes), pd.Series(current[parent][1]))
@@ -491,7 +493,9 @@ def infer_structure(
     originals = [
         c for c in cols if c not in derived and (name_hint(c).suggests_unit or c in stated)
     ]
-    data, cell_cols, cell_parts, cells = crossed_cells(data, y, originals, main_terms, stated)
+    data, cell_cols, cell_parts, cells = crossed_cells(
+        data, y, originals, main_terms, stated, groupings=cols
+    )
     derived.update(cell_parts)
     evidence = {c.name: c for c in cells}
     for term in terms:
