@@ -605,12 +605,6 @@ def test_nested_plates_wells_numbered_within_plate() -> None:
     check_strata(d, doc, PLATES_STRATA)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="plates numbered 1..6 within each compound are read as a 6-level block 'plate' "
-    "(nested in run) plus 'plate:compound' units: compound is tested with 10 error df "
-    "instead of 13",
-)
 def test_nested_plates_numbered_within_compound() -> None:
     d = ds.nested_plates(1, labels="within_compound")
     doc = _run(d, treatment="compound")
@@ -664,17 +658,24 @@ def test_factorial_alias_column(seed: int) -> None:
     check_alias(doc, "N_code")
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="block numbered 1..2 within each field is read as two crossed blocks 'block' (2 "
-    "levels) and 'field' (4): N:P:K is tested against 'block:field' with 2 df instead of "
-    "the 8 blocks with 6 df",
-)
 def test_factorial_blocks_numbered_within_field() -> None:
+    # Blocks numbered 1..2 within every field: each field x block label is one block.
+    # A field holding two blocks is itself read as a (super)block, so the blocks are
+    # tested within fields: N:P:K on the 8 block means with field fitted first has
+    # error df 8 - 4 - 1 = 3 (computed here with statsmodels on the block means).
     d = ds.confounded_factorial(1, labels="within_field")
     doc = _run(d, treatment=["N", "P", "K"])
-    check_terms(d, doc, _factorial(("field", "block")), ref_factorial(d, ["field", "block"]))
-    check_strata(d, doc, [("block", ("field", "block"), None)])
+    npk = d.assign(npk=(2 * d["N"] - 1) * (2 * d["P"] - 1) * (2 * d["K"] - 1))
+    bm = npk.groupby(["field", "block"], as_index=False).agg(y=("y", "mean"), npk=("npk", "first"))
+    ref = _f(bm, "y ~ C(field) + C(npk)", "C(npk)")
+    assert ref[1:] == (1, 3)
+    term = next(t for t in doc["terms"] if t["term"] == "N:P:K")
+    assert term["df"] == pytest.approx(list(ref[1:]), rel=1e-9)
+    assert term["statistic"] == pytest.approx(ref[0], rel=1e-6)
+    strata = {s["name"]: s for s in doc["design"]["strata"]}
+    assert strata["field"]["kind"] == "block" and strata["field"]["n_levels"] == 4
+    assert strata["field:block"]["n_levels"] == 8
+    assert strata["field:block"]["parent"] == "field"
 
 
 @pytest.mark.parametrize(

@@ -84,6 +84,10 @@ CONTAINER_WORDS: frozenset[str] = frozenset(
     ]
 )
 
+# Blocks of the design: groupings that hold units under several treatments
+# and carry an effect of their own, whatever else their cells are.
+BLOCK_WORDS: frozenset[str] = frozenset({"block", "blk", "bloc", "bloque", "blok", "blocco"})
+
 # Places that hold many units, often under several treatments at once (a
 # bench, a shelf, a block). When crossed with treatment they are blocks, not
 # renumbered units; when a treatment sits in one of them they can still be
@@ -101,7 +105,6 @@ LOCATION_WORDS: frozenset[str] = frozenset(
         "greenhouse",
         "glasshouse",
         "tunnel",
-        "block",
         "chamber",
         "kiln",
         "oven",
@@ -120,7 +123,6 @@ LOCATION_WORDS: frozenset[str] = frozenset(
         "stream",
         "pool",
         "bay",
-        "blk",
         "ch",
         "kammer",
         "schale",
@@ -351,12 +353,12 @@ def _fold(token: str) -> str:
 class NameHint:
     """What a column's name suggests."""
 
-    kind: str  # container, location, time, process, individual, label, identifier or none
+    kind: str  # container, block, location, time, process, individual, label, identifier, none
     word: str | None
 
     @property
     def suggests_unit(self) -> bool:
-        return self.kind in {"container", "location", "time", "process", "individual"}
+        return self.kind in {"container", "block", "location", "time", "process", "individual"}
 
 
 def name_hint(name: str) -> NameHint:
@@ -368,6 +370,7 @@ def name_hint(name: str) -> NameHint:
     toks = tokens(name)
     for kind, words in (
         ("container", CONTAINER_WORDS),
+        ("block", BLOCK_WORDS),
         ("location", LOCATION_WORDS),
         ("time", TIME_WORDS),
         ("process", PROCESS_WORDS),

@@ -139,7 +139,7 @@ def crossed_cells(
             if mean_size < 1.5:
                 continue
             name = f"{col}:{trt}"
-            inner = _coarsest_inside(data, cells, groupings)
+            inner = coarsest_inside(data, cells, groupings)
             p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt, inner)
             is_stated = set(stated) == {col, trt}
             credible = is_stated or (p is not None and p < EVIDENCE_P)
@@ -152,7 +152,7 @@ def crossed_cells(
     return data, list(extra), derived, found
 
 
-def _coarsest_inside(
+def coarsest_inside(
     data: pd.DataFrame, cells: np.ndarray, groupings: Sequence[str]
 ) -> np.ndarray | None:
     """The coarsest grouping nested in the cells with more levels than cells and fewer than rows."""

@@ -31,10 +31,13 @@ from replicheck.structure.relations import (
     pair_relation,
 )
 from replicheck.structure.strata import (
+    EVIDENCE_P,
     CellGrouping,
     Stratum,
     block_evidence,
     build_strata,
+    cell_evidence,
+    coarsest_inside,
     crossed_cells,
 )
 
@@ -275,6 +278,7 @@ def _localise(
     treatments: Sequence[str],
     stated_unit: str | None,
     unit_labels: str,
+    y: np.ndarray | None = None,
 ) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, ...]], list[tuple[str, str]]]:
     """Replace unit labels that restart within a parent by parent:label groupings.
 
@@ -284,8 +288,10 @@ def _localise(
     says container (tank, cage, pot, plot, wafer, a replicate number), or,
     for a parent that is itself a grouping, container, location or individual
     (plot, well, subject); under ``--unit-labels local`` any column qualifies.
-    Possible parents: treatments (for containers only: a container receives a
-    treatment), and groupings whose names say unit, block, place or subject,
+    Possible parents: treatments (for containers: a container receives a
+    treatment; for places such as plates only when their cells with the
+    treatment cluster, as plates that each received one compound do), and
+    groupings whose names say unit, block, place or subject,
     or that are nested in a treatment; for subjects any grouping (subject 1
     of every sequence or cohort). Times never are: subjects are measured
     again in every period.
@@ -317,12 +323,15 @@ def _localise(
     readings: list[tuple[str, str]] = []
     renamed: dict[str, str] = {}
     extra: dict[str, pd.Series] = {}
+    parent_of: dict[str, str] = {}
     order = sorted(cols, key=lambda c: int(current[c][1].max()))
     for col in order:
         kind = name_hint(col).kind
         child_of_trt = local_mode or kind == "container"
-        child_of_group = local_mode or kind in {"container", "location", "individual"}
+        child_of_group = local_mode or kind in {"container", "block", "location", "individual"}
         options = [t for t in treatments if child_of_trt]
+        if kind == "location" and y is not None and not child_of_trt:
+            options += [t for t in treatments if _cells_cluster(data, y, col, t, cols, treatments)]
         options += [
             g
             for g in cols
@@ -353,13 +362,26 @@ def _localise(
             return (-constant, int(cells.max()) + 1)
 
         parent = min(crossing, key=rank)
-        source = (*current[parent][0], col)
-        name = f"{renamed.get(parent, parent)}:{col}"
-        new_codes = group_codes(data, source)
-        current[col] = (source, new_codes)
+        parent_of[col] = parent
+        current[col] = ((*current[parent][0], col), group_codes(data, (*current[parent][0], col)))
+    # A parent localised after its child (wells before the plates that restart
+    # within compounds): rebuild every chain from the top, parents first.
+    final: dict[str, tuple[str, ...]] = {}
+
+    def chain(col: str) -> tuple[str, ...]:
+        if col not in parent_of:
+            return (col,)
+        if col not in final:
+            final[col] = (*chain(parent_of[col]), col)
+        return final[col]
+
+    for col in parent_of:
+        source = chain(col)
+        name = ":".join(source)
         renamed[col] = name
         derived[name] = source
-        extra[name] = pd.Series(new_codes, index=data.index)
+        extra[name] = pd.Series(group_codes(data, source), index=data.index)
+        parent = ":".join(chain(parent_of[col]))
         example = data[col].dropna().iloc[0]
         readings.append(
             (
@@ -373,6 +395,26 @@ def _localise(
     if extra:
         data = data.assign(**extra)
     return data, [renamed.get(c, c) for c in cols], derived, readings
+
+
+def _cells_cluster(
+    data: pd.DataFrame,
+    y: np.ndarray,
+    col: str,
+    treatment: str,
+    cols: Sequence[str],
+    treatments: Sequence[str],
+) -> bool:
+    """Whether the cells of a place and a treatment differ beyond their main effects."""
+    rel = classify(col, treatment, data[col], data[treatment])
+    if rel.relation != "crossed":
+        return False
+    cells = group_codes(data, (col, treatment))
+    if len(data) / (int(cells.max()) + 1) < 1.5:
+        return False
+    inner = coarsest_inside(data, cells, [c for c in cols if c != col])
+    p = cell_evidence(y, group_codes(data, (col,)), cells, group_codes(data, treatments), inner)
+    return p is not None and p < EVIDENCE_P
 
 
 def _one_treatment(
@@ -488,7 +530,7 @@ def infer_structure(
     units: list[UnitChoice] = []
     main_terms = [t for t in terms if t not in interactions]
     cols, readings = _drop_aliases(data, cols, main_terms, single)
-    data, cols, derived, local = _localise(data, cols, main_terms, single, unit_labels)
+    data, cols, derived, local = _localise(data, cols, main_terms, single, unit_labels, y)
     readings += local
     originals = [
         c for c in cols if c not in derived and (name_hint(c).suggests_unit or c in stated)
@@ -510,7 +552,9 @@ def infer_structure(
         candidates += c
         units.append(choice)
     readings += _cell_readings(cells, units)
-    blocks = _blocks(data, y, cols, main_terms, relations, derived)
+    chosen = {u.unit for u in units}
+    local_cells = {c.block for c in cells if c.name in chosen}
+    blocks = _blocks(data, y, cols, main_terms, relations, derived, local_cells)
     strata = _strata(data, terms, units, candidates, blocks)
     factors = {t: data[t] for t in main_terms}
     for st in strata:
@@ -553,11 +597,15 @@ def _blocks(
     treatments: Sequence[str],
     relations: Sequence[Relation],
     derived: Mapping[str, tuple[str, ...]],
+    local_cells: set[str] = frozenset(),  # type: ignore[assignment]
 ) -> list[Block]:
     """Groupings crossed with every treatment whose names say block, place, time or subject.
 
     A crossed column with an effect but no such name (sex, genotype) is more
     likely a covariate than a block and is left out of the random structure.
+    A place or container whose cells with a treatment are that treatment's
+    units (plates numbered 1..6 within every compound) is a local label, not a
+    block; a column named as a block, time or subject stays a block.
     """
     crossed: dict[str, int] = {}
     for r in relations:
@@ -574,6 +622,8 @@ def _blocks(
         p = block_evidence(y, codes, all_trt)
         if not hint.suggests_unit:
             continue  # an unnamed crossed column with an effect is more likely a covariate
+        if col in local_cells and hint.kind in {"location", "container"}:
+            continue  # its cells are the units: the labels restart within the treatment
         reason = f"the name suggests a {hint.kind} ('{hint.word}')"
         if p is not None:
             reason += f"; rows differ between its levels beyond the treatment effects: p = {p:.2g}"
