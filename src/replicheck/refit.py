@@ -23,6 +23,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import stats as sps
 
+from replicheck.partitions import is_nested, same_partition
 from replicheck.stats.classic import DesignError, ols_term_f, oneway_anova, two_sample_t
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
@@ -149,7 +150,7 @@ def _unit_means(
     unit_level[t.unit] = t.codes  # units are nested in the term's levels
     unit_blocks = []
     for codes in (blocks or {}).values():
-        if _same_partition(codes, t.unit) or not _nested_codes(t.unit, codes):
+        if same_partition(codes, t.unit) or not is_nested(t.unit, codes):
             continue
         per_unit = np.zeros(n_units, dtype=np.int64)
         per_unit[t.unit] = codes
@@ -176,10 +177,6 @@ def _unit_means(
         (float(r.df[0]), float(r.df[1])),
         float(r.p_value),
     )
-
-
-def _nested_codes(fine: np.ndarray, coarse: np.ndarray) -> bool:
-    return np.unique(fine * (int(coarse.max()) + 1) + coarse).size == int(fine.max()) + 1
 
 
 def whitened(L: np.ndarray, X: np.ndarray) -> np.ndarray:
@@ -300,7 +297,7 @@ def _random_units(terms: Sequence[TermInput], n: int) -> dict[str, np.ndarray]:
             continue
         if int(t.unit.max()) + 1 >= n or t.unit_name in units:
             continue
-        if any(_same_partition(t.unit, other) for other in units.values()):
+        if any(same_partition(t.unit, other) for other in units.values()):
             continue
         units[t.unit_name] = t.unit
     return units
@@ -363,15 +360,10 @@ def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis
 def _distinct(strata: Mapping[str, np.ndarray], n: int) -> dict[str, np.ndarray]:
     out: dict[str, np.ndarray] = {}
     for name, codes in strata.items():
-        if int(codes.max()) + 1 >= n or any(_same_partition(codes, c) for c in out.values()):
+        if int(codes.max()) + 1 >= n or any(same_partition(codes, c) for c in out.values()):
             continue
         out[name] = codes
     return out
-
-
-def _same_partition(a: np.ndarray, b: np.ndarray) -> bool:
-    pairs = np.unique(a * (int(b.max()) + 1) + b).size
-    return pairs == int(a.max()) + 1 == int(b.max()) + 1
 
 
 def _mixed_analysis(
@@ -478,7 +470,7 @@ def refit(
             continue
         rname = None
         if t.unit is not None:
-            rname = next((k for k, u in random.items() if _same_partition(t.unit, u)), None)
+            rname = next((k for k, u in random.items() if same_partition(t.unit, u)), None)
         has_unit = rname is not None
         if has_unit:
             um = _unit_means(t, y, blocks)

@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.partitions import is_nested
 from replicheck.stats.classic import DesignError, ols_term_f
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import classify, group_codes
@@ -161,7 +162,7 @@ def coarsest_inside(
     for g in groupings:
         codes = group_codes(data, (g,))
         k = int(codes.max()) + 1
-        if k <= n_cells or k >= len(data) or not _nested_in(codes, cells):
+        if k <= n_cells or k >= len(data) or not is_nested(codes, cells):
             continue
         if best is None or k < int(best.max()) + 1:
             best = codes
@@ -178,12 +179,6 @@ def block_evidence(y: np.ndarray, block: np.ndarray, treatment_cells: np.ndarray
         return float(ols_term_f(y, full, reduced).p_value)
     except DesignError:
         return None
-
-
-def _nested_in(fine: np.ndarray, coarse: np.ndarray) -> bool:
-    """Whether every level of ``fine`` lies inside one level of ``coarse``."""
-    pairs = np.unique(fine * (int(coarse.max()) + 1) + coarse)
-    return pairs.size == int(fine.max()) + 1
 
 
 def build_strata(
@@ -205,7 +200,7 @@ def build_strata(
             for h in names
             if h != g
             and int(groupings[h][1].max()) < int(codes.max())
-            and _nested_in(codes, groupings[h][1])
+            and is_nested(codes, groupings[h][1])
         ]
         parent = max(parents, key=lambda h: int(groupings[h][1].max())) if parents else None
         terms = tuple(t for t, s in term_strata.items() if s == g)

@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from replicheck.errors import InputError
+from replicheck.partitions import is_nested, same_partition
 from replicheck.stats.clustering import anova_components
 from replicheck.structure.names import NameHint, name_hint, tokens
 from replicheck.structure.relations import (
@@ -317,7 +318,7 @@ def _localise(
             return False  # subjects are measured again in every period: no restart
         if name_hint(g).suggests_unit:
             return True
-        return any(_nested(current[g][1], trt_codes[t]) for t in treatments)
+        return any(is_nested(current[g][1], trt_codes[t]) for t in treatments)
 
     derived: dict[str, tuple[str, ...]] = {}
     readings: list[tuple[str, str]] = []
@@ -341,7 +342,7 @@ def _localise(
             and (parent_ok(g) or kind == "individual")
         ]
         codes = current[col][1]
-        if any(_nested(codes, trt_codes[t]) for t in treatments):
+        if any(is_nested(codes, trt_codes[t]) for t in treatments):
             continue  # already a unit of a treatment: its labels are its own
         crossing: list[str] = []
         for parent in options:
@@ -351,14 +352,14 @@ def _localise(
         crossing = [
             p
             for p in crossing
-            if not any(q != p and _nested(current[q][1], current[p][1]) for q in crossing)
+            if not any(q != p and is_nested(current[q][1], current[p][1]) for q in crossing)
         ]
         if not crossing:
             continue
 
         def rank(parent: str, codes: np.ndarray = codes) -> tuple[int, int]:
             cells = group_codes(pd.DataFrame({"p": current[parent][1], "c": codes}), ("p", "c"))
-            constant = sum(1 for t in treatments if t != parent and _nested(cells, trt_codes[t]))
+            constant = sum(1 for t in treatments if t != parent and is_nested(cells, trt_codes[t]))
             return (-constant, int(cells.max()) + 1)
 
         parent = min(crossing, key=rank)
@@ -645,7 +646,7 @@ def _strata(
     def add(name: str, columns: tuple[str, ...], kind: str) -> str:
         codes = group_codes(data, columns)
         for other, (_, oc, _) in groupings.items():
-            if _same(codes, oc):
+            if same_partition(codes, oc):
                 return other
         groupings[name] = (columns, codes, kind)
         return name
@@ -667,18 +668,9 @@ def _strata(
             if c.n_units <= u.n_units or c.n_units >= n:
                 continue
             codes = group_codes(data, c.columns)
-            if _nested(codes, unit_codes_):
+            if is_nested(codes, unit_codes_):
                 add(c.name, c.columns, "subunit")
     return build_strata(groupings, term_strata, n)
-
-
-def _same(a: np.ndarray, b: np.ndarray) -> bool:
-    k = int(b.max()) + 1
-    return np.unique(a * k + b).size == int(a.max()) + 1 == k
-
-
-def _nested(fine: np.ndarray, coarse: np.ndarray) -> bool:
-    return np.unique(fine * (int(coarse.max()) + 1) + coarse).size == int(fine.max()) + 1
 
 
 def _cell_readings(
