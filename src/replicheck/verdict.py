@@ -16,6 +16,7 @@ from replicheck.clustering import Clustering
 from replicheck.numbers import p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
+from replicheck.structure.names import name_hint
 from replicheck.structure.units import Structure, UnitChoice
 
 SEVERITIES = ("error", "warning", "note")
@@ -469,37 +470,40 @@ def _dropped(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("crossed-grouping", "a grouping is crossed with treatment")
+@rule("crossed-grouping", "a block, day or subject crossed with the treatments")
 def _crossed(ev: Evidence) -> Iterator[Finding]:
     used = {c for t in ev.terms for c in t.unit.columns}
-    derived = {r.column for r in ev.structure.relations if ":" in r.column}
     blocks = {b.name for b in ev.structure.blocks}
-    seen: set[str] = set()
+    crossed: dict[str, list[str]] = {}
+    detail: dict[str, str] = {}
     for r in ev.structure.relations:
-        if r.relation != "crossed" or r.column in used or r.column in derived:
+        if r.relation != "crossed" or r.column in used or ":" in r.column:
             continue
-        if r.column in blocks:
-            if r.column not in seen:
-                seen.add(r.column)
-                yield Finding(
-                    "crossed-grouping",
-                    "note",
-                    f"'{r.column}' is crossed with the treatments ({r.detail}); it is not a unit "
-                    f"of the treatments but a block, and the corrected model holds it as a "
-                    f"random effect.",
-                    f"Check that '{r.column}' was a blocking or subject factor in the design.",
-                    (r.column,),
-                )
-            continue
-        yield Finding(
-            "crossed-grouping",
-            "note",
-            f"'{r.column}' is crossed with '{r.treatment}': {r.detail}. It is not a unit of the "
-            f"treatment, but it may be a block whose effect belongs in the model.",
-            f"If '{r.column}' is a block or a repeatedly measured subject, say so in the "
-            f"analysis; it does not inflate n the way a unit does.",
-            (r.column, r.treatment),
-        )
+        if r.column not in blocks and not name_hint(r.column).suggests_unit:
+            continue  # an unnamed crossed column is a covariate: nothing to say
+        crossed.setdefault(r.column, []).append(r.treatment)
+        detail.setdefault(r.column, r.detail)
+    for col, treatments in crossed.items():
+        names = ", ".join(f"'{t}'" for t in treatments)
+        if col in blocks:
+            yield Finding(
+                "crossed-grouping",
+                "note",
+                f"'{col}' is crossed with {names} ({detail[col]}); it is not a unit of the "
+                f"treatments but a block, and the corrected model holds it as a random effect.",
+                f"Check that '{col}' was a blocking or subject factor in the design.",
+                (col,),
+            )
+        else:
+            yield Finding(
+                "crossed-grouping",
+                "note",
+                f"'{col}' is crossed with {names} ({detail[col]}). It is not a unit of the "
+                f"treatments, but it may be a block whose effect belongs in the model.",
+                f"If '{col}' is a block or a repeatedly measured subject, say so in the "
+                f"analysis; it does not inflate n the way a unit does.",
+                (col, *treatments),
+            )
 
 
 def decide(ev: Evidence) -> Verdict:
