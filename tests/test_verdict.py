@@ -131,3 +131,12 @@ def test_summary_and_caution_are_always_present() -> None:
         assert doc["verdict"]["summary"]
         assert "screening aid" in doc["caution"]
         assert "statistician" in doc["caution"]
+
+
+def test_every_rule_is_documented() -> None:
+    # docs/rules.md is the user-facing list of rules; each registered rule has a section.
+    from pathlib import Path
+
+    doc = (Path(__file__).parent.parent / "docs" / "rules.md").read_text()
+    missing = [name for name in RULES if f"## {name} (" not in doc]
+    assert missing == []
