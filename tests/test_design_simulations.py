@@ -633,7 +633,8 @@ NPK_TERMS = ("N", "P", "K", "N:P", "N:K", "P:K")
 
 def _factorial(block: tuple[str, ...]) -> list[Expect]:
     out = [Expect(t, None, "ok") for t in NPK_TERMS]
-    return [*out, Expect("N:P:K", block, "pseudoreplicated", unit=None)]
+    # N:P:K is replicated only by blocks: its unit is reported as the block.
+    return [*out, Expect("N:P:K", block, "pseudoreplicated")]
 
 
 @pytest.mark.parametrize("seed", SEEDS)
@@ -678,22 +679,7 @@ def test_factorial_blocks_numbered_within_field() -> None:
     assert strata["field:block"]["parent"] == "field"
 
 
-@pytest.mark.parametrize(
-    "seed",
-    [
-        pytest.param(
-            s,
-            marks=_xfail(
-                "with 10% of rows dropped N:P:K is still constant within every block, "
-                "but it is reported with error_term 'residual' and status ok (no "
-                "term-in-block-stratum finding); the mixed model's Satterthwaite df "
-                "(about 6) do reflect the blocks. docs/method.md lists the block-aliased "
-                "term search as balanced-only"
-            ),
-        )
-        for s in SEEDS[:2]
-    ],
-)
+@pytest.mark.parametrize("seed", SEEDS[:2])
 def test_factorial_unbalanced(seed: int) -> None:
     d = ds.confounded_factorial(seed, drop=0.1)
     doc = _run(d, treatment=["N", "P", "K"])

@@ -31,7 +31,7 @@ from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
-from replicheck.structure.terms import Term, drop_unreplicated, model_terms, term_values
+from replicheck.structure.terms import Term, drop_unreplicated, interaction_levels, model_terms
 from replicheck.structure.units import Structure, UnitChoice, infer_structure, unit_codes
 from replicheck.verdict import Evidence, TermEvidence, decide
 
@@ -302,7 +302,7 @@ def audit(
     interactions = [t.name for t in terms if t.is_interaction]
     for t in terms:
         if t.is_interaction:
-            frame[t.name] = term_values(frame, t.factors)
+            frame[t.name] = interaction_levels(frame, t.factors)
     structure = infer_structure(
         frame,
         c.response,

@@ -148,6 +148,17 @@ def stratum_of(t: TermEvidence) -> str | None:
     return None if exact is None else exact.stratum
 
 
+def block_of(t: TermEvidence, ev: Evidence) -> str | None:
+    """The block a term is confounded with (its stratum is a block), if any."""
+    for st in ev.structure.strata:
+        if st.kind == "block" and t.term in st.terms:
+            return st.name
+    stratum = stratum_of(t)
+    if t.unit.unit is None and stratum not in (None, "residual"):
+        return stratum
+    return None
+
+
 def term_status(t: TermEvidence, ev: Evidence) -> str:
     """The status of one term from its unit and, for the claimed term, the reported df."""
     u = t.unit
@@ -204,7 +215,7 @@ def _confounded(ev: Evidence) -> Iterator[Finding]:
 def _pseudo(ev: Evidence) -> Iterator[Finding]:
     for t in _pseudo_terms(ev):
         u = t.unit
-        if u.unit is None:
+        if u.unit is None or block_of(t, ev) is not None:
             continue  # reported by term-in-block-stratum
         claimed = t.analysis("as_claimed")
         assert claimed is not None
@@ -245,24 +256,22 @@ def _reconciled(ev: Evidence) -> Iterator[tuple[str, Reconciliation]]:
 @rule("term-in-block-stratum", "an interaction is confounded with blocks")
 def _block_stratum(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
-        stratum = stratum_of(t)
-        if t.unit.unit is not None or stratum in (None, "residual"):
+        block = block_of(t, ev)
+        if block is None:
             continue
-        exact = t.analysis("strata_anova")
-        assert exact is not None
-        test = (
-            f"tested against the {stratum} stratum: {_f(exact)}"
-            if exact.p_value is not None
-            else f"the {stratum} stratum has no residual degrees of freedom, so it is untestable"
-        )
+        corrected = t.corrected
+        if corrected is not None and corrected.p_value is not None:
+            test = f"tested between {block} levels: {_f(corrected)}"
+        else:
+            test = f"the {block} stratum has no residual degrees of freedom, so it is untestable"
         yield Finding(
             "term-in-block-stratum",
             "error" if _changed(t, ev) else "warning",
-            f"'{t.term}' is constant within each level of '{stratum}' (the design confounds it "
+            f"'{t.term}' is constant within each level of '{block}' (the design confounds it "
             f"with the blocks), so it is estimated between blocks, not between rows; {test}.",
-            f"Test '{t.term}' against the variation between {stratum} levels, or report it as "
+            f"Test '{t.term}' against the variation between {block} levels, or report it as "
             f"confounded with blocks.",
-            (*t.factors, stratum),
+            (*t.factors, block),
         )
 
 

@@ -6,6 +6,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from itertools import combinations
 
+import numpy as np
 import pandas as pd
 
 SEPARATOR = ":"
@@ -32,6 +33,27 @@ def term_values(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
     for part in parts[1:]:
         out = out + " & " + part
     return out
+
+
+def interaction_levels(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
+    """The levels of an interaction contrast: rows alike in its sum-to-zero coded columns.
+
+    For factors with more than two levels these are the combinations of levels;
+    for two-level factors the contrast has two levels (the sign of the product
+    of the +1/-1 codes), so that an interaction the design confounds with
+    blocks (N:P:K constant within every block) is seen as constant there.
+    """
+    n = len(data)
+    block = np.ones((n, 1))
+    for f in factors:
+        codes, uniques = pd.factorize(data[f], sort=True)
+        k = len(uniques)
+        cols = np.zeros((n, max(k - 1, 1)))
+        for j in range(k - 1):
+            cols[:, j] = (codes == j).astype(float) - (codes == k - 1)
+        block = (block[:, :, None] * cols[:, None, :]).reshape(n, -1)
+    keys = [" ".join(f"{v:+.0f}" for v in row) for row in block]
+    return pd.Series(keys, index=data.index)
 
 
 def unreplicated(data: pd.DataFrame, treatments: Sequence[str]) -> bool:
