@@ -491,21 +491,7 @@ def test_repeated_measures_mice_numbered_within_diet_stated_local(seed: int) -> 
     check_strata(d, doc, [("unit", ("diet", "mouse"), None)])
 
 
-@pytest.mark.parametrize(
-    "seed",
-    [
-        pytest.param(
-            s,
-            marks=_xfail(
-                "mouse numbered 1..6 within each diet (every mouse label has two rows in "
-                "the same week, one per diet) is read by default as a 6-level block crossed "
-                "with diet plus implicit 'mouse:diet' plots: diet is tested with 5 df "
-                "instead of 10, and a bogus 'mouse' block stratum is added"
-            ),
-        )
-        for s in SEEDS[:2]
-    ],
-)
+@pytest.mark.parametrize("seed", SEEDS[:2])
 def test_repeated_measures_mice_numbered_within_diet(seed: int) -> None:
     d = ds.repeated_measures(seed, labels="within_diet")
     doc = _run(d, treatment=["diet", "week"])

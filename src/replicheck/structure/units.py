@@ -294,8 +294,9 @@ def _localise(
     treatment cluster, as plates that each received one compound do), and
     groupings whose names say unit, block, place or subject,
     or that are nested in a treatment; for subjects any grouping (subject 1
-    of every sequence or cohort). Times never are: subjects are measured
-    again in every period.
+    of every sequence or cohort), and a treatment when one subject label
+    carries two of its levels at the same time point. Times never are:
+    subjects are measured again in every period.
 
     Of the possible parents, one with a finer possible parent nested in it is
     dropped (labels restart within the finest of a chain: lot, not source).
@@ -331,6 +332,10 @@ def _localise(
         child_of_trt = local_mode or kind == "container"
         child_of_group = local_mode or kind in {"container", "block", "location", "individual"}
         options = [t for t in treatments if child_of_trt]
+        if kind == "individual" and not child_of_trt:
+            options += [
+                t for t in treatments if _two_places_at_once(data, col, t, [*cols, *treatments])
+            ]
         if kind == "location" and y is not None and not child_of_trt:
             options += [t for t in treatments if _cells_cluster(data, y, col, t, cols, treatments)]
         options += [
@@ -354,6 +359,9 @@ def _localise(
             for p in crossing
             if not any(q != p and is_nested(current[q][1], current[p][1]) for q in crossing)
         ]
+        if kind == "individual" and any(p not in treatments for p in crossing):
+            # subject 1 of every sequence: a grouping explains the restart before a treatment
+            crossing = [p for p in crossing if p not in treatments]
         if not crossing:
             continue
 
@@ -396,6 +404,21 @@ def _localise(
     if extra:
         data = data.assign(**extra)
     return data, [renamed.get(c, c) for c in cols], derived, readings
+
+
+def _two_places_at_once(data: pd.DataFrame, col: str, treatment: str, cols: Sequence[str]) -> bool:
+    """Whether one subject label has two treatment levels at the same time point.
+
+    A subject cannot receive two treatments at once: when a label carries
+    different levels of a treatment in the same period, week or session, the
+    labels must restart within the treatment (mouse 1 of every diet).
+    """
+    times = [c for c in cols if c not in (col, treatment) and name_hint(c).kind == "time"]
+    for t in times:
+        per_cell = data.groupby([col, t], observed=True)[treatment].nunique()
+        if bool((per_cell > 1).any()):
+            return True
+    return False
 
 
 def _cells_cluster(
