@@ -344,9 +344,10 @@ SPLIT_SPLIT_STRATA = [
             1,
             "none",
             marks=_xfail(
-                "without plot columns only 'block:variety' is formed: irrigation is tested "
-                "against the residual with 45 df instead of the main plots with 3 df, "
-                "variety against 'block:variety' with 6 df instead of the sub-plots with 12"
+                "without plot columns the sub-plots (block x irrigation x variety cells) are "
+                "found, but the main plots (block x irrigation cells) do not pass the cell "
+                "test (p > 0.01 on 3 df), so irrigation is tested against the sub-plots with "
+                "15 df instead of the main plots with 3 df"
             ),
         ),
         pytest.param(1, "within_main"),

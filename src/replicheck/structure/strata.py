@@ -22,6 +22,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from itertools import combinations
 
 import numpy as np
 import pandas as pd
@@ -36,6 +37,8 @@ from replicheck.structure.relations import classify, group_codes
 EVIDENCE_P = 0.01
 # Dense least squares on more cell columns than this is too slow for a screen.
 MAX_CELLS = 2000
+# Cells of a block with combinations of at most this many treatments.
+MAX_CELL_FACTORS = 3
 
 
 @dataclass(frozen=True)
@@ -75,31 +78,42 @@ def cell_evidence(
     y: np.ndarray,
     block: np.ndarray,
     cells: np.ndarray,
-    treatment_cells: np.ndarray,
+    treatments: Sequence[np.ndarray],
     within: np.ndarray | None = None,
+    containers: Sequence[np.ndarray] = (),
 ) -> float | None:
     """p-value of the block x treatment cells beyond additive block and full treatment effects.
 
-    ``treatment_cells`` codes every combination of all treatment columns, so
-    the reduced model holds every treatment term and the block; the full model
-    adds the cells of the block and the treatment in question. ``within`` is a
-    grouping nested in the cells (plates inside a run x compound cell): the
-    test is then made on its means, so that clustering inside the cells is not
-    mistaken for differences between cells.
+    ``treatments`` are the codes of every treatment column; the reduced model
+    holds the block and every combination of the treatments, the full model
+    adds the cells. ``within`` is a grouping nested in the cells (plates inside
+    a run x compound cell, sub-plots inside main plots): the test is then made
+    on its means, with the treatments that are constant within it, so that
+    clustering inside the cells is not mistaken for differences between cells.
+    ``containers`` are groupings already taken as units that hold whole cells
+    (main plots around sub-plot cells); they enter the reduced model so that
+    their effects are not mistaken for differences between the cells.
     """
     if int(cells.max()) + 1 > MAX_CELLS:
         return None
+    kept = list(treatments)
     if within is not None:
         k = int(within.max()) + 1
         sizes = np.bincount(within, minlength=k)
         y = np.bincount(within, weights=y, minlength=k) / sizes
         first = np.zeros(k, dtype=np.int64)
         first[within[::-1]] = np.arange(within.size)[::-1]
-        block, cells, treatment_cells = block[first], cells[first], treatment_cells[first]
-        block = np.unique(block, return_inverse=True)[1]
-        cells = np.unique(cells, return_inverse=True)[1]
-        treatment_cells = np.unique(treatment_cells, return_inverse=True)[1]
-    reduced = np.hstack([_dummies(block), _dummies(treatment_cells)])
+        kept = [t[first] for t in treatments if is_nested(within, t)]
+        block = np.unique(block[first], return_inverse=True)[1]
+        cells = np.unique(cells[first], return_inverse=True)[1]
+        containers = [np.unique(c[first], return_inverse=True)[1] for c in containers]
+    combined = np.zeros(y.size, dtype=np.int64)
+    for t in kept:
+        combined = combined * (int(t.max()) + 1) + t
+    treatment_cells = np.unique(combined, return_inverse=True)[1]
+    reduced = np.hstack(
+        [_dummies(block), _dummies(treatment_cells), *(_dummies(c) for c in containers)]
+    )
     full = np.hstack([reduced, _dummies(cells)])
     try:
         return float(ols_term_f(y, full, reduced).p_value)
@@ -114,8 +128,13 @@ def crossed_cells(
     treatments: Sequence[str],
     stated: tuple[str, ...],
     groupings: Sequence[str] = (),
-) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, str]], list[CellGrouping]]:
-    """Add block x treatment cell columns for groupings crossed with a treatment.
+) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, ...]], list[CellGrouping]]:
+    """Add block x treatment cell columns for groupings crossed with treatments.
+
+    Cells are formed with every combination of up to three treatments the
+    grouping is crossed with (block x irrigation are main plots, block x
+    irrigation x variety sub-plots in a split-split plot). The evidence for
+    each is measured on the means of the coarsest grouping inside its cells.
 
     The caller passes only groupings whose names say block, place, time or
     subject (or the stated unit's parts): for an unnamed column, cells that
@@ -125,31 +144,49 @@ def crossed_cells(
     Returns the data with the cell columns added, their names, the columns
     each is made of, and the evidence for each.
     """
-    all_trt = group_codes(data, treatments)
-    extra: dict[str, pd.Series] = {}
-    derived: dict[str, tuple[str, str]] = {}
-    found: list[CellGrouping] = []
+    all_trt = [group_codes(data, (t,)) for t in treatments]
+    crossed = {
+        (col, trt): classify(col, trt, data[col], data[trt]).relation == "crossed"
+        for col in cols
+        for trt in treatments
+    }
+    subsets = [
+        combo
+        for size in range(1, min(len(treatments), MAX_CELL_FACTORS) + 1)
+        for combo in combinations(treatments, size)
+    ]
+    made: list[tuple[str, str, tuple[str, ...], np.ndarray]] = []
     for col in cols:
-        for trt in treatments:
-            rel = classify(col, trt, data[col], data[trt])
-            if rel.relation != "crossed":
+        for combo in subsets:
+            if not all(crossed[(col, t)] for t in combo):
                 continue
-            cells = group_codes(data, (col, trt))
-            n_cells = int(cells.max()) + 1
-            mean_size = len(data) / n_cells
-            if mean_size < 1.5:
+            cells = group_codes(data, (col, *combo))
+            if len(data) / (int(cells.max()) + 1) < 1.5:
                 continue
-            name = f"{col}:{trt}"
-            inner = coarsest_inside(data, cells, groupings)
-            p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt, inner)
-            is_stated = set(stated) == {col, trt}
-            credible = is_stated or (p is not None and p < EVIDENCE_P)
-            extra[name] = pd.Series(cells, index=data.index)
-            derived[name] = (col, trt)
-            inside = int(np.unique(group_codes(data, (col, *treatments))).size) > n_cells
-            found.append(CellGrouping(name, col, trt, n_cells, mean_size, p, credible, inside))
+            made.append((f"{col}:{':'.join(combo)}", col, combo, cells))
+    extra = {name: pd.Series(cells, index=data.index) for name, _, _, cells in made}
     if extra:
         data = data.assign(**extra)
+    derived: dict[str, tuple[str, ...]] = {}
+    found: list[CellGrouping] = []
+    inner_pool = [*groupings, *extra]
+    taken: list[np.ndarray] = []
+    for name, col, combo, cells in sorted(made, key=lambda m: int(m[3].max())):
+        n_cells = int(cells.max()) + 1
+        inner = coarsest_inside(data, cells, [g for g in inner_pool if g != name])
+        holders = [c for c in taken if is_nested(cells, c) and int(c.max()) < n_cells - 1]
+        p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt, inner, holders)
+        is_stated = set(stated) == {col, *combo}
+        credible = is_stated or (p is not None and p < EVIDENCE_P)
+        if credible:
+            taken.append(cells)
+        derived[name] = (col, *combo)
+        inside = int(np.unique(group_codes(data, (col, *treatments))).size) > n_cells
+        found.append(
+            CellGrouping(
+                name, col, ":".join(combo), n_cells, len(data) / n_cells, p, credible, inside
+            )
+        )
     return data, list(extra), derived, found
 
 

@@ -437,7 +437,8 @@ def _cells_cluster(
     if len(data) / (int(cells.max()) + 1) < 1.5:
         return False
     inner = coarsest_inside(data, cells, [c for c in cols if c != col])
-    p = cell_evidence(y, group_codes(data, (col,)), cells, group_codes(data, treatments), inner)
+    trts = [group_codes(data, (t,)) for t in treatments]
+    p = cell_evidence(y, group_codes(data, (col,)), cells, trts, inner)
     return p is not None and p < EVIDENCE_P
 
 
@@ -715,7 +716,7 @@ def _cell_readings(
                     f"{c.block}, the rows are the units and '{c.block}' is a block",
                 )
             )
-        elif not c.credible and not c.other_treatments_inside:
+        elif not c.credible and not c.other_treatments_inside and ":" not in c.treatment:
             out.append(
                 (
                     "unit-reading-uncertain",
