@@ -257,16 +257,18 @@ def crossover(
     alias: bool = False,
     drop: float = 0.0,
 ) -> pd.DataFrame:
-    """Three-period crossover of drugs A, B, C in the six Williams sequences.
+    """Three-period crossover of blends A, B, C in the six Williams sequences.
 
-    Truth: subjects and periods are blocks crossed with drug; drug (tested
-    within subjects) has error df rows - subjects - periods - drugs + 2 when
+    Setting (invented): tasters score three coffee blends, one per session.
+
+    Truth: subjects and periods are blocks crossed with blend; blend (tested
+    within subjects) has error df rows - subjects - periods - blends + 2 when
     period is in the model. Subject SD 2, period effects 0, 1, -1.
     ``labels``: ``global`` (subject 1..S) or ``within_sequence`` (subject
     1..per_sequence within each sequence).
     """
     rng = np.random.default_rng(seed)
-    drug_eff = {"A": 0.0, "B": 1.0, "C": 2.0}
+    blend_eff = {"A": 0.0, "B": 1.0, "C": 2.0}
     period_eff = [0.0, 1.0, -1.0]
     rows = []
     sid = 0
@@ -274,21 +276,21 @@ def crossover(
         for j in range(per_sequence):
             sid += 1
             s_eff = rng.normal(0, UNIT_SD)
-            for p, drug in enumerate(seq):
+            for p, blend in enumerate(seq):
                 rows.append(
                     {
                         "subject": sid if labels == "global" else j + 1,
                         "sequence": seq,
                         "period": p + 1,
-                        "drug": drug,
+                        "blend": blend,
                         "y": 50
-                        + drug_eff[drug]
+                        + blend_eff[blend]
                         + period_eff[p]
                         + s_eff
                         + rng.normal(0, RESIDUAL_SD),
                     }
                 )
-    return _finish(pd.DataFrame(rows), rng, drop, "drug" if alias else None)
+    return _finish(pd.DataFrame(rows), rng, drop, "blend" if alias else None)
 
 
 def nested_plates(

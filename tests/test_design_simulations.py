@@ -504,25 +504,25 @@ def test_repeated_measures_mice_numbered_within_diet(seed: int) -> None:
 
 
 @pytest.mark.parametrize("seed", SEEDS)
-def test_crossover_drug_within_subjects(seed: int) -> None:
+def test_crossover_blend_within_subjects(seed: int) -> None:
     # Truth: 12 subjects, 3 periods, Williams sequences; subject is a block crossed
-    # with drug, each subject x drug cell one row: drug against the residual.
+    # with blend, each subject x blend cell one row: blend against the residual.
     d = ds.crossover(seed)
     # Claimed model with period: error df 36 - 12 - 2 - 2 = 20.
-    doc = _run(d, formula="y ~ drug + period + subject")
-    full = "y ~ C(subject) + C(period) + C(drug)"
-    ref = {"drug": _f(d, full, "C(drug)"), "period": _f(d, full, "C(period)")}
-    assert ref["drug"][1:] == (2, 20)
-    check_terms(d, doc, [Expect("drug", None, "ok"), Expect("period", None, "ok")], ref)
+    doc = _run(d, formula="y ~ blend + period + subject")
+    full = "y ~ C(subject) + C(period) + C(blend)"
+    ref = {"blend": _f(d, full, "C(blend)"), "period": _f(d, full, "C(period)")}
+    assert ref["blend"][1:] == (2, 20)
+    check_terms(d, doc, [Expect("blend", None, "ok"), Expect("period", None, "ok")], ref)
     check_strata(d, doc, [("block", ("subject",), None)])
     assert doc["verdict"]["status"] == "ok"
     assert "formula-block-as-stratum" in _rules(doc)
-    # Drug alone: 'period' is a time word crossed with drug, so it is taken as a block
-    # beside the subjects; the model is subject + period + drug, error df 20 again
-    # (periods are balanced over drugs, so random or fixed periods give the same F).
-    doc = _run(d, treatment="drug")
-    assert ref["drug"][1:] == (2, 20)
-    check_terms(d, doc, [Expect("drug", None, "ok")], {"drug": ref["drug"]})
+    # Blend alone: 'period' is a time word crossed with blend, so it is taken as a block
+    # beside the subjects; the model is subject + period + blend, error df 20 again
+    # (periods are balanced over blends, so random or fixed periods give the same F).
+    doc = _run(d, treatment="blend")
+    assert ref["blend"][1:] == (2, 20)
+    check_terms(d, doc, [Expect("blend", None, "ok")], {"blend": ref["blend"]})
     check_strata(d, doc, [("block", ("period",), None), ("block", ("subject",), None)])
     assert doc["verdict"]["status"] == "ok"
 
@@ -530,23 +530,23 @@ def test_crossover_drug_within_subjects(seed: int) -> None:
 @pytest.mark.parametrize("seed", SEEDS[:2])
 def test_crossover_alias_and_unbalanced(seed: int) -> None:
     d = ds.crossover(seed, alias=True)
-    doc = _run(d, treatment="drug")
-    ref = {"drug": _f(d, "y ~ C(subject) + C(period) + C(drug)", "C(drug)")}
-    check_terms(d, doc, [Expect("drug", None, "ok")], ref)
-    check_alias(doc, "drug_code")
+    doc = _run(d, treatment="blend")
+    ref = {"blend": _f(d, "y ~ C(subject) + C(period) + C(blend)", "C(blend)")}
+    check_terms(d, doc, [Expect("blend", None, "ok")], ref)
+    check_alias(doc, "blend_code")
     d = ds.crossover(seed, drop=0.1)
-    doc = _run(d, formula="y ~ drug + period + subject")
-    check_terms(d, doc, [Expect("drug", None, "ok"), Expect("period", None, "ok")], None)
+    doc = _run(d, formula="y ~ blend + period + subject")
+    check_terms(d, doc, [Expect("blend", None, "ok"), Expect("period", None, "ok")], None)
     check_strata(d, doc, [("block", ("subject",), None)])
     assert doc["verdict"]["status"] == "ok"
 
 
 def test_crossover_subjects_numbered_within_sequence() -> None:
     d = ds.crossover(1, labels="within_sequence")
-    doc = _run(d, formula="y ~ drug + period + subject")
-    full = "y ~ C(sequence):C(subject) + C(period) + C(drug)"
-    ref = {"drug": _f(d, full, "C(drug)"), "period": _f(d, full, "C(period)")}
-    check_terms(d, doc, [Expect("drug", None, "ok"), Expect("period", None, "ok")], ref)
+    doc = _run(d, formula="y ~ blend + period + subject")
+    full = "y ~ C(sequence):C(subject) + C(period) + C(blend)"
+    ref = {"blend": _f(d, full, "C(blend)"), "period": _f(d, full, "C(period)")}
+    check_terms(d, doc, [Expect("blend", None, "ok"), Expect("period", None, "ok")], ref)
     check_strata(d, doc, [("block", ("sequence", "subject"), None)])
 
 
