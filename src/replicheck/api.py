@@ -29,6 +29,7 @@ from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
+from replicheck.stats.randomisation import DEFAULT_SEED
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
 from replicheck.structure.terms import Term, drop_unreplicated, interaction_levels, model_terms
@@ -225,6 +226,7 @@ def audit(
     find_spec: bool = True,
     unit_labels: str = "auto",
     formula: str | None = None,
+    seed: int = DEFAULT_SEED,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -250,6 +252,9 @@ def audit(
         A model formula such as ``"yield ~ variety * nitro + block"``, instead of
         ``response`` and ``treatment``; main-effect factors named like blocks
         (block, day, subject, ...) are taken as blocks of the design.
+    seed:
+        Seed of the Monte Carlo randomisation test (used only when the design
+        allows more than 100,000 assignments); the same seed gives the same report.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
         each treatment level) or ``global`` (labels name the same unit everywhere).
@@ -325,7 +330,7 @@ def audit(
         s.name: strata[s.name] for s in structure.strata if s.kind == "block" and s.name in strata
     }
     fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
-    fits = refit(y, inputs, strata, blocks, fixed_blocks)
+    fits = refit(y, inputs, strata, blocks, fixed_blocks, seed)
     single = len(terms) == 1 and not fixed_blocks
     X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
     for b in fixed_blocks:

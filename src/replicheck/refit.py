@@ -26,6 +26,7 @@ from scipy import stats as sps
 from replicheck.partitions import is_nested, same_partition
 from replicheck.stats.classic import DesignError, ols_term_f, oneway_anova, two_sample_t
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
+from replicheck.stats.randomisation import DEFAULT_SEED, RandomisationResult, randomisation_test
 from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
 
 
@@ -83,6 +84,7 @@ class TermRefit:
     analyses: tuple[Analysis, ...]
     corrected: str | None  # None when no valid test exists
     unit_variance: UnitVariance | None
+    randomisation: RandomisationResult | None = None
 
     def get(self, name: str) -> Analysis | None:
         for a in self.analyses:
@@ -114,6 +116,7 @@ LABELS = {
     "mixed_model": "mixed model: random intercept per unit, REML, Satterthwaite df",
     "no_test": "no valid test: each level sits in a single unit",
     "strata_anova": "multi-stratum ANOVA: each term against the residual of its own stratum",
+    "randomisation": "randomisation test: labels re-assigned among units (within blocks)",
 }
 
 
@@ -131,6 +134,59 @@ def _plain_test(name: str, term: str, level: str, y: np.ndarray, groups: np.ndar
     return Analysis(name, LABELS[name], term, level, n, float(r.statistic), df, float(r.p_value))
 
 
+def _unit_table(
+    t: TermInput, y: np.ndarray, blocks: Mapping[str, np.ndarray] | None
+) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+    """Unit means, the term level of each unit, and each block that holds whole units."""
+    assert t.unit is not None
+    n_units = int(t.unit.max()) + 1
+    means = np.bincount(t.unit, weights=y, minlength=n_units) / np.bincount(
+        t.unit, minlength=n_units
+    )
+    level = np.zeros(n_units, dtype=np.int64)
+    level[t.unit] = t.codes
+    unit_blocks = []
+    for codes in (blocks or {}).values():
+        if same_partition(codes, t.unit) or not is_nested(t.unit, codes):
+            continue
+        per = np.zeros(n_units, dtype=np.int64)
+        per[t.unit] = codes
+        unit_blocks.append(per)
+    return means, level, unit_blocks
+
+
+def _randomise(
+    t: TermInput, y: np.ndarray, blocks: Mapping[str, np.ndarray] | None, seed: int
+) -> RandomisationResult | None:
+    means, level, unit_blocks = _unit_table(t, y, blocks)
+    if np.unique(level).size < 2 or means.size - np.unique(level).size < 1:
+        return None
+    within = None
+    for b in unit_blocks:  # labels move only within the cells of every block
+        within = b if within is None else within * (int(b.max()) + 1) + b
+    return randomisation_test(means, level, within, seed=seed)
+
+
+def _randomisation_analysis(t: TermInput, r: RandomisationResult) -> Analysis:
+    how = (
+        f"exact over all {r.n_assignments} assignments"
+        if r.exact
+        else f"Monte Carlo, {r.draws} draws of {r.n_assignments} assignments (seed {r.seed})"
+    )
+    name = "randomisation"
+    return Analysis(
+        name,
+        LABELS[name],
+        t.term,
+        "units",
+        int(t.unit.max()) + 1 if t.unit is not None else 0,
+        r.statistic if np.isfinite(r.statistic) else None,
+        None,
+        r.p_value,
+        notes=(f"{how}; smallest attainable p = {r.min_attainable_p:.3g}",),
+    )
+
+
 def _unit_means(
     t: TermInput, y: np.ndarray, blocks: Mapping[str, np.ndarray] | None = None
 ) -> Analysis:
@@ -141,20 +197,8 @@ def _unit_means(
     in blocks) is fitted first, so the test is the randomised-block analysis of
     the unit means (in a balanced split plot, the whole-plot F test).
     """
-    assert t.unit is not None
-    n_units = int(t.unit.max()) + 1
-    sums = np.bincount(t.unit, weights=y, minlength=n_units)
-    sizes = np.bincount(t.unit, minlength=n_units)
-    means = sums / sizes
-    unit_level = np.zeros(n_units, dtype=np.int64)
-    unit_level[t.unit] = t.codes  # units are nested in the term's levels
-    unit_blocks = []
-    for codes in (blocks or {}).values():
-        if same_partition(codes, t.unit) or not is_nested(t.unit, codes):
-            continue
-        per_unit = np.zeros(n_units, dtype=np.int64)
-        per_unit[t.unit] = codes
-        unit_blocks.append(per_unit)
+    means, unit_level, unit_blocks = _unit_table(t, y, blocks)
+    n_units = means.size
     if not unit_blocks:
         return _plain_test("unit_means", t.term, "units", means, unit_level)
     reduced = np.hstack(
@@ -411,6 +455,7 @@ def refit(
     strata: Mapping[str, np.ndarray] | None = None,
     blocks: Mapping[str, np.ndarray] | None = None,
     fixed_blocks: Sequence[np.ndarray] = (),
+    seed: int = DEFAULT_SEED,
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -422,7 +467,8 @@ def refit(
     the terms' units. ``blocks`` are the strata that are blocks (crossed
     with the treatments); the unit-means test fits those that hold whole units.
     ``fixed_blocks`` are blocks the claimed model held as fixed effects: they
-    enter the row-level (as claimed) model.
+    enter the row-level (as claimed) model. ``seed`` drives the Monte Carlo
+    randomisation test when exact enumeration is too large.
     """
     n = int(y.size)
     single = len(terms) == 1
@@ -472,11 +518,15 @@ def refit(
         if t.unit is not None:
             rname = next((k for k, u in random.items() if same_partition(t.unit, u)), None)
         has_unit = rname is not None
+        rand = None
         if has_unit:
             um = _unit_means(t, y, blocks)
             if not_fitted is not None:
                 um = replace(um, notes=(*um.notes, not_fitted))
             analyses.append(um)
+            rand = _randomise(t, y, blocks, seed)
+            if rand is not None:
+                analyses.append(_randomisation_analysis(t, rand))
         variance = None
         corrected = "unit_means" if has_unit else "as_claimed"
         if fit is not None:
@@ -499,5 +549,5 @@ def refit(
         if exact is not None:
             analyses.append(exact)
             corrected = "strata_anova"
-        out.append(TermRefit(t.term, tuple(analyses), corrected, variance))
+        out.append(TermRefit(t.term, tuple(analyses), corrected, variance, rand))
     return Refit(tuple(out))
