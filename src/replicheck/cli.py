@@ -16,6 +16,7 @@ import click
 
 from replicheck import __version__
 from replicheck.errors import InputError
+from replicheck.stats.randomisation import DEFAULT_SEED
 
 FORMATS = ("text", "json", "markdown")
 
@@ -132,6 +133,13 @@ def cli() -> None:
     help="Report format.",
 )
 @click.option("-o", "--output", metavar="PATH", help="Write the report here instead of stdout.")
+@click.option(
+    "--seed",
+    type=int,
+    default=DEFAULT_SEED,
+    show_default=True,
+    help="Seed of the Monte Carlo randomisation test (used beyond 100,000 assignments).",
+)
 def check(
     data: str,
     response: str | None,
@@ -147,6 +155,7 @@ def check(
     unit_labels: str,
     fmt: str,
     output: str | None,
+    seed: int,
 ) -> None:
     """Audit DATA against its claimed analysis.
 
@@ -170,6 +179,7 @@ def check(
         spec=spec,
         find_spec=not no_spec,
         unit_labels=unit_labels,
+        seed=seed,
     )
     if report.claim.spec_path and spec is None:
         click.echo(f"using spec {report.claim.spec_path}", err=True)

@@ -448,6 +448,27 @@ def _few(ev: Evidence) -> Iterator[Finding]:
             )
 
 
+@rule("randomisation-floor", "no test on these units can reach alpha")
+def _floor(ev: Evidence) -> Iterator[Finding]:
+    for t in ev.terms:
+        r = t.refit.randomisation
+        if r is None or r.min_attainable_p <= ev.claim.alpha:
+            continue
+        n_units = t.unit.n_units
+        yield Finding(
+            "randomisation-floor",
+            "warning",
+            f"With {n_units} {t.unit.unit} units the design allows only {r.n_assignments} "
+            f"assignments of '{t.term}', so the smallest p-value any test on these units can "
+            f"reach is {r.min_attainable_p:.3g}, above alpha = {ev.claim.alpha:g}: no "
+            f"randomisation test can find '{t.term}' significant with these data, and a smaller "
+            f"p-value (from an F or t test) rests wholly on the normal model.",
+            "A convincing result would need more independent units per level; the "
+            "observations within units cannot add them.",
+            (*t.factors, *t.unit.columns),
+        )
+
+
 @rule("unit-variance-zero", "the mixed model put the unit variance at zero")
 def _boundary(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:

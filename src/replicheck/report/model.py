@@ -17,7 +17,7 @@ from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.io import Table
 from replicheck.reconcile import Reconciliation
-from replicheck.refit import Refit
+from replicheck.refit import Refit, TermRefit
 from replicheck.structure.units import Structure
 from replicheck.verdict import Evidence, TermEvidence, Verdict
 
@@ -68,6 +68,20 @@ def _reported_check(rec: Reconciliation | None) -> dict[str, Any] | None:
         "explanation": rec.explanation,
         "mismatches": list(rec.mismatches),
         "claimed_significant": rec.claimed_significant,
+    }
+
+
+def _randomization(tr: TermRefit | None) -> dict[str, Any] | None:
+    r = None if tr is None else tr.randomisation
+    if r is None:
+        return None
+    return {
+        "p_value": r.p_value,
+        "min_attainable_p": r.min_attainable_p,
+        "n_assignments": r.n_assignments,
+        "exact": r.exact,
+        "draws": r.draws,
+        "seed": r.seed,
     }
 
 
@@ -183,6 +197,7 @@ class Report:
                     "conclusion_changed": tv.conclusion_changed,
                     "clustering": _clustering(te.clustering),
                     "reported_check": _reported_check(rec),
+                    "randomization": _randomization(te.refit),
                 }
             )
         doc = {
@@ -266,6 +281,7 @@ class Report:
             ],
             "skipped_columns": dict(s.skipped),
             "clustering": _clustering(main.clustering),
+            "randomization": _randomization(main.refit),
             "analyses": analyses,
             "reported_check": _reported_check(ev.reconciliation),
             "findings": [asdict(f) for f in self.verdict.findings],
