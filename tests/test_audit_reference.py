@@ -240,3 +240,24 @@ def test_oats_split_plot_found_without_a_plot_column() -> None:
     um = next(a for a in doc["analyses"] if a["term"] == "Variety" and a["name"] == "unit_means")
     assert um["df"] == [2, 10]
     assert um["statistic"] == pytest.approx(anova["Variety"]["F"], rel=1e-6)
+
+
+def test_design_needs_from_r_variances_and_statsmodels_power(ratpup) -> None:  # type: ignore[no-untyped-def]
+    # Units per level for 80% power: Cohen's f on litter means from the observed dose
+    # means and the lmerTest variance components (fixture), solved with statsmodels'
+    # FTestAnovaPower (a general reference library); m = mean litter size.
+    import math
+
+    from statsmodels.stats.power import FTestAnovaPower
+
+    doc = audit(ratpup, response="weight", treatment="Treatment").to_dict()
+    needs = doc["design_needs"]
+    litters = ratpup.groupby(["Treatment", "Litter"])["weight"].mean().reset_index()
+    level_means = litters.groupby("Treatment")["weight"].mean().to_numpy()
+    m = ratpup.groupby("Litter").size().mean()
+    var_mean = REF["var_litter"] + REF["var_residual"] / m
+    f = float(np.sqrt(np.mean((level_means - level_means.mean()) ** 2) / var_mean))
+    n_total = FTestAnovaPower().solve_power(effect_size=f, k_groups=3, alpha=0.05, power=0.8)
+    assert needs["units_per_level"] == max(2, math.ceil(n_total / 3 - 1e-9))
+    assert needs["effect"]["cohen_f_unit_means"] == pytest.approx(f, rel=1e-5)
+    assert needs["units_now"] == 7  # the High dose has 7 litters

@@ -29,6 +29,7 @@ from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
+from replicheck.stats.power import DesignNeeds, design_needs
 from replicheck.stats.randomisation import DEFAULT_SEED
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
@@ -387,4 +388,26 @@ def audit(
         unreplicated=tuple(t.name for t in dropped),
     )
     verdict = decide(evidence)
-    return Report(table, len(frame), c, evidence, fits, verdict)
+    return Report(table, len(frame), c, evidence, fits, verdict, _needs(inputs, evidence, y, c))
+
+
+def _needs(
+    inputs: Sequence[TermInput], evidence: Evidence, y: np.ndarray, claim: Claim
+) -> DesignNeeds | None:
+    """Units per level a design would need to detect the observed effect of the first
+    term with a replicated unit (80% power at alpha)."""
+    for ti, te in zip(inputs, evidence.terms, strict=True):
+        cl = te.clustering
+        if cl is None or ti.unit is None:
+            continue
+        n_units = int(ti.unit.max()) + 1
+        means = np.bincount(ti.unit, weights=y, minlength=n_units) / np.bincount(
+            ti.unit, minlength=n_units
+        )
+        level = np.zeros(n_units, dtype=np.int64)
+        level[ti.unit] = ti.codes
+        level_means = [float(means[level == k].mean()) for k in range(len(ti.labels))]
+        return design_needs(
+            level_means, cl.var_unit, cl.var_residual, cl.mean_unit_size, alpha=claim.alpha
+        )
+    return None

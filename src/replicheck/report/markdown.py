@@ -13,6 +13,7 @@ from replicheck.report.text import (
     fmt_df,
     fmt_num,
     fmt_p,
+    needs_sentence,
     terms_rows,
 )
 
@@ -92,6 +93,9 @@ def render_markdown(doc: dict[str, Any]) -> str:
                 f"- **{f['severity']}** `{f['rule']}`: {_esc(f['message'])} "
                 f"*What to do:* {_esc(f['advice'])}"
             )
+    needs = needs_sentence(doc)
+    if needs:
+        lines += ["", "### What a valid design would need", "", _esc(needs)]
     lines += ["", "### Suggested wording", "", "> " + _esc(suggested_wording(doc))]
     lines += ["", "### Caution", "", _esc(doc["caution"]), ""]
     return "\n".join(lines)

@@ -18,6 +18,7 @@ from replicheck.clustering import Clustering
 from replicheck.io import Table
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit, TermRefit
+from replicheck.stats.power import DesignNeeds
 from replicheck.structure.units import Structure
 from replicheck.verdict import Evidence, TermEvidence, Verdict
 
@@ -85,6 +86,25 @@ def _randomization(tr: TermRefit | None) -> dict[str, Any] | None:
     }
 
 
+def _needs(n: DesignNeeds | None, te: TermEvidence) -> dict[str, Any] | None:
+    if n is None:
+        return None
+    return {
+        "term": te.term,
+        "unit": te.unit.unit,
+        "units_per_level": n.units_per_level,
+        "units_now": min(te.units_per_level.values()) if te.units_per_level else None,
+        "power": n.power,
+        "alpha": n.alpha,
+        "effect": {"cohen_f_unit_means": n.effect_f, "kind": "observed"},
+        "observations_per_unit": n.observations_per_unit,
+        "icc": n.icc,
+        "by_unit_size": [
+            {"observations_per_unit": m, "units_per_level": k} for m, k in n.by_unit_size
+        ],
+    }
+
+
 def _error_term(te: TermEvidence, s: Structure) -> str | None:
     """The stratum a term is tested in: its unit, the residual, or None when untestable."""
     if te.unit.relation == "confounded":
@@ -108,6 +128,7 @@ class Report:
     evidence: Evidence
     refit: Refit
     verdict: Verdict
+    design_needs: DesignNeeds | None = None
 
     @property
     def status(self) -> str:
@@ -282,6 +303,7 @@ class Report:
             "skipped_columns": dict(s.skipped),
             "clustering": _clustering(main.clustering),
             "randomization": _randomization(main.refit),
+            "design_needs": _needs(self.design_needs, main),
             "analyses": analyses,
             "reported_check": _reported_check(ev.reconciliation),
             "findings": [asdict(f) for f in self.verdict.findings],

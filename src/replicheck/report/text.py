@@ -158,6 +158,35 @@ def design_tree(doc: dict[str, Any]) -> list[str]:
     return lines
 
 
+def needs_sentence(doc: dict[str, Any]) -> str | None:
+    """A sentence on the units a design would need (from the report's design_needs)."""
+    n = doc.get("design_needs")
+    if not n:
+        return None
+    unit, term = n["unit"], n["term"]
+    m = n["observations_per_unit"]
+    if n["units_per_level"] is None:
+        return (
+            f"The observed differences between levels of '{term}' are too small beside the "
+            f"variation between {unit} units for any practical number of units to detect them "
+            f"with {n['power']:.0%} power."
+        )
+    sizes = {row["observations_per_unit"]: row["units_per_level"] for row in n["by_unit_size"]}
+    many = sizes.get(100)
+    tail = (
+        f"; with 100 observations per {unit} it would still need {many}, so more "
+        f"observations per unit barely help (ICC {n['icc']:.2f})"
+        if many is not None
+        else ""
+    )
+    return (
+        f"To detect differences between levels of '{term}' as large as those observed, with "
+        f"{n['power']:.0%} power at alpha = {n['alpha']:g}, a design would need about "
+        f"{n['units_per_level']} independent {unit} units per level with {m:.3g} observations "
+        f"each (it has {n['units_now']}){tail}."
+    )
+
+
 def render_text(doc: dict[str, Any]) -> str:
     """Render the report dictionary as terminal text."""
     v = doc["verdict"]
@@ -214,6 +243,9 @@ def render_text(doc: dict[str, Any]) -> str:
     for a in doc["analyses"]:
         for note in a["notes"]:
             out.append(_wrap(f"{a['name']} ({a['term']}): {note}", "        ", "  note: "))
+    needs = needs_sentence(doc)
+    if needs:
+        out += ["", "WHAT A VALID DESIGN WOULD NEED", _wrap(needs)]
     if doc["findings"]:
         out += ["", "FINDINGS"]
         for f in doc["findings"]:
