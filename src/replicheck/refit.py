@@ -375,28 +375,19 @@ def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis
     name = "strata_anova"
     level = "rows" if r.stratum == "residual" else "units"
     n_rep = n if t.unit is None or level == "rows" else int(t.unit.max()) + 1
-    if r.f_statistic is None or r.error_df is None:
-        return Analysis(
-            name,
-            LABELS[name],
-            t.term,
-            level,
-            n_rep,
-            None,
-            None,
-            None,
-            notes=(f"the '{r.stratum}' stratum has no residual degrees of freedom: untestable",),
-            stratum=r.stratum,
-        )
+    testable = r.f_statistic is not None and r.error_df is not None
     return Analysis(
         name,
         LABELS[name],
         t.term,
         level,
         n_rep,
-        float(r.f_statistic),
-        (float(r.df), float(r.error_df)),
-        float(r.p_value) if r.p_value is not None else None,
+        float(r.f_statistic) if testable and r.f_statistic is not None else None,
+        (float(r.df), float(r.error_df)) if testable and r.error_df is not None else None,
+        float(r.p_value) if testable and r.p_value is not None else None,
+        notes=()
+        if testable
+        else (f"the '{r.stratum}' stratum has no residual degrees of freedom: untestable",),
         stratum=r.stratum,
     )
 
