@@ -251,8 +251,9 @@ def audit(
         named ``NAME.replicheck.toml`` beside the data file is used.
     formula:
         A model formula such as ``"yield ~ variety * nitro + block"``, instead of
-        ``response`` and ``treatment``; main-effect factors named like blocks
-        (block, day, subject, ...) are taken as blocks of the design.
+        ``response`` and ``treatment``; main-effect factors named like blocks,
+        places or subjects (block, bench, plate, subject, ...) are taken as
+        blocks of the design; times (day, period) stay terms.
     seed:
         Seed of the Monte Carlo randomisation test (used only when the design
         allows more than 100,000 assignments); the same seed gives the same report.

@@ -79,7 +79,7 @@ def cli() -> None:
     "--formula",
     metavar="FORMULA",
     help="The claimed model instead of -r/-t, e.g. 'yield ~ variety * nitrogen + block'; "
-    "main-effect factors named like blocks (block, day, subject) are blocks of the design.",
+    "main-effect factors named like blocks, places or subjects are blocks of the design.",
 )
 @click.option(
     "-u",
