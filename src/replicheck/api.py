@@ -29,6 +29,7 @@ from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
+from replicheck.stats.discrete import response_kind
 from replicheck.stats.power import DesignNeeds, design_needs
 from replicheck.stats.randomisation import DEFAULT_SEED
 from replicheck.structure.names import name_hint
@@ -332,7 +333,10 @@ def audit(
         s.name: strata[s.name] for s in structure.strata if s.kind == "block" and s.name in strata
     }
     fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
-    fits = refit(y, inputs, strata, blocks, fixed_blocks, seed)
+    kind = response_kind(y)
+    first_claim = reported.get(terms[0].name)
+    row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
+    fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
     single = len(terms) == 1 and not fixed_blocks
     X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
     for b in fixed_blocks:
@@ -346,7 +350,9 @@ def audit(
         if ti.unit is not None and ti.unit_name is not None:
             v = tr.unit_variance
             reml = (v.var_unit, v.var_residual) if v is not None and v.converged else None
-            clustering = measure_clustering(y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml)
+            clustering = measure_clustering(
+                y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml, kind=kind
+            )
             for k, label in enumerate(ti.labels):
                 per_level[label] = int(np.unique(ti.unit[ti.codes == k]).size)
         rec = None
@@ -387,6 +393,7 @@ def audit(
         reconciliation=overall,
         formula_blocks=tuple(formula_blocks),
         unreplicated=tuple(t.name for t in dropped),
+        response_kind=kind,
     )
     verdict = decide(evidence)
     return Report(table, len(frame), c, evidence, fits, verdict, _needs(inputs, evidence, y, c))

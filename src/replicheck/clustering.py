@@ -16,7 +16,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from replicheck.stats.classic import DesignError
 from replicheck.stats.clustering import anova_components, design_effect
+from replicheck.stats.discrete import Overdispersion, ResponseKind, unit_overdispersion
 
 
 @dataclass(frozen=True)
@@ -40,6 +42,7 @@ class Clustering:
     cv_unit_size: float
     effective_n: float
     effective_n_per_level: dict[str, float]
+    overdispersion: Overdispersion | None = None  # yes/no and count responses
 
 
 def measure_clustering(
@@ -50,13 +53,16 @@ def measure_clustering(
     unit_name: str,
     reml_components: tuple[float, float] | None = None,
     confidence: float = 0.95,
+    kind: ResponseKind = "continuous",
 ) -> Clustering | None:
     """Measure clustering of ``y`` in ``unit`` within ``treatment`` levels.
 
     ``reml_components`` is (unit variance, residual variance) from the mixed
     model when it was fitted. Returns None when the units are not replicated
     within treatment levels (no within-treatment unit variation to measure) or
-    no unit holds two observations.
+    no unit holds two observations. For a yes/no or count response (``kind``)
+    the spread of the unit proportions or counts is also set against binomial
+    or Poisson chance (:func:`replicheck.stats.discrete.unit_overdispersion`).
     """
     n_units = int(unit.max()) + 1
     n_trt = int(treatment.max()) + 1
@@ -81,6 +87,13 @@ def measure_clustering(
             continue
         d = design_effect(sizes[in_level], icc)
         per_level[label] = float(d.effective_n)
+    overdispersion = None
+    if kind != "continuous":
+        family = "binomial" if kind == "binary" else "poisson"
+        try:
+            overdispersion = unit_overdispersion(y, unit, treatment, family)
+        except DesignError:
+            overdispersion = None
     return Clustering(
         unit=unit_name,
         n_units=n_units,
@@ -99,4 +112,5 @@ def measure_clustering(
         cv_unit_size=float(deff.cv_size),
         effective_n=float(deff.effective_n),
         effective_n_per_level=per_level,
+        overdispersion=overdispersion,
     )

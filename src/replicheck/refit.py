@@ -12,7 +12,23 @@ For every term (a treatment, or an interaction of treatments):
   by REML, with an F test whose denominator degrees of freedom are
   Satterthwaite's (Satterthwaite 1946, Biometrics Bulletin 2:110-114;
   Kuznetsova, Brockhoff & Christensen 2017, J. Stat. Softw. 82(13));
+* ``strata_anova``: the exact multi-stratum ANOVA when the design is balanced
+  and orthogonal;
+* ``randomisation``: treatment labels re-assigned among the units;
+* ``cluster_robust`` and ``wild_bootstrap``: cross-checks that assume no model
+  for the within-unit correlation: CR2 standard errors with Satterthwaite-type
+  df, and the wild cluster bootstrap (:mod:`replicheck.stats.robust`);
+* ``gee`` (yes/no and count responses): generalised estimating equations with
+  an exchangeable working correlation and the bias-reduced covariance
+  (:mod:`replicheck.stats.discrete`);
 * ``no_test``: when each level of the term sits in a single unit: no p-value.
+
+The analysis the corrected verdict rests on (``TermRefit.corrected``) is chosen
+by regime, as the calibration study in docs/calibration.md supports: the exact
+multi-stratum ANOVA when the design is balanced and orthogonal; otherwise the
+mixed model for a continuous response (the unit means when the unit variance
+is estimated at zero or REML fails) and the unit means (proportions or mean
+counts per unit) for a yes/no or count response.
 """
 
 from __future__ import annotations
@@ -24,9 +40,17 @@ import numpy as np
 from scipy import stats as sps
 
 from replicheck.partitions import is_nested, same_partition
-from replicheck.stats.classic import DesignError, ols_term_f, oneway_anova, two_sample_t
+from replicheck.stats.classic import (
+    DesignError,
+    ols_term_f,
+    oneway_anova,
+    pearson_chi2,
+    two_sample_t,
+)
+from replicheck.stats.discrete import ResponseKind, gee_test
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.randomisation import DEFAULT_SEED, RandomisationResult, randomisation_test
+from replicheck.stats.robust import cr2_test, wild_cluster_bootstrap
 from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
 
 
@@ -39,13 +63,14 @@ class Analysis:
     term: str
     level: str  # rows | units
     n_replicates: int
-    statistic: float | None  # F (t squared for two levels)
-    df: tuple[float, float] | None
+    statistic: float | None  # F (t squared for two levels), or chi-squared when test is chi2
+    df: tuple[float, ...] | None  # (numerator, denominator) for F, (df,) for chi2
     p_value: float | None
     t_statistic: float | None = None
     estimate: float | None = None  # second level's mean minus the first's (two levels)
     notes: tuple[str, ...] = ()
     stratum: str | None = None  # error stratum of a multi-stratum ANOVA
+    test: str = "F"  # F | chi2
 
     def significant(self, alpha: float) -> bool | None:
         """Whether the p-value is below ``alpha`` (None when there is no test)."""
@@ -117,6 +142,17 @@ LABELS = {
     "no_test": "no valid test: each level sits in a single unit",
     "strata_anova": "multi-stratum ANOVA: each term against the residual of its own stratum",
     "randomisation": "randomisation test: labels re-assigned among units (within blocks)",
+    "cluster_robust": "cluster-robust: CR2 errors, Satterthwaite-type df, units as clusters",
+    "wild_bootstrap": "wild cluster bootstrap: null imposed, units as clusters",
+    "gee": "GEE: exchangeable correlation within units, bias-reduced covariance",
+}
+
+BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
+
+UNIT_MEANS_LABELS = {
+    "continuous": LABELS["unit_means"],
+    "binary": "unit proportions: one proportion per experimental unit",
+    "count": "unit mean counts: one mean count per experimental unit",
 }
 
 
@@ -440,6 +476,152 @@ def _mixed_analysis(
     )
 
 
+def _row_chi2(t: TermInput, y: np.ndarray) -> Analysis:
+    """Pearson's chi-squared test of a yes/no response, every row a trial."""
+    r = pearson_chi2(y, t.codes)
+    name = "as_claimed"
+    return Analysis(
+        name,
+        "as claimed: every row a replicate (Pearson chi-squared)",
+        t.term,
+        "rows",
+        int(y.size),
+        float(r.statistic),
+        (float(r.df[0]),),
+        float(r.p_value),
+        test="chi2",
+    )
+
+
+def _cluster_design(
+    X: np.ndarray, t: TermInput, blocks: Mapping[str, np.ndarray] | None
+) -> np.ndarray:
+    """The model's columns plus, as fixed effects, the blocks that hold whole units."""
+    assert t.unit is not None
+    extra = [
+        _coded(b, int(b.max()) + 1, "sum")
+        for b in (blocks or {}).values()
+        if not same_partition(b, t.unit) and is_nested(t.unit, b) and int(b.max()) > 0
+    ]
+    if not extra:
+        return X
+    full = np.hstack([X, *extra])
+    return full if np.linalg.matrix_rank(full) == full.shape[1] else X
+
+
+def _canonical_units(unit: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Unit codes renumbered by the unit's distance from the grand mean, then its size.
+
+    The wild bootstrap draws one weight per unit in code order; numbering the
+    units canonically makes its p-value the same whatever the units are called,
+    however the rows are ordered and under an affine change of the response
+    (as for the randomisation test). Exact ties keep the given order.
+    """
+    n_units = int(unit.max()) + 1
+    sizes = np.bincount(unit, minlength=n_units)
+    means = np.bincount(unit, weights=y, minlength=n_units) / sizes
+    spread = float(np.std(y)) or 1.0
+    distance = np.round(np.abs(means - y.mean()) / spread, 12)
+    order = np.lexsort((sizes, distance))
+    rank = np.empty(n_units, dtype=np.int64)
+    rank[order] = np.arange(n_units)
+    return rank[unit]
+
+
+def _untested(name: str, t: TermInput, why: str) -> Analysis:
+    n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
+    return Analysis(name, LABELS[name], t.term, "units", n_rep, None, None, None, notes=(why,))
+
+
+def _cross_checks(
+    y: np.ndarray,
+    X: np.ndarray,
+    index: list[int],
+    t: TermInput,
+    blocks: Mapping[str, np.ndarray] | None,
+    kind: ResponseKind,
+    seed: int,
+) -> list[Analysis]:
+    """CR2, the wild cluster bootstrap and (yes/no or count responses) GEE, units as clusters."""
+    assert t.unit is not None
+    Xc = _cluster_design(X, t, blocks)
+    L = _contrast(index, Xc.shape[1])
+    n_units = int(t.unit.max()) + 1
+    out: list[Analysis] = []
+
+    def unit_level(
+        name: str,
+        stat: float,
+        df: tuple[float, ...] | None,
+        p: float,
+        t_statistic: float | None = None,
+        estimate: float | None = None,
+        notes: tuple[str, ...] = (),
+        test: str = "F",
+    ) -> None:
+        out.append(
+            Analysis(
+                name,
+                LABELS[name],
+                t.term,
+                "units",
+                n_units,
+                stat,
+                df,
+                p,
+                t_statistic=t_statistic,
+                estimate=estimate,
+                notes=notes,
+                test=test,
+            )
+        )
+
+    try:
+        r = cr2_test(y, Xc, t.unit, L)
+        unit_level(
+            "cluster_robust",
+            float(r.statistic),
+            (float(r.df_num), float(r.df_den)),
+            float(r.p_value),
+            t_statistic=r.t_statistic,
+            estimate=r.estimate,
+        )
+    except DesignError as err:
+        out.append(_untested("cluster_robust", t, f"not computed: {err}"))
+    try:
+        b = wild_cluster_bootstrap(
+            y, Xc, _canonical_units(t.unit, y), L, draws=BOOTSTRAP_DRAWS, seed=seed
+        )
+        how = (
+            f"all {b.draws} sign patterns"
+            if b.enumerated
+            else f"{b.draws} draws, {b.weights} weights (seed {b.seed})"
+        )
+        unit_level("wild_bootstrap", float(b.statistic), None, float(b.p_value), notes=(how,))
+    except DesignError as err:
+        out.append(_untested("wild_bootstrap", t, f"not computed: {err}"))
+    if kind in ("binary", "count"):
+        name = "gee"
+        family = "binomial" if kind == "binary" else "poisson"
+        try:
+            g = gee_test(y, Xc, t.unit, L, family)
+            notes = [f"{family} family, working correlation {g.working_correlation:.3g}"]
+            if not g.converged:
+                notes.append("the GEE fit did not converge")
+            unit_level(
+                name,
+                float(g.statistic),
+                (float(g.df_num), float(g.df_den)) if g.df_den is not None else (float(g.df_num),),
+                float(g.p_value),
+                estimate=g.estimate,
+                notes=tuple(notes),
+                test="F" if g.df_den is not None else "chi2",
+            )
+        except DesignError as err:
+            out.append(_untested(name, t, f"not computed: {err}"))
+    return out
+
+
 def refit(
     y: np.ndarray,
     terms: Sequence[TermInput],
@@ -447,6 +629,8 @@ def refit(
     blocks: Mapping[str, np.ndarray] | None = None,
     fixed_blocks: Sequence[np.ndarray] = (),
     seed: int = DEFAULT_SEED,
+    kind: ResponseKind = "continuous",
+    row_chi2: bool | None = None,
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -459,7 +643,11 @@ def refit(
     with the treatments); the unit-means test fits those that hold whole units.
     ``fixed_blocks`` are blocks the claimed model held as fixed effects: they
     enter the row-level (as claimed) model. ``seed`` drives the Monte Carlo
-    randomisation test when exact enumeration is too large.
+    randomisation test when exact enumeration is too large and the wild
+    cluster bootstrap. ``kind`` is the response's kind (continuous, binary,
+    count): it selects GEE as a cross-check and the analysis the corrected
+    verdict rests on. ``row_chi2`` makes the row-level test of a single term
+    on a yes/no response Pearson's chi-squared (default: for binary responses).
     """
     n = int(y.size)
     single = len(terms) == 1
@@ -473,7 +661,9 @@ def refit(
         ]
     elif single:
         t0 = terms[0]
-        claimed = [_plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
+        use_chi2 = kind == "binary" and (row_chi2 is None or row_chi2)
+        row = _row_chi2(t0, y) if use_chi2 else None
+        claimed = [row or _plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
     else:
         claimed = _ols_term_tests(y, X, index, terms)
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
@@ -511,7 +701,14 @@ def refit(
         has_unit = rname is not None
         rand = None
         if has_unit:
-            um = _unit_means(t, y, blocks)
+            try:
+                um = _unit_means(t, y, blocks)
+            except DesignError as err:  # e.g. every unit's proportion the same within levels
+                um = _untested("unit_means", t, f"not computed: {err}")
+            if kind != "continuous":
+                um = replace(
+                    um, label=um.label.replace(LABELS["unit_means"], UNIT_MEANS_LABELS[kind])
+                )
             if not_fitted is not None:
                 um = replace(um, notes=(*um.notes, not_fitted))
             analyses.append(um)
@@ -532,10 +729,12 @@ def refit(
                     at_zero,
                     bool(fit.converged),
                 )
-                if not at_zero and fit.converged:
+                if not at_zero and fit.converged and kind == "continuous":
                     corrected = "mixed_model"
             elif fit.converged:
                 corrected = "mixed_model"
+        if has_unit:
+            analyses.extend(_cross_checks(y, X, index[t.term], t, blocks, kind, seed))
         exact = _strata_analysis(table, t, n) if table is not None else None
         if exact is not None:
             analyses.append(exact)

@@ -80,6 +80,7 @@ class Evidence:
     reconciliation: Reconciliation
     formula_blocks: tuple[str, ...] = ()
     unreplicated: tuple[str, ...] = ()  # interactions left without error: not testable
+    response_kind: str = "continuous"  # continuous | binary | count
 
 
 @dataclass(frozen=True)
@@ -126,7 +127,10 @@ _p = p_phrase
 
 
 def _f(a: Analysis) -> str:
+    """The analysis's statistic as printed in a paper: F(a, b) = x or chi2(a) = x."""
     assert a.df is not None and a.statistic is not None
+    if a.test == "chi2":
+        return f"chi2({a.df[0]:.3g}) = {a.statistic:.3g}, {_p(a.p_value)}"
     return f"F({a.df[0]:.3g}, {a.df[1]:.3g}) = {a.statistic:.3g}, {_p(a.p_value)}"
 
 
@@ -465,6 +469,61 @@ def _floor(ev: Evidence) -> Iterator[Finding]:
             f"p-value (from an F or t test) rests wholly on the normal model.",
             "A convincing result would need more independent units per level; the "
             "observations within units cannot add them.",
+            (*t.factors, *t.unit.columns),
+        )
+
+
+CROSS_CHECKS = ("cluster_robust", "wild_bootstrap", "gee", "randomisation")
+
+
+@rule("cross-checks-disagree", "a cross-check falls on the other side of alpha from the verdict")
+def _disagree(ev: Evidence) -> Iterator[Finding]:
+    alpha = ev.claim.alpha
+    for t in ev.terms:
+        corrected = t.corrected
+        if corrected is None or corrected.p_value is None:
+            continue
+        verdict = corrected.p_value < alpha
+        floor = t.refit.randomisation
+        others = [
+            a
+            for a in t.refit.analyses
+            if a.name in CROSS_CHECKS
+            and a.p_value is not None
+            and (a.p_value < alpha) != verdict
+            and not (a.name == "randomisation" and floor and floor.min_attainable_p > alpha)
+        ]
+        if not others:
+            continue
+        listed = "; ".join(f"{a.name.replace('_', ' ')} p = {a.p_value:.3g}" for a in others)
+        side = "below" if verdict else "above"
+        yield Finding(
+            "cross-checks-disagree",
+            "warning",
+            f"The corrected test of '{t.term}' ({corrected.name.replace('_', ' ')}, "
+            f"{_p(corrected.p_value)}) is {side} alpha = {alpha:g}, but {listed}: the "
+            f"conclusion depends on the method, so the data do not settle it.",
+            "Read the result as borderline. docs/calibration.md shows which method holds its "
+            "error rate with this many units; the verdict uses that one.",
+            (*t.factors, *t.unit.columns),
+        )
+
+
+@rule("unit-overdispersion", "yes/no or count outcomes vary between units more than chance allows")
+def _overdispersion(ev: Evidence) -> Iterator[Finding]:
+    for t in ev.terms:
+        od = None if t.clustering is None else t.clustering.overdispersion
+        if od is None or od.p_value >= ev.claim.alpha:
+            continue
+        what = "proportions" if od.family == "binomial" else "counts"
+        yield Finding(
+            "unit-overdispersion",
+            "warning",
+            f"The {what} differ between {t.unit.unit} units of the same level far more than "
+            f"{od.family} chance allows (dispersion {od.dispersion:.2f}, chi2({od.df}) = "
+            f"{od.chi2:.3g}, {_p(od.p_value)}): the {t.unit.unit} units are clustered, so "
+            f"rows are not independent trials.",
+            "Analyse one value per unit, or a model that allows for the clustering.",
             (*t.factors, *t.unit.columns),
         )
 

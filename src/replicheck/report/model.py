@@ -57,6 +57,16 @@ def _clustering(cl: Clustering | None) -> dict[str, Any]:
         "n_units": cl.n_units,
         "n_observations": cl.n_observations,
         "effective_n_per_level": cl.effective_n_per_level,
+        "overdispersion": None
+        if cl.overdispersion is None
+        else {
+            "family": cl.overdispersion.family,
+            "dispersion": cl.overdispersion.dispersion,
+            "chi2": cl.overdispersion.chi2,
+            "df": cl.overdispersion.df,
+            "p_value": cl.overdispersion.p_value,
+            "n_units": cl.overdispersion.n_units,
+        },
     }
 
 
@@ -191,6 +201,7 @@ class Report:
                         "notes": list(a.notes),
                         "corrected": a.name == tr.corrected,
                         "stratum": a.stratum,
+                        "test": a.test,
                     }
                 )
         terms = []
@@ -209,6 +220,7 @@ class Report:
                     "error_term": _error_term(te, s),
                     "status": tv.status,
                     "method": tv.method,
+                    "test": corrected.test if corrected else None,
                     "statistic": corrected.statistic if corrected else None,
                     "df": list(corrected.df) if corrected and corrected.df else None,
                     "p_value": corrected.p_value if corrected else None,
@@ -237,6 +249,7 @@ class Report:
             },
             "claim": {
                 "response": c.response,
+                "response_kind": ev.response_kind,
                 "treatments": list(c.treatments),
                 "unit": c.unit,
                 "alpha": alpha,

@@ -5,7 +5,7 @@ from __future__ import annotations
 import textwrap
 from typing import Any
 
-from replicheck.numbers import format_p
+from replicheck.numbers import format_p, p_phrase
 
 WIDTH = 88
 
@@ -56,7 +56,7 @@ def _table(rows: list[list[str]], header: list[str]) -> list[str]:
 
 def analyses_header(doc: dict[str, Any]) -> list[str]:
     """Column names of the analyses table (a term column when there are several terms)."""
-    head = ["analysis", "replicates", "F", "df", "p", "signif."]
+    head = ["analysis", "replicates", "statistic", "df", "p", "signif."]
     return ["term", *head] if len(doc["terms"]) > 1 else head
 
 
@@ -69,7 +69,8 @@ def analyses_rows(doc: dict[str, Any]) -> list[list[str]]:
         row = [
             a["name"] + mark,
             f"{a['n_replicates']} {a['level']}",
-            fmt_num(a["statistic"], 4),
+            ("chi2 " if a.get("test") == "chi2" and a["statistic"] is not None else "")
+            + fmt_num(a["statistic"], 4),
             fmt_df(a["df"]),
             fmt_p(a["p_value"]),
             "-" if a["significant"] is None else ("yes" if a["significant"] else "no"),
@@ -95,7 +96,7 @@ def shown_candidates(doc: dict[str, Any], limit: int = 6) -> list[dict[str, Any]
 def _clustering_lines(cl: dict[str, Any], title: str) -> list[str]:
     lo, hi = cl["icc_ci"]
     vc = cl["variance_components"]
-    return [
+    lines = [
         title,
         f"  ICC {cl['icc']:.3f} ({cl['icc_method']}); one-way ANOVA estimate "
         f"{cl['icc_anova']:.3f}, 95% CI {lo:.3f} to {hi:.3f}",
@@ -105,6 +106,14 @@ def _clustering_lines(cl: dict[str, Any], title: str) -> list[str]:
         f"CV {cl['cv_unit_size']:.2f}); effective n {cl['effective_n']:.1f} of "
         f"{cl['n_observations']}",
     ]
+    od = cl.get("overdispersion")
+    if od:
+        lines.append(
+            f"  spread between units against {od['family']} chance: dispersion "
+            f"{od['dispersion']:.2f}, chi2({od['df']}) = {fmt_num(od['chi2'], 4)}, "
+            f"{p_phrase(od['p_value'])}"
+        )
+    return lines
 
 
 def terms_rows(doc: dict[str, Any]) -> list[list[str]]:
@@ -117,7 +126,10 @@ def terms_rows(doc: dict[str, Any]) -> list[list[str]]:
                 t["term"],
                 t["status"],
                 fmt_p(t["claimed_p_value"]),
-                f"F({fmt_df(t['df'])}) = {fmt_num(t['statistic'])}" if t["df"] else "no test",
+                f"{'chi2' if t.get('test') == 'chi2' else 'F'}({fmt_df(t['df'])}) = "
+                f"{fmt_num(t['statistic'])}"
+                if t["df"]
+                else "no test",
                 fmt_p(t["p_value"]),
                 t["error_term"] or "-",
                 "-" if changed is None else ("YES" if changed else "no"),

@@ -24,6 +24,7 @@ __all__ = [
     "TestResult",
     "ols_term_f",
     "oneway_anova",
+    "pearson_chi2",
     "two_sample_t",
 ]
 
@@ -210,4 +211,31 @@ def ols_term_f(y: np.ndarray, x_full: np.ndarray, x_reduced: np.ndarray) -> Test
         statistic=float(f),
         df=(df1, df2),
         p_value=float(stats.f.sf(f, df1, df2)),
+    )
+
+
+def pearson_chi2(y: np.ndarray, group: np.ndarray) -> TestResult:
+    """Pearson's chi-squared test of independence of a 0/1 response and the groups.
+
+    X^2 = sum over the 2 x k table of (observed - expected)^2 / expected, with
+    k - 1 df and no continuity correction (Pearson 1900; Agresti 2013,
+    *Categorical Data Analysis*, 3rd ed., sec. 3.2). Every row counts as an
+    independent trial: this is the row-level analysis of a yes/no response.
+    """
+    arr = _as_response(y)
+    codes, k = _as_codes(group, arr.shape[0])
+    if k < 2:
+        raise DesignError("a chi-squared test needs at least 2 groups")
+    if not np.all((arr == 0.0) | (arr == 1.0)):
+        raise DesignError("a chi-squared test of a yes/no response needs 0/1 values")
+    n_k = np.bincount(codes, minlength=k).astype(float)
+    yes = np.bincount(codes, weights=arr, minlength=k)
+    observed = np.vstack([yes, n_k - yes])
+    expected = np.outer(observed.sum(axis=1), n_k) / arr.size
+    if np.any(expected.sum(axis=1) == 0.0):
+        raise DesignError("the response takes a single value: the chi-squared test is undefined")
+    x2 = float(np.sum((observed - expected) ** 2 / expected))
+    df = float(k - 1)
+    return TestResult(
+        test="Pearson chi-squared", statistic=x2, df=(df,), p_value=float(stats.chi2.sf(x2, df))
     )
