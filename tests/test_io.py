@@ -589,3 +589,21 @@ def test_other_source_types_refused() -> None:
     # read_table takes paths and DataFrames only; anything else is a usage error
     with pytest.raises(InputError, match="expected a file path or a DataFrame"):
         read_table(io.StringIO("a,b\n1,2\n"))  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize(
+    ("values", "coding"),
+    [
+        (["y", "n", "y"], ("n", "y")),
+        (["Present", "absent"], ("absent", "Present")),
+        (["alive", "dead"], ("dead", "alive")),
+        (["germinated", "dormant"], ("dormant", "germinated")),
+        (["male", "female"], None),  # two words that are not a yes/no outcome
+        (["yes", "no", "maybe"], None),
+    ],
+)
+def test_yes_no_text_coding(values: list[str], coding: tuple[str, str] | None) -> None:
+    # Pure labelling logic on tiny hand-written columns (no statistics involved).
+    from replicheck.io.columns import yes_no_coding
+
+    assert yes_no_coding(pd.Series(values, dtype="string")) == coding

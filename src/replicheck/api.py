@@ -26,6 +26,7 @@ from replicheck.clustering import measure_clustering
 from replicheck.errors import InputError
 from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
+from replicheck.io.columns import yes_no_coding
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
@@ -334,6 +335,7 @@ def audit(
     }
     fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
     kind = response_kind(y)
+    coding = yes_no_coding(table.data[c.response])
     first_claim = reported.get(terms[0].name)
     row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
     fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
@@ -394,6 +396,7 @@ def audit(
         formula_blocks=tuple(formula_blocks),
         unreplicated=tuple(t.name for t in dropped),
         response_kind=kind,
+        response_coding=coding,
     )
     verdict = decide(evidence)
     return Report(table, len(frame), c, evidence, fits, verdict, _needs(inputs, evidence, y, c))

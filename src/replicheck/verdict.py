@@ -81,6 +81,7 @@ class Evidence:
     formula_blocks: tuple[str, ...] = ()
     unreplicated: tuple[str, ...] = ()  # interactions left without error: not testable
     response_kind: str = "continuous"  # continuous | binary | count
+    response_coding: tuple[str, str] | None = None  # text labels read as 0 and 1
 
 
 @dataclass(frozen=True)

@@ -130,12 +130,82 @@ def column_decimal(values: pd.Series) -> str:
     return "," if uses_comma and not uses_dot else "."
 
 
+# Words that mark the "1" of a yes/no response written as text (common usage).
+_YES = frozenset(
+    {
+        "yes",
+        "y",
+        "true",
+        "t",
+        "present",
+        "positive",
+        "pos",
+        "success",
+        "alive",
+        "survived",
+        "germinated",
+        "infected",
+        "dead",
+        "died",
+        "1",
+    }
+)
+_NO = frozenset(
+    {
+        "no",
+        "n",
+        "false",
+        "f",
+        "absent",
+        "negative",
+        "neg",
+        "failure",
+        "fail",
+        "0",
+        "none",
+        "dead",
+        "died",
+    }
+)
+
+
+def yes_no_coding(series: pd.Series) -> tuple[str, str] | None:
+    """The (0, 1) labels of a text column holding a yes/no outcome, else None.
+
+    The column must hold exactly two distinct values, at least one of which
+    reads as "yes" (yes, y, true, present, positive, success, alive, survived,
+    germinated, infected, ...) or "no" (no, n, false, absent, negative,
+    failure, dead, ...); the "yes" value is 1. Two other words (male/female)
+    are not a yes/no outcome.
+    """
+    if is_bool_dtype(series) or is_numeric_dtype(series):
+        return None
+    if is_datetime64_any_dtype(series) or is_timedelta64_dtype(series):
+        return None
+    values = sorted(set(series.dropna().astype(str).str.strip()))
+    if len(values) != 2:
+        return None
+    a, b = values
+    la, lb = a.lower(), b.lower()
+    if la in _YES and lb not in _YES:
+        return b, a
+    if lb in _YES and la not in _YES:
+        return a, b
+    if la in _NO and lb not in _NO:
+        return a, b
+    if lb in _NO and la not in _NO:
+        return b, a
+    return None
+
+
 def numeric_column(table: Table, column: str, role: str = "response") -> pd.Series:
     """The column as a float Series (NaN for missing), or :class:`InputError`.
 
     ``column`` is looked up with :func:`resolve_column`. Text cells are parsed
     as numbers, with a decimal comma when the column writes numbers that way;
     any cell that is neither missing nor a number makes the column non-numeric.
+    A response written as two text values (yes/no, present/absent, ...) becomes
+    0/1 as :func:`yes_no_coding` says.
     """
     name = resolve_column(table.columns, column, role)
     what = f"{_column_label(role)} '{name}'"
@@ -145,6 +215,9 @@ def numeric_column(table: Table, column: str, role: str = "response") -> pd.Seri
     else:
         if is_datetime64_any_dtype(series) or is_timedelta64_dtype(series):
             values = pd.Series(np.nan, index=series.index)
+        elif role == "response" and (coding := yes_no_coding(series)) is not None:
+            text = series.astype("string").str.strip()
+            values = text.map({coding[0]: 0.0, coding[1]: 1.0}).astype(float)
         else:
             values = parse_numbers(series, column_decimal(series))
         bad = series[series.notna() & values.isna()]

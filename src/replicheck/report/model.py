@@ -250,6 +250,9 @@ class Report:
             "claim": {
                 "response": c.response,
                 "response_kind": ev.response_kind,
+                "response_coding": None
+                if ev.response_coding is None
+                else {"0": ev.response_coding[0], "1": ev.response_coding[1]},
                 "treatments": list(c.treatments),
                 "unit": c.unit,
                 "alpha": alpha,
