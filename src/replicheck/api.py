@@ -31,7 +31,7 @@ from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
 from replicheck.stats.discrete import response_kind
-from replicheck.stats.power import DesignNeeds, design_needs
+from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
 from replicheck.stats.randomisation import DEFAULT_SEED
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
@@ -230,6 +230,8 @@ def audit(
     unit_labels: str = "auto",
     formula: str | None = None,
     seed: int = DEFAULT_SEED,
+    power: float = 0.8,
+    effect: float | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -259,6 +261,10 @@ def audit(
     seed:
         Seed of the Monte Carlo randomisation test (used only when the design
         allows more than 100,000 assignments); the same seed gives the same report.
+    power, effect:
+        Target power of the "what a valid design would need" figures, and the
+        difference between two level means (in the response's units) to detect;
+        by default the observed differences between the level means.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
         each treatment level) or ``global`` (labels name the same unit everywhere).
@@ -282,6 +288,10 @@ def audit(
     >>> audit(df, response="y", treatment="feed").status
     'pseudoreplicated'
     """
+    if isinstance(power, bool) or not 0 < power < 1:
+        raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
+    if effect is not None and not (np.isfinite(effect) and effect > 0):
+        raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
     c = make_claim(
         data,
         response=response,
@@ -399,14 +409,20 @@ def audit(
         response_coding=coding,
     )
     verdict = decide(evidence)
-    return Report(table, len(frame), c, evidence, fits, verdict, _needs(inputs, evidence, y, c))
+    needs = _needs(inputs, evidence, y, c, power, effect)
+    return Report(table, len(frame), c, evidence, fits, verdict, needs)
 
 
 def _needs(
-    inputs: Sequence[TermInput], evidence: Evidence, y: np.ndarray, claim: Claim
+    inputs: Sequence[TermInput],
+    evidence: Evidence,
+    y: np.ndarray,
+    claim: Claim,
+    power: float,
+    effect: float | None,
 ) -> DesignNeeds | None:
-    """Units per level a design would need to detect the observed effect of the first
-    term with a replicated unit (80% power at alpha)."""
+    """Units per level a design would need to detect the observed effect (or ``effect``,
+    a difference between two level means) of the first term with a replicated unit."""
     for ti, te in zip(inputs, evidence.terms, strict=True):
         cl = te.clustering
         if cl is None or ti.unit is None:
@@ -417,8 +433,18 @@ def _needs(
         )
         level = np.zeros(n_units, dtype=np.int64)
         level[ti.unit] = ti.codes
-        level_means = [float(means[level == k].mean()) for k in range(len(ti.labels))]
-        return design_needs(
-            level_means, cl.var_unit, cl.var_residual, cl.mean_unit_size, alpha=claim.alpha
+        k = len(ti.labels)
+        if effect is None:
+            level_means = [float(means[level == j].mean()) for j in range(k)]
+        else:
+            level_means = stated_effect_means(effect, k)
+        needs = design_needs(
+            level_means,
+            cl.var_unit,
+            cl.var_residual,
+            cl.mean_unit_size,
+            alpha=claim.alpha,
+            power=power,
         )
+        return needs if effect is None else replace(needs, effect_kind="stated", difference=effect)
     return None

@@ -138,7 +138,22 @@ def cli() -> None:
     type=int,
     default=DEFAULT_SEED,
     show_default=True,
-    help="Seed of the Monte Carlo randomisation test (used beyond 100,000 assignments).",
+    help="Seed of the random steps (Monte Carlo randomisation test, wild cluster bootstrap).",
+)
+@click.option(
+    "--power",
+    type=float,
+    default=0.8,
+    show_default=True,
+    help="Power the 'what a valid design would need' figures aim for.",
+)
+@click.option(
+    "--effect",
+    type=float,
+    default=None,
+    metavar="D",
+    help="Difference between two level means (in the response's units) the design "
+    "should detect; default: the observed differences.",
 )
 def check(
     data: str,
@@ -156,6 +171,8 @@ def check(
     fmt: str,
     output: str | None,
     seed: int,
+    power: float,
+    effect: float | None,
 ) -> None:
     """Audit DATA against its claimed analysis.
 
@@ -180,6 +197,8 @@ def check(
         find_spec=not no_spec,
         unit_labels=unit_labels,
         seed=seed,
+        power=power,
+        effect=effect,
     )
     if report.claim.spec_path and spec is None:
         click.echo(f"using spec {report.claim.spec_path}", err=True)

@@ -106,7 +106,11 @@ def _needs(n: DesignNeeds | None, te: TermEvidence) -> dict[str, Any] | None:
         "units_now": min(te.units_per_level.values()) if te.units_per_level else None,
         "power": n.power,
         "alpha": n.alpha,
-        "effect": {"cohen_f_unit_means": n.effect_f, "kind": "observed"},
+        "effect": {
+            "cohen_f_unit_means": n.effect_f,
+            "kind": n.effect_kind,
+            "difference": n.difference,
+        },
         "observations_per_unit": n.observations_per_unit,
         "icc": n.icc,
         "by_unit_size": [

@@ -178,8 +178,13 @@ def needs_sentence(doc: dict[str, Any]) -> str | None:
     unit, term = n["unit"], n["term"]
     m = n["observations_per_unit"]
     if n["units_per_level"] is None:
+        size = (
+            f"A difference of {n['effect']['difference']:g} between levels of '{term}' is"
+            if n["effect"].get("kind") == "stated"
+            else f"The observed differences between levels of '{term}' are"
+        )
         return (
-            f"The observed differences between levels of '{term}' are too small beside the "
+            f"{size} too small beside the "
             f"variation between {unit} units for any practical number of units to detect them "
             f"with {n['power']:.0%} power."
         )
@@ -191,8 +196,13 @@ def needs_sentence(doc: dict[str, Any]) -> str | None:
         if many is not None
         else ""
     )
+    what = (
+        f"a difference of {n['effect']['difference']:g} between two levels of '{term}'"
+        if n["effect"].get("kind") == "stated"
+        else f"differences between levels of '{term}' as large as those observed"
+    )
     return (
-        f"To detect differences between levels of '{term}' as large as those observed, with "
+        f"To detect {what}, with "
         f"{n['power']:.0%} power at alpha = {n['alpha']:g}, a design would need about "
         f"{n['units_per_level']} independent {unit} units per level with {m:.3g} observations "
         f"each (it has {n['units_now']}){tail}."

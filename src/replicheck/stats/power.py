@@ -33,6 +33,17 @@ class DesignNeeds:
     observations_per_unit: float
     icc: float
     by_unit_size: tuple[tuple[int, int | None], ...]  # (observations per unit, units per level)
+    effect_kind: str = "observed"  # observed | stated
+    difference: float | None = None  # the stated difference between two level means
+
+
+def stated_effect_means(difference: float, levels: int) -> list[float]:
+    """Level means for a stated difference between two levels, the others halfway.
+
+    This is the least favourable configuration for a given range of means
+    (Cohen 1988, sec. 8.2, pattern 1): Cohen's f^2 = difference^2 / (2 levels).
+    """
+    return [0.0, difference, *([difference / 2] * (levels - 2))]
 
 
 def f_test_power(f2: float, levels: int, units: int, alpha: float) -> float:
