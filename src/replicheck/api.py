@@ -33,6 +33,7 @@ from replicheck.report.model import Report
 from replicheck.stats.discrete import response_kind
 from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
 from replicheck.stats.randomisation import DEFAULT_SEED
+from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
 from replicheck.structure.terms import Term, drop_unreplicated, interaction_levels, model_terms
@@ -232,6 +233,9 @@ def audit(
     seed: int = DEFAULT_SEED,
     power: float = 0.8,
     effect: float | None = None,
+    hidden: bool = True,
+    dayfirst: bool | None = None,
+    order: str | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -265,6 +269,13 @@ def audit(
         Target power of the "what a valid design would need" figures, and the
         difference between two level means (in the response's units) to detect;
         by default the observed differences between the level means.
+    hidden, dayfirst, order:
+        Whether to look for groupings that no column names (sessions in time
+        stamps, zones in coordinates, runs in the row order, tokens of sample
+        codes, covariates constant within unrecorded units); how to read
+        ambiguous dates (day first or month first; by default the reading that
+        fits every value, month first when both do); a column giving the order
+        in which samples were processed (default: detected, else file order).
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
         each treatment level) or ``global`` (labels name the same unit everywhere).
@@ -319,6 +330,19 @@ def audit(
     terms, dropped = drop_unreplicated(frame, terms, c.treatments)
     reported = _reported_by_term(c, terms)
     interactions = [t.name for t in terms if t.is_interaction]
+    hidden_scan = HiddenScan()
+    if hidden:
+        order_col = None if order is None else resolve_column(table.columns, order, "order")
+        hidden_scan = scan_hidden(
+            frame,
+            c.response,
+            c.treatments,
+            seed=seed,
+            dayfirst=dayfirst,
+            order=order_col,
+        )
+        for g in hidden_scan.derived:
+            frame[g.name] = derived_column(g, frame.index)
     for t in terms:
         if t.is_interaction:
             frame[t.name] = interaction_levels(frame, t.factors)
@@ -407,6 +431,7 @@ def audit(
         unreplicated=tuple(t.name for t in dropped),
         response_kind=kind,
         response_coding=coding,
+        hidden=hidden_scan,
     )
     verdict = decide(evidence)
     needs = _needs(inputs, evidence, y, c, power, effect)

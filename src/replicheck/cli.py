@@ -155,6 +155,28 @@ def cli() -> None:
     help="Difference between two level means (in the response's units) the design "
     "should detect; default: the observed differences.",
 )
+@click.option(
+    "--hidden/--no-hidden",
+    default=True,
+    show_default=True,
+    help="Look for groupings no column names: sessions in time stamps, zones in "
+    "coordinates, runs in the processing order, tokens of sample codes, covariates "
+    "constant within unrecorded units.",
+)
+@click.option(
+    "--dates",
+    type=click.Choice(["auto", "day-first", "month-first"]),
+    default="auto",
+    show_default=True,
+    help="How to read dates such as 04/03/2026 when both readings fit.",
+)
+@click.option(
+    "--order",
+    "order_col",
+    metavar="COL",
+    help="Column giving the order in which samples were processed (default: a "
+    "sequence column if one is found, else the file order).",
+)
 def check(
     data: str,
     response: str | None,
@@ -173,6 +195,9 @@ def check(
     seed: int,
     power: float,
     effect: float | None,
+    hidden: bool,
+    dates: str,
+    order_col: str | None,
 ) -> None:
     """Audit DATA against its claimed analysis.
 
@@ -199,6 +224,9 @@ def check(
         seed=seed,
         power=power,
         effect=effect,
+        hidden=hidden,
+        dayfirst=None if dates == "auto" else dates == "day-first",
+        order=order_col,
     )
     if report.claim.spec_path and spec is None:
         click.echo(f"using spec {report.claim.spec_path}", err=True)

@@ -9,13 +9,14 @@ in a module imported here), decorate it, and document it.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.numbers import p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
+from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.names import name_hint
 from replicheck.structure.units import Structure, UnitChoice
 
@@ -82,6 +83,7 @@ class Evidence:
     unreplicated: tuple[str, ...] = ()  # interactions left without error: not testable
     response_kind: str = "continuous"  # continuous | binary | count
     response_coding: tuple[str, str] | None = None  # text labels read as 0 and 1
+    hidden: HiddenScan = field(default_factory=HiddenScan)  # groupings no column names
 
 
 @dataclass(frozen=True)
@@ -527,6 +529,77 @@ def _overdispersion(ev: Evidence) -> Iterator[Finding]:
             "Analyse one value per unit, or a model that allows for the clustering.",
             (*t.factors, *t.unit.columns),
         )
+
+
+@rule("grouping-derived", "a grouping no column names was found and weighed as a unit")
+def _derived(ev: Evidence) -> Iterator[Finding]:
+    for g in ev.hidden.derived:
+        used = [t.term for t in ev.terms if g.name in (t.unit.columns or ())]
+        credible = any(k.name == g.name and k.credible for k in ev.structure.candidates)
+        if not used and not credible:
+            continue
+        role = (
+            f"replicheck took it as the experimental unit of {', '.join(repr(u) for u in used)}"
+            if used
+            else "it is a credible candidate unit, not taken"
+        )
+        yield Finding(
+            "grouping-derived",
+            "warning" if used else "note",
+            f"{g.how} The grouping '{g.name}' (from {', '.join(g.sources)}) is named in no "
+            f"column; {role}.",
+            "Check it against the methods. If it is not a unit of the design, state the unit "
+            "with --unit, or turn the search off with --no-hidden.",
+            g.sources,
+        )
+
+
+SIGNAL_P = 0.001  # p-value below which a hidden-structure signal is reported (common practice)
+SIGNAL_RULES: dict[str, tuple[str, str]] = {
+    "treatment-by-time": ("warning", "treatment levels sit on separate days or sessions"),
+    "treatment-in-runs": ("warning", "treatment levels were processed in runs along the order"),
+    "order-autocorrelation": ("note", "residuals are correlated along the processing order"),
+    "treatment-clumped-in-space": ("warning", "treatment levels are clumped in space"),
+    "residual-spatial-autocorrelation": ("note", "residuals are correlated in space"),
+    "code-encodes-treatment": ("note", "a sample code carries the treatment"),
+    "treatment-in-file-runs": ("note", "the file lists treatment levels in long stretches"),
+    "day-month-ambiguous": ("note", "dates could be read day first or month first"),
+}
+SIGNAL_ALWAYS = frozenset({"treatment-by-time"})  # a fact of the data, whatever its p-value
+SIGNAL_ADVICE = {
+    "treatment-by-time": "Ask whether each day or session was a unit of the treatment; if so, "
+    "the days, not the rows, are the replicates.",
+    "treatment-in-runs": "Ask whether samples were processed in batches by treatment; a batch "
+    "effect would then be confounded with the treatment.",
+    "order-autocorrelation": "Neighbouring samples in processing order are alike: look for "
+    "drift or batches in the processing.",
+    "treatment-clumped-in-space": "Ask how positions were allocated; a treatment kept in one "
+    "area is confounded with that area.",
+    "residual-spatial-autocorrelation": "Nearby positions are alike: blocks or a spatial model "
+    "would account for it.",
+    "code-encodes-treatment": "Harmless when the code merely names the treatment; rows that "
+    "break the pattern may be mislabelled.",
+    "treatment-in-file-runs": "Usually just how the file was sorted; if the rows are in "
+    "processing order, state it with --order so runs can be weighed as units.",
+    "day-month-ambiguous": "Say how the dates are written with --dates day-first or "
+    "--dates month-first.",
+}
+
+
+def _signal_rule(check: str, severity: str) -> Rule:
+    def fn(ev: Evidence) -> Iterator[Finding]:
+        for sig in ev.hidden.signals:
+            if sig.check != check:
+                continue
+            if sig.p_value is not None and sig.p_value > SIGNAL_P and check not in SIGNAL_ALWAYS:
+                continue
+            yield Finding(check, severity, sig.message, SIGNAL_ADVICE[check], sig.columns)
+
+    return fn
+
+
+for _check, (_severity, _doc) in SIGNAL_RULES.items():
+    rule(_check, _doc)(_signal_rule(_check, _severity))
 
 
 @rule("unit-variance-zero", "the mixed model put the unit variance at zero")

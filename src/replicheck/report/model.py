@@ -321,6 +321,30 @@ class Report:
                 for r in s.relations
             ],
             "skipped_columns": dict(s.skipped),
+            "hidden": {
+                "derived": [
+                    {
+                        "name": g.name,
+                        "sources": list(g.sources),
+                        "kind": g.kind,
+                        "n_groups": int(g.codes.max()) + 1 if g.codes.size else 0,
+                        "how": g.how,
+                        "strength": dict(g.strength),
+                        "unit_of": [t.term for t in ev.terms if g.name in t.unit.columns],
+                    }
+                    for g in ev.hidden.derived
+                ],
+                "signals": [
+                    {
+                        "check": sig.check,
+                        "columns": list(sig.columns),
+                        "statistic": sig.statistic,
+                        "p_value": sig.p_value,
+                        "message": sig.message,
+                    }
+                    for sig in ev.hidden.signals
+                ],
+            },
             "clustering": _clustering(main.clustering),
             "randomization": _randomization(main.refit),
             "design_needs": _needs(self.design_needs, main),

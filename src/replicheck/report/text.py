@@ -170,6 +170,21 @@ def design_tree(doc: dict[str, Any]) -> list[str]:
     return lines
 
 
+def hidden_lines(doc: dict[str, Any]) -> list[str]:
+    """Derived groupings with how they were found, and the signals worth reading."""
+    h = doc.get("hidden") or {}
+    out: list[str] = []
+    for g in h.get("derived", []):
+        use = f"unit of {', '.join(g['unit_of'])}" if g["unit_of"] else "candidate"
+        out.append(_wrap(f"{g['name']} ({g['n_groups']} groups; {use}): {g['how']}", "    ", "  "))
+    for sig in h.get("signals", []):
+        p = sig["p_value"]
+        if p is not None and p > 0.001:
+            continue
+        out.append(_wrap(f"{sig['check']}: {sig['message']}", "    ", "  "))
+    return out
+
+
 def needs_sentence(doc: dict[str, Any]) -> str | None:
     """A sentence on the units a design would need (from the report's design_needs)."""
     n = doc.get("design_needs")
@@ -265,6 +280,9 @@ def render_text(doc: dict[str, Any]) -> str:
     for a in doc["analyses"]:
         for note in a["notes"]:
             out.append(_wrap(f"{a['name']} ({a['term']}): {note}", "        ", "  note: "))
+    found = hidden_lines(doc)
+    if found:
+        out += ["", "GROUPINGS FOUND IN THE DATA (no column names them)", *found]
     needs = needs_sentence(doc)
     if needs:
         out += ["", "WHAT A VALID DESIGN WOULD NEED", _wrap(needs)]

@@ -123,6 +123,8 @@ LOCATION_WORDS: frozenset[str] = frozenset(
         "stream",
         "pool",
         "bay",
+        "zone",
+        "area",
         "ch",
         "kammer",
         "schale",
@@ -316,8 +318,19 @@ ID_WORDS: frozenset[str] = frozenset(
 )
 
 
+_DERIVED = re.compile(r"^([^\[\]]+)\[.*\]$")
+
+
 def tokens(name: str) -> list[str]:
-    """Lower-case word tokens of a column name (split at non-letters and letter/digit edges)."""
+    """Lower-case word tokens of a column name (split at non-letters and letter/digit edges).
+
+    A grouping derived by a hidden-grouping scan is named ``word[sources]``
+    (``session[sampled_at]``, ``zone[x,y]``); only the word before the bracket
+    counts, so the source columns' names do not colour the hint.
+    """
+    derived = _DERIVED.match(str(name))
+    if derived is not None:
+        name = derived.group(1)
     spaced = re.sub(r"([a-z])([A-Z])", r"\1 \2", str(name))
     raw = re.split(r"[^0-9A-Za-zÀ-ÿ]+|(?<=[A-Za-zÀ-ÿ])(?=\d)|(?<=\d)(?=[A-Za-zÀ-ÿ])", spaced)
     return [_fold(t.lower()) for t in raw if t and not t.isdigit()]

@@ -1,0 +1,87 @@
+"""Hidden groupings: units that no column names outright.
+
+:func:`scan_hidden` runs every scan over the analysed rows and returns the
+groupings they derived (each a new candidate column for the structure stage)
+and the signals they measured (treatment clumped in time, space or row order;
+residual correlation along time, space or order; sample codes that encode the
+treatment). A derived grouping that repeats a column's partition, or another
+derived grouping's, is dropped; one that repeats a treatment's is kept (a
+treatment applied on its own day is confounded with that day).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from replicheck.partitions import same_partition
+from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
+from replicheck.structure.hidden.codes import scan_codes
+from replicheck.structure.hidden.covariates import scan_covariates
+from replicheck.structure.hidden.order import scan_order
+from replicheck.structure.hidden.space import scan_space
+from replicheck.structure.hidden.time import scan_time
+
+__all__ = ["DerivedGrouping", "HiddenScan", "Signal", "derived_column", "scan_hidden"]
+
+
+def _codes(series: pd.Series) -> np.ndarray | None:
+    """Integer codes of a fully observed column, else None."""
+    if series.isna().any():
+        return None
+    codes, _ = pd.factorize(series, sort=False)
+    return np.asarray(codes, dtype=np.int64)
+
+
+def _repeats(g: DerivedGrouping, known: Sequence[np.ndarray]) -> bool:
+    if np.any(g.codes < 0):
+        return False
+    return any(same_partition(g.codes, k) for k in known)
+
+
+def scan_hidden(
+    frame: pd.DataFrame,
+    response: str,
+    treatments: Sequence[str],
+    *,
+    seed: int,
+    dayfirst: bool | None = None,
+    order: str | None = None,
+    exclude: Sequence[str] = (),
+) -> HiddenScan:
+    """Every hidden-grouping scan over ``frame`` (the analysed rows)."""
+    scans = (
+        scan_time(frame, response, treatments, dayfirst=dayfirst, exclude=exclude),
+        scan_order(frame, response, treatments, order=order, seed=seed, exclude=exclude),
+        scan_space(frame, response, treatments, seed=seed, exclude=exclude),
+        scan_codes(frame, response, treatments, exclude=exclude),
+        scan_covariates(frame, response, treatments, exclude=exclude),
+    )
+    known = [
+        c
+        for col in frame.columns
+        if col != response
+        and col not in treatments
+        and (c := _codes(frame[col])) is not None
+        and 1 < int(c.max()) + 1 < len(frame)
+    ]
+    derived: list[DerivedGrouping] = []
+    for scan in scans:
+        for g in scan.derived:
+            if g.name in frame.columns or _repeats(g, known):
+                continue
+            derived.append(g)
+            if not np.any(g.codes < 0):
+                known.append(g.codes)
+    signals = tuple(s for scan in scans for s in scan.signals)
+    return HiddenScan(tuple(derived), signals)
+
+
+def derived_column(g: DerivedGrouping, index: pd.Index) -> pd.Series:
+    """The grouping as a text column (missing where the grouping is unknown)."""
+    word = g.name.split("[", 1)[0]
+    labels = np.array([f"{word} {c + 1}" for c in g.codes.tolist()], dtype=object)
+    labels[g.codes < 0] = None
+    return pd.Series(labels, index=index, name=g.name, dtype="string")
