@@ -22,6 +22,7 @@ import pandas as pd
 from replicheck.errors import InputError
 from replicheck.partitions import is_nested, same_partition
 from replicheck.stats.clustering import anova_components
+from replicheck.structure.hidden.time import parse_times
 from replicheck.structure.names import NameHint, name_hint, tokens
 from replicheck.structure.relations import (
     PairRelation,
@@ -111,6 +112,17 @@ def _norm(s: str) -> str:
     return "".join(ch for ch in str(s).lower() if ch.isalnum())
 
 
+def _is_time_stamp(s: pd.Series) -> bool:
+    """Whether a column holds times of day (with or without dates), not bare dates."""
+    if pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
+        return False
+    values, _ = parse_times(s)
+    if values is None:
+        return False
+    stamps = pd.to_datetime(values.dropna())
+    return bool((stamps != stamps.dt.normalize()).any())
+
+
 def grouping_columns(
     data: pd.DataFrame, exclude: Sequence[str]
 ) -> tuple[list[str], dict[str, str]]:
@@ -130,6 +142,8 @@ def grouping_columns(
             skipped[col] = "a single value"
         elif n_unique == n_present:
             skipped[col] = "a row identifier (every value distinct)"
+        elif _is_time_stamp(s):
+            skipped[col] = "a time stamp (its days and sessions are weighed instead)"
         elif pd.api.types.is_bool_dtype(s) or not pd.api.types.is_numeric_dtype(s):
             keep.append(col)
         else:

@@ -16,7 +16,7 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 
-from replicheck.partitions import same_partition
+from replicheck.partitions import is_nested, same_partition
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
 from replicheck.structure.hidden.codes import scan_codes
 from replicheck.structure.hidden.covariates import scan_covariates
@@ -75,8 +75,31 @@ def scan_hidden(
             derived.append(g)
             if not np.any(g.codes < 0):
                 known.append(g.codes)
+    derived = _without_weak_runs(derived, frame, treatments)
     signals = tuple(s for scan in scans for s in scan.signals)
     return HiddenScan(tuple(derived), signals)
+
+
+def _without_weak_runs(
+    derived: list[DerivedGrouping], frame: pd.DataFrame, treatments: Sequence[str]
+) -> list[DerivedGrouping]:
+    """Drop runs in the file order when another derived grouping already groups the rows
+    within a treatment: the file order is the weakest evidence of a unit (listing rows day
+    by day makes the days' runs; the days are the better reading)."""
+    runs = [g for g in derived if g.name == "run[file order]"]
+    if not runs:
+        return derived
+    others = [g for g in derived if g.name != "run[file order]" and not np.any(g.codes < 0)]
+    for t in treatments:
+        codes = _codes(frame[t])
+        if codes is None:
+            continue
+        k = int(codes.max()) + 1
+        if any(
+            k < int(g.codes.max()) + 1 < len(frame) and is_nested(g.codes, codes) for g in others
+        ):
+            return [g for g in derived if g.name != "run[file order]"]
+    return derived
 
 
 def derived_column(g: DerivedGrouping, index: pd.Index) -> pd.Series:
