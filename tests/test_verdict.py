@@ -44,6 +44,17 @@ def test_entry_error_is_reported_as_partial_alignment_with_its_row() -> None:
     assert "data row 6" in f["message"]
     rel = {r["column"]: r for r in doc["relations"]}["Litter"]
     assert rel["relation"] == "partial" and rel["exception_rows"] == [6]
+    # 321 of 322 pups in their litter's majority dose; Cramer's V and AMI against scipy
+    # and scikit-learn on the same litter x dose table.
+    from scipy.stats.contingency import association
+    from sklearn.metrics import adjusted_mutual_info_score
+
+    table = pd.crosstab(bad["Litter"], bad["Treatment"]).to_numpy()
+    assert rel["strength"]["share_aligned"] == pytest.approx(321 / 322)
+    assert rel["strength"]["cramers_v"] == pytest.approx(association(table, method="cramer"))
+    assert rel["strength"]["ami"] == pytest.approx(
+        adjusted_mutual_info_score(bad["Litter"], bad["Treatment"])
+    )
     # the litter is still found as the unit, the odd row becoming a unit of its own
     assert doc["experimental_units"][0]["n_units"] == 28
     assert doc["verdict"]["status"] == "pseudoreplicated"

@@ -317,6 +317,7 @@ class Report:
                     "n_levels": r.n_levels,
                     "detail": r.detail,
                     "exception_rows": list(r.exceptions),
+                    "strength": r.strength,
                 }
                 for r in s.relations
             ],

@@ -25,6 +25,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.structure.alignment import alignment
+
 # Common practice (no published threshold): at most 5% of the rows, and at
 # least one, may break an otherwise clean nesting before we call it partial.
 PARTIAL_SHARE = 0.05
@@ -52,6 +54,7 @@ class Relation:
     levels_per_treatment: dict[str, int]
     exceptions: tuple[int, ...]  # 1-based data-row numbers that break a partial alignment
     detail: str
+    strength: dict[str, float] | None = None  # partial alignment: ami, cramers_v, share_aligned
 
 
 def codes_of(values: pd.Series) -> tuple[np.ndarray, list[str]]:
@@ -120,7 +123,20 @@ def classify(
     n_levels = ct.n_column_levels
 
     def rel(name: str, detail: str, exceptions: tuple[int, ...] = ()) -> Relation:
-        return Relation(column, treatment, name, n_levels, lpt, exceptions, detail)
+        if name != "partial":
+            return Relation(column, treatment, name, n_levels, lpt, exceptions, detail)
+
+        al = alignment(col, trt, column, treatment)
+        strength = {
+            "share_aligned": al.share_aligned,
+            "cramers_v": al.cramers_v,
+            "ami": al.ami,
+        }
+        detail += (
+            f" ({al.share_aligned:.0%} of rows aligned; Cramer's V {al.cramers_v:.2f}, "
+            f"adjusted mutual information {al.ami:.2f})"
+        )
+        return Relation(column, treatment, name, n_levels, lpt, exceptions, detail, strength)
 
     within_one = bool(np.all(ct.treatments_per_level == 1))
     one_per_trt = bool(np.all(ct.levels_per_treatment == 1))
