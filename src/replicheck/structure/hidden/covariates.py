@@ -26,7 +26,11 @@ nested in the treatment by construction. They are read as a grouping when
    group), a score (1 to 5), an age in years or a sex code recur under every
    treatment level; a temperature read per tank does not (a chosen threshold,
    response-free);
-3. rows sharing a class are more alike in the response than a smooth effect of
+3. either the values recur within treatment cells far more than chance allows
+   (the share of rows, among those whose value recurs, whose value stays in one
+   cell, at least 0.8, with a permutation p < 0.001 over shuffled cells: a
+   response-free test, strict levels chosen as common practice), or rows
+   sharing a class are more alike in the response than a smooth effect of
    the covariate explains: the lack-of-fit F test (Draper & Smith 1998,
    *Applied Regression Analysis*, 3rd ed., §2.1) of the linear model
    ``response ~ cell + value`` (one common slope) against the class means
@@ -241,9 +245,48 @@ def _classes(
     if n_cells < 2 or float(grid.mean()) > MAX_GRID_SHARE:
         return None
     test = lack_of_fit(y, v, cells, classes)
-    if test is None or test[3] >= ALPHA:
+    if test is not None and test[3] < ALPHA:
+        return classes, test
+    confined = confinement(own, cells)
+    if confined is not None and confined[1] < CONFINED_ALPHA and confined[0] >= MIN_CONFINED:
+        return classes, (confined[0], 0, 0, confined[1])
+    return None
+
+
+CONFINED_ALPHA = 0.001  # strict screening level (common practice)
+MIN_CONFINED = 0.8  # share of value-sharing rows whose value stays in one cell (chosen)
+CONFINED_DRAWS = 999
+
+
+def confinement(
+    own: np.ndarray, cells: np.ndarray, seed: int = 20261201
+) -> tuple[float, float] | None:
+    """Share of rows, among those whose value recurs, whose value occurs in one cell only,
+    and its permutation p-value (cells shuffled over rows; Phipson & Smyth 2010).
+
+    A covariate read once per unit repeats within a treatment cell and only by
+    coincidence across cells; a per-row measurement with ties repeats across
+    cells as often as chance allows. The test uses the response not at all.
+    """
+    sizes = np.bincount(own)
+    shared = sizes[own] >= 2
+    if int(shared.sum()) < 4:
         return None
-    return classes, test
+    order = np.argsort(own[shared], kind="stable")
+    groups = own[shared][order]
+    starts = np.flatnonzero(np.concatenate([[True], groups[1:] != groups[:-1]]))
+    weights = np.diff(np.concatenate([starts, [groups.size]]))
+
+    def stat(c: np.ndarray) -> np.ndarray:
+        lo = np.minimum.reduceat(c, starts, axis=-1)
+        hi = np.maximum.reduceat(c, starts, axis=-1)
+        return np.asarray(((lo == hi) * weights).sum(axis=-1) / groups.size)
+
+    observed = float(stat(cells[shared][order]))
+    rng = np.random.default_rng(seed)
+    draws = rng.permuted(np.tile(cells, (CONFINED_DRAWS, 1)), axis=1)[:, shared][:, order]
+    hits = int(np.sum(stat(draws) >= observed - 1e-12))
+    return observed, (1 + hits) / (1 + CONFINED_DRAWS)
 
 
 def _is_grouping_column(frame: pd.DataFrame, col: object) -> bool:
@@ -312,11 +355,14 @@ def _derive(
             f"'{col}' takes {n_values} values, which within each {trt_label} form {k} "
             f"groups of {span} rows"
         )
-    how = (
-        f"{seen}; rows of a group differ in '{response}' beyond a linear trend in '{col}' "
-        f"(lack-of-fit F({df1}, {df2}) = {f:.1f}, {p_phrase(p)}): it looks measured once "
-        f"per unrecorded unit of {k} groups"
+    why = (
+        f"rows of a group differ in '{response}' beyond a linear trend in '{col}' "
+        f"(lack-of-fit F({df1}, {df2}) = {f:.1f}, {p_phrase(p)})"
+        if df1 > 0
+        else f"{f:.0%} of the rows whose value recurs keep it within one {trt_label}, far "
+        f"more than chance ({p_phrase(p)}, permutation)"
     )
+    how = f"{seen}; {why}: it looks measured once per unrecorded unit of {k} groups"
     if n_values < k:
         how += " (units sharing a value are merged, so the groups can be coarser than the units)"
     return DerivedGrouping(
