@@ -127,6 +127,25 @@ def clean_codes(seed: int, icc: float) -> tuple[pd.DataFrame, str, str, str]:
     )
 
 
+def clean_covariates(seed: int, icc: float) -> tuple[pd.DataFrame, str, str, str]:
+    rng = np.random.default_rng(seed)
+    n = 48
+    mass = np.round(rng.normal(250, 20, n) / 5) * 5  # weighed to the nearest 5 g
+    return (
+        pd.DataFrame(
+            {
+                "mass_g": mass,
+                "age_weeks": rng.integers(8, 13, n),
+                "diet": rng.permutation(np.repeat(["chow", "fat"], n // 2)),
+                "glucose": 5 + 0.01 * (mass - 250) + rng.normal(0, 1, n),
+            }
+        ),
+        "glucose",
+        "diet",
+        "",
+    )
+
+
 def hidden_days(seed: int, icc: float) -> tuple[pd.DataFrame, str, str, str]:
     rng = np.random.default_rng(seed)
     day = np.repeat(np.arange(8), 6)
@@ -196,6 +215,7 @@ SCENARIOS: dict[str, tuple[Scenario, tuple[float, ...]]] = {
     "clean: days holding both treatments": (clean_days, (0.0,)),
     "clean: grid, treatments randomised": (clean_grid, (0.0,)),
     "clean: unique sample codes": (clean_codes, (0.0,)),
+    "clean: per-row covariates with ties": (clean_covariates, (0.0,)),
     "hidden: treatment per day": (hidden_days, (0.1, 0.3, 0.5)),
     "hidden: treatment in one half of a grid": (hidden_zones, (0.0,)),
     "hidden: processing runs": (hidden_runs, (0.1, 0.3, 0.5)),

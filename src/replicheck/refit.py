@@ -148,6 +148,17 @@ LABELS = {
 }
 
 BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
+MIN_DISCRETE_UNITS = 3  # fewest units per level for a calibrated yes/no or count test
+FEW_DISCRETE_UNITS = (
+    "with a yes/no or count response and fewer than 3 units in a level, no test on the "
+    "units holds its error rate (docs/calibration.md): the verdict gives no corrected p-value"
+)
+
+
+def _fewest_units(t: TermInput) -> int:
+    """The fewest distinct units in any level of the term."""
+    assert t.unit is not None
+    return min(int(np.unique(t.unit[t.codes == k]).size) for k in range(len(t.labels)))
 
 UNIT_MEANS_LABELS = {
     "continuous": LABELS["unit_means"],
@@ -411,7 +422,9 @@ def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis
     name = "strata_anova"
     level = "rows" if r.stratum == "residual" else "units"
     n_rep = n if t.unit is None or level == "rows" else int(t.unit.max()) + 1
-    testable = r.f_statistic is not None and r.error_df is not None
+    testable = (
+        r.f_statistic is not None and r.error_df is not None and bool(np.isfinite(r.f_statistic))
+    )  # an error stratum with no variation at all (yes/no data) gives no test
     return Analysis(
         name,
         LABELS[name],
@@ -423,7 +436,10 @@ def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis
         float(r.p_value) if testable and r.p_value is not None else None,
         notes=()
         if testable
-        else (f"the '{r.stratum}' stratum has no residual degrees of freedom: untestable",),
+        else (
+            f"the '{r.stratum}' stratum has no residual degrees of freedom or no variation: "
+            "untestable",
+        ),
         stratum=r.stratum,
     )
 
@@ -716,7 +732,7 @@ def refit(
             if rand is not None:
                 analyses.append(_randomisation_analysis(t, rand))
         variance = None
-        corrected = "unit_means" if has_unit else "as_claimed"
+        corrected: str | None = "unit_means" if has_unit else "as_claimed"
         if fit is not None:
             n_rep = int(t.unit.max()) + 1 if has_unit and t.unit is not None else n
             analyses.append(_mixed_analysis(fit, X, index[t.term], t, rname, n_rep, single))
@@ -739,5 +755,11 @@ def refit(
         if exact is not None:
             analyses.append(exact)
             corrected = "strata_anova"
+        if has_unit and kind != "continuous" and _fewest_units(t) < MIN_DISCRETE_UNITS:
+            corrected = None  # no test on so few units holds its error rate (calibration study)
+            analyses = [
+                replace(a, notes=(*a.notes, FEW_DISCRETE_UNITS)) if a.name == "unit_means" else a
+                for a in analyses
+            ]
         out.append(TermRefit(t.term, tuple(analyses), corrected, variance, rand))
     return Refit(tuple(out))

@@ -477,6 +477,21 @@ def _floor(ev: Evidence) -> Iterator[Finding]:
 
 
 CROSS_CHECKS = ("cluster_robust", "wild_bootstrap", "gee", "randomisation")
+# Fewest units per level at which each cross-check held its Type I error in the
+# calibration study (docs/calibration.md): (continuous response, yes/no or count).
+CROSS_CHECK_MIN_UNITS = {
+    "cluster_robust": (2, 5),
+    "wild_bootstrap": (10, 10),
+    "gee": (10, 10),
+    "randomisation": (2, 2),
+}
+
+
+def _calibrated(name: str, t: TermEvidence, kind: str) -> bool:
+    """Whether a cross-check is calibrated with this term's units (per the study)."""
+    fewest = min(t.units_per_level.values()) if t.units_per_level else 0
+    need = CROSS_CHECK_MIN_UNITS[name][0 if kind == "continuous" else 1]
+    return fewest >= need
 
 
 @rule("cross-checks-disagree", "a cross-check falls on the other side of alpha from the verdict")
@@ -492,6 +507,7 @@ def _disagree(ev: Evidence) -> Iterator[Finding]:
             a
             for a in t.refit.analyses
             if a.name in CROSS_CHECKS
+            and _calibrated(a.name, t, ev.response_kind)
             and a.p_value is not None
             and (a.p_value < alpha) != verdict
             and not (a.name == "randomisation" and floor and floor.min_attainable_p > alpha)

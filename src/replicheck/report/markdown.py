@@ -93,6 +93,12 @@ def render_markdown(doc: dict[str, Any]) -> str:
                 f"- **{f['severity']}** `{f['rule']}`: {_esc(f['message'])} "
                 f"*What to do:* {_esc(f['advice'])}"
             )
+    derived = (doc.get("hidden") or {}).get("derived", [])
+    if derived:
+        lines += ["", "### Groupings found in the data (no column names them)", ""]
+        for g in derived:
+            use = f"unit of {', '.join(g['unit_of'])}" if g["unit_of"] else "candidate"
+            lines.append(f"- `{_esc(g['name'])}` ({g['n_groups']} groups; {use}): {_esc(g['how'])}")
     needs = needs_sentence(doc)
     if needs:
         lines += ["", "### What a valid design would need", "", _esc(needs)]

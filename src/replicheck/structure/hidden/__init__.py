@@ -35,10 +35,13 @@ def _codes(series: pd.Series) -> np.ndarray | None:
     return np.asarray(codes, dtype=np.int64)
 
 
-def _repeats(g: DerivedGrouping, known: Sequence[np.ndarray]) -> bool:
+def _repeats(g: DerivedGrouping, known: Sequence[tuple[str, np.ndarray]]) -> bool:
+    """Whether the grouping repeats a column's partition (its own source column aside: a
+    covariate read once per unit gives the units' partition itself, but only the derived
+    reading says that it marks units)."""
     if np.any(g.codes < 0):
         return False
-    return any(same_partition(g.codes, k) for k in known)
+    return any(same_partition(g.codes, k) for name, k in known if name not in g.sources)
 
 
 def scan_hidden(
@@ -60,7 +63,7 @@ def scan_hidden(
         scan_covariates(frame, response, treatments, exclude=exclude),
     )
     known = [
-        c
+        (str(col), c)
         for col in frame.columns
         if col != response
         and col not in treatments
@@ -74,7 +77,7 @@ def scan_hidden(
                 continue
             derived.append(g)
             if not np.any(g.codes < 0):
-                known.append(g.codes)
+                known.append((g.name, g.codes))
     derived = _without_weak_runs(derived, frame, treatments)
     signals = tuple(s for scan in scans for s in scan.signals)
     return HiddenScan(tuple(derived), signals)

@@ -28,7 +28,7 @@ nested in the treatment by construction. They are read as a grouping when
    response-free);
 3. either the values recur within treatment cells far more than chance allows
    (the share of rows, among those whose value recurs, whose value stays in one
-   cell, at least 0.8, with a permutation p < 0.001 over shuffled cells: a
+   cell, at least 0.5, with a permutation p <= 0.001 over shuffled cells: a
    response-free test, strict levels chosen as common practice), or rows
    sharing a class are more alike in the response than a smooth effect of
    the covariate explains: the lack-of-fit F test (Draper & Smith 1998,
@@ -248,13 +248,13 @@ def _classes(
     if test is not None and test[3] < ALPHA:
         return classes, test
     confined = confinement(own, cells)
-    if confined is not None and confined[1] < CONFINED_ALPHA and confined[0] >= MIN_CONFINED:
+    if confined is not None and confined[1] <= CONFINED_ALPHA and confined[0] >= MIN_CONFINED:
         return classes, (confined[0], 0, 0, confined[1])
     return None
 
 
 CONFINED_ALPHA = 0.001  # strict screening level (common practice)
-MIN_CONFINED = 0.8  # share of value-sharing rows whose value stays in one cell (chosen)
+MIN_CONFINED = 0.5  # share of value-sharing rows whose value stays in one cell (chosen)
 CONFINED_DRAWS = 999
 
 

@@ -616,9 +616,10 @@ def _runs_of(
         return signals, None, "", {}
     codes = np.full(len(frame), -1, dtype=np.int64)
     codes[rows] = run_rows
+    span = f"{sizes.min()}" if sizes.min() == sizes.max() else f"{sizes.min()} to {sizes.max()}"
     how = (
-        f"Along {where}, '{treatment}' comes in {n_runs} runs of {sizes.min()} to "
-        f"{sizes.max()} rows ({test.n_runs} runs where {test.expected:.1f} are expected, "
+        f"Along {where}, '{treatment}' comes in {n_runs} runs of {span} "
+        f"rows ({test.n_runs} runs where {test.expected:.1f} are expected, "
         f"{p_phrase(test.p_value)}); each run is a group."
     )
     strength = {
