@@ -160,6 +160,7 @@ def _fewest_units(t: TermInput) -> int:
     assert t.unit is not None
     return min(int(np.unique(t.unit[t.codes == k]).size) for k in range(len(t.labels)))
 
+
 UNIT_MEANS_LABELS = {
     "continuous": LABELS["unit_means"],
     "binary": "unit proportions: one proportion per experimental unit",

@@ -192,10 +192,16 @@ def needs_sentence(doc: dict[str, Any]) -> str | None:
         return None
     unit, term = n["unit"], n["term"]
     m = n["observations_per_unit"]
+    stated = n["effect"].get("kind") == "stated"
+    what = (
+        f"a difference of {n['effect']['difference']:g} between two levels of '{term}'"
+        if stated
+        else f"differences between levels of '{term}' as large as those observed"
+    )
     if n["units_per_level"] is None:
         size = (
             f"A difference of {n['effect']['difference']:g} between levels of '{term}' is"
-            if n["effect"].get("kind") == "stated"
+            if stated
             else f"The observed differences between levels of '{term}' are"
         )
         return (
@@ -210,11 +216,6 @@ def needs_sentence(doc: dict[str, Any]) -> str | None:
         f"observations per unit barely help (ICC {n['icc']:.2f})"
         if many is not None
         else ""
-    )
-    what = (
-        f"a difference of {n['effect']['difference']:g} between two levels of '{term}'"
-        if n["effect"].get("kind") == "stated"
-        else f"differences between levels of '{term}' as large as those observed"
     )
     return (
         f"To detect {what}, with "
