@@ -23,6 +23,7 @@ from replicheck.claim import (
     spec_beside,
 )
 from replicheck.clustering import measure_clustering
+from replicheck.display import display_data
 from replicheck.errors import InputError
 from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
@@ -435,7 +436,19 @@ def audit(
     )
     verdict = decide(evidence)
     needs = _needs(inputs, evidence, y, c, power, effect)
-    return Report(table, len(frame), c, evidence, fits, verdict, needs)
+    shown = inputs[evidence_terms.index(primary)]
+    display = display_data(
+        frame,
+        shown.term,
+        y,
+        shown.codes,
+        shown.labels,
+        primary.unit.columns,
+        shown.unit,
+        shown.unit_name or primary.unit.unit,
+        shown.confounded,
+    )
+    return Report(table, len(frame), c, evidence, fits, verdict, needs, display)
 
 
 def _needs(

@@ -18,7 +18,7 @@ from replicheck import __version__
 from replicheck.errors import InputError
 from replicheck.stats.randomisation import DEFAULT_SEED
 
-FORMATS = ("text", "json", "markdown")
+FORMATS = ("text", "json", "markdown", "html")
 
 
 def _render(report: object, fmt: str) -> str:
@@ -29,6 +29,8 @@ def _render(report: object, fmt: str) -> str:
         return report.to_json() + "\n"
     if fmt == "markdown":
         return report.to_markdown()
+    if fmt == "html":
+        return report.to_html()
     return report.to_text()
 
 

@@ -65,6 +65,7 @@ def render_markdown(doc: dict[str, Any]) -> str:
     rc = doc["reported_check"]
     if rc["explanation"]:
         lines.append(f"| reported df | {_esc(rc['explanation'])} |")
+    lines += effects_lines(doc)
     if len(doc["terms"]) > 1:
         lines += [
             "",
@@ -105,6 +106,40 @@ def render_markdown(doc: dict[str, Any]) -> str:
     lines += ["", "### Suggested wording", "", "> " + _esc(suggested_wording(doc))]
     lines += ["", "### Caution", "", _esc(doc["caution"]), ""]
     return "\n".join(lines)
+
+
+def _interval(iv: dict[str, Any] | None) -> str:
+    if iv is None:
+        return "no interval"
+    if iv["low"] is None:
+        return f"{fmt_num(iv['estimate'], 4)} (no error df)"
+    return (
+        f"{fmt_num(iv['estimate'], 4)} ({fmt_num(iv['low'], 4)} to {fmt_num(iv['high'], 4)}; "
+        f"df {fmt_df([iv['df']])})"
+    )
+
+
+def effects_lines(doc: dict[str, Any]) -> list[str]:
+    """Differences from the first level with their intervals, as claimed and corrected."""
+    d = doc.get("display")
+    if not d or not d["effects"]["rows"]:
+        return []
+    e = d["effects"]
+    conf = f"{e['confidence']:.0%}"
+    out = [
+        "",
+        f"### Effects of `{_esc(d['term'])}` ({conf} confidence intervals)",
+        "",
+        "| comparison | every row a replicate (as claimed) | unit as replicate (corrected) |",
+        "|---|---|---|",
+    ]
+    for r in e["rows"]:
+        out.append(
+            f"| {_esc(r['level'])} − {_esc(r['reference'])} | {_interval(r['claimed'])} | "
+            f"{_interval(r['corrected'])} |"
+        )
+    out += ["", f"Corrected intervals: {_esc(e['corrected_method'])}."]
+    return out
 
 
 def suggested_wording(doc: dict[str, Any]) -> str:

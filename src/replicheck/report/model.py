@@ -15,6 +15,7 @@ from typing import Any
 from replicheck import __version__
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
+from replicheck.display import Display, Interval
 from replicheck.io import Table
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit, TermRefit
@@ -132,6 +133,58 @@ def _error_term(te: TermEvidence, s: Structure) -> str | None:
     return te.unit.unit or "residual"
 
 
+def _interval(iv: Interval | None) -> dict[str, Any] | None:
+    if iv is None:
+        return None
+    return {
+        "estimate": iv.estimate,
+        "low": iv.low,
+        "high": iv.high,
+        "df": iv.df,
+        "replicates": iv.replicates,
+    }
+
+
+def _display(d: Display | None) -> dict[str, Any] | None:
+    """The picture's data and the effect intervals of the reported term."""
+    if d is None:
+        return None
+    u, e = d.units, d.effects
+    return {
+        "term": u.term,
+        "unit": u.unit,
+        "n_observations": u.n_observations,
+        "n_units": u.n_units,
+        "thinned": u.thinned,
+        "levels": [
+            {
+                "label": lv.label,
+                "n_observations": lv.n_observations,
+                "mean_of_unit_means": lv.mean_of_unit_means,
+                "units": [
+                    {"label": x.label, "n": x.n, "mean": x.mean, "values": list(x.values)}
+                    for x in lv.units
+                ],
+            }
+            for lv in u.levels
+        ],
+        "effects": {
+            "confidence": e.confidence,
+            "claimed_method": e.claimed_method,
+            "corrected_method": e.corrected_method,
+            "rows": [
+                {
+                    "level": r.level,
+                    "reference": r.reference,
+                    "claimed": _interval(r.claimed),
+                    "corrected": _interval(r.corrected),
+                }
+                for r in e.rows
+            ],
+        },
+    }
+
+
 @dataclass(frozen=True)
 class Report:
     """The result of one audit."""
@@ -143,6 +196,7 @@ class Report:
     refit: Refit
     verdict: Verdict
     design_needs: DesignNeeds | None = None
+    display: Display | None = None
 
     @property
     def status(self) -> str:
@@ -352,6 +406,7 @@ class Report:
             "analyses": analyses,
             "reported_check": _reported_check(ev.reconciliation),
             "findings": [asdict(f) for f in self.verdict.findings],
+            "display": _display(self.display),
             "caution": self.verdict.caution,
         }
         return _clean(doc)
@@ -369,3 +424,12 @@ class Report:
         from replicheck.report.markdown import render_markdown
 
         return render_markdown(self.to_dict())
+
+    def to_html(self) -> str:
+        """The self-contained HTML report (one file: no network, scripts or external fonts)."""
+        from replicheck.report.html import render_html
+
+        return render_html(self.to_dict())
+
+    def _repr_html_(self) -> str:  # Jupyter shows the HTML report
+        return self.to_html()
