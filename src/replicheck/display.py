@@ -208,9 +208,10 @@ def _pooled_intervals(
 
 
 def _spans_levels(unit_codes: np.ndarray, level_codes: np.ndarray) -> bool:
-    """Whether some unit holds rows of more than one level."""
-    pairs = np.unique(np.stack([unit_codes, level_codes]), axis=1)
-    return bool(pairs.shape[1] > np.unique(unit_codes).size)
+    """Whether some unit holds rows of more than one level (one pass, no sorting)."""
+    first = np.zeros(int(unit_codes.max()) + 1, dtype=np.int64)
+    first[unit_codes[::-1]] = np.arange(unit_codes.size)[::-1]  # first row of each unit
+    return bool((level_codes[first[unit_codes]] != level_codes).any())
 
 
 def effect_intervals(
