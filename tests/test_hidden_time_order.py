@@ -41,6 +41,7 @@ from replicheck.structure.hidden.order import (
     count_runs,
     find_sequence_column,
     lag1,
+    permutation_mean_lag1,
     runs_cdf_two,
     runs_moments,
     runs_test,
@@ -445,6 +446,29 @@ def test_autocorrelation_permutation_p_against_enumeration() -> None:
     assert test.r1 == pytest.approx(acf(e, nlags=1, fft=False)[1], abs=1e-12)
     assert test.expected == pytest.approx(np.mean(perms), abs=0.01)
     assert abs(test.p_value - exact) < 4 * math.sqrt(exact * (1 - exact) / 20000) + 1e-4
+
+
+@pytest.mark.parametrize(
+    "groups",
+    [
+        [0, 0, 0, 0, 1, 1, 1, 1],  # two stretches
+        [0, 1, 0, 1, 1, 0, 1, 0],  # interleaved: adjacent positions in different sets
+        [0, 0, 1, 2, 1, 2, 2, 0],  # three sets, one position pair within a set
+        [0, 0, 0, 0, 0, 0, 0, 0],  # one set: every ordering of all eight
+    ],
+)
+def test_exact_permutation_mean_equals_full_enumeration(groups: list[int]) -> None:
+    # reference: every within-set permutation enumerated (itertools), a brute force
+    e = np.array([1.0, 2.0, 3.0, 4.0, -1.0, -2.5, 0.5, -3.0])
+    g = np.array(groups)
+    sets = [np.flatnonzero(g == j) for j in np.unique(g)]
+    values = []
+    for combo in itertools.product(*(itertools.permutations(e[idx]) for idx in sets)):
+        x = np.empty_like(e)
+        for idx, perm in zip(sets, combo, strict=True):
+            x[idx] = perm
+        values.append(float(lag1(x)))
+    assert permutation_mean_lag1(e, g) == pytest.approx(np.mean(values), abs=1e-12)
 
 
 # --------------------------------------------------------------------------- order scan

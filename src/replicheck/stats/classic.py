@@ -18,6 +18,7 @@ import numpy as np
 from scipy import stats
 
 from replicheck.errors import InputError
+from replicheck.partitions import dense_codes
 
 __all__ = [
     "DesignError",
@@ -72,8 +73,7 @@ def _as_codes(group: np.ndarray, n: int, what: str = "group") -> tuple[np.ndarra
         raise DesignError(f"{what} codes must be one-dimensional with {n} entries")
     if not np.issubdtype(arr.dtype, np.integer):
         raise DesignError(f"{what} codes must be integers, got dtype {arr.dtype}")
-    _, codes = np.unique(arr, return_inverse=True)
-    codes = codes.reshape(-1).astype(np.intp)
+    codes = dense_codes(arr).astype(np.intp, copy=False)
     return codes, int(codes.max()) + 1 if codes.size else 0
 
 

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from replicheck.partitions import dense_codes, is_nested
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -85,8 +86,7 @@ def _codes(values: np.ndarray, n: int, what: str) -> np.ndarray:
         raise DesignError(f"{what} codes must be one-dimensional with {n} entries")
     if not np.issubdtype(arr.dtype, np.integer):
         raise DesignError(f"{what} codes must be integers, got dtype {arr.dtype}")
-    _, codes = np.unique(arr, return_inverse=True)
-    return codes.reshape(-1).astype(np.intp)
+    return dense_codes(arr).astype(np.intp, copy=False)
 
 
 def anova_components(
@@ -127,13 +127,12 @@ def anova_components(
     gcodes = np.zeros(n, dtype=np.intp) if group is None else _codes(group, n, "group")
     n_groups = int(gcodes.max()) + 1 if n else 0
     # every unit must sit in exactly one group
-    pairs = np.unique(np.column_stack([ucodes, gcodes]), axis=0)
-    if pairs.shape[0] != n_units:
+    if not is_nested(ucodes, gcodes):
         raise DesignError(
             "some units appear in more than one group; units must be nested in groups"
         )
     unit_group = np.empty(n_units, dtype=np.intp)
-    unit_group[pairs[:, 0]] = pairs[:, 1]
+    unit_group[ucodes] = gcodes
     df_b = n_units - n_groups
     df_w = n - n_units
     if df_b < 1:

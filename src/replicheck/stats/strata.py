@@ -86,6 +86,7 @@ from scipy import sparse, stats
 from scipy.sparse.csgraph import connected_components
 
 from replicheck.errors import InputError
+from replicheck.partitions import first_seen_codes
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -182,10 +183,7 @@ class _Factor:
 
 def _canonical(codes: np.ndarray) -> np.ndarray:
     """Relabel any codes to ``0..L-1`` in order of first appearance."""
-    _, first, inverse = np.unique(codes, return_index=True, return_inverse=True)
-    rank = np.empty(first.size, dtype=np.int64)
-    rank[np.argsort(first, kind="stable")] = np.arange(first.size, dtype=np.int64)
-    return rank[inverse.reshape(-1)]
+    return first_seen_codes(codes)
 
 
 def _factor(name: str, codes: np.ndarray) -> _Factor:

@@ -87,7 +87,7 @@ def contingency(col: np.ndarray, trt: np.ndarray) -> Contingency:
     """Contingency summary of two code arrays of equal length without missing codes."""
     k_c = int(col.max()) + 1 if col.size else 0
     k_t = int(trt.max()) + 1 if trt.size else 0
-    pairs = np.unique(col * max(k_t, 1) + trt)
+    pairs = np.sort(pd.unique(col * max(k_t, 1) + trt))
     pc, pt = pairs // max(k_t, 1), pairs % max(k_t, 1)
     t_per_c = np.bincount(pc, minlength=k_c)
     c_per_t = np.bincount(pt, minlength=k_t)

@@ -69,6 +69,7 @@ from sklearn.cluster import DBSCAN
 
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
+from replicheck.partitions import dense_codes
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
 
 K_NEIGHBOURS = 4
@@ -481,8 +482,14 @@ def _treatment_codes(
     out = np.full(n, -1, dtype=np.int64)
     if not ok.any():
         return out, []
-    cells, inverse = np.unique(stacked[ok], axis=0, return_inverse=True)
-    out[ok] = inverse.ravel()
+    kept = stacked[ok]
+    combined = np.zeros(kept.shape[0], dtype=np.int64)
+    for j in range(kept.shape[1]):  # lexicographic: the first treatment most significant
+        combined = combined * len(uniques[j]) + kept[:, j]
+    inverse = dense_codes(combined)
+    out[ok] = inverse
+    cells = np.empty((int(inverse.max()) + 1, kept.shape[1]), dtype=np.int64)
+    cells[inverse] = kept
     names = ["/".join(str(uniques[j][cell[j]]) for j in range(len(treatments))) for cell in cells]
     return out, names
 
