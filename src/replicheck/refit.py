@@ -33,13 +33,14 @@ counts per unit) for a yes/no or count response.
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import stats as sps
 
-from replicheck.partitions import is_nested, same_partition
+from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.stats.classic import (
     DesignError,
     ols_term_f,
@@ -49,6 +50,7 @@ from replicheck.stats.classic import (
 )
 from replicheck.stats.discrete import ResponseKind, gee_test
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
+from replicheck.stats.nested import fit_nested_reml, summarise
 from replicheck.stats.randomisation import DEFAULT_SEED, RandomisationResult, randomisation_test
 from replicheck.stats.robust import cr2_test, wild_cluster_bootstrap
 from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
@@ -454,6 +456,42 @@ def _distinct(strata: Mapping[str, np.ndarray], n: int) -> dict[str, np.ndarray]
     return out
 
 
+ENGINE_NOTES = {
+    "summaries": "fitted from per-unit sums (nested random intercepts: one pass over the rows)",
+    "general": "fitted by the general REML algorithm (groupings not nested in one chain)",
+    "": "",
+}
+
+
+def nested_chain(random: Mapping[str, np.ndarray]) -> list[str] | None:
+    """The random groupings ordered outermost first when each is nested in the one
+    before it (a chain such as plate > well), else None."""
+    names = sorted(random, key=lambda k: int(random[k].max()))
+    for outer, inner in itertools.pairwise(names):
+        if not is_nested(random[inner], random[outer]):
+            return None
+    return names
+
+
+def fit_mixed(
+    y: np.ndarray, X: np.ndarray, random: Mapping[str, np.ndarray], names: Sequence[str]
+) -> tuple[MixedFit, str]:
+    """REML fit of the random intercepts, and which engine fitted it.
+
+    Nested chains (the common case) are fitted from per-unit summaries
+    (:mod:`replicheck.stats.nested`), whose cost after one pass over the rows
+    depends on the number of units only; crossed groupings by the general
+    algorithm (:func:`replicheck.stats.mixed.fit_reml`). Both give the same fit
+    where both apply (tests/test_stats_nested.py).
+    """
+    chain = nested_chain(random)
+    if chain is None:
+        return fit_reml(y, X, random, names), "general"
+    levels = [dense_codes(random[k]) for k in chain]
+    summaries = summarise(y, X, levels, chain, names)
+    return fit_nested_reml(summaries), "summaries"
+
+
 def _mixed_analysis(
     fit: MixedFit,
     X: np.ndarray,
@@ -686,9 +724,10 @@ def refit(
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
     fit: MixedFit | None = None
     not_fitted = None
+    engine = None
     if random:
         try:
-            fit = fit_reml(y, X, random, names)
+            fit, engine = fit_mixed(y, X, random, names)
         except DesignError as err:
             not_fitted = f"the mixed model could not be fitted ({err}); the unit means are used"
     table = _strata_table(y, X, index, terms, random)
@@ -736,7 +775,8 @@ def refit(
         corrected: str | None = "unit_means" if has_unit else "as_claimed"
         if fit is not None:
             n_rep = int(t.unit.max()) + 1 if has_unit and t.unit is not None else n
-            analyses.append(_mixed_analysis(fit, X, index[t.term], t, rname, n_rep, single))
+            mixed = _mixed_analysis(fit, X, index[t.term], t, rname, n_rep, single)
+            analyses.append(replace(mixed, notes=(*mixed.notes, ENGINE_NOTES[engine or ""])))
             if rname is not None:
                 at_zero = rname in fit.boundary
                 variance = UnitVariance(
