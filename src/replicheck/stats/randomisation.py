@@ -88,11 +88,24 @@ def _all_assignments(labels: np.ndarray, blocks: np.ndarray | None) -> Iterator[
 
 def _ssb(values: np.ndarray, assignments: np.ndarray, levels: np.ndarray) -> np.ndarray:
     """Between-level sum of squares (up to a constant) of every assignment (one per row)."""
-    out = np.zeros(assignments.shape[0])
-    for lev in levels:
-        mask = assignments == lev
-        n_j = int(mask[0].sum())
-        out += (mask @ values) ** 2 / n_j
+    codes = np.searchsorted(levels, assignments)  # levels are sorted (np.unique)
+    return _ssb_codes(values, codes, levels.size)
+
+
+def _ssb_codes(values: np.ndarray, codes: np.ndarray, k: int) -> np.ndarray:
+    """``_ssb`` of assignments given as level codes 0..k-1: the level sums of every
+    assignment by one weighted ``bincount``, in chunks of about a million entries."""
+    draws, n = codes.shape
+    counts = np.bincount(codes[0], minlength=k).astype(float)
+    out = np.empty(draws)
+    step = max(1, 1_000_000 // max(n, 1))
+    for start in range(0, draws, step):
+        block = codes[start : start + step]
+        b = block.shape[0]
+        index = (block + k * np.arange(b)[:, None]).ravel()
+        weights = np.broadcast_to(values, (b, n)).ravel()
+        sums = np.bincount(index, weights=weights, minlength=b * k).reshape(b, k)
+        out[start : start + b] = (sums**2 / counts).sum(axis=1)
     return out
 
 
@@ -160,10 +173,15 @@ def randomisation_test(
             first_seen.setdefault(blk, i)
         groups = [np.flatnonzero(ordered_blocks == blk) for blk in first_seen]
     rng = np.random.default_rng(seed)
-    table = np.tile(labels, (draws, 1))
+    # level codes in a small integer type: the same draws as permuting the
+    # labels themselves (the shuffle depends only on the generator and lengths)
+    table = np.tile(np.searchsorted(levels, labels).astype(np.int16), (draws, 1))
     for idx in groups:
-        table[:, idx] = rng.permuted(table[:, idx], axis=1)
-    stats = _ssb(centred, table, levels)
+        if idx.size == n:
+            rng.permuted(table, axis=1, out=table)
+        else:
+            table[:, idx] = rng.permuted(table[:, idx], axis=1)
+    stats = _ssb_codes(centred, table, k)
     hits = int(np.sum(stats >= observed_ssb - tol))
     p = (1 + hits) / (1 + draws)
     floor = _floor_by_relabelling(labels, blocks, total)
