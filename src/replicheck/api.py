@@ -7,6 +7,7 @@ callers. Each stage is a pure function of the previous stages' results.
 from __future__ import annotations
 
 import os
+import time
 from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
@@ -304,6 +305,7 @@ def audit(
         raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
     if effect is not None and not (np.isfinite(effect) and effect > 0):
         raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
+    clock = _Stopwatch()
     c = make_claim(
         data,
         response=response,
@@ -317,6 +319,7 @@ def audit(
         find_spec=find_spec,
         formula=formula,
     )
+    clock.lap("claim")
     table = read_table(
         data if isinstance(data, pd.DataFrame) else Path(data), sheet=c.sheet, na_values=c.na_values
     )
@@ -331,6 +334,7 @@ def audit(
     terms, dropped = drop_unreplicated(frame, terms, c.treatments)
     reported = _reported_by_term(c, terms)
     interactions = [t.name for t in terms if t.is_interaction]
+    clock.lap("read")
     hidden_scan = HiddenScan()
     if hidden:
         order_col = None if order is None else resolve_column(table.columns, order, "order")
@@ -347,6 +351,7 @@ def audit(
     for t in terms:
         if t.is_interaction:
             frame[t.name] = interaction_levels(frame, t.factors)
+    clock.lap("hidden")
     structure = infer_structure(
         frame,
         c.response,
@@ -373,7 +378,9 @@ def audit(
     coding = yes_no_coding(table.data[c.response])
     first_claim = reported.get(terms[0].name)
     row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
+    clock.lap("structure")
     fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
+    clock.lap("refit")
     single = len(terms) == 1 and not fixed_blocks
     X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
     for b in fixed_blocks:
@@ -434,6 +441,7 @@ def audit(
         response_coding=coding,
         hidden=hidden_scan,
     )
+    clock.lap("clustering")
     verdict = decide(evidence)
     needs = _needs(inputs, evidence, y, c, power, effect)
     shown = inputs[evidence_terms.index(primary)]
@@ -448,7 +456,26 @@ def audit(
         shown.unit_name or primary.unit.unit,
         shown.confounded,
     )
-    return Report(table, len(frame), c, evidence, fits, verdict, needs, display)
+    clock.lap("report data")
+    return Report(
+        table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
+    )
+
+
+class _Stopwatch:
+    """Seconds spent in each stage of one audit (for benchmarks; not in the report)."""
+
+    def __init__(self) -> None:
+        self._last = time.perf_counter()
+        self._laps: dict[str, float] = {}
+
+    def lap(self, stage: str) -> None:
+        now = time.perf_counter()
+        self._laps[stage] = self._laps.get(stage, 0.0) + now - self._last
+        self._last = now
+
+    def seconds(self) -> dict[str, float]:
+        return dict(self._laps)
 
 
 def _needs(

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import asdict, dataclass
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from replicheck import __version__
@@ -197,6 +198,9 @@ class Report:
     verdict: Verdict
     design_needs: DesignNeeds | None = None
     display: Display | None = None
+    seconds: Mapping[str, float] = field(default_factory=dict, compare=False)
+    """Seconds spent in each stage (claim, read, hidden, structure, refit, clustering,
+    report data); for benchmarks, not part of the report document."""
 
     @property
     def status(self) -> str:

@@ -1,0 +1,177 @@
+"""How replicheck's audit time grows with rows, units and nesting levels.
+
+Run: python benchmarks/scale.py [--max-rows 10000000] [--write docs/scale.md]
+
+Generated data (one process, the same data for every timing): a treatment
+given to whole outer units, with one to three nested grouping levels below
+it (for three levels: site > cage > animal), unit effects at every level and
+a residual. For each configuration it prints
+
+* replicheck's time for each stage of the audit (the data are already in
+  memory as a DataFrame, so file parsing is excluded; see read_time.py),
+* the time of one pandas groupby aggregation (count and sum of the
+  response) over the same grouping columns: the practical floor of any
+  analysis that has to look at every row,
+* statsmodels MixedLM on the same random-intercept model (REML), where it
+  finishes within the time limit, and the relative difference between its
+  treatment estimate and replicheck's mixed model,
+* the ratios: audit / floor, MixedLM / audit.
+
+Timings live here, never in tests.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import signal
+import time
+import warnings
+from dataclasses import dataclass
+from types import FrameType
+
+import numpy as np
+import pandas as pd
+
+from replicheck import audit
+
+LEVEL_NAMES = ("site", "cage", "animal")
+
+
+@dataclass(frozen=True)
+class Config:
+    rows: int
+    units: int  # innermost units
+    levels: int
+
+
+def make(cfg: Config, seed: int = 1) -> pd.DataFrame:
+    """Generated clustered data: units nested ``levels`` deep, treatment on the outer units."""
+    rng = np.random.default_rng(seed)
+    inner = rng.integers(0, cfg.units, size=cfg.rows)
+    cols: dict[str, np.ndarray] = {}
+    # each level groups ten units of the level below (at least two groups at the top)
+    sizes = [max(2, cfg.units // 10 ** (cfg.levels - 1 - k)) for k in range(cfg.levels)]
+    effect = np.zeros(cfg.rows)
+    codes = inner
+    for k in reversed(range(cfg.levels)):
+        codes = inner * sizes[k] // cfg.units
+        cols[LEVEL_NAMES[3 - cfg.levels + k]] = codes
+        effect += rng.normal(0.0, 1.0, size=sizes[k])[codes]
+    top = cols[LEVEL_NAMES[3 - cfg.levels]]
+    arm = top % 2
+    y = 10.0 + 0.3 * arm + effect + rng.normal(0.0, 2.0, size=cfg.rows)
+    frame = {"y": y, "arm": np.where(arm == 1, "B", "A")}
+    frame.update({k: cols[k] for k in LEVEL_NAMES if k in cols})
+    return pd.DataFrame(frame)
+
+
+class _Timeout(Exception):
+    pass
+
+
+def _alarm(signum: int, frame: FrameType | None) -> None:
+    raise _Timeout
+
+
+def statsmodels_fit(df: pd.DataFrame, names: list[str], limit: float) -> tuple[float, float]:
+    """Seconds of statsmodels MixedLM (REML) on the same model and its arm estimate."""
+    import statsmodels.api as sm
+
+    x = sm.add_constant((df["arm"] == "B").astype(float).to_numpy())
+    groups = df[names[0]].to_numpy()
+    vc = None
+    if len(names) > 1:
+        vc = {n: f"0 + C({n})" for n in names[1:]}
+    signal.signal(signal.SIGALRM, _alarm)
+    signal.alarm(int(limit))
+    t0 = time.perf_counter()
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            if vc is None:
+                model = sm.MixedLM(df["y"].to_numpy(), x, groups=groups)
+            else:
+                model = sm.MixedLM.from_formula(
+                    "y ~ arm", data=df, groups=names[0], vc_formula=vc, re_formula="1"
+                )
+            result = model.fit(reml=True)
+    except _Timeout:
+        return math.inf, math.nan
+    finally:
+        signal.alarm(0)
+    seconds = time.perf_counter() - t0
+    return seconds, float(np.asarray(result.fe_params)[1])
+
+
+def floor_seconds(df: pd.DataFrame, names: list[str]) -> float:
+    t0 = time.perf_counter()
+    df.groupby(names, sort=False)["y"].agg(["count", "sum"])
+    return time.perf_counter() - t0
+
+
+def configs(max_rows: int) -> list[Config]:
+    out = []
+    for rows in (10_000, 100_000, 1_000_000, 10_000_000):
+        if rows > max_rows:
+            continue
+        for units in (10, 1_000, 100_000):
+            if units * 5 > rows:
+                continue
+            levels_list = (1, 2, 3) if rows == 1_000_000 and units == 1_000 else (1,)
+            for levels in levels_list:
+                out.append(Config(rows, units, levels))
+    return out
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--max-rows", type=int, default=10_000_000)
+    parser.add_argument("--mixedlm-limit", type=float, default=300.0)
+    parser.add_argument("--write", metavar="PATH", help="also write the table as Markdown")
+    args = parser.parse_args()
+    header = (
+        "| rows | units | levels | audit s | stages (s) | groupby floor s | audit / floor "
+        "| MixedLM s | MixedLM / audit | estimate rel. diff |"
+    )
+    lines = [header, "|" + "---|" * 10]
+    print(header)
+    for cfg in configs(args.max_rows):
+        df = make(cfg)
+        names = [n for n in LEVEL_NAMES if n in df.columns]
+        floor = min(floor_seconds(df, names) for _ in range(3))
+        t0 = time.perf_counter()
+        report = audit(df, response="y", treatment="arm", seed=1)
+        total = time.perf_counter() - t0
+        stages = ", ".join(f"{k} {v:.2f}" for k, v in report.seconds.items())
+        mixed = next((a for a in report.to_dict()["analyses"] if a["name"] == "mixed_model"), None)
+        sm_s, sm_est = (
+            statsmodels_fit(df, names, args.mixedlm_limit)
+            if cfg.rows <= 1_000_000 and cfg.units <= 10_000
+            else (math.nan, math.nan)
+        )
+        ours = None if mixed is None else mixed["estimate"]
+        diff = (
+            "-"
+            if ours is None or not math.isfinite(sm_est)
+            else f"{abs(ours - sm_est) / max(abs(sm_est), 1e-300):.1e}"
+        )
+        sm_text = (
+            "not run"
+            if math.isnan(sm_s)
+            else (f"> {args.mixedlm_limit:.0f}" if math.isinf(sm_s) else f"{sm_s:.2f}")
+        )
+        ratio = "-" if not math.isfinite(sm_s) else f"{sm_s / total:.1f}"
+        line = (
+            f"| {cfg.rows:,} | {cfg.units:,} | {cfg.levels} | {total:.2f} | {stages} | "
+            f"{floor:.3f} | {total / floor:.0f} | {sm_text} | {ratio} | {diff} |"
+        )
+        lines.append(line)
+        print(line, flush=True)
+    if args.write:
+        with open(args.write, "w", encoding="utf-8") as fh:
+            fh.write("\n".join(lines) + "\n")
+
+
+if __name__ == "__main__":
+    main()
