@@ -95,3 +95,16 @@ def test_monte_carlo_is_seeded_and_close_to_exact() -> None:
     assert not mc1.exact and mc1.p_value == mc2.p_value
     se = np.sqrt(exact.p_value * (1 - exact.p_value) / 4000)
     assert abs(mc1.p_value - exact.p_value) < 4 * se + 1 / 4001
+
+
+def test_counts_of_assignments_with_thousands_of_digits_are_written_and_logged() -> None:
+    # reference: log10 C(8000, 4000) from the log-gamma function (Python's math module)
+    import math
+
+    from replicheck.numbers import count_text, log10_count
+
+    n = math.comb(8000, 4000)  # 2 x 4000 units: a number of 2407 digits
+    ref = (math.lgamma(8001) - 2 * math.lgamma(4001)) / math.log(10)
+    assert log10_count(n) == pytest.approx(ref, rel=1e-12)
+    assert count_text(n) == f"{10 ** (ref - math.floor(ref)):.1f}e+{math.floor(ref)}"
+    assert count_text(1680) == "1680"  # small counts stay exact (PlantGrowth subset above)

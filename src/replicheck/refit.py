@@ -40,6 +40,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import stats as sps
 
+from replicheck.numbers import count_text
 from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.stats.classic import (
     DesignError,
@@ -219,9 +220,10 @@ def _randomise(
 
 def _randomisation_analysis(t: TermInput, r: RandomisationResult) -> Analysis:
     how = (
-        f"exact over all {r.n_assignments} assignments"
+        f"exact over all {count_text(r.n_assignments)} assignments"
         if r.exact
-        else f"Monte Carlo, {r.draws} draws of {r.n_assignments} assignments (seed {r.seed})"
+        else f"Monte Carlo, {r.draws} draws of {count_text(r.n_assignments)} assignments "
+        f"(seed {r.seed})"
     )
     name = "randomisation"
     return Analysis(

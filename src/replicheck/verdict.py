@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
-from replicheck.numbers import p_phrase
+from replicheck.numbers import count_text, p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
 from replicheck.structure.hidden.base import HiddenScan
@@ -465,7 +465,8 @@ def _floor(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "randomisation-floor",
             "warning",
-            f"With {n_units} {t.unit.unit} units the design allows only {r.n_assignments} "
+            f"With {n_units} {t.unit.unit} units the design allows only "
+            f"{count_text(r.n_assignments)} "
             f"assignments of '{t.term}', so the smallest p-value any test on these units can "
             f"reach is {r.min_attainable_p:.3g}, above alpha = {ev.claim.alpha:g}: no "
             f"randomisation test can find '{t.term}' significant with these data, and a smaller "

@@ -18,6 +18,7 @@ from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.display import Display, Interval
 from replicheck.io import Table
+from replicheck.numbers import log10_count
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit, TermRefit
 from replicheck.stats.power import DesignNeeds
@@ -91,7 +92,8 @@ def _randomization(tr: TermRefit | None) -> dict[str, Any] | None:
     return {
         "p_value": r.p_value,
         "min_attainable_p": r.min_attainable_p,
-        "n_assignments": r.n_assignments,
+        "n_assignments": r.n_assignments if r.n_assignments < 2**53 else None,
+        "log10_n_assignments": log10_count(r.n_assignments),
         "exact": r.exact,
         "draws": r.draws,
         "seed": r.seed,
