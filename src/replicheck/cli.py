@@ -16,6 +16,7 @@ import click
 
 from replicheck import __version__
 from replicheck.errors import InputError
+from replicheck.screen.command import screen_command
 from replicheck.stats.randomisation import DEFAULT_SEED
 
 FORMATS = ("text", "json", "markdown", "html")
@@ -285,6 +286,9 @@ def rules() -> None:
 
     for name, (_, doc) in RULES.items():
         click.echo(f"{name:34} {doc}")
+
+
+cli.add_command(screen_command)
 
 
 def main(argv: Sequence[str] | None = None) -> None:

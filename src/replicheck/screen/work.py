@@ -1,0 +1,118 @@
+"""The work on one file: propose or audit, then render the report.
+
+Runs in a worker process (see :mod:`replicheck.screen.runner`); this module
+is preloaded there, so it may import the whole statistics stack.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import replace
+from typing import Any
+
+from replicheck.api import audit
+from replicheck.errors import InputError
+from replicheck.io import read_table
+from replicheck.report.model import Report
+from replicheck.screen.guess import propose
+from replicheck.screen.task import Outcome, Task, one_line
+
+
+def _primary(doc: dict[str, Any]) -> int:
+    """The term the verdict rests on: the first with a reported result, else the first."""
+    for i, t in enumerate(doc["terms"]):
+        if t.get("reported_check") is not None:
+            return i
+    return 0
+
+
+def outcome_of(report: Report, spec_source: str) -> Outcome:
+    """The summary fields of an audit report, with the rendered report."""
+    doc = report.to_dict()
+    i = _primary(doc)
+    term = doc["terms"][i]
+    unit = doc["experimental_units"][i]
+    clustering = term.get("clustering") or {}
+    return Outcome(
+        status=report.status,
+        message=doc["verdict"]["summary"],
+        spec_source=spec_source,
+        response=doc["claim"]["response"],
+        treatment=";".join(doc["claim"]["treatments"]),
+        unit=unit["unit"] or ("rows" if unit.get("source") == "rows" else ""),
+        n_units=unit.get("n_units"),
+        n_rows=doc["input"]["n_rows"],
+        conclusion_changed=doc["verdict"]["conclusion_changed"],
+        claimed_p=term.get("claimed_p_value"),
+        corrected_p=term.get("p_value"),
+        icc=clustering.get("icc"),
+        design_effect=clustering.get("design_effect"),
+        report_html=report.to_html(),
+        report_json=report.to_json(),
+    )
+
+
+def _without_spec(task: Task) -> Outcome:
+    table = read_table(task.path)
+    proposal = propose(table.data)
+    candidates = proposal.describe()
+    best = proposal.best
+    if best is None:
+        reason = "no numeric response and treatment column could be guessed"
+        advice = "write NAME.replicheck.toml beside it or list it in a spec index (--specs)"
+        return Outcome(
+            "needs-spec",
+            f"no spec for this file and {reason}; {advice}",
+            spec_source="",
+            n_rows=table.n_rows,
+            candidates=candidates,
+        )
+    response, treatment = best
+    if not task.guess:
+        return Outcome(
+            "needs-spec",
+            f"no spec for this file (NAME.replicheck.toml beside it or an entry in --specs); "
+            f"best guess: response '{response.column}' ({response.confidence:.2f}: "
+            f"{response.reason}), treatment '{treatment.column}' ({treatment.confidence:.2f}: "
+            f"{treatment.reason}); --guess audits that guess",
+            n_rows=table.n_rows,
+            candidates=candidates,
+        )
+    report = audit(
+        task.path,
+        spec={"response": response.column, "treatment": [treatment.column]},
+        find_spec=False,
+        seed=task.seed,
+        alpha=task.alpha,
+    )
+    out = outcome_of(report, "guessed")
+    note = (
+        f"GUESSED analysis {response.column} ~ {treatment.column} (no spec; confidence "
+        f"{response.confidence:.2f} and {treatment.confidence:.2f}), not necessarily the "
+        "authors' analysis. "
+    )
+    return replace(out, guessed=True, message=note + out.message, candidates=candidates)
+
+
+def _work(task: Task) -> Outcome:
+    if task.spec_source == "none":
+        return _without_spec(task)
+    spec = task.spec_path if task.spec_source == "beside" else task.spec
+    report = audit(task.path, spec=spec, find_spec=False, seed=task.seed, alpha=task.alpha)
+    return outcome_of(report, task.spec_source)
+
+
+def run_task(task: Task) -> Outcome:
+    """Screen one file; bad input gives ``error``, any other exception ``internal-error``.
+
+    Never raises (except on interruption).
+    """
+    start = time.perf_counter()
+    source = "" if task.spec_source == "none" else task.spec_source
+    try:
+        out = _work(task)
+    except InputError as err:  # the row names the file: no need for its full path
+        out = Outcome("error", str(err).replace(task.path, task.name), spec_source=source)
+    except Exception as err:  # a bug in replicheck or a library: one line, the batch goes on
+        out = Outcome("internal-error", one_line(err), spec_source=source)
+    return replace(out, seconds=time.perf_counter() - start)
