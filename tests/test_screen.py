@@ -145,11 +145,24 @@ def build_corpus(folder: Path, d: dict[str, pd.DataFrame]) -> dict[str, str]:
     # over --max-size 1M (never read): 1.6 MB of RatPupWeight rows
     pd.concat([ratpup] * 200).to_csv(folder / "huge.csv", index=False)
     expected["huge.csv"] = "too-large"
-    # far slower than --time-limit: 150 extra columns (shifted copies of the
-    # litter labels) make the structure search long; about 40 s here, killed at 10 s
-    extra = pd.DataFrame({f"c{i}": np.roll(ratpup.Litter.to_numpy(), i + 1) for i in range(150)})
-    write(folder / "slow_wide.csv", pd.concat([ratpup, extra], axis=1), RATPUP_SPEC)
-    expected["slow_wide.csv"] = "timeout"
+    # far slower than --time-limit: 2000 cages crossed with 1500 batches need the
+    # general REML fit, whose cost grows with the cube of the number of levels
+    # (about 40 s on 2 cores; killed at 10 s)
+    rng = np.random.default_rng(1)
+    cage = np.repeat(np.arange(2000), 3)
+    batch = rng.integers(0, 1500, size=cage.size)
+    slow = pd.DataFrame(
+        {
+            "y": rng.normal(size=cage.size)
+            + rng.normal(size=2000)[cage]
+            + rng.normal(size=1500)[batch],
+            "arm": np.where(cage % 2 == 0, "A", "B"),
+            "cage": cage,
+            "batch": batch,
+        }
+    )
+    write(folder / "slow_crossed.csv", slow, 'response = "y"\ntreatment = "arm"\n')
+    expected["slow_crossed.csv"] = "timeout"
     # without a spec: needs-spec, whatever the format and name
     nospec = {
         "plants_nospec.csv": d["plants"],
@@ -278,7 +291,7 @@ def test_problem_rows_explain_themselves(screened) -> None:  # type: ignore[no-u
     assert "binary" in rows["binary.csv"]["message"]
     assert ".xls" in rows["legacy.xls"]["message"]
     assert "brakes" in rows["warpbreaks_badspec.csv"]["message"]
-    assert "time limit" in rows["slow_wide.csv"]["message"]
+    assert "time limit" in rows["slow_crossed.csv"]["message"]
     assert rows["huge.csv"]["bytes"] == str((screened["corpus"] / "huge.csv").stat().st_size)
     assert "size limit" in rows["huge.csv"]["message"] and rows["huge.csv"]["sha256"] == ""
     for r in rows.values():

@@ -116,6 +116,8 @@ def _is_time_stamp(s: pd.Series) -> bool:
     """Whether a column holds times of day (with or without dates), not bare dates."""
     if pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
         return False
+    if isinstance(s.dtype, pd.CategoricalDtype):
+        return False  # groupings derived from the data ("day 3", "zone 2") and coded factors
     values, _ = parse_times(s)
     if values is None:
         return False

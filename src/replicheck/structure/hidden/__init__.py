@@ -106,8 +106,12 @@ def _without_weak_runs(
 
 
 def derived_column(g: DerivedGrouping, index: pd.Index) -> pd.Series:
-    """The grouping as a text column (missing where the grouping is unknown)."""
+    """The grouping as a categorical text column (missing where the grouping is unknown),
+    built from the codes without a pass of Python over the rows."""
     word = g.name.split("[", 1)[0]
-    labels = np.array([f"{word} {c + 1}" for c in g.codes.tolist()], dtype=object)
-    labels[g.codes < 0] = None
-    return pd.Series(labels, index=index, name=g.name, dtype="string")
+    k = int(g.codes.max()) + 1 if g.codes.size else 0
+    labels = pd.Categorical.from_codes(
+        np.where(g.codes < 0, -1, g.codes).astype(np.int64),
+        categories=pd.Index([f"{word} {c + 1}" for c in range(k)]),
+    )
+    return pd.Series(labels, index=index, name=g.name)

@@ -67,7 +67,7 @@ from scipy import stats
 
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
-from replicheck.partitions import is_nested, same_partition
+from replicheck.partitions import dense_codes, is_nested, pair_codes, same_partition
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan
 from replicheck.structure.names import (
     BLOCK_WORDS,
@@ -191,6 +191,7 @@ def scan_covariates(
         else "cell of " + " x ".join(f"'{t}'" for t in treatments)
     )
     derived: list[DerivedGrouping] = []
+    groupings: dict[object, np.ndarray] | None = None  # coded once, when first needed
     for col in frame.columns:
         if col in skip or not _is_candidate(frame[col]) or _grouping_name(str(col)):
             continue
@@ -207,7 +208,15 @@ def scan_covariates(
         if found is None:
             continue
         classes, test = found
-        if _explained(frame, col, response, treatments, ok, classes, cells):
+        if groupings is None:
+            groupings = {
+                other: group_codes(frame, (other,))
+                for other in frame.columns
+                if other != response
+                and other not in treatments
+                and _is_grouping_column(frame, other)
+            }
+        if _explained(groupings, col, ok, classes, cells):
             continue
         integer = bool(np.all(v == np.round(v)))
         own = _dense(v)
@@ -300,26 +309,24 @@ def _is_grouping_column(frame: pd.DataFrame, col: object) -> bool:
 
 
 def _explained(
-    frame: pd.DataFrame,
+    groupings: dict[object, np.ndarray],
     col: object,
-    response: str,
-    treatments: Sequence[str],
     ok: np.ndarray,
     classes: np.ndarray,
     cells: np.ndarray,
 ) -> bool:
-    """Whether a recorded grouping column gives the classes or holds the covariate constant."""
-    for other in frame.columns:
-        if other in (col, response) or other in treatments:
+    """Whether a recorded grouping column (``groupings``: codes of every grouping
+    column but the response and treatments) gives the classes or holds the
+    covariate constant."""
+    for other, codes in groupings.items():
+        if other == col:
             continue
-        if not _is_grouping_column(frame, other):
-            continue
-        raw = group_codes(frame, (other,))[ok]
+        raw = codes[ok]
         keep = raw >= 0
         if not keep.any():
             continue
         sub_raw, sub_classes = _dense(raw[keep]), _dense(classes[keep])
-        local = group_codes(pd.DataFrame({"c": cells[keep], "o": sub_raw}), ("c", "o"))
+        local = dense_codes(pair_codes(cells[keep], sub_raw))
         if same_partition(sub_raw, sub_classes) or same_partition(local, sub_classes):
             return True
         if local.size / (int(local.max()) + 1) >= MIN_ROWS_PER_CLASS and is_nested(
