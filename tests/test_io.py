@@ -25,7 +25,14 @@ import pyarrow.parquet as pq
 import pytest
 
 from replicheck.errors import InputError
-from replicheck.io import DEFAULT_NA, Table, numeric_column, read_table, resolve_column
+from replicheck.io import (
+    DEFAULT_NA,
+    Table,
+    numeric_column,
+    read_header,
+    read_table,
+    resolve_column,
+)
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures" / "io"
 
@@ -607,3 +614,153 @@ def test_yes_no_text_coding(values: list[str], coding: tuple[str, str] | None) -
     from replicheck.io.columns import yes_no_coding
 
     assert yes_no_coding(pd.Series(values, dtype="string")) == coding
+
+
+# ---------------------------------------------------------------- reading some columns
+
+
+def test_columns_of_a_csv_in_file_order(tmp_path: Path) -> None:
+    # writer: pandas.to_csv; names matched as resolve_column matches them
+    path = tmp_path / "tanks.csv"
+    _frame().to_csv(path, index=False)
+    table = read_table(path, columns=["NOTE", "länge °c", "tank"])
+    assert table.columns == ["tank", "Länge °C", "note"]
+    assert table.data["Länge °C"].tolist() == [12.5, 13.25, 15.0, -3.75]
+    assert table.data["note"].tolist() == ["Müller", "ok", "ok", "naïve"]
+    # one name may be given as a string
+    assert read_table(path, columns="diet").columns == ["diet"]
+
+
+def test_unknown_column_names_the_closest(tmp_path: Path) -> None:
+    path = tmp_path / "tanks.csv"
+    _frame().to_csv(path, index=False)
+    with pytest.raises(InputError) as info:
+        read_table(path, columns=["tank", "tnak_id"])
+    assert str(info.value) == f"{path}: unknown column 'tnak_id'; closest: 'tank'"
+    with pytest.raises(InputError, match="no columns requested"):
+        read_table(path, columns=[])
+
+
+def test_rows_missing_in_every_read_column_are_dropped(tmp_path: Path) -> None:
+    # documented: the all-missing-row rule applies to the columns read
+    path = tmp_path / "gaps.csv"
+    path.write_text("tank,y\nA,1.5\nB,.\nC,2\n", encoding="utf-8")
+    assert read_table(path).n_rows == 3
+    table = read_table(path, columns=["y"])
+    assert table.data["y"].tolist() == [1.5, 2.0]
+
+
+def test_columns_of_a_parquet_file_are_pruned_in_the_file(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # writer: pandas.to_parquet; the named index "tank" comes back as a column
+    path = tmp_path / "tanks.parquet"
+    _frame().set_index("tank").to_parquet(path, engine="pyarrow")
+    asked: list[object] = []
+    read = pq.read_table
+
+    def spy(source: object, *args: object, **kwargs: object) -> pa.Table:
+        asked.append(kwargs.get("columns"))
+        return read(source, *args, **kwargs)
+
+    monkeypatch.setattr(pq, "read_table", spy)
+    table = read_table(path, columns=["note", "TANK"])
+    assert asked == [["note", "tank"]]  # only these columns were read from the file
+    assert table.columns == ["tank", "note"]
+    assert table.data["tank"].tolist() == ["T1", "T1", "T2", "T2"]
+    assert table.data["note"].tolist() == ["Müller", "ok", "ok", "naïve"]
+
+
+def test_columns_of_a_workbook_and_a_dataframe(tmp_path: Path) -> None:
+    path = tmp_path / "tanks.xlsx"
+    _two_sheet_workbook(path)
+    table = read_table(path, sheet="data", columns=["Länge °C"])
+    assert table.columns == ["Länge °C"]
+    assert table.data["Länge °C"].tolist() == [12.5, 13.25, 15.0, -3.75]
+    frame = _frame()
+    picked = read_table(frame, columns=["diet", "tank"])
+    assert picked.columns == ["tank", "diet"]
+    assert picked.data["diet"].tolist() == ["control", "control", "fed", "fed"]
+    assert frame.columns.tolist() == HEADER  # caller's frame untouched
+
+
+# ---------------------------------------------------------------- read_header
+
+
+def test_read_header_of_each_format(tmp_path: Path) -> None:
+    # names written literally; cleaned as read_table cleans them
+    csv_path = tmp_path / "spaces.csv"
+    csv_path.write_bytes(codecs.BOM_UTF8 + " tank ;Länge °C; \n A;1,5;\n".encode())
+    assert read_header(csv_path) == ["tank", "Länge °C", "Unnamed: 2"]
+    assert read_table(csv_path).columns == ["tank", "Länge °C"]  # the empty one is dropped
+    parquet = tmp_path / "indexed.parquet"
+    _frame().set_index("tank").to_parquet(parquet, engine="pyarrow")
+    assert read_header(parquet) == read_table(parquet).columns == HEADER
+    workbook = tmp_path / "tanks.xlsx"
+    _two_sheet_workbook(workbook)
+    assert read_header(workbook) == ["comment"]
+    assert read_header(workbook, sheet="data") == HEADER
+    assert read_header(_frame()) == HEADER
+
+
+def test_read_header_errors(tmp_path: Path) -> None:
+    dups = tmp_path / "dups.csv"
+    dups.write_text("tank,y,Tank\nA,1,B\n", encoding="utf-8")
+    with pytest.raises(InputError, match=r"dups\.csv: duplicate column names.*'tank', 'Tank'"):
+        read_header(dups)
+    with pytest.raises(InputError, match="file not found"):
+        read_header(tmp_path / "nothere.csv")
+    workbook = tmp_path / "tanks.xlsx"
+    _two_sheet_workbook(workbook)
+    with pytest.raises(InputError, match="no sheet 'results'"):
+        read_header(workbook, sheet="results")
+
+
+def test_read_header_decodes_as_the_whole_file_is_decoded(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The header is valid UTF-8 ("Länge" as C3 A4), but a lone cp1252 byte far
+    # into the file makes the whole file cp1252, so the header reads "LÃ¤nge"
+    # (Python's cp1252 codec on the same bytes) in read_table; read_header,
+    # which sees only the first bytes, must scan the file to agree.
+    import replicheck.io.scan as scan
+
+    monkeypatch.setattr(scan, "HEAD_BYTES", 4096)
+    path = tmp_path / "mixed.csv"
+    body = "".join(f"T{i % 9},{i}\n" for i in range(2000))
+    path.write_bytes("Länge,y\n".encode() + body.encode() + b"B\xe4r,1\n")
+    expected = "Länge".encode().decode("cp1252")
+    assert expected == "LÃ¤nge"
+    assert read_header(path) == [expected, "y"]
+    assert read_table(path).columns == [expected, "y"]
+
+
+def test_read_header_does_not_scan_for_an_ascii_header(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import replicheck.io.reader as reader
+    import replicheck.io.scan as scan
+
+    monkeypatch.setattr(scan, "HEAD_BYTES", 4096)
+    scanned: list[Path] = []
+    monkeypatch.setattr(reader, "scan_encodings", lambda path, *a: scanned.append(path))
+    path = tmp_path / "big.csv"
+    path.write_text("tank,y\n" + "".join(f"T{i},{i}\n" for i in range(5000)), encoding="utf-8")
+    assert read_header(path) == ["tank", "y"]
+    assert scanned == []
+
+
+# ---------------------------------------------------------------- progress
+
+
+def test_progress_on_a_small_file(tmp_path: Path) -> None:
+    path = tmp_path / "tanks.csv"
+    _frame().to_csv(path, index=False)
+    size = os.path.getsize(path)  # reference: the file system's size
+    calls: list[tuple[int, int]] = []
+    read_table(path, progress=lambda done, total: calls.append((done, total)))
+    assert calls[-1] == (2 * size, 2 * size)
+    assert [d for d, _ in calls] == sorted(d for d, _ in calls)
+    silent: list[tuple[int, int]] = []
+    read_table(_frame(), progress=lambda done, total: silent.append((done, total)))
+    assert silent == []

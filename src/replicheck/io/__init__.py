@@ -1,10 +1,17 @@
 """The read stage: files and DataFrames in, a :class:`Table` out.
 
->>> from replicheck.io import read_table, resolve_column, numeric_column
+>>> from replicheck.io import read_table, read_header, resolve_column, numeric_column
 """
 
 from replicheck.io.columns import numeric_column, resolve_column
-from replicheck.io.reader import read_table
+from replicheck.io.reader import read_header, read_table
 from replicheck.io.table import DEFAULT_NA, Table
 
-__all__ = ["DEFAULT_NA", "Table", "numeric_column", "read_table", "resolve_column"]
+__all__ = [
+    "DEFAULT_NA",
+    "Table",
+    "numeric_column",
+    "read_header",
+    "read_table",
+    "resolve_column",
+]

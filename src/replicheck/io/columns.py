@@ -110,16 +110,46 @@ def resolve_column(columns: Sequence[str], name: str, role: str = "column") -> s
     )
 
 
+def pick_columns(names: Sequence[str], wanted: Sequence[str] | None, label: str) -> list[int]:
+    """Positions, in file order, of the columns a user asked for (all for ``None``).
+
+    Each requested name is found with :func:`resolve_column`; an unknown or
+    ambiguous name is an :class:`InputError` that starts with ``label``.
+    """
+    if wanted is None:
+        return list(range(len(names)))
+    found: set[int] = set()
+    for name in wanted:
+        try:
+            hit = resolve_column(names, str(name))
+        except InputError as exc:
+            raise InputError(f"{label}: {exc}") from None
+        found.add(list(names).index(hit))
+    return sorted(found)
+
+
+# pd.to_numeric reads a (stripped) cell as a number only if it is made of
+# digits, signs, points, exponent letters and blanks, or spells "inf"; other
+# cells are NaN without asking it, which keeps text columns fast.
+# (no \s: pandas would then run the pattern in Python instead of pyarrow)
+_MAYBE_NUMBER = r"^[-0-9+.eE \t\n\r\f\v]+$|[iI][nN][fF]"
+
+
 def parse_numbers(values: pd.Series, decimal: str = ".") -> pd.Series:
     """Parse cells as floats (NaN where a cell is missing or not a number).
 
-    With ``decimal=","`` cells like ``-12,5`` are read as -12.5.
+    With ``decimal=","`` cells like ``-12,5`` are read as -12.5. Cells are
+    parsed by :func:`pandas.to_numeric` after stripping surrounding whitespace.
     """
     text = values.astype("string").str.strip()
     if decimal == ",":
         text = text.str.replace(r"^([+-]?\d+),(\d+)$", r"\1.\2", regex=True)
-    parsed = pd.to_numeric(text, errors="coerce").astype("Float64")
-    return pd.Series(parsed.to_numpy(dtype=float, na_value=np.nan), index=values.index)
+    out = np.full(len(text), np.nan)
+    maybe = text.str.contains(_MAYBE_NUMBER, regex=True).fillna(False).to_numpy(dtype=bool)
+    if maybe.any():
+        parsed = pd.to_numeric(text[maybe], errors="coerce").astype("Float64")
+        out[maybe] = parsed.to_numpy(dtype=float, na_value=np.nan)
+    return pd.Series(out, index=values.index)
 
 
 def column_decimal(values: pd.Series) -> str:

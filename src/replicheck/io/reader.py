@@ -1,8 +1,19 @@
 """Read a data file (CSV/TSV, Excel, Parquet) or a DataFrame into a :class:`Table`.
 
-The file is read once into memory, hashed, and parsed from the bytes; it is
-never opened for writing. Every problem with the input becomes one
-:class:`~replicheck.errors.InputError` line naming the file.
+The file is never opened for writing, and its SHA-256 is computed by reading
+it in chunks. How it is parsed depends on its kind and size:
+
+* a text file below :data:`LARGE_TEXT_BYTES` and a workbook are read into
+  memory and parsed from the bytes (pandas' C parser for text);
+* a larger text file is streamed through pyarrow's CSV reader
+  (:mod:`replicheck.io.arrow_csv`) with the encoding, delimiter and decimal mark
+  the sniffers find in its first megabyte, giving the same table; when pyarrow
+  cannot read it the way pandas does (ragged rows, ...) the in-memory parser is
+  used after all;
+* a Parquet file is read by pyarrow from the path, only the requested columns.
+
+Every problem with the input becomes one :class:`~replicheck.errors.InputError`
+line naming the file.
 """
 
 from __future__ import annotations
@@ -11,11 +22,14 @@ import csv
 import hashlib
 import io
 import os
+import re
 import warnings
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
+from typing import TYPE_CHECKING
 
+import numpy as np
 import pandas as pd
 from pandas.api.types import (
     is_bool_dtype,
@@ -25,9 +39,39 @@ from pandas.api.types import (
 )
 
 from replicheck.errors import InputError
-from replicheck.io.columns import check_names, clean_names, parse_numbers, quote_list
+from replicheck.io.arrow_csv import Dialect, read_delimited
+from replicheck.io.columns import (
+    check_names,
+    clean_names,
+    parse_numbers,
+    pick_columns,
+    quote_list,
+)
+from replicheck.io.scan import (
+    FileStart,
+    Meter,
+    ProgressCallback,
+    probe_file,
+    scan_encodings,
+    scan_file,
+)
 from replicheck.io.table import DEFAULT_NA, Table
-from replicheck.io.text import decode_text, first_record, sniff_decimal, sniff_delimiter
+from replicheck.io.text import _SAMPLE_CHARS as _SNIFF_CHARS
+from replicheck.io.text import (
+    EncodingScan,
+    EncodingScanner,
+    choose_encoding,
+    decode_text,
+    first_record,
+    sniff_decimal,
+    sniff_delimiter,
+)
+
+if TYPE_CHECKING:
+    import pyarrow as pa
+
+#: Text files of at least this many bytes are parsed by pyarrow, streaming.
+LARGE_TEXT_BYTES = 20 * 1024 * 1024
 
 _TEXT_EXTENSIONS: dict[str, str | None] = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": None}
 _EXCEL_EXTENSIONS = frozenset({".xlsx", ".xlsm"})
@@ -63,6 +107,8 @@ def read_table(
     *,
     sheet: str | int | None = None,
     na_values: Sequence[str] = (),
+    columns: Sequence[str] | None = None,
+    progress: ProgressCallback | None = None,
 ) -> Table:
     """Read ``source`` into a :class:`Table`.
 
@@ -77,12 +123,24 @@ def read_table(
     na_values:
         Missing-value codes in addition to :data:`DEFAULT_NA`. Codes that are
         numbers (e.g. ``"-99"``) also match numeric cells (-99, -99.0).
+    columns:
+        Read only these columns (``None``: all). Names are matched as
+        :func:`~replicheck.io.columns.resolve_column` does (``"Tank ID"`` finds
+        ``"tank_id"``); the table keeps file order. Large text and Parquet
+        files then skip the other columns while parsing. Rows are dropped when
+        all *read* cells are missing, so a row that has values only in columns
+        left out is dropped too.
+    progress:
+        Called as ``progress(done, total)`` while a file is read; ``total`` is
+        twice the file size (one pass to hash, one to parse) and the last call
+        has ``done == total``. Not called for a DataFrame.
 
     Raises
     ------
     InputError
         The file is missing, empty, binary, corrupt, has no data rows or has
-        duplicate column names; or the sheet does not exist.
+        duplicate column names; the sheet does not exist; a requested column
+        does not exist (the message names the closest columns).
 
     Examples
     --------
@@ -92,21 +150,21 @@ def read_table(
     (['y'], [1.0])
     """
     codes = _missing_codes(na_values)
+    wanted = _wanted_columns(columns)
     if isinstance(source, pd.DataFrame):
         label = "<dataframe>"
         if sheet is not None:
             raise InputError("a sheet can be chosen only when reading an Excel workbook")
         names, blank = clean_names(list(source.columns))
         check_names(names, blank, "the DataFrame")
-        frame = source.copy()
-        frame.columns = pd.Index(names)
-        parsed = _Parsed(frame, blank, "dataframe")
+        keep = pick_columns(names, wanted, "the DataFrame")
+        frame = source.copy() if len(keep) == len(names) else source.iloc[:, keep].copy()
+        frame.columns = pd.Index([names[i] for i in keep])
+        parsed = _Parsed(frame, _remap(blank, keep), "dataframe")
         digest = None
     elif isinstance(source, str | os.PathLike):
         label = os.fspath(source)
-        raw = _read_bytes(Path(label), label)
-        digest = hashlib.sha256(raw).hexdigest()
-        parsed = _parse_bytes(raw, Path(label), label, sheet, codes)
+        digest, parsed = _read_file(Path(label), label, sheet, codes, wanted, progress)
     else:
         raise InputError(f"expected a file path or a DataFrame, got {type(source).__name__}")
     data = _apply_missing(parsed.frame, parsed.blank, codes, parsed.decimal)
@@ -126,6 +184,60 @@ def read_table(
     )
 
 
+def read_header(
+    source: str | os.PathLike[str] | pd.DataFrame, *, sheet: str | int | None = None
+) -> list[str]:
+    """The column names :func:`read_table` would give, without reading the data.
+
+    Names are cleaned as in the table (surrounding whitespace and byte-order
+    marks removed; a blank header is ``"Unnamed: i"``). A text file is sniffed
+    from its first megabyte (the whole file is scanned only when the header
+    has non-ASCII characters, whose decoding depends on the whole file's
+    encoding); a Parquet file's schema and a workbook's first row are read.
+    Unnamed columns are listed even when :func:`read_table` would drop them
+    for being empty, and problems in the data rows are not looked for.
+
+    Raises
+    ------
+    InputError
+        As :func:`read_table` for a missing, empty, binary or corrupt file,
+        an unknown sheet, or duplicate column names.
+    """
+    if isinstance(source, pd.DataFrame):
+        if sheet is not None:
+            raise InputError("a sheet can be chosen only when reading an Excel workbook")
+        names, blank = clean_names(list(source.columns))
+        check_names(names, blank, "the DataFrame")
+        return names
+    if not isinstance(source, str | os.PathLike):
+        raise InputError(f"expected a file path or a DataFrame, got {type(source).__name__}")
+    label = os.fspath(source)
+    path = Path(label)
+    start = probe_file(path, label)
+    kind = _file_kind(start, path, label, sheet)
+    if kind == "parquet":
+        return _parquet_header(path, label)
+    if kind == "excel":
+        return _excel_header(path, label, sheet)
+    head_text = _header_text(path, start, label)
+    delimiter = sniff_delimiter(head_text, _hint(path))
+    return _text_header(head_text, delimiter, label)[0]
+
+
+def _wanted_columns(columns: Sequence[str] | None) -> tuple[str, ...] | None:
+    if columns is None:
+        return None
+    wanted = (columns,) if isinstance(columns, str) else tuple(str(c) for c in columns)
+    if not wanted:
+        raise InputError("no columns requested (pass None to read all columns)")
+    return wanted
+
+
+def _remap(blank: set[int], positions: Sequence[int]) -> set[int]:
+    """Blank-header positions renumbered after keeping the columns at ``positions``."""
+    return {new for new, old in enumerate(positions) if old in blank}
+
+
 def _missing_codes(user: Sequence[str]) -> _MissingCodes:
     if isinstance(user, str):  # one code, not a sequence of one-letter codes
         user = (user,)
@@ -134,11 +246,23 @@ def _missing_codes(user: Sequence[str]) -> _MissingCodes:
     return _MissingCodes(frozenset(DEFAULT_NA) | frozenset(extra), tuple(numbers))
 
 
+def _file_kind(start: FileStart, path: Path, label: str, sheet: str | int | None) -> str:
+    """``"excel"``, ``"parquet"`` or ``"text"``: unmistakable content first, then the extension."""
+    suffix = path.suffix.lower()
+    if start.head.startswith(_OLE2_MAGIC) or suffix == ".xls":
+        raise InputError(f"{label}: legacy .xls workbooks are not supported; save as .xlsx or .csv")
+    if start.head.startswith(_ZIP_MAGIC) or suffix in _EXCEL_EXTENSIONS:
+        return "excel"
+    if sheet is not None:
+        raise InputError(f"{label}: a sheet can be chosen only for an Excel workbook")
+    if (start.head.startswith(_PARQUET_MAGIC) and start.tail.endswith(_PARQUET_MAGIC)) or (
+        suffix in _PARQUET_EXTENSIONS
+    ):
+        return "parquet"
+    return "text"
+
+
 def _read_bytes(path: Path, label: str) -> bytes:
-    if not path.exists():
-        raise InputError(f"{label}: file not found")
-    if path.is_dir():
-        raise InputError(f"{label}: is a directory, not a data file")
     try:
         raw = path.read_bytes()
     except OSError as exc:
@@ -148,22 +272,56 @@ def _read_bytes(path: Path, label: str) -> bytes:
     return raw
 
 
-def _parse_bytes(
-    raw: bytes, path: Path, label: str, sheet: str | int | None, codes: _MissingCodes
-) -> _Parsed:
-    """Dispatch on unmistakable content first, then on the extension."""
-    suffix = path.suffix.lower()
-    if raw.startswith(_OLE2_MAGIC) or suffix == ".xls":
-        raise InputError(f"{label}: legacy .xls workbooks are not supported; save as .xlsx or .csv")
-    if raw.startswith(_ZIP_MAGIC) or suffix in _EXCEL_EXTENSIONS:
-        return _parse_excel(raw, label, sheet)
-    if sheet is not None:
-        raise InputError(f"{label}: a sheet can be chosen only for an Excel workbook")
-    if (raw.startswith(_PARQUET_MAGIC) and raw.endswith(_PARQUET_MAGIC)) or (
-        suffix in _PARQUET_EXTENSIONS
-    ):
-        return _parse_parquet(raw, label)
-    return _parse_text(raw, label, _TEXT_EXTENSIONS.get(suffix), codes)
+def _read_file(
+    path: Path,
+    label: str,
+    sheet: str | int | None,
+    codes: _MissingCodes,
+    wanted: tuple[str, ...] | None,
+    progress: ProgressCallback | None,
+) -> tuple[str, _Parsed]:
+    """The file's SHA-256 and its parsed frame (only the ``wanted`` columns)."""
+    start = probe_file(path, label)
+    meter = Meter(progress, 2 * start.size)
+    kind = _file_kind(start, path, label, sheet)
+    parsed: _Parsed | None = None
+    if kind == "parquet":
+        digest = scan_file(path, start, label, meter, text=False).sha256
+        parsed = _parse_parquet(path, label, wanted)
+    elif kind == "text" and start.size >= LARGE_TEXT_BYTES:
+        scan = scan_file(path, start, label, meter, text=True)
+        digest = scan.sha256
+        assert scan.encodings is not None
+        parsed = _parse_large_text(path, start, scan.encodings, label, codes, wanted, meter)
+        if parsed is None:  # pyarrow cannot read it as pandas would: parse in memory
+            parsed = _parse_text(_read_bytes(path, label), label, _hint(path), codes, wanted)
+    else:
+        raw = _read_bytes(path, label)
+        meter.to(len(raw))
+        digest = hashlib.sha256(raw).hexdigest()
+        if kind == "excel":
+            parsed = _select(_parse_excel(raw, label, sheet), wanted, label)
+        else:
+            parsed = _parse_text(raw, label, _hint(path), codes, wanted)
+        del raw
+    meter.finish()
+    return digest, parsed
+
+
+def _hint(path: Path) -> str | None:
+    return _TEXT_EXTENSIONS.get(path.suffix.lower())
+
+
+def _select(parsed: _Parsed, wanted: tuple[str, ...] | None, label: str) -> _Parsed:
+    """Keep only the ``wanted`` columns of a parsed frame."""
+    if wanted is None:
+        return parsed
+    names = [str(c) for c in parsed.frame.columns]
+    positions = pick_columns(names, wanted, label)
+    if len(positions) == len(names):
+        return parsed
+    frame = parsed.frame.iloc[:, positions]
+    return replace(parsed, frame=frame, blank=_remap(parsed.blank, positions))
 
 
 def _brief(exc: BaseException) -> str:
@@ -171,7 +329,102 @@ def _brief(exc: BaseException) -> str:
     return text if len(text) <= 160 else text[:157] + "..."
 
 
-def _parse_text(raw: bytes, label: str, hint: str | None, codes: _MissingCodes) -> _Parsed:
+def _text_header(head_text: str, delimiter: str, label: str) -> tuple[list[str], set[int], bool]:
+    """Cleaned header names, blank positions, and whether pandas splits the header alike.
+
+    The names come from the first record as the csv module splits it; when
+    pandas' parser finds a different number of fields there (odd quoting), the
+    in-memory parser trusts pandas, and so does this.
+    """
+    names, blank = clean_names(first_record(head_text, delimiter))
+    check_names(names, blank, label)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            seen = pd.read_csv(
+                io.StringIO(head_text),
+                sep=delimiter,
+                header=0,
+                nrows=0,
+                index_col=False,
+                engine="c",
+            ).columns
+    except Exception:  # the in-memory parser will report any real problem
+        return names, blank, False
+    if len(seen) == len(names):
+        return names, blank, True
+    names, blank = clean_names(list(seen))
+    return names, blank, False
+
+
+def _header_text(path: Path, start: FileStart, label: str) -> str:
+    """The decoded start of a text file, as decoded with the whole file's encoding.
+
+    The whole file is scanned only when its encoding can change the header's
+    characters: a non-ASCII header in a file without a byte-order mark.
+    """
+    if start.size <= len(start.head):
+        return decode_text(start.head, label)[0]
+    scanner = EncodingScanner(start.head, start.size)
+    scanner.update(start.head)
+    head_text, encoding = choose_encoding(
+        start.head, start.size, scanner.finish(final=False), label
+    )
+    if encoding in ("utf-8", "cp1252", "latin-1"):
+        delimiter = sniff_delimiter(head_text, _hint(path))
+        if not all(field.isascii() for field in first_record(head_text, delimiter)):
+            scan = scan_encodings(path, start, label)
+            head_text = choose_encoding(start.head, start.size, scan, label)[0]
+    return head_text
+
+
+def _parse_large_text(
+    path: Path,
+    start: FileStart,
+    scan: EncodingScan,
+    label: str,
+    codes: _MissingCodes,
+    wanted: tuple[str, ...] | None,
+    meter: Meter,
+) -> _Parsed | None:
+    """Parse a large text file with pyarrow; ``None`` when it must be parsed in memory."""
+    head_text, encoding = choose_encoding(start.head, start.size, scan, label)
+    if not head_text.strip():
+        return None
+    if start.size > len(start.head) and len(head_text) <= _SNIFF_CHARS:
+        return None  # the sniffers would not see what they see in the whole text
+    delimiter = sniff_delimiter(head_text, _hint(path))
+    decimal = sniff_decimal(head_text, delimiter)
+    names, blank, pandas_agrees = _text_header(head_text, delimiter, label)
+    first_line = re.split(r"\r\n|\r|\n", head_text, maxsplit=1)[0]
+    if not pandas_agrees or next(csv.reader([first_line], delimiter=delimiter), []) != (
+        first_record(head_text, delimiter)
+    ):
+        return None  # the header is not simply the first line
+    positions = pick_columns(names, wanted, label)
+    frame = read_delimited(
+        str(path),
+        Dialect(encoding, delimiter, decimal, len(names)),
+        positions,
+        [names[i] for i in positions],
+        sorted(codes.texts),
+        head_text,
+        meter,
+        offset=start.size,
+    )
+    if frame is None:
+        return None
+    kind = "tsv" if delimiter == "\t" else "csv"
+    return _Parsed(frame, _remap(blank, positions), kind, encoding, delimiter, decimal)
+
+
+def _parse_text(
+    raw: bytes,
+    label: str,
+    hint: str | None,
+    codes: _MissingCodes,
+    wanted: tuple[str, ...] | None = None,
+) -> _Parsed:
     text, encoding = decode_text(raw, label)
     if not text.strip():
         raise InputError(f"{label}: the file is empty (only whitespace)")
@@ -202,13 +455,14 @@ def _parse_text(raw: bytes, label: str, hint: str | None, codes: _MissingCodes) 
             f"{label}: cannot be read as {shown}-delimited text; some rows have more fields "
             f"than the header or quotes are unbalanced ({_brief(exc)})"
         ) from exc
+    del text
     if len(frame.columns) == len(names):
         frame.columns = pd.Index(names)
     else:  # the header split differently from pandas' view (odd quoting): trust pandas
         names, blank = clean_names(list(frame.columns))
         frame.columns = pd.Index(names)
     kind = "tsv" if delimiter == "\t" else "csv"
-    return _Parsed(frame, blank, kind, encoding, delimiter, decimal)
+    return _select(_Parsed(frame, blank, kind, encoding, delimiter, decimal), wanted, label)
 
 
 def _pick_sheet(available: list[str], sheet: str | int | None, label: str) -> str:
@@ -250,52 +504,156 @@ def _parse_excel(raw: bytes, label: str, sheet: str | int | None) -> _Parsed:
     return _Parsed(frame, blank, "xlsx", sheet=name)
 
 
-def _parse_parquet(raw: bytes, label: str) -> _Parsed:
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
+def _excel_header(path: Path, label: str, sheet: str | int | None) -> list[str]:
+    """The cleaned names in the first row of the chosen sheet."""
     try:
-        arrow = pq.read_table(pa.BufferReader(raw))
-        check_names(*clean_names(arrow.column_names), label)
-        frame = arrow.to_pandas()
+        with pd.ExcelFile(path, engine="openpyxl") as book:
+            available = [str(name) for name in book.sheet_names]
+            name = _pick_sheet(available, sheet, label)
+            grid = pd.read_excel(book, sheet_name=name, header=None, nrows=1, keep_default_na=False)
     except InputError:
         raise
-    except Exception as exc:  # pyarrow raises ArrowInvalid, OSError, ... on damaged files
-        raise InputError(f"{label}: not a readable Parquet file ({_brief(exc)})") from exc
-    # a pandas index stored in the file comes back as the index: keep named levels as columns
+    except Exception as exc:
+        raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
+    if grid.empty:
+        raise InputError(f"{label}: sheet '{name}' has no data rows")
+    names, blank = clean_names(grid.iloc[0].tolist())
+    check_names(names, blank, f"{label} (sheet '{name}')")
+    return names
+
+
+def _parquet_frame(arrow: pa.Table, label: str) -> tuple[pd.DataFrame, set[int]]:
+    """A Parquet table as a frame with cleaned names; consumes ``arrow``.
+
+    A pandas index stored in the file comes back as the index: named levels
+    are kept as (leading) columns, an unnamed index is dropped.
+    """
+    frame = arrow.to_pandas(split_blocks=True, self_destruct=True)
     named_index = any(level is not None for level in frame.index.names)
     frame = frame.reset_index(drop=not named_index)
     names, blank = clean_names(list(frame.columns))
     check_names(names, blank, label)
     frame.columns = pd.Index(names)
-    return _Parsed(frame, blank, "parquet")
+    return frame, blank
+
+
+def _unreadable_parquet(label: str, exc: Exception) -> InputError:
+    return InputError(f"{label}: not a readable Parquet file ({_brief(exc)})")
+
+
+def _parquet_header(path: Path, label: str) -> list[str]:
+    import pyarrow.parquet as pq
+
+    try:
+        schema = pq.read_schema(str(path))
+        check_names(*clean_names(schema.names), label)
+        return list(_parquet_frame(schema.empty_table(), label)[0].columns)
+    except InputError:
+        raise
+    except Exception as exc:  # pyarrow raises ArrowInvalid, OSError, ... on damaged files
+        raise _unreadable_parquet(label, exc) from exc
+
+
+def _parse_parquet(path: Path, label: str, wanted: tuple[str, ...] | None) -> _Parsed:
+    """Read a Parquet file; with ``wanted``, only the file's columns of those names."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    def read(fields: list[str] | None) -> tuple[pd.DataFrame, set[int]]:
+        with pa.OSFile(str(path)) as handle:
+            arrow = pq.read_table(handle, columns=fields)
+        return _parquet_frame(arrow, label)
+
+    try:
+        schema = pq.read_schema(str(path))
+        check_names(*clean_names(schema.names), label)
+        if wanted is None:
+            frame, blank = read(None)
+            return _Parsed(frame, blank, "parquet")
+        header = list(_parquet_frame(schema.empty_table(), label)[0].columns)
+        chosen = [header[i] for i in pick_columns(header, wanted, label)]
+        frame, blank = read([f for f in schema.names if clean_names([f])[0][0] in chosen])
+        if not set(chosen) <= set(frame.columns):
+            # a column not stored under its name (e.g. an index range): read them all
+            frame, blank = read(None)
+    except InputError:
+        raise
+    except Exception as exc:  # pyarrow raises ArrowInvalid, OSError, ... on damaged files
+        raise _unreadable_parquet(label, exc) from exc
+    names = list(frame.columns)
+    positions = [names.index(name) for name in chosen]
+    return _Parsed(frame.iloc[:, positions], _remap(blank, positions), "parquet")
 
 
 def _missing_in_column(series: pd.Series, codes: _MissingCodes, decimal: str) -> pd.Series:
     """Turn missing codes into NA; a text column whose other cells are all numbers
-    becomes float."""
+    becomes float.
+
+    Text cells are judged once per distinct value when the column repeats its
+    values (labels, codes), which gives the same result faster.
+    """
     if is_bool_dtype(series) or is_datetime64_any_dtype(series) or is_timedelta64_dtype(series):
         return series
     if is_numeric_dtype(series) and not isinstance(series.dtype, pd.CategoricalDtype):
         return series.mask(series.isin(codes.numbers)) if codes.numbers else series
-    text = series.astype("string").str.strip()
+    keys, cells = _distinct_cells(series)
+    text = cells.astype("string").str.strip()
     numbers = parse_numbers(text, decimal)
     missing = text.isna() | text.isin(codes.texts) | numbers.isin(codes.numbers)
     if (numbers.notna() | missing).all():
-        return numbers.mask(missing)
-    return text.mask(missing).astype(str)
+        values = numbers.mask(missing)
+        if keys is None:
+            return values
+        spread = np.append(values.to_numpy(dtype=float), np.nan)[keys]  # key -1: missing
+        return pd.Series(spread, index=series.index)
+    labels = text.mask(missing).astype(str)
+    if keys is None:
+        return labels
+    return pd.Series(labels.array.take(keys, allow_fill=True), index=series.index)
+
+
+# a column is judged by distinct value when its first cells repeat this much
+_DISTINCT_SAMPLE = 10_000
+_DISTINCT_SHARE = 0.1
+
+
+def _distinct_cells(series: pd.Series) -> tuple[np.ndarray | None, pd.Series]:
+    """``(keys, cells)`` with ``series == cells[keys]`` (key -1: a missing cell),
+    or ``(None, series)`` when the values hardly repeat or cannot be hashed."""
+    head = series.iloc[:_DISTINCT_SAMPLE]
+    try:
+        if head.nunique(dropna=True) > _DISTINCT_SHARE * max(len(head), 1):
+            return None, series
+        keys, distinct = series.factorize()
+    except TypeError:  # unhashable cells (lists, ...)
+        return None, series
+    return keys, pd.Series(distinct)
 
 
 def _apply_missing(
     frame: pd.DataFrame, blank: set[int], codes: _MissingCodes, decimal: str
 ) -> pd.DataFrame:
-    """Apply missing codes; drop all-missing rows and unnamed all-missing columns."""
-    columns = {
-        name: _missing_in_column(frame.iloc[:, i], codes, decimal)
-        for i, name in enumerate(frame.columns)
-    }
-    data = pd.DataFrame(columns, index=frame.index)
-    keep = [
-        name for i, name in enumerate(data.columns) if i not in blank or data[name].notna().any()
-    ]
-    return data[keep].dropna(how="all").reset_index(drop=True)
+    """Apply missing codes; drop all-missing rows and unnamed all-missing columns.
+
+    Consumes ``frame``: each column is taken out of it before the next is
+    converted, so a frame with one block per column (as pyarrow gives) is never
+    held twice.
+    """
+    names = [str(c) for c in frame.columns]
+    frame.columns = pd.Index([str(i) for i in range(len(names))])  # names may repeat
+    filled = np.zeros(len(frame), dtype=bool)
+    converted: dict[str, pd.Series] = {}
+    for i, name in enumerate(names):
+        column = _missing_in_column(frame.pop(str(i)), codes, decimal)
+        present = column.notna().to_numpy(dtype=bool)
+        if i in blank and not present.any():
+            continue
+        filled |= present
+        converted[name] = column
+    rows = None if filled.all() else np.flatnonzero(filled)
+    arrays = {}
+    for name in list(converted):
+        column = converted.pop(name)
+        arrays[name] = (column if rows is None else column.take(rows)).array
+    index = pd.RangeIndex(len(filled) if rows is None else len(rows))
+    return pd.DataFrame(arrays, index=index, copy=False)

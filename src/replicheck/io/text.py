@@ -25,6 +25,7 @@ import codecs
 import csv
 import io
 import re
+from dataclasses import dataclass
 
 from replicheck.errors import InputError
 
@@ -35,22 +36,36 @@ DOT_DECIMAL = re.compile(r"^[+-]?\d*\.\d+$")
 _SAMPLE_CHARS = 65536
 _SAMPLE_ROWS = 100
 _ALLOWED_CONTROLS = frozenset("\t\n\r\x0b\x0c")
+_UTF16_PROBE = 4096
+# bytes Python's cp1252 codec cannot decode (unassigned in the code page)
+_CP1252_UNDEFINED = (b"\x81", b"\x8d", b"\x8f", b"\x90", b"\x9d")
+
+
+def encoding_candidates(head: bytes, size: int, has_nul: bool, label: str) -> tuple[str, ...]:
+    """The encodings to try, in order, for a file of ``size`` bytes starting with ``head``.
+
+    ``has_nul`` tells whether the file holds a NUL byte anywhere. Raises
+    :class:`InputError` for a binary file (NUL bytes that are not UTF-16).
+    """
+    if head.startswith(codecs.BOM_UTF8):
+        return ("utf-8-sig",)
+    if head.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+        return ("utf-16",)
+    if has_nul:
+        bomless = _bomless_utf16(head, size)
+        if bomless is None:
+            raise InputError(f"{label}: looks like a binary file, not text (it contains NUL bytes)")
+        return (bomless,)
+    return ("utf-8", "cp1252", "latin-1")
+
+
+def _not_text(label: str) -> InputError:
+    return InputError(f"{label}: looks like a binary file, not text (it cannot be decoded as text)")
 
 
 def decode_text(raw: bytes, label: str) -> tuple[str, str]:
     """Decode file bytes; return ``(text, encoding)`` or raise :class:`InputError`."""
-    if raw.startswith(codecs.BOM_UTF8):
-        candidates: tuple[str, ...] = ("utf-8-sig",)
-    elif raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
-        candidates = ("utf-16",)
-    elif b"\x00" in raw:
-        bomless = _bomless_utf16(raw)
-        if bomless is None:
-            raise InputError(f"{label}: looks like a binary file, not text (it contains NUL bytes)")
-        candidates = (bomless,)
-    else:
-        candidates = ("utf-8", "cp1252", "latin-1")
-    for encoding in candidates:
+    for encoding in encoding_candidates(raw[:_UTF16_PROBE], len(raw), b"\x00" in raw, label):
         try:
             text = raw.decode(encoding)
         except UnicodeDecodeError:
@@ -58,14 +73,105 @@ def decode_text(raw: bytes, label: str) -> tuple[str, str]:
         if _mostly_text(text):
             return text, encoding
         break
-    raise InputError(f"{label}: looks like a binary file, not text (it cannot be decoded as text)")
+    raise _not_text(label)
 
 
-def _bomless_utf16(raw: bytes) -> str | None:
+@dataclass(frozen=True)
+class EncodingScan:
+    """What a pass over a whole file found: NUL bytes, and the encodings that decode it."""
+
+    has_nul: bool
+    decodes: frozenset[str]
+
+
+class EncodingScanner:
+    """Checks, chunk by chunk, which candidate encodings decode a whole file.
+
+    Feed every chunk of the file, in order, to :meth:`update`; :meth:`finish`
+    then gives the same facts :func:`decode_text` learns from the whole bytes,
+    without holding them. UTF-8 is checked only on chunks that are not pure
+    ASCII; cp1252 fails exactly on its five undefined bytes.
+    """
+
+    def __init__(self, head: bytes, size: int) -> None:
+        if head.startswith(codecs.BOM_UTF8):
+            candidates: tuple[str, ...] = ("utf-8-sig",)
+        elif head.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+            candidates = ("utf-16",)
+        else:
+            bomless = _bomless_utf16(head, size)
+            candidates = ("utf-8", "cp1252", "latin-1") + ((bomless,) if bomless else ())
+        self._alive = set(candidates)
+        self._decoders = {
+            name: codecs.getincrementaldecoder(name)()
+            for name in candidates
+            if name not in ("cp1252", "latin-1")
+        }
+        self._has_nul = False
+
+    def update(self, chunk: bytes) -> None:
+        """Take the next chunk of the file."""
+        if not self._has_nul and chunk.find(b"\x00") >= 0:
+            self._has_nul = True
+        ascii_only = chunk.isascii()
+        for name in list(self._alive):
+            if name == "latin-1":
+                continue
+            if name == "cp1252":
+                if not ascii_only and any(chunk.find(b) >= 0 for b in _CP1252_UNDEFINED):
+                    self._fail(name)
+                continue
+            decoder = self._decoders[name]
+            if ascii_only and name.startswith("utf-8") and not decoder.getstate()[0]:
+                continue
+            try:
+                decoder.decode(chunk)
+            except UnicodeDecodeError:
+                self._fail(name)
+
+    def _fail(self, name: str) -> None:
+        self._alive.discard(name)
+
+    def finish(self, final: bool = True) -> EncodingScan:
+        """The findings; call after the last chunk (``final=False``: more may follow,
+        so a character cut at the end is not an error)."""
+        for name in list(self._alive):
+            if final and name in self._decoders:
+                try:
+                    self._decoders[name].decode(b"", final=True)
+                except UnicodeDecodeError:
+                    self._fail(name)
+        return EncodingScan(self._has_nul, frozenset(self._alive))
+
+
+def decode_head(head: bytes, encoding: str, final: bool) -> str:
+    """Decode the first bytes of a file; a character cut at the end is left out
+    unless ``final`` (the head is the whole file)."""
+    return codecs.getincrementaldecoder(encoding)().decode(head, final=final)
+
+
+def choose_encoding(head: bytes, size: int, scan: EncodingScan, label: str) -> tuple[str, str]:
+    """``(head_text, encoding)`` as :func:`decode_text` would decide for the whole file.
+
+    ``head`` is the start of the file (whole when ``size <= len(head)``) and
+    ``scan`` what :class:`EncodingScanner` found over all of it. Only the first
+    characters are checked for control characters, as in :func:`decode_text`.
+    """
+    for encoding in encoding_candidates(head[:_UTF16_PROBE], size, scan.has_nul, label):
+        if encoding not in scan.decodes:
+            continue
+        text = decode_head(head, encoding, final=size <= len(head))
+        if _mostly_text(text):
+            return text, encoding
+        break
+    raise _not_text(label)
+
+
+def _bomless_utf16(head: bytes, size: int) -> str | None:
     """``"utf-16-le"``/``"utf-16-be"`` when NULs fill every other byte, else ``None``."""
-    head = raw[:4096]
+    head = head[:_UTF16_PROBE]
     half = len(head) // 2
-    if half == 0 or len(raw) % 2:
+    if half == 0 or size % 2:
         return None
     even_nuls = head[0::2].count(0)
     odd_nuls = head[1::2].count(0)
