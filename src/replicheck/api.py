@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import os
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
 
@@ -238,6 +238,7 @@ def audit(
     hidden: bool = True,
     dayfirst: bool | None = None,
     order: str | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -278,6 +279,9 @@ def audit(
         ambiguous dates (day first or month first; by default the reading that
         fits every value, month first when both do); a column giving the order
         in which samples were processed (default: detected, else file order).
+    progress:
+        Called as ``progress(done, total)`` while a file is read (bytes hashed
+        and parsed; ``total`` is twice the file size), e.g. to drive a progress bar.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
         each treatment level) or ``global`` (labels name the same unit everywhere).
@@ -321,7 +325,10 @@ def audit(
     )
     clock.lap("claim")
     table = read_table(
-        data if isinstance(data, pd.DataFrame) else Path(data), sheet=c.sheet, na_values=c.na_values
+        data if isinstance(data, pd.DataFrame) else Path(data),
+        sheet=c.sheet,
+        na_values=c.na_values,
+        progress=progress,
     )
     c, stated = _resolve(table, c)
     formula_blocks: list[str] = []

@@ -11,6 +11,7 @@ import sys
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import click
 
@@ -53,6 +54,30 @@ def _check_output(output: str | None, *inputs: str) -> None:
     for path in inputs:
         if path and os.path.realpath(path) == out:
             raise InputError(f"--output {output} would overwrite the input file")
+
+
+class _ReadBar:
+    """A progress bar on standard error while a large file is read (terminals only)."""
+
+    MIN_BYTES = 50_000_000  # smaller files read in about a second: no bar
+
+    def __init__(self) -> None:
+        self._bar: Any = None
+        self._done = 0
+
+    def update(self, done: int, total: int) -> None:
+        if self._bar is None:
+            if total < 2 * self.MIN_BYTES or not sys.stderr.isatty():
+                return
+            self._bar = click.progressbar(length=total, label="reading", file=sys.stderr)
+            self._bar.__enter__()
+        self._bar.update(done - self._done)
+        self._done = done
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.__exit__(None, None, None)
+            self._bar = None
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -211,6 +236,7 @@ def check(
     from replicheck.api import audit
 
     _check_output(output, data, spec or "")
+    bar = _ReadBar()
     report = audit(
         data,
         response=response,
@@ -230,7 +256,9 @@ def check(
         hidden=hidden,
         dayfirst=None if dates == "auto" else dates == "day-first",
         order=order_col,
+        progress=bar.update,
     )
+    bar.close()
     if report.claim.spec_path and spec is None:
         click.echo(f"using spec {report.claim.spec_path}", err=True)
     _emit(_render(report, fmt), output)
