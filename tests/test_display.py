@@ -132,3 +132,27 @@ def test_confounded_picture_groups_rows_but_gives_no_corrected_interval(ratpup) 
     assert doc["verdict"]["status"] == "confounded"
     assert all(r["corrected"] is None for r in doc["display"]["effects"]["rows"])
     assert [len(lv["units"]) for lv in doc["display"]["levels"]] == [1, 1, 1]
+
+
+def test_levels_with_many_units_show_an_even_selection_of_unit_means() -> None:
+    # invented rows: only the selection rule is checked here (display, not a statistic);
+    # reference values from pandas groupby
+    rng = np.random.default_rng(5)
+    units = 1000
+    cage = np.repeat(np.arange(units), 3)
+    d = pd.DataFrame(
+        {
+            "y": rng.normal(size=cage.size) + rng.normal(size=units)[cage],
+            "arm": np.where(cage % 2 == 0, "a", "b"),
+            "cage": cage,
+        }
+    )
+    view = audit(d, response="y", treatment="arm", unit="cage", hidden=False).to_dict()["display"]
+    means = d.groupby("cage").agg(y=("y", "mean"), arm=("arm", "first"))
+    for lv in view["levels"]:
+        ref = means.loc[means.arm == lv["label"], "y"]
+        assert lv["n_units"] == 500 and len(lv["units"]) == 400
+        assert lv["mean_of_unit_means"] == pytest.approx(ref.mean(), rel=1e-12)
+        shown = [u["mean"] for u in lv["units"]]
+        assert shown[0] == pytest.approx(ref.min()) and shown[-1] == pytest.approx(ref.max())
+        assert all(not u["values"] for u in lv["units"])

@@ -7,8 +7,9 @@ needs is prepared here, once, as plain data:
   experimental unit within each level, with the unit means (the picture that
   shows an inflated n at a glance). Large files are thinned for display only:
   each unit keeps at most ``MAX_POINTS`` observations taken at evenly spaced
-  ranks (so its spread and median are kept), and the unit means are always
-  complete.
+  ranks (so its spread and median are kept); a level with more than
+  ``MAX_UNITS`` units shows that many unit means at evenly spaced ranks and no
+  observations. Means of unit means always use every unit.
 * :func:`effect_intervals`: each level's difference from the first level, with
   a 95% confidence interval computed twice: as the claimed analysis implies
   (every row a replicate: pooled within-level variance, t on N - k df, the
@@ -20,7 +21,7 @@ needs is prepared here, once, as plain data:
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -28,7 +29,7 @@ import pandas as pd
 from scipy import stats as sps
 
 MAX_POINTS = 60  # observations drawn per unit (display only)
-MAX_UNITS = 400  # units drawn per level beyond which only unit means are drawn
+MAX_UNITS = 400  # units per level beyond which MAX_UNITS unit means are drawn, no observations
 CONFIDENCE = 0.95
 
 
@@ -48,8 +49,9 @@ class LevelPoints:
 
     label: str
     n_observations: int
-    units: tuple[UnitPoints, ...]
+    units: tuple[UnitPoints, ...]  # every unit, or MAX_UNITS of them at even ranks of the means
     mean_of_unit_means: float
+    n_units: int
 
 
 @dataclass(frozen=True)
@@ -114,17 +116,35 @@ def _even_ranks(values: np.ndarray, k: int) -> np.ndarray:
     return v[idx]
 
 
-def _unit_labels(frame: pd.DataFrame, columns: Sequence[str], codes: np.ndarray) -> list[str]:
-    """A label for every unit code: its columns' values joined by ':'."""
-    n = int(codes.max()) + 1 if codes.size else 0
-    first = np.full(n, -1, dtype=np.int64)
-    order = np.arange(codes.size)[::-1]
-    first[codes[order]] = order  # the first row of each unit
-    labels = []
-    for row in first:
-        parts = [str(frame[c].iloc[int(row)]) for c in columns]
-        labels.append(":".join(parts))
-    return labels
+def _first_rows(codes: np.ndarray, n_codes: int) -> np.ndarray:
+    """The first row of every code 0..n_codes-1 (vectorised)."""
+    first = np.zeros(n_codes, dtype=np.int64)
+    first[codes[::-1]] = np.arange(codes.size)[::-1]
+    return first
+
+
+def _labeller(
+    frame: pd.DataFrame | None, columns: Sequence[str], codes: np.ndarray
+) -> Callable[[np.ndarray], list[str]]:
+    """Labels of chosen unit codes: the unit columns' values at the unit's first row,
+    joined by ':' (the row number when no column names the unit)."""
+    first = _first_rows(codes, int(codes.max()) + 1 if codes.size else 0)
+
+    def label(chosen: np.ndarray) -> list[str]:
+        if frame is None or not columns:
+            return [str(int(g) + 1) for g in chosen]
+        rows = frame.iloc[first[chosen]]
+        parts = [rows[c].astype(str).tolist() for c in columns]
+        return [":".join(p) for p in zip(*parts, strict=True)]
+
+    return label
+
+
+def _spread_pick(k_total: int, k: int) -> np.ndarray:
+    """``k`` positions at evenly spaced ranks among ``k_total`` (all when fewer)."""
+    if k_total <= k:
+        return np.arange(k_total)
+    return np.unique(np.round(np.linspace(0, k_total - 1, k)).astype(np.int64))
 
 
 def unit_view(
@@ -134,51 +154,59 @@ def unit_view(
     level_labels: Sequence[str],
     unit_codes: np.ndarray | None,
     unit_name: str | None,
-    unit_labels: Sequence[str] | None,
+    label: Callable[[np.ndarray], list[str]] | None = None,
 ) -> UnitView:
     """The observations of ``term`` grouped by unit within each level.
 
-    ``unit_codes`` numbers the units 0..G-1 (None: every row its own unit).
+    ``unit_codes`` numbers the units 0..G-1 (None: every row its own unit);
+    ``label`` names chosen unit codes (default: their numbers from 1). A level
+    with more than ``MAX_UNITS`` units shows ``MAX_UNITS`` of them at evenly
+    spaced ranks of their means, without observations; its mean of unit means
+    uses every unit. Cost: one pass over the rows plus work per unit shown.
     """
     n = y.size
     if unit_codes is None:
         unit_codes = np.arange(n, dtype=np.int64)
-        unit_labels = [str(i + 1) for i in range(n)]
-    assert unit_labels is not None
-    n_units = int(unit_codes.max()) + 1 if n else 0
-    sizes = np.bincount(unit_codes, minlength=n_units)
-    means = np.bincount(unit_codes, weights=y, minlength=n_units) / np.maximum(sizes, 1)
-    order = np.argsort(unit_codes, kind="stable")
+    name = label or (lambda chosen: [str(int(g) + 1) for g in chosen])
+    k_levels = len(level_labels)
+    # a unit that holds several levels (a within-unit treatment) appears in each
+    pair = unit_codes.astype(np.int64) * k_levels + level_codes
+    pair_codes, keys = pd.factorize(pair, sort=True)
+    keys = np.asarray(keys, dtype=np.int64)
+    sizes = np.bincount(pair_codes, minlength=keys.size)
+    means = np.bincount(pair_codes, weights=y, minlength=keys.size) / sizes
+    pair_unit, pair_level = keys // k_levels, keys % k_levels
+    order = np.argsort(pair_codes, kind="stable")
     bounds = np.concatenate([[0], np.cumsum(sizes)])
+    n_units = int(unit_codes.max()) + 1 if n else 0
     thinned = False
     levels = []
-    for k, label in enumerate(level_labels):
-        in_level = level_codes == k
-        ids = np.unique(unit_codes[in_level])
+    for k, level in enumerate(level_labels):
+        ids = np.flatnonzero(pair_level == k)
         ids = ids[np.argsort(means[ids], kind="stable")]
         many = ids.size > MAX_UNITS
+        chosen = ids[_spread_pick(ids.size, MAX_UNITS)]
+        names = name(pair_unit[chosen])
         units = []
-        for g in ids:
-            rows = order[bounds[g] : bounds[g + 1]]
-            rows = rows[level_codes[rows] == k]
-            vals = y[rows]
+        for j, g in enumerate(chosen):
+            vals = y[order[bounds[g] : bounds[g + 1]]]
             shown = np.empty(0) if many else _even_ranks(vals, MAX_POINTS)
             thinned = thinned or shown.size < vals.size
             units.append(
                 UnitPoints(
-                    str(unit_labels[g]),
-                    int(vals.size),
-                    float(vals.mean()),
+                    str(names[j]),
+                    int(sizes[g]),
+                    float(means[g]),
                     tuple(float(v) for v in shown),
                 )
             )
-        unit_means = np.array([u.mean for u in units])
         levels.append(
             LevelPoints(
-                str(label),
-                int(in_level.sum()),
+                str(level),
+                int(sizes[ids].sum()),
                 tuple(units),
-                float(unit_means.mean()) if unit_means.size else float("nan"),
+                float(means[ids].mean()) if ids.size else float("nan"),
+                int(ids.size),
             )
         )
     return UnitView(term, unit_name, n, n_units, thinned, tuple(levels))
@@ -280,10 +308,8 @@ def display_data(
     drawn = unit_codes
     if drawn is None and unit_columns:
         drawn = group_codes(frame, unit_columns)
-    labels = None if drawn is None else _unit_labels(frame, unit_columns, drawn)
-    if drawn is not None and not unit_columns:
-        labels = [str(i + 1) for i in range(int(drawn.max()) + 1)]
-    view = unit_view(term, y, level_codes, level_labels, drawn, unit_name, labels)
+    label = None if drawn is None else _labeller(frame, unit_columns, drawn)
+    view = unit_view(term, y, level_codes, level_labels, drawn, unit_name, label)
     effects = effect_intervals(
         term, y, level_codes, level_labels, unit_codes, unit_name, confounded
     )

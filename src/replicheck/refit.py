@@ -52,7 +52,12 @@ from replicheck.stats.classic import (
 from replicheck.stats.discrete import ResponseKind, gee_test
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.nested import fit_nested_reml, summarise
-from replicheck.stats.randomisation import DEFAULT_SEED, RandomisationResult, randomisation_test
+from replicheck.stats.randomisation import (
+    DEFAULT_SEED,
+    MONTE_CARLO_DRAWS,
+    RandomisationResult,
+    randomisation_test,
+)
 from replicheck.stats.robust import cr2_test, wild_cluster_bootstrap
 from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
 
@@ -151,6 +156,29 @@ LABELS = {
 }
 
 BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
+# Monte Carlo cross-checks (randomisation, wild bootstrap) cost draws x units. Beyond a
+# budget the number of draws shrinks, to no fewer than MIN_MC_DRAWS (a p-value near 0.05
+# then has a Monte Carlo standard error of about 0.005); with more units than that
+# allows they are not run: the unit-level F and CR2 tests they cross-check are then
+# accurate (a chosen budget; see docs/scale.md).
+MC_WORK = 40_000_000
+MIN_MC_DRAWS = 1_999
+MAX_MC_UNITS = MC_WORK // MIN_MC_DRAWS
+
+
+def mc_draws(default: int, n_units: int) -> int:
+    """Monte Carlo draws for ``n_units`` units within the work budget (see MC_WORK)."""
+    return max(MIN_MC_DRAWS, min(default, MC_WORK // max(n_units, 1)))
+
+
+def _too_many_units(name: str, t: TermInput) -> Analysis:
+    n = int(t.unit.max()) + 1 if t.unit is not None else 0
+    return _untested(
+        name,
+        t,
+        f"not run: {n} units exceed the Monte Carlo budget ({MAX_MC_UNITS} units); with so "
+        "many units the unit-level F and cluster-robust tests are accurate",
+    )
 MIN_DISCRETE_UNITS = 3  # fewest units per level for a calibrated yes/no or count test
 FEW_DISCRETE_UNITS = (
     "with a yes/no or count response and fewer than 3 units in a level, no test on the "
@@ -215,7 +243,9 @@ def _randomise(
     within = None
     for b in unit_blocks:  # labels move only within the cells of every block
         within = b if within is None else within * (int(b.max()) + 1) + b
-    return randomisation_test(means, level, within, seed=seed)
+    return randomisation_test(
+        means, level, within, seed=seed, draws=mc_draws(MONTE_CARLO_DRAWS, means.size)
+    )
 
 
 def _randomisation_analysis(t: TermInput, r: RandomisationResult) -> Analysis:
@@ -585,6 +615,10 @@ def _canonical_units(unit: np.ndarray, y: np.ndarray) -> np.ndarray:
     return rank[unit]
 
 
+class _SkipBootstrap(Exception):
+    """The wild bootstrap is over the Monte Carlo budget."""
+
+
 def _untested(name: str, t: TermInput, why: str) -> Analysis:
     n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
     return Analysis(name, LABELS[name], t.term, "units", n_rep, None, None, None, notes=(why,))
@@ -646,8 +680,15 @@ def _cross_checks(
     except DesignError as err:
         out.append(_untested("cluster_robust", t, f"not computed: {err}"))
     try:
+        if n_units > MAX_MC_UNITS:
+            raise _SkipBootstrap
         b = wild_cluster_bootstrap(
-            y, Xc, _canonical_units(t.unit, y), L, draws=BOOTSTRAP_DRAWS, seed=seed
+            y,
+            Xc,
+            _canonical_units(t.unit, y),
+            L,
+            draws=mc_draws(BOOTSTRAP_DRAWS, n_units),
+            seed=seed,
         )
         how = (
             f"all {b.draws} sign patterns"
@@ -655,6 +696,8 @@ def _cross_checks(
             else f"{b.draws} draws, {b.weights} weights (seed {b.seed})"
         )
         unit_level("wild_bootstrap", float(b.statistic), None, float(b.p_value), notes=(how,))
+    except _SkipBootstrap:
+        out.append(_too_many_units("wild_bootstrap", t))
     except DesignError as err:
         out.append(_untested("wild_bootstrap", t, f"not computed: {err}"))
     if kind in ("binary", "count"):
@@ -770,9 +813,12 @@ def refit(
             if not_fitted is not None:
                 um = replace(um, notes=(*um.notes, not_fitted))
             analyses.append(um)
-            rand = _randomise(t, y, blocks, seed)
-            if rand is not None:
-                analyses.append(_randomisation_analysis(t, rand))
+            if t.unit is not None and int(t.unit.max()) + 1 > MAX_MC_UNITS:
+                analyses.append(_too_many_units("randomisation", t))
+            else:
+                rand = _randomise(t, y, blocks, seed)
+                if rand is not None:
+                    analyses.append(_randomisation_analysis(t, rand))
         variance = None
         corrected: str | None = "unit_means" if has_unit else "as_claimed"
         if fit is not None:

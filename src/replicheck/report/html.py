@@ -173,7 +173,7 @@ def _units_section(doc: dict[str, Any]) -> str:
     levels = d["levels"]
     unit = d["unit"]
     per_level = "; ".join(
-        f"{lv['label']}: {len(lv['units'])} units, {lv['n_observations']} observations"
+        f"{lv['label']}: {lv['n_units']} units, {lv['n_observations']} observations"
         for lv in levels
     )
     alt = (
@@ -189,10 +189,15 @@ def _units_section(doc: dict[str, Any]) -> str:
     )
     if d["thinned"]:
         caption += " Large units show an evenly spread subset of their observations."
+    if any(lv["n_units"] > len(lv["units"]) for lv in levels):
+        caption += (
+            " Levels with many units show a selection of unit means at evenly spaced ranks "
+            "(the mean of unit means uses every unit)."
+        )
     rows = [
         [
             lv["label"],
-            str(len(lv["units"])),
+            str(lv["n_units"]),
             str(lv["n_observations"]),
             fmt_num(lv["mean_of_unit_means"], 4),
         ]

@@ -163,6 +163,7 @@ def _display(d: Display | None) -> dict[str, Any] | None:
             {
                 "label": lv.label,
                 "n_observations": lv.n_observations,
+                "n_units": lv.n_units,
                 "mean_of_unit_means": lv.mean_of_unit_means,
                 "units": [
                     {"label": x.label, "n": x.n, "mean": x.mean, "values": list(x.values)}
