@@ -27,13 +27,16 @@ Walker 2015, J. Stat. Software 67(1), eq. 41)::
     d(theta) = log|N| + log|X'H^{-1}X| + (n-p) [1 + log(2 pi r'H^{-1}r / (n-p))],
 
 minimised over ``theta_k = sqrt(lam_k) >= 0`` (the relative standard deviations
-lme4 calls theta) by L-BFGS-B (three starts unless the problem is large) with
-the analytic gradient ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e``,
-then continued by L-BFGS-B in ``lam`` itself (the theta gradient vanishes at
-``theta_k = 0``, so a theta search can stall there although a small positive
-variance is optimal). The optimum is then refined by Newton steps on the unprofiled REML deviance in
-log-variance coordinates; components whose optimum lies on the boundary are
-set to exactly 0 (Karush-Kuhn-Tucker condition ``d d / d lam_k >= 0`` at 0).
+lme4 calls theta) by the search of :mod:`replicheck.stats.reml_search`
+(L-BFGS-B in theta, continued in ``lam``; an active set that sets components
+whose optimum lies on the boundary to exactly 0, with the Karush-Kuhn-Tucker
+condition ``d d / d lam_k >= 0`` at 0; Newton steps on the unprofiled REML
+deviance in log-variance coordinates). This module supplies the analytic
+gradient ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e``, the
+unprofiled deviance and its Hessian (below). Three theta starts are used
+unless the problem is large (``r > 300`` with several factors, when every
+evaluation costs a dense ``r x r`` factorisation: then lme4's single start
+``theta = 1``); the Newton polish stops at log steps below ``1e-13``.
 When ``y`` lies in ``col([X, Z])`` the REML likelihood is unbounded (residual
 variance 0) and the fit is refused.
 
@@ -49,24 +52,30 @@ REML deviance ``-2 log L_R`` (observed information), and the Jacobian of
 
 with ``V_k = Z_k Z_k'``, ``V_e = I`` and ``P = V^{-1} - V^{-1}X C X'V^{-1}``; the
 traces reduce to r x r and p x p matrices through the within/between split
-(see ``_second_order``). The Hessian is inverted in log-variance coordinates.
-lmerTest differentiates numerically with respect to ``(theta, sigma)``; at an
-interior optimum the Satterthwaite df are invariant to that change of
-parameters. Components estimated at 0 are left out of the variance parameters
-when computing ``A`` and the Jacobian: in lmerTest's ``(theta, sigma)``
-parameters their Jacobian entries and Hessian cross terms vanish at
-``theta = 0``, so the result is the same.
+(see ``_second_order``). :mod:`replicheck.stats.reml_search` inverts the
+Hessian in log-variance coordinates and leaves components estimated at 0 out
+of the variance parameters (its docstring says why the Satterthwaite df are
+then those of lmerTest, which differentiates numerically with respect to
+``(theta, sigma)``).
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg, optimize, stats
+from scipy import linalg, stats
 
 from replicheck.stats.classic import DesignError
+from replicheck.stats.reml_search import (
+    FinalPoint,
+    MixedFit,
+    PolishPoint,
+    active_variances,
+    fit_components,
+    lam_from_variances,
+)
 
 __all__ = [
     "FTest",
@@ -78,53 +87,9 @@ __all__ = [
 ]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
-_TINY = 1e-6  # lam_k * mean level size below which a component is tried at exactly 0
-_KKT_TOL = 1e-7  # tolerance on the scaled gradient for declaring a boundary optimum
-
-
-@dataclass(frozen=True, eq=False)
-class MixedFit:
-    """A REML fit of a variance-component model.
-
-    ``components`` maps each random factor's name (and ``"residual"``) to its
-    estimated variance. ``cov_beta`` is ``s2_e (X'H^{-1}X)^{-1}``.
-    ``reml_deviance`` is the REML criterion as reported by lme4's ``REMLcrit``.
-    ``boundary`` names the components estimated at exactly 0.
-
-    The Satterthwaite ingredients are stored as arrays: ``varpar_names`` /
-    ``varpar`` are the variance parameters left after dropping boundary
-    components (the residual variance last), ``vcov_varpar`` their asymptotic
-    covariance (2 x inverse Hessian of the REML deviance) and ``jac_cov_beta``
-    has shape ``(len(varpar), p, p)`` with ``d cov_beta / d varpar[i]``.
-
-    ``theta`` holds lme4's relative standard deviations ``sqrt(s2_k / s2_e)``.
-    ``converged`` is the first-order optimality check; ``hessian_ok`` is False
-    when the Hessian was not positive definite (Satterthwaite df are then
-    unreliable); ``messages`` explains any problem.
-    """
-
-    components: dict[str, float]
-    beta: np.ndarray
-    cov_beta: np.ndarray
-    fixed_names: tuple[str, ...]
-    reml_deviance: float
-    n_obs: int
-    n_fixed: int
-    converged: bool
-    boundary: tuple[str, ...]
-    theta: dict[str, float]
-    n_levels: dict[str, int]
-    varpar_names: tuple[str, ...]
-    varpar: np.ndarray
-    vcov_varpar: np.ndarray
-    jac_cov_beta: np.ndarray
-    hessian_ok: bool
-    messages: tuple[str, ...] = field(default=())
-
-    @property
-    def se_beta(self) -> np.ndarray:
-        """Standard errors of the fixed effects."""
-        return np.sqrt(np.diag(self.cov_beta))
+_NEWTON_STOP = 1e-13  # largest log-variance step at which the Newton polish stops
+# exceptions that mark a point where the criterion cannot be evaluated
+_FAILURES: tuple[type[Exception], ...] = (linalg.LinAlgError, DesignError)
 
 
 @dataclass(frozen=True)
@@ -162,6 +127,8 @@ class _Design:
     ``yb = Q'y``; ``xw``, ``yw`` are the projections of X and y on the orthogonal
     complement of ``col(Z)`` (computed in n-space). ``t_mats[k] = Q' Z_k Z_k' Q``
     (a vector, the unit sizes, when there is a single factor).
+
+    Implements :class:`replicheck.stats.reml_search.RemlProblem`.
     """
 
     n: int
@@ -196,6 +163,42 @@ class _Design:
         for k, t in enumerate(self.t_mats):
             out += lam[k] * t
         return out
+
+    # the REML search interface (replicheck.stats.reml_search.RemlProblem)
+
+    def profiled(self, lam: np.ndarray) -> tuple[float, np.ndarray]:
+        """lme4's REMLcrit at ``lam`` and its gradient in ``lam``."""
+        ev = _evaluate(self, lam)
+        return ev.deviance, _gradient_lam(self, ev)
+
+    def profiled_deviance(self, lam: np.ndarray) -> float:
+        """lme4's REMLcrit at ``lam``."""
+        return _evaluate(self, lam).deviance
+
+    def polish_start(self, lam: np.ndarray, active: Sequence[int]) -> PolishPoint:
+        """Unprofiled deviance at ``lam`` and the profiled ``s2_e`` (Newton start)."""
+        ev = _evaluate(self, lam)
+        sigma2 = ev.rhr / (self.n - self.p)
+        return _polish_point(self, ev, active, active_variances(lam, active, sigma2))
+
+    def polish_point(self, variances: np.ndarray, active: Sequence[int]) -> PolishPoint:
+        """Unprofiled deviance at the variances (active components, residual last)."""
+        ev = _evaluate(self, lam_from_variances(variances, active, len(self.sizes)))
+        return _polish_point(self, ev, active, variances)
+
+    def final(self, lam: np.ndarray, active: Sequence[int]) -> FinalPoint:
+        """Estimates, criterion, Hessian and Jacobian of ``cov(beta)`` at ``lam``."""
+        ev = _evaluate(self, lam)
+        sigma2 = ev.rhr / (self.n - self.p)
+        sec = _second_order(self, ev, active, sigma2)
+        return FinalPoint(
+            sigma2=sigma2,
+            deviance=ev.deviance,
+            beta=ev.beta.copy(),
+            cov_beta=sec.cov_beta,
+            hessian=sec.hessian,
+            jac=sec.jac,
+        )
 
 
 def _check_inputs(
@@ -571,148 +574,20 @@ def _unprofiled_deviance(design: _Design, ev: _Eval, sigma2: float) -> float:
     )
 
 
-def _lam_from_s2(design: _Design, active: Sequence[int], s: np.ndarray) -> np.ndarray:
-    lam = np.zeros(len(design.sizes))
-    for i, k in enumerate(active):
-        lam[k] = s[i] / s[-1]
-    return lam
+def _polish_point(
+    design: _Design, ev: _Eval, active: Sequence[int], variances: np.ndarray
+) -> PolishPoint:
+    """A Newton point at ``ev`` with ``s2_e = variances[-1]``; derivatives on demand."""
 
+    def derivatives() -> tuple[np.ndarray, np.ndarray]:
+        sec = _second_order(design, ev, active, variances[-1])
+        return sec.score, sec.hessian
 
-def _newton_polish(
-    design: _Design, lam: np.ndarray, active: Sequence[int], max_iter: int = 40
-) -> np.ndarray:
-    """Newton steps on the unprofiled REML deviance in log(s2_active), log(s2_e).
-
-    Log coordinates keep the Hessian well scaled when the variances differ by
-    orders of magnitude and keep every variance positive.
-    """
-    ev = _evaluate(design, lam)
-    sigma2 = ev.rhr / (design.n - design.p)
-    s = np.array([lam[k] * sigma2 for k in active] + [sigma2])
-    dev = _unprofiled_deviance(design, ev, sigma2)
-    for _ in range(max_iter):
-        sec = _second_order(design, ev, active, s[-1])
-        grad = sec.score * s
-        hess = sec.hessian * np.outer(s, s) + np.diag(grad)
-        try:
-            chol = linalg.cho_factor(hess, lower=True)
-        except linalg.LinAlgError:
-            break
-        step = np.asarray(linalg.cho_solve(chol, grad))
-        t = 1.0
-        accepted = False
-        while t > 1e-6:
-            s_new = s * np.exp(-t * np.clip(step, -20.0, 20.0))
-            try:
-                ev_new = _evaluate(design, _lam_from_s2(design, active, s_new))
-            except (linalg.LinAlgError, DesignError):
-                t *= 0.5
-                continue
-            dev_new = _unprofiled_deviance(design, ev_new, s_new[-1])
-            if dev_new <= dev + 1e-10 * max(1.0, abs(dev)):
-                accepted = True
-                break
-            t *= 0.5
-        if not accepted:
-            break
-        rel = float(np.max(np.abs(t * step)))
-        s, ev, dev = s_new, ev_new, dev_new
-        if rel < 1e-13:
-            break
-    return _lam_from_s2(design, active, s)
-
-
-def _minimise(design: _Design, fixed_zero: Sequence[int], starts: list[np.ndarray]) -> np.ndarray:
-    """L-BFGS-B over theta = sqrt(lam) >= 0 with some components pinned at 0.
-
-    Returns lam.
-    """
-    k_all = len(design.sizes)
-    free = [k for k in range(k_all) if k not in set(fixed_zero)]
-    if not free:
-        return np.zeros(k_all)
-
-    def expand(x: np.ndarray) -> np.ndarray:
-        th = np.zeros(k_all)
-        th[free] = x
-        return th
-
-    def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
-        th = expand(x)
-        try:
-            ev = _evaluate(design, th * th)
-        except (linalg.LinAlgError, DesignError):
-            return float("inf"), np.zeros_like(x)
-        g_lam = _gradient_lam(design, ev)
-        return ev.deviance, 2.0 * x * g_lam[free]
-
-    best_x: np.ndarray | None = None
-    best_f = float("inf")
-    for start in starts:
-        res = optimize.minimize(
-            fun,
-            np.sqrt(np.asarray(start, dtype=float))[free],
-            jac=True,
-            method="L-BFGS-B",
-            bounds=[(0.0, None)] * len(free),
-            options={"ftol": 1e-15, "gtol": 1e-10, "maxiter": 2000},
-        )
-        if float(res.fun) < best_f:
-            best_f = float(res.fun)
-            best_x = np.asarray(res.x, dtype=float)
-    if best_x is None:
-        raise DesignError("REML optimisation failed: the criterion could not be evaluated")
-    th = expand(best_x)
-    return th * th
-
-
-def _minimise_lam(design: _Design, fixed_zero: Sequence[int], start: np.ndarray) -> np.ndarray:
-    """L-BFGS-B over lam >= 0 (scaled by the mean level size), some pinned at 0.
-
-    Unlike the theta parametrisation, whose gradient vanishes at theta = 0,
-    the gradient in lam is informative at the boundary: a component stays at
-    0 only if the criterion increases into the interior.
-    """
-    k_all = len(design.sizes)
-    free = [k for k in range(k_all) if k not in set(fixed_zero)]
-    if not free:
-        return np.zeros(k_all)
-    scale = np.array([design.mean_sizes[k] for k in free])
-
-    def expand(x: np.ndarray) -> np.ndarray:
-        lam = np.zeros(k_all)
-        lam[free] = x / scale
-        return lam
-
-    def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
-        try:
-            ev = _evaluate(design, expand(x))
-        except (linalg.LinAlgError, DesignError):
-            return float("inf"), np.zeros_like(x)
-        return ev.deviance, _gradient_lam(design, ev)[free] / scale
-
-    res = optimize.minimize(
-        fun,
-        np.asarray(start, dtype=float)[free] * scale,
-        jac=True,
-        method="L-BFGS-B",
-        bounds=[(0.0, None)] * len(free),
-        options={"ftol": 1e-15, "gtol": 1e-12, "maxiter": 2000},
+    return PolishPoint(
+        variances=variances,
+        deviance=_unprofiled_deviance(design, ev, variances[-1]),
+        derivatives=derivatives,
     )
-    return expand(np.asarray(res.x, dtype=float))
-
-
-def _kkt(design: _Design, lam: np.ndarray, active: Sequence[int]) -> bool:
-    """First-order optimality: zero gradient for active, non-negative for pinned."""
-    g = _gradient_lam(design, _evaluate(design, lam))
-    ok = True
-    for k in range(len(design.sizes)):
-        if k in active:
-            # dimensionless: change in deviance for a relative change in lam_k
-            ok = ok and abs(g[k] * lam[k]) < 1e-5
-        else:
-            ok = ok and g[k] >= -_KKT_TOL * design.mean_sizes[k]
-    return ok
 
 
 def fit_reml(
@@ -732,96 +607,15 @@ def fit_reml(
     """
     design = _build_design(y, X, factors, fixed_names)
     _check_residual_identifiable(design)
-    k_all = len(design.sizes)
     # several starts for small problems; one (lme4's theta = 1) when every
     # evaluation costs a large dense factorisation
-    values = (1.0, 0.0625, 16.0) if design.r <= 300 or design.diagonal else (1.0,)
-    starts = [np.full(k_all, v) for v in values]
-    lam0 = _minimise(design, [], starts)
-    # the theta search can stall at theta_k = 0 (zero gradient there): continue
-    # in lam, where the gradient at the boundary is informative
-    lam1 = _minimise_lam(design, [], lam0)
-    dev0 = _evaluate(design, lam0).deviance
-    if _evaluate(design, lam1).deviance <= dev0:
-        lam0, dev0 = lam1, _evaluate(design, lam1).deviance
-
-    # Active-set refinement: pin negligible components at exactly 0, polish the
-    # others by Newton's method, release a pinned component whose gradient at 0
-    # is negative (it then stays free), repeat.
-    def negligible(lam: np.ndarray, k: int) -> bool:
-        return bool(lam[k] * design.mean_sizes[k] < _TINY)
-
-    never_pin: set[int] = set()
-    lam = lam0.copy()
-    messages: list[str] = []
-    pinned: set[int] = set()
-    for _ in range(k_all + 2):
-        pinned = {k for k in range(k_all) if negligible(lam, k) and k not in never_pin}
-        if pinned:
-            lam = _minimise_lam(design, sorted(pinned), lam)
-        active = [k for k in range(k_all) if k not in pinned]
-        if any(lam[k] <= 0.0 for k in active):
-            # a released component: move it off 0 along its (negative) gradient
-            lam = _minimise_lam(design, sorted(pinned), lam)
-        if all(lam[k] > 0.0 for k in active):
-            lam = _newton_polish(design, lam, active)
-        g = _gradient_lam(design, _evaluate(design, lam))
-        release = {k for k in pinned if g[k] < -_KKT_TOL * design.mean_sizes[k]}
-        if not release:
-            break
-        never_pin |= release
-    pinned = {k for k in range(k_all) if lam[k] == 0.0}
-    active = [k for k in range(k_all) if k not in pinned]
-    ev = _evaluate(design, lam)
-    if ev.deviance > dev0 + 1e-8 * max(1.0, abs(dev0)):
-        # should not happen; keep the better optimum and report it
-        messages.append("active-set refinement did not improve the L-BFGS-B optimum")
-        lam = lam0
-        pinned = {k for k in range(k_all) if lam[k] == 0.0}
-        active = [k for k in range(k_all) if k not in pinned]
-        ev = _evaluate(design, lam)
-    converged = _kkt(design, lam, active)
-    if not converged:
-        messages.append("REML optimisation did not meet the first-order optimality check")
-
-    sigma2 = ev.rhr / (design.n - design.p)
-    sec = _second_order(design, ev, active, sigma2)
-    # invert in log-variance coordinates, where the Hessian is well scaled
-    # (s_i s_j H_ij; the gradient term vanishes at the optimum)
-    s_act = np.array([lam[k] * sigma2 for k in active] + [sigma2])
-    h_log = sec.hessian * np.outer(s_act, s_act)
-    evals, evecs = np.linalg.eigh(0.5 * (h_log + h_log.T))
-    pos = evals > 1e-10 * max(float(np.max(np.abs(evals))), 1e-300)
-    hessian_ok = bool(np.all(pos))
-    if not hessian_ok:
-        messages.append("Hessian of the REML deviance is not positive definite")
-    h_log_inv = (evecs[:, pos] / evals[pos]) @ evecs[:, pos].T
-    vcov_varpar = 2.0 * h_log_inv * np.outer(s_act, s_act)
-
-    components = {name: float(lam[k] * sigma2) for k, name in enumerate(design.names)}
-    for k in pinned:
-        components[design.names[k]] = 0.0
-    components["residual"] = float(sigma2)
-    varpar_names = (*(design.names[k] for k in active), "residual")
-    varpar = np.array([components[nm] for nm in varpar_names])
-    return MixedFit(
-        components=components,
-        beta=ev.beta.copy(),
-        cov_beta=sec.cov_beta,
-        fixed_names=tuple(str(s) for s in fixed_names),
-        reml_deviance=ev.deviance,
-        n_obs=design.n,
-        n_fixed=design.p,
-        converged=bool(converged),
-        boundary=tuple(design.names[k] for k in sorted(pinned)),
-        theta={name: float(np.sqrt(lam[k])) for k, name in enumerate(design.names)},
-        n_levels=dict(zip(design.names, design.sizes, strict=True)),
-        varpar_names=varpar_names,
-        varpar=varpar,
-        vcov_varpar=vcov_varpar,
-        jac_cov_beta=sec.jac,
-        hessian_ok=hessian_ok,
-        messages=tuple(messages),
+    starts = (1.0, 0.0625, 16.0) if design.r <= 300 or design.diagonal else (1.0,)
+    return fit_components(
+        design,
+        tuple(str(s) for s in fixed_names),
+        starts,
+        newton_stop=_NEWTON_STOP,
+        failures=_FAILURES,
     )
 
 

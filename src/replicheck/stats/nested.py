@@ -95,17 +95,19 @@ and keeps the Schur complement ``r'V^{-1}r`` accurate when the response has a
 large mean and a small spread; ``beta``, ``cov(beta)`` and its Jacobian are
 transformed back.
 
-Optimisation follows :func:`replicheck.stats.mixed.fit_reml`: L-BFGS-B over
-``theta = sqrt(lam)`` from three starts (one, lme4's ``theta = 1``, beyond
-20,000 groups), continued in ``lam`` (whose gradient is
-informative at 0), an active set that pins negligible components at exactly 0
-and releases them when the gradient at 0 is negative (Karush-Kuhn-Tucker),
-Newton steps on the unprofiled deviance in log-variance coordinates, and a
-first-order optimality check (``converged``). ``vcov_varpar`` is twice the
-inverse Hessian of ``D`` in the variance parameters left after dropping
-boundary components (inverted in log coordinates), exactly as in
-:mod:`replicheck.stats.mixed`, so :func:`satterthwaite_test` and
-:func:`satterthwaite_t` apply unchanged.
+Optimisation is the search shared with :func:`replicheck.stats.mixed.fit_reml`
+and described in :mod:`replicheck.stats.reml_search`: L-BFGS-B over
+``theta = sqrt(lam)``, continued in ``lam`` (whose gradient is informative at
+0), an active set that pins negligible components at exactly 0 and releases
+them when the gradient at 0 is negative (Karush-Kuhn-Tucker), Newton steps on
+the unprofiled deviance ``D`` in log-variance coordinates, and a first-order
+optimality check (``converged``). Here it uses three theta starts up to 20,000
+groups (beyond, lme4's single start ``theta = 1``) and stops the Newton polish
+at log steps below ``1e-10`` (the error left after such a step is of order its
+square). ``vcov_varpar`` is twice the inverse Hessian of ``D`` in the variance
+parameters left after dropping boundary components (inverted in log
+coordinates), assembled by that module as for :mod:`replicheck.stats.mixed`,
+so :func:`satterthwaite_test` and :func:`satterthwaite_t` apply unchanged.
 """
 
 from __future__ import annotations
@@ -114,17 +116,26 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy import linalg, optimize
+from scipy import linalg
 
 from replicheck.stats.classic import DesignError
-from replicheck.stats.mixed import MixedFit
+from replicheck.stats.reml_search import (
+    FinalPoint,
+    MixedFit,
+    PolishPoint,
+    active_variances,
+    fit_components,
+)
 
 __all__ = ["NestedSummaries", "combine", "fit_nested_reml", "summarise"]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
-_TINY = 1e-6  # lam_l * mean group size below which a component is tried at exactly 0
-_KKT_TOL = 1e-7  # tolerance on the scaled gradient for declaring a boundary optimum
 _MULTI_START_GROUPS = 20_000  # groups (all levels) up to which three starts are used
+# largest log-variance step at which the Newton polish stops (Newton: the
+# error left after such a step is ~step^2)
+_NEWTON_STOP = 1e-10
+# exceptions that mark a point where the criterion cannot be evaluated
+_FAILURES: tuple[type[Exception], ...] = (np.linalg.LinAlgError, DesignError, FloatingPointError)
 _ROW_BLOCK = 1 << 18  # rows per block when accumulating centred cross-products
 
 
@@ -352,6 +363,8 @@ class _Tree:
     ``starts[l]`` are the positions where each level-``l`` group's children
     (level ``l + 1``) begin; ``parent[l]`` maps each level-``l + 1`` group to its
     parent's position. ``means`` are the innermost group means of ``[X, y]``.
+
+    Implements :class:`replicheck.stats.reml_search.RemlProblem`.
     """
 
     n: int
@@ -373,6 +386,39 @@ class _Tree:
     @property
     def mean_sizes(self) -> tuple[float, ...]:
         return tuple(self.n / g for g in self.sizes)
+
+    # the REML search interface (replicheck.stats.reml_search.RemlProblem)
+
+    def profiled(self, lam: np.ndarray) -> tuple[float, np.ndarray]:
+        """lme4's REMLcrit at ``lam`` and its gradient in ``lam``."""
+        return _profiled(self, lam)
+
+    def profiled_deviance(self, lam: np.ndarray) -> float:
+        """lme4's REMLcrit at ``lam``."""
+        return _profiled(self, lam, grad=False)[0]
+
+    def polish_start(self, lam: np.ndarray, active: Sequence[int]) -> PolishPoint:
+        """Unprofiled deviance at ``lam`` and the profiled ``s_e`` (Newton start)."""
+        sigma2 = _profiled_sigma2(self, _reml_at(self, lam))
+        return _polish_point(self, active_variances(lam, active, sigma2), active)
+
+    def polish_point(self, variances: np.ndarray, active: Sequence[int]) -> PolishPoint:
+        """Unprofiled deviance at the variances (active levels, residual last)."""
+        return _polish_point(self, variances, active)
+
+    def final(self, lam: np.ndarray, active: Sequence[int]) -> FinalPoint:
+        """Estimates (centred coordinates), criterion, Hessian and d C / d s at ``lam``."""
+        ev = _reml_at(self, lam)
+        sigma2 = _profiled_sigma2(self, ev)
+        sec = _second_at(self, active_variances(lam, active, sigma2), active)
+        return FinalPoint(
+            sigma2=sigma2,
+            deviance=_remlcrit(self, ev),
+            beta=sec.beta,
+            cov_beta=sec.cov_beta,
+            hessian=sec.hessian,
+            jac=sec.jac,
+        )
 
 
 def _build_tree(s: NestedSummaries) -> _Tree:
@@ -811,14 +857,30 @@ def _reml(tree: _Tree, s: np.ndarray, free: Sequence[int], order: int) -> _Reml:
     )
 
 
+def _reml_at(tree: _Tree, lam: np.ndarray) -> _Reml:
+    """REML quantities (no derivatives) at ``s_e = 1``, ``s_l = lam_l``."""
+    return _reml(tree, np.append(lam, 1.0), [], 0)
+
+
+def _profiled_sigma2(tree: _Tree, ev: _Reml) -> float:
+    """The residual variance that maximises the REML likelihood at ``ev``'s ``lam``."""
+    return ev.rvr / (tree.n - tree.p)
+
+
+def _remlcrit(tree: _Tree, ev: _Reml) -> float:
+    """lme4's REMLcrit from the quantities at ``s_e = 1``, ``s_l = lam_l``."""
+    nmp = tree.n - tree.p
+    return float(ev.logdet_v + ev.logdet_a + nmp * (1.0 + _LOG_2PI + np.log(ev.rvr / nmp)))
+
+
 def _profiled(tree: _Tree, lam: np.ndarray, grad: bool = True) -> tuple[float, np.ndarray]:
     """lme4's REMLcrit at relative variances ``lam`` and its gradient in ``lam``."""
     k = tree.k
     nmp = tree.n - tree.p
-    ev = _reml(tree, np.append(lam, 1.0), range(k) if grad else [], 1 if grad else 0)
-    dev = ev.logdet_v + ev.logdet_a + nmp * (1.0 + _LOG_2PI + np.log(ev.rvr / nmp))
     if not grad:
-        return float(dev), np.zeros(k)
+        return _remlcrit(tree, _reml_at(tree, lam)), np.zeros(k)
+    ev = _reml(tree, np.append(lam, 1.0), range(k), 1)
+    dev = _remlcrit(tree, ev)
     p = tree.p
     assert ev.core.cross.g is not None and ev.core.logdet.g is not None
     mg = np.moveaxis(ev.core.cross.g, -1, 0)  # (P, m, m)
@@ -826,7 +888,7 @@ def _profiled(tree: _Tree, lam: np.ndarray, grad: bool = True) -> tuple[float, n
     d_rvr = np.einsum("i,kij,j->k", z, mg, z)
     d_logdet_a = np.einsum("ij,kji->k", ev.c_mat, mg[:, :p, :p])
     g = ev.core.logdet.g[0] + d_logdet_a + nmp * d_rvr / ev.rvr
-    return float(dev), np.asarray(g)
+    return dev, np.asarray(g)
 
 
 @dataclass(frozen=True, eq=False)
@@ -880,168 +942,25 @@ def _second_order(tree: _Tree, s: np.ndarray, free: Sequence[int]) -> _Second:
 
 
 # ---------------------------------------------------------------------------
-# optimisation (as in replicheck.stats.mixed)
+# Newton points for the search (replicheck.stats.reml_search)
 
 
-def _safe_profiled(tree: _Tree, lam: np.ndarray, grad: bool = True) -> tuple[float, np.ndarray]:
-    try:
-        return _profiled(tree, lam, grad)
-    except (linalg.LinAlgError, np.linalg.LinAlgError, DesignError, FloatingPointError):
-        return float("inf"), np.zeros(tree.k)
+def _second_at(tree: _Tree, variances: np.ndarray, active: Sequence[int]) -> _Second:
+    """:func:`_second_order` at the variances (active levels, residual last), the
+    other levels at 0."""
+    free = [*active, tree.k]
+    s_full = np.zeros(tree.k + 1)
+    s_full[free] = variances
+    return _second_order(tree, s_full, free)
 
 
-def _minimise_theta(tree: _Tree, starts: Sequence[float]) -> np.ndarray:
-    """L-BFGS-B over theta = sqrt(lam) >= 0 from several starts; returns lam."""
-    k = tree.k
-
-    def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
-        dev, g = _safe_profiled(tree, x * x)
-        return dev, 2.0 * x * g
-
-    best_x: np.ndarray | None = None
-    best_f = float("inf")
-    for start in starts:
-        res = optimize.minimize(
-            fun,
-            np.full(k, np.sqrt(start)),
-            jac=True,
-            method="L-BFGS-B",
-            bounds=[(0.0, None)] * k,
-            options={"ftol": 1e-15, "gtol": 1e-10, "maxiter": 2000},
-        )
-        if float(res.fun) < best_f:
-            best_f = float(res.fun)
-            best_x = np.asarray(res.x, dtype=float)
-    if best_x is None:
-        raise DesignError("REML optimisation failed: the criterion could not be evaluated")
-    return best_x * best_x
-
-
-def _minimise_lam(tree: _Tree, fixed_zero: Sequence[int], start: np.ndarray) -> np.ndarray:
-    """L-BFGS-B over lam >= 0 (scaled by the mean group size), some pinned at 0."""
-    k = tree.k
-    free = [i for i in range(k) if i not in set(fixed_zero)]
-    if not free:
-        return np.zeros(k)
-    scale = np.array([tree.mean_sizes[i] for i in free])
-
-    def expand(x: np.ndarray) -> np.ndarray:
-        lam = np.zeros(k)
-        lam[free] = x / scale
-        return lam
-
-    def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
-        dev, g = _safe_profiled(tree, expand(x))
-        return dev, g[free] / scale
-
-    res = optimize.minimize(
-        fun,
-        np.asarray(start, dtype=float)[free] * scale,
-        jac=True,
-        method="L-BFGS-B",
-        bounds=[(0.0, None)] * len(free),
-        options={"ftol": 1e-15, "gtol": 1e-12, "maxiter": 2000},
+def _polish_point(tree: _Tree, variances: np.ndarray, active: Sequence[int]) -> PolishPoint:
+    sec = _second_at(tree, variances, active)
+    return PolishPoint(
+        variances=variances,
+        deviance=sec.deviance,
+        derivatives=lambda: (sec.score, sec.hessian),
     )
-    return expand(np.asarray(res.x, dtype=float))
-
-
-def _s_from_lam(tree: _Tree, lam: np.ndarray) -> np.ndarray:
-    ev = _reml(tree, np.append(lam, 1.0), [], 0)
-    sigma2 = ev.rvr / (tree.n - tree.p)
-    return np.append(lam * sigma2, sigma2)
-
-
-def _newton_polish(
-    tree: _Tree, lam: np.ndarray, active: Sequence[int], max_iter: int = 40
-) -> np.ndarray:
-    """Newton steps on the unprofiled REML deviance in log(s_active), log(s_e)."""
-    k = tree.k
-    free = [*active, k]
-    s_full = _s_from_lam(tree, lam)
-    for i in range(k):
-        if i not in active:
-            s_full[i] = 0.0
-    sec = _second_order(tree, s_full, free)
-    for _ in range(max_iter):
-        s = s_full[free]
-        grad = sec.score * s
-        hess = sec.hessian * np.outer(s, s) + np.diag(grad)
-        try:
-            chol = linalg.cho_factor(hess, lower=True)
-        except linalg.LinAlgError:
-            break
-        step = np.asarray(linalg.cho_solve(chol, grad))
-        t = 1.0
-        accepted = False
-        while t > 1e-6:
-            s_new = s_full.copy()
-            s_new[free] = s * np.exp(-t * np.clip(step, -20.0, 20.0))
-            try:
-                sec_new = _second_order(tree, s_new, free)
-            except (linalg.LinAlgError, np.linalg.LinAlgError, DesignError):
-                t *= 0.5
-                continue
-            if sec_new.deviance <= sec.deviance + 1e-10 * max(1.0, abs(sec.deviance)):
-                accepted = True
-                break
-            t *= 0.5
-        if not accepted:
-            break
-        rel = float(np.max(np.abs(t * step)))
-        s_full, sec = s_new, sec_new
-        if rel < 1e-10:  # Newton: the error left after this step is ~rel^2
-            break
-    return s_full[:k] / s_full[k]
-
-
-def _kkt(tree: _Tree, lam: np.ndarray, active: Sequence[int]) -> bool:
-    """First-order optimality: zero gradient for active, non-negative for pinned."""
-    g = _profiled(tree, lam)[1]
-    ok = True
-    for i in range(tree.k):
-        if i in active:
-            ok = ok and abs(g[i] * lam[i]) < 1e-5
-        else:
-            ok = ok and g[i] >= -_KKT_TOL * tree.mean_sizes[i]
-    return ok
-
-
-def _optimise(tree: _Tree) -> tuple[np.ndarray, list[str]]:
-    k = tree.k
-    # three starts while evaluations are cheap; lme4's single start theta = 1 beyond
-    starts = (1.0, 0.0625, 16.0) if sum(tree.sizes) <= _MULTI_START_GROUPS else (1.0,)
-    lam0 = _minimise_theta(tree, starts)
-    lam1 = _minimise_lam(tree, [], lam0)
-    dev0 = _safe_profiled(tree, lam0, grad=False)[0]
-    dev1 = _safe_profiled(tree, lam1, grad=False)[0]
-    if dev1 <= dev0:
-        lam0, dev0 = lam1, dev1
-
-    def negligible(lam: np.ndarray, i: int) -> bool:
-        return bool(lam[i] * tree.mean_sizes[i] < _TINY)
-
-    never_pin: set[int] = set()
-    lam = lam0.copy()
-    messages: list[str] = []
-    for _ in range(k + 2):
-        pinned = {i for i in range(k) if negligible(lam, i) and i not in never_pin}
-        if pinned:
-            lam = _minimise_lam(tree, sorted(pinned), lam)
-        active = [i for i in range(k) if i not in pinned]
-        if any(lam[i] <= 0.0 for i in active):
-            lam = _minimise_lam(tree, sorted(pinned), lam)
-        if all(lam[i] > 0.0 for i in active):
-            lam = _newton_polish(tree, lam, active)
-        g = _profiled(tree, lam)[1]
-        release = {i for i in pinned if g[i] < -_KKT_TOL * tree.mean_sizes[i]}
-        if not release:
-            break
-        never_pin |= release
-    dev = _safe_profiled(tree, lam, grad=False)[0]
-    if dev > dev0 + 1e-8 * max(1.0, abs(dev0)):
-        messages.append("active-set refinement did not improve the L-BFGS-B optimum")
-        lam = lam0
-    return lam, messages
 
 
 # ---------------------------------------------------------------------------
@@ -1062,47 +981,13 @@ def fit_nested_reml(s: NestedSummaries) -> MixedFit:
     tree = _build_tree(s)
     _check_design(tree, s)
     tree, t_mat, b0 = _recentre(tree)
-    k = tree.k
-    lam, messages = _optimise(tree)
-    pinned = [i for i in range(k) if lam[i] == 0.0]
-    active = [i for i in range(k) if i not in pinned]
-    converged = _kkt(tree, lam, active)
-    if not converged:
-        messages.append("REML optimisation did not meet the first-order optimality check")
-    dev = _profiled(tree, lam, grad=False)[0]
-    s_full = _s_from_lam(tree, lam)
-    s_full[pinned] = 0.0
-    free = [*active, k]
-    sec = _second_order(tree, s_full, free)
-    s_act = s_full[free]
-    h_log = sec.hessian * np.outer(s_act, s_act)
-    evals, evecs = np.linalg.eigh(0.5 * (h_log + h_log.T))
-    pos = evals > 1e-10 * max(float(np.max(np.abs(evals))), 1e-300)
-    hessian_ok = bool(np.all(pos))
-    if not hessian_ok:
-        messages.append("Hessian of the REML deviance is not positive definite")
-    h_log_inv = (evecs[:, pos] / evals[pos]) @ evecs[:, pos].T
-    vcov_varpar = 2.0 * h_log_inv * np.outer(s_act, s_act)
-    sigma2 = float(s_full[k])
-    components = {name: float(s_full[i]) for i, name in enumerate(tree.names)}
-    components["residual"] = sigma2
-    varpar_names = (*(tree.names[i] for i in active), "residual")
-    return MixedFit(
-        components=components,
-        beta=t_mat @ (sec.beta + b0),
-        cov_beta=t_mat @ sec.cov_beta @ t_mat.T,
-        fixed_names=s.fixed_names,
-        reml_deviance=float(dev),
-        n_obs=tree.n,
-        n_fixed=tree.p,
-        converged=bool(converged),
-        boundary=tuple(tree.names[i] for i in pinned),
-        theta={name: float(np.sqrt(lam[i])) for i, name in enumerate(tree.names)},
-        n_levels=dict(zip(tree.names, tree.sizes, strict=True)),
-        varpar_names=varpar_names,
-        varpar=np.array([components[nm] for nm in varpar_names]),
-        vcov_varpar=vcov_varpar,
-        jac_cov_beta=t_mat @ sec.jac @ t_mat.T,
-        hessian_ok=hessian_ok,
-        messages=tuple(messages),
+    # three starts while evaluations are cheap; lme4's single start theta = 1 beyond
+    starts = (1.0, 0.0625, 16.0) if sum(tree.sizes) <= _MULTI_START_GROUPS else (1.0,)
+    fit = fit_components(tree, s.fixed_names, starts, newton_stop=_NEWTON_STOP, failures=_FAILURES)
+    # back from the centred fixed-effects coordinates of _recentre
+    return replace(
+        fit,
+        beta=t_mat @ (fit.beta + b0),
+        cov_beta=t_mat @ fit.cov_beta @ t_mat.T,
+        jac_cov_beta=t_mat @ fit.jac_cov_beta @ t_mat.T,
     )
