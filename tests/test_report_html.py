@@ -140,6 +140,9 @@ def test_jupyter_shows_the_html_report(ratpup: pd.DataFrame) -> None:
     rep = audit(ratpup, response="weight", treatment="Treatment")
     assert rep._repr_html_() == rep.to_html()
     assert rep.to_json().startswith("{") and rep.to_markdown().startswith("## ")
+    named = audit(ratpup, response="weight", treatment="Treatment", name="supplement S2")
+    assert "<h1>replicheck audit: supplement S2</h1>" in named.to_html()
+    assert "<dataframe>" in rep.to_dict()["input"]["source"]
 
 
 def test_cli_writes_the_html_report_and_leaves_the_input_alone(

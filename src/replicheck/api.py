@@ -239,6 +239,7 @@ def audit(
     dayfirst: bool | None = None,
     order: str | None = None,
     progress: Callable[[int, int], None] | None = None,
+    name: str | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -279,6 +280,9 @@ def audit(
         ambiguous dates (day first or month first; by default the reading that
         fits every value, month first when both do); a column giving the order
         in which samples were processed (default: detected, else file order).
+    name:
+        How the report names a DataFrame's source (default ``<dataframe>``);
+        a file is always named by its path.
     progress:
         Called as ``progress(done, total)`` while a file is read (bytes hashed
         and parsed; ``total`` is twice the file size), e.g. to drive a progress bar.
@@ -330,6 +334,8 @@ def audit(
         na_values=c.na_values,
         progress=progress,
     )
+    if name is not None and isinstance(data, pd.DataFrame):
+        table = replace(table, source=str(name))
     c, stated = _resolve(table, c)
     formula_blocks: list[str] = []
     if c.formula is not None:

@@ -303,7 +303,12 @@ def demo(name: str | None, list_: bool, write_dir: str | None, fmt: str) -> None
     click.echo(f"demo scenario '{scenario.name}' (INVENTED DATA): {scenario.title}", err=True)
     click.echo(scenario.story, err=True)
     click.echo(f"command: {scenario.command()}\n", err=True)
-    report = audit(scenario.frame(), spec=scenario.spec(), find_spec=False)
+    report = audit(
+        scenario.frame(),
+        spec=scenario.spec(),
+        find_spec=False,
+        name=f"{scenario.name}.csv (invented demo data)",
+    )
     click.echo(_render(report, fmt), nl=False)
 
 
