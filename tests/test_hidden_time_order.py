@@ -26,6 +26,7 @@ from __future__ import annotations
 import itertools
 import math
 from datetime import datetime
+from fractions import Fraction
 
 import design_sim as ds
 import numpy as np
@@ -367,6 +368,30 @@ def test_exact_two_level_runs_distribution(n1: int, n2: int) -> None:
         assert runs_cdf_two(n1, n2, r) == pytest.approx(brute, abs=1e-12)
         # statsmodels' exact distribution (SAS manual formulas)
         assert runs_cdf_two(n1, n2, r) == pytest.approx(TotalRunsProb(n1, n2).cdf(r), abs=1e-12)
+
+
+def _exact_runs_cdf(n1: int, n2: int, r: int) -> float:
+    """P(R <= r) in exact integer arithmetic (Python's math.comb; Swed & Eisenhart 1943)."""
+    num = 0
+    for k in range(2, r + 1):
+        s = k // 2
+        if k % 2 == 0:
+            num += 2 * math.comb(n1 - 1, s - 1) * math.comb(n2 - 1, s - 1)
+        else:
+            num += math.comb(n1 - 1, s) * math.comb(n2 - 1, s - 1) + math.comb(
+                n1 - 1, s - 1
+            ) * math.comb(n2 - 1, s)
+    return float(Fraction(num, math.comb(n1 + n2, n1)))
+
+
+@pytest.mark.parametrize(("n1", "n2"), [(2500, 2000), (9000, 400)])
+def test_large_two_level_runs_distribution_matches_exact_integers(n1: int, n2: int) -> None:
+    # far beyond the summation window (40 sd): the tails and the middle against
+    # exact rational arithmetic
+    mean, var = runs_moments([n1, n2])
+    sd = math.sqrt(var)
+    for r in sorted({int(mean - 30 * sd), int(mean - 6 * sd), int(mean), int(mean + 4 * sd)}):
+        assert runs_cdf_two(n1, n2, r) == pytest.approx(_exact_runs_cdf(n1, n2, r), rel=1e-9)
 
 
 @pytest.mark.parametrize(("n", "critical"), [(5, 2), (8, 4), (10, 6), (12, 7), (20, 14)])

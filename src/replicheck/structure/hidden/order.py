@@ -147,6 +147,9 @@ def _log_comb(n: int | np.ndarray, k: int | np.ndarray) -> np.ndarray:
     return np.where(valid, out, -np.inf)
 
 
+_RUNS_WINDOW = 40.0  # standard deviations of the runs distribution summed on each side
+
+
 def runs_cdf_two(n1: int, n2: int, runs: int) -> float:
     """P(R <= runs) for two labels with counts n1, n2 in random order (Swed & Eisenhart 1943).
 
@@ -158,7 +161,17 @@ def runs_cdf_two(n1: int, n2: int, runs: int) -> float:
     if runs < 2:
         return 0.0
     total = float(_log_comb(n1 + n2, n1))
-    r = np.arange(2, runs + 1)
+    # The distribution is unimodal about its mean with standard deviation sd; terms
+    # more than _RUNS_WINDOW sd away are below exp(-_RUNS_WINDOW^2 / 2) of the mode
+    # and do not change a double-precision sum, so only the window is summed (the
+    # exact sum over a million positions would take a second).
+    mean, var = runs_moments([n1, n2])
+    reach = _RUNS_WINDOW * math.sqrt(var) + 50
+    if runs > mean + reach:
+        return 1.0
+    r = np.arange(max(2, math.floor(mean - reach)), runs + 1)
+    if r.size == 0:
+        return 0.0
     s = r // 2
     even = np.log(2.0) + _log_comb(n1 - 1, s - 1) + _log_comb(n2 - 1, s - 1)
     odd = np.logaddexp(
