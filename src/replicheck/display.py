@@ -237,8 +237,7 @@ def _pooled_intervals(
 
 def _spans_levels(unit_codes: np.ndarray, level_codes: np.ndarray) -> bool:
     """Whether some unit holds rows of more than one level (one pass, no sorting)."""
-    first = np.zeros(int(unit_codes.max()) + 1, dtype=np.int64)
-    first[unit_codes[::-1]] = np.arange(unit_codes.size)[::-1]  # first row of each unit
+    first = _first_rows(unit_codes, int(unit_codes.max()) + 1)
     return bool((level_codes[first[unit_codes]] != level_codes).any())
 
 
