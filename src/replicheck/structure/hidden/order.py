@@ -448,18 +448,29 @@ def _combine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def _recorded(
-    frame: pd.DataFrame, rows: np.ndarray, skip: set[str]
+    frame: pd.DataFrame,
+    rows: np.ndarray,
+    skip: set[str],
+    cache: dict[str, np.ndarray] | None = None,
 ) -> list[tuple[str, np.ndarray]]:
-    """Codes along ``rows`` of every column without missing values there (not in ``skip``)."""
+    """Codes along ``rows`` of every column without missing values there (not in ``skip``).
+
+    ``cache`` keeps each column's codes over all rows (-1 where missing), so that
+    a column is factorised once per scan; codes along ``rows`` are renumbered
+    from those (the same codes as factorising the values at ``rows``).
+    """
+    cache = {} if cache is None else cache
     out = []
     for column in frame.columns:
         name = str(column)
         if name in skip:
             continue
-        values = frame[column].iloc[rows]
-        if values.isna().any():
+        if name not in cache:
+            cache[name] = pd.factorize(frame[column], sort=True)[0].astype(np.int64)
+        along = cache[name][rows]
+        if (along < 0).any():
             continue
-        out.append((name, _codes(values)))
+        out.append((name, _codes(along)))
     return out
 
 
@@ -588,6 +599,7 @@ def _runs_of(
     response: str,
     exclude: Sequence[str],
     seed: int,
+    cache: dict[str, np.ndarray] | None = None,
 ) -> tuple[list[Signal], np.ndarray | None, str, dict[str, float]]:
     """Signals of one treatment along the order, and its runs per row when they are derived."""
     pos = ordering.positions
@@ -598,7 +610,7 @@ def _runs_of(
     k = int(target.max()) + 1
     if k < 2:
         return [], None, "", {}
-    recorded = _recorded(frame, rows, _skip(response, ordering, exclude))
+    recorded = _recorded(frame, rows, _skip(response, ordering, exclude), cache)
     chain = listing(recorded)
     items = _items(target, chain)
     item_codes = np.arange(rows.size) if items is None else items.codes
@@ -686,6 +698,7 @@ def _autocorrelation(
     treatments: Sequence[str],
     exclude: Sequence[str],
     seed: int,
+    cache: dict[str, np.ndarray] | None = None,
 ) -> Signal | None:
     pos = ordering.positions
     y = pd.to_numeric(frame[response].iloc[pos], errors="coerce")
@@ -696,7 +709,7 @@ def _autocorrelation(
     if rows.size < MIN_ITEMS:
         return None
     cells = _cell_codes(frame.iloc[rows], treatments)
-    chain = listing(_recorded(frame, rows, _skip(response, ordering, exclude)))
+    chain = listing(_recorded(frame, rows, _skip(response, ordering, exclude), cache))
     items = _items(cells, chain)
     item_codes = np.arange(rows.size) if items is None else items.codes
     n_items = int(item_codes.max()) + 1
@@ -754,8 +767,11 @@ def scan_order(
     derived: list[DerivedGrouping] = []
     signals: list[Signal] = []
     found: list[tuple[int, str, np.ndarray, str, dict[str, float]]] = []
+    cache: dict[str, np.ndarray] = {}  # each column factorised once for the whole scan
     for j, treatment in enumerate(treatments):
-        sig, codes, how, strength = _runs_of(frame, ordering, treatment, response, exclude, seed)
+        sig, codes, how, strength = _runs_of(
+            frame, ordering, treatment, response, exclude, seed, cache
+        )
         signals.extend(sig)
         if codes is not None and not any(_same_rows(codes, f[2]) for f in found):
             found.append((j, str(treatment), codes, how, strength))
@@ -763,7 +779,7 @@ def scan_order(
         sources = (treatment,) if ordering.column is None else (ordering.column, treatment)
         name = _named(ordering.label, treatment if len(found) > 1 else None, j)
         derived.append(DerivedGrouping(name, codes, sources, "process", how, strength))
-    auto = _autocorrelation(frame, ordering, response, treatments, exclude, seed)
+    auto = _autocorrelation(frame, ordering, response, treatments, exclude, seed, cache)
     if auto is not None:
         signals.append(auto)
     return HiddenScan(tuple(derived), tuple(signals))
