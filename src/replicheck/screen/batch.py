@@ -10,7 +10,7 @@ import os
 import re
 import stat
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -141,27 +141,18 @@ def _row_from(file: DataFile, result: Outcome | Failure, digest: str, size: int)
             sha256=digest,
             seconds=round(result.seconds, 3),
         )
+    # every summary field the work reported, under the same name (Outcome mirrors Row)
+    shared = {
+        f.name: getattr(result, f.name)
+        for f in fields(Outcome)
+        if f.name in _ROW_FIELDS and f.name not in ("file", "seconds", "report_json")
+    }
     return Row(
-        file=file.name,
-        status=result.status,
-        guessed=result.guessed,
-        spec_source=result.spec_source,
-        response=result.response,
-        treatment=result.treatment,
-        unit=result.unit,
-        n_units=result.n_units,
-        n_rows=result.n_rows,
-        conclusion_changed=result.conclusion_changed,
-        claimed_p=result.claimed_p,
-        corrected_p=result.corrected_p,
-        icc=result.icc,
-        design_effect=result.design_effect,
-        message=result.message,
-        candidates=result.candidates,
-        bytes=size,
-        sha256=digest,
-        seconds=round(result.seconds, 3),
+        file=file.name, bytes=size, sha256=digest, seconds=round(result.seconds, 3), **shared
     )
+
+
+_ROW_FIELDS = frozenset(f.name for f in fields(Row))
 
 
 def _write_reports(out_dir: Path, file: DataFile, result: Outcome) -> tuple[str, str]:
