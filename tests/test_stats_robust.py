@@ -426,3 +426,310 @@ def test_unknown_weights_raise() -> None:
     y, x, cluster = _small()
     with pytest.raises(DesignError, match="unknown bootstrap weights"):
         wild_cluster_bootstrap(y, x, cluster, np.array([0.0, 1.0]), weights="mammen")
+
+
+# --- per-cluster sums against a row-level implementation ---------------------------------
+
+
+def _row_level_cr2(
+    y: np.ndarray, x: np.ndarray, cluster: np.ndarray, contrast: np.ndarray
+) -> tuple[float, float, float]:
+    """CR2 test written out row by row from the published formulas: (F, df_den, p).
+
+    Independent of replicheck's per-cluster sums: Householder QR of the raw design
+    (numpy), the n x n hat matrix, and for every cluster the explicit symmetric
+    ``A_g = (I - H_gg)^(-1/2)`` from numpy's eigh (eigenvalues <= 1e-12 get power 0, as
+    clubSandwich). Bell & McCaffrey (2002, Survey Methodology 28:169-181):
+    ``V = M sum_g X_g'A_g e_g e_g'A_g X_g M``. Under the working model of independent
+    unit-variance errors ``u_g = L M X_g'A_g e_g = B_g' eps`` with
+    ``B_g' = L M X_g'A_g (I - H)[g, :]``. One contrast: ``t = L b / sqrt(L V L')`` on
+    ``(sum lambda)^2 / sum lambda^2`` df, lambda the eigenvalues of ``G'G`` with
+    ``G = [B_1 ... B_G]`` (Bell & McCaffrey; Imbens & Kolesar 2016, Rev. Econ. Stat.
+    98:701-712). Several: HTZ of Pustejovsky & Tipton (2018, JBES 36:672-683),
+    ``eta = q (q + 1) / sum_st Var(W_st)`` for ``W = Omega^(-1/2) L V L' Omega^(-1/2)``,
+    ``Omega = sum_g B_g'B_g``, ``W_st = eps' S_st eps`` with ``S_st`` the symmetric part
+    of ``sum_g b_gs b_gt'`` and ``Var = 2 tr(S_st^2)`` for normal errors.
+    """
+    contrast = np.atleast_2d(contrast)
+    n, _ = x.shape
+    q = contrast.shape[0]
+    qm, rm = np.linalg.qr(x)
+    beta = np.linalg.solve(rm, qm.T @ y)
+    rinv = np.linalg.inv(rm)
+    bread = rinv @ rinv.T  # (X'X)^-1
+    hat = qm @ qm.T
+    resid = y - x @ beta
+    eye_minus_hat = np.eye(n) - hat
+    b_mats = []
+    meat = np.zeros((q, q))
+    for g in np.unique(cluster):
+        rows = np.flatnonzero(cluster == g)
+        vals, vecs = np.linalg.eigh(np.eye(rows.size) - hat[np.ix_(rows, rows)])
+        power = np.where(vals > 1e-12, 1.0 / np.sqrt(np.where(vals > 1e-12, vals, 1.0)), 0.0)
+        adjust = (vecs * power) @ vecs.T
+        lead = contrast @ bread @ x[rows].T @ adjust  # q x n_g
+        u = lead @ resid[rows]
+        meat += np.outer(u, u)
+        b_mats.append((lead @ eye_minus_hat[rows]).T)  # n x q
+    est = contrast @ beta
+    omega = sum(b.T @ b for b in b_mats)
+    if q == 1:
+        gmat = np.column_stack([b[:, 0] for b in b_mats])
+        lam = np.linalg.eigvalsh(gmat.T @ gmat)
+        df = float(lam.sum() ** 2 / np.sum(lam**2))
+        t = float(est[0] / np.sqrt(meat[0, 0]))
+        return t * t, df, float(2 * stats.t.sf(abs(t), df))
+    vals, vecs = np.linalg.eigh(omega)
+    whiten = (vecs / np.sqrt(vals)) @ vecs.T
+    white = [b @ whiten for b in b_mats]  # n x q each
+    total = 0.0
+    for s in range(q):
+        bs = np.column_stack([w[:, s] for w in white])
+        for t_ in range(q):
+            bt = np.column_stack([w[:, t_] for w in white])
+            a_st = bs @ bt.T
+            sym = (a_st + a_st.T) / 2
+            total += 2 * np.sum(sym * sym)  # 2 tr(S^2), S symmetric
+    eta = q * (q + 1) / total
+    wald = float(est @ np.linalg.solve(meat, est))
+    df_den = eta - q + 1
+    f_stat = df_den / (eta * q) * wald
+    return f_stat, df_den, float(stats.f.sf(f_stat, q, df_den))
+
+
+def test_row_level_reference_reproduces_clubsandwich() -> None:
+    # Source: clubSandwich 0.5.8 (fixtures/robust/clubsandwich.json). Checks the
+    # row-level implementation above before it serves as the reference below.
+    for label in ("ratpup_covariates", "oats_wholeplot", "petrol"):
+        case = next(c for c in _fixture()["cases"] if c["label"] == label)
+        y, x, cluster = _case_arrays(case)
+        for j in range(1, x.shape[1]):
+            f_stat, df, p = _row_level_cr2(y, x, cluster, np.eye(x.shape[1])[j])
+            assert f_stat == pytest.approx(case["t"][j] ** 2, rel=REL)
+            assert df == pytest.approx(case["df_satt"][j], rel=REL)
+            assert p == pytest.approx(case["p_satt"][j], rel=REL)
+        for test in case["wald_htz"]:
+            f_stat, df, p = _row_level_cr2(y, x, cluster, np.array(test["L"], dtype=float))
+            assert f_stat == pytest.approx(test["F"], rel=REL)
+            assert df == pytest.approx(test["df_den"], rel=REL)
+            assert p == pytest.approx(test["p"], rel=REL)
+
+
+def _seeded_design(kind: str, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Invented seeded data (unequal cluster sizes, rows shuffled, arbitrary codes)."""
+    rng = np.random.default_rng(seed)
+    n_cl = 13
+    sizes = rng.integers(2, 14, size=n_cl)
+    unit = np.repeat(np.arange(n_cl), sizes)
+    n = unit.size
+    level = rng.permutation(np.arange(n_cl) % 3)  # three unit-level treatment levels
+    cols = [np.ones(n)]
+    if kind == "unit":  # treatment constant within clusters
+        cols += [(level[unit] == 1).astype(float), (level[unit] == 2).astype(float)]
+    elif kind == "within":  # treatment varying within clusters, plus a unit covariate
+        cols += [(rng.random(n) < 0.4).astype(float), rng.normal(size=n_cl)[unit]]
+    elif kind == "year":  # calendar years and a large-offset covariate with an intercept
+        cols += [
+            (level[unit] == 1).astype(float),
+            2000.0 + rng.integers(0, 12, size=n),
+            1.0e6 + rng.normal(size=n),
+        ]
+    elif kind == "near_collinear":  # two covariates with correlation 1 - 5e-11
+        base = rng.normal(size=n)
+        cols += [(level[unit] == 1).astype(float), base, base + 1e-5 * rng.normal(size=n)]
+    elif kind == "no_intercept":  # cell means coding with a year covariate
+        cols = [(level[unit] == k).astype(float) for k in range(3)]
+        cols.append(2000.0 + rng.integers(0, 12, size=n))
+    x = np.column_stack(cols)
+    effects = x @ rng.normal(size=x.shape[1]) * 1e-3
+    y = 50.0 + rng.normal(size=n_cl)[unit] + rng.normal(size=n) + effects
+    codes = rng.choice(10_000, size=n_cl, replace=False) - 5_000  # any integers
+    perm = rng.permutation(n)
+    return y[perm], x[perm], codes[unit][perm]
+
+
+_KINDS = ["unit", "within", "year", "near_collinear", "no_intercept"]
+
+
+def _contrasts(kind: str, p: int) -> list[np.ndarray]:
+    eye = np.eye(p)
+    if kind == "no_intercept":
+        return [eye[[3]], eye[[0]] - eye[[1]], eye[[0, 1]] - eye[[2, 2]]]
+    if kind == "near_collinear":
+        # not both collinear coefficients in one test: their joint test has an
+        # ill-conditioned L (X'X)^-1 L' and the row-level reference loses 6 digits there
+        return [eye[[1]], eye[[3]], eye[[1, 2]], eye[[1, 3]]]
+    return [eye[[1]], eye[[p - 1]], eye[1:], eye[[1, 2]]]
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("kind", _KINDS)
+def test_cr2_equals_row_level_implementation(kind: str, seed: int) -> None:
+    # Source: the row-level implementation of the published formulas above (itself
+    # checked against clubSandwich); relative tolerance 1e-8.
+    y, x, cluster = _seeded_design(kind, seed)
+    for contrast in _contrasts(kind, x.shape[1]):
+        res = cr2_test(y, x, cluster, contrast)
+        f_stat, df, p = _row_level_cr2(y, x, cluster, contrast)
+        assert res.statistic == pytest.approx(f_stat, rel=1e-8)
+        assert res.df_den == pytest.approx(df, rel=1e-8)
+        assert res.p_value == pytest.approx(p, rel=1e-8)
+        assert res.df_num == contrast.shape[0]
+
+
+def _sm_cluster_f(y: np.ndarray, x: np.ndarray, cluster: np.ndarray, contrast: np.ndarray) -> float:
+    """statsmodels' cluster-robust Wald F: CR1 with G/(G-1) (n-1)/(n-p) (its default)."""
+    groups = np.unique(cluster, return_inverse=True)[1]
+    fit = sm.OLS(y, x).fit(cov_type="cluster", cov_kwds={"groups": groups})
+    return float(fit.wald_test(contrast, use_f=True, scalar=True).statistic)
+
+
+@pytest.mark.parametrize("kind", _KINDS)
+def test_bootstrap_observed_statistic_equals_statsmodels(kind: str) -> None:
+    # Source: statsmodels OLS(cov_type="cluster"), whose default small-sample correction
+    # G/(G-1) * (n-1)/(n-p) is the one wild_cluster_bootstrap documents (CR1); and the
+    # Householder-QR CR1 of _qr_cr1_wald below. statsmodels gets an equivalent
+    # well-conditioned design x @ tm (same column space) and the contrast L @ tm, which
+    # states the same hypothesis: for "year" the covariate 1e6 + N(0, 1) less 1e6, for
+    # "near_collinear" the difference of the two covariates times 1e5. (On the raw
+    # designs, condition numbers about 1e12 and 1e6, statsmodels' pseudo-inverse keeps
+    # only 3 to 6 digits.)
+    y, x, cluster = _seeded_design(kind, 4)
+    x_sm, tm = x.copy(), np.eye(x.shape[1])
+    if kind == "year":
+        x_sm[:, 3] -= 1.0e6
+        tm[0, 3] = -1.0e6
+    elif kind == "near_collinear":
+        x_sm[:, 3] = (x[:, 3] - x[:, 2]) * 1.0e5
+        tm[2, 3], tm[3, 3] = -1.0e5, 1.0e5
+    assert x_sm == pytest.approx(x @ tm, rel=1e-9, abs=1e-9)
+    for contrast in _contrasts(kind, x.shape[1]):
+        res = wild_cluster_bootstrap(y, x, cluster, contrast, draws=19)
+        ref = _sm_cluster_f(y, x_sm, cluster, contrast @ tm)
+        assert res.statistic == pytest.approx(ref, rel=1e-8)
+        assert res.statistic == pytest.approx(_qr_cr1_wald(y, x, cluster, contrast), rel=1e-8)
+
+
+def _qr_cr1_wald(y: np.ndarray, x: np.ndarray, cluster: np.ndarray, contrast: np.ndarray) -> float:
+    """CR1 Wald / q by Householder QR of the raw design (accurate for ill-conditioned X)."""
+    n, p = x.shape
+    groups = np.unique(cluster, return_inverse=True)[1]
+    n_cl = int(groups.max()) + 1
+    qm, rm = np.linalg.qr(x)
+    beta = np.linalg.solve(rm, qm.T @ y)
+    resid = y - x @ beta
+    rinv = np.linalg.inv(rm)
+    # L (X'X)^-1 X_g'e_g = (L R^-1) (Q_g'e_g)
+    lr = contrast @ rinv
+    scores = np.stack([lr @ (qm[groups == g].T @ resid[groups == g]) for g in range(n_cl)])
+    cov = n_cl / (n_cl - 1) * (n - 1) / (n - p) * scores.T @ scores
+    est = contrast @ beta
+    return float(est @ np.linalg.solve(cov, est)) / contrast.shape[0]
+
+
+def test_enumerated_bootstrap_with_year_covariate_equals_brute_force() -> None:
+    # Source: a brute force over all 2^10 sign vectors with Householder QR refits. The
+    # design has calendar years (2000..2011) beside an intercept; the all-(+1) and
+    # all-(-1) sign vectors reproduce the observed statistic exactly, so p >= 2/1024 and
+    # every tie must be found within the relative 1e-9 tie tolerance.
+    rng = np.random.default_rng(11)
+    n_cl = 10
+    unit = np.repeat(np.arange(n_cl), rng.integers(3, 9, size=n_cl))
+    n = unit.size
+    x = np.column_stack(
+        [np.ones(n), (np.arange(n_cl) % 2)[unit], 2000.0 + rng.integers(0, 12, size=n)]
+    )
+    y = 300.0 + rng.normal(size=n_cl)[unit] + rng.normal(size=n)
+    for contrast in (np.eye(3)[[1]], np.eye(3)[[2]], np.eye(3)[1:]):
+        res = wild_cluster_bootstrap(y, x, unit, contrast, weights="rademacher", draws=9999)
+        assert res.enumerated and res.draws == 1024
+        observed = _qr_cr1_wald(y, x, unit, contrast)
+        assert res.statistic == pytest.approx(observed, rel=1e-9)
+        groups_all = np.unique(unit, return_inverse=True)[1]
+        qm, rm = np.linalg.qr(x)
+        beta = np.linalg.solve(rm, qm.T @ y)
+        rinv = np.linalg.inv(rm)
+        bread = rinv @ rinv.T
+        beta_r = beta - bread @ contrast.T @ np.linalg.solve(
+            contrast @ bread @ contrast.T, contrast @ beta
+        )
+        fitted_r = x @ beta_r
+        resid_r = y - fitted_r
+        hits = sum(
+            _qr_cr1_wald(fitted_r + np.array(signs)[groups_all] * resid_r, x, unit, contrast)
+            >= observed * (1 - 1e-9)
+            for signs in itertools.product([-1.0, 1.0], repeat=n_cl)
+        )
+        assert hits >= 2
+        assert res.p_value == hits / 1024
+
+
+def test_results_do_not_depend_on_row_order_or_cluster_labels() -> None:
+    # Derivation: CR2 and the bootstrap depend on the rows only through per-cluster sums,
+    # and bootstrap weights go to clusters in increasing code order, so shuffling the
+    # rows, or relabelling the clusters while keeping their order, changes nothing
+    # (beyond rounding); all-sign enumeration does not depend on the order at all.
+    y, x, cluster = _seeded_design("year", 5)
+    contrast = np.eye(x.shape[1])[[1, 3]]
+    base = cr2_test(y, x, cluster, contrast)
+    boot = wild_cluster_bootstrap(y, x, cluster, contrast, draws=299, seed=9)
+    perm = np.random.default_rng(6).permutation(y.size)
+    _, numbers = np.unique(cluster, return_inverse=True)
+    n_cl = int(numbers.max()) + 1
+    relabel_in_order = [
+        numbers,  # 0..G-1
+        cluster * 10**12 + 7,  # huge codes
+        (np.arange(n_cl) * 3 - 40)[numbers].astype(np.int16),  # negative, small dtype
+    ]
+    for codes in relabel_in_order:
+        res = cr2_test(y[perm], x[perm], codes[perm], contrast)
+        assert res.statistic == pytest.approx(base.statistic, rel=1e-10)
+        assert res.df_den == pytest.approx(base.df_den, rel=1e-10)
+        assert res.p_value == pytest.approx(base.p_value, rel=1e-10)
+        shuffled = wild_cluster_bootstrap(
+            y[perm], x[perm], codes[perm], contrast, draws=299, seed=9
+        )
+        assert shuffled.p_value == boot.p_value
+        assert shuffled.statistic == pytest.approx(boot.statistic, rel=1e-10)
+    # any relabelling: CR2 and the all-sign enumeration are unchanged
+    scrambled = np.random.default_rng(7).permutation(n_cl)[numbers]
+    res = cr2_test(y[perm], x[perm], scrambled[perm], contrast)
+    assert res.statistic == pytest.approx(base.statistic, rel=1e-10)
+    assert res.df_den == pytest.approx(base.df_den, rel=1e-10)
+    few = np.isin(numbers, np.arange(10))  # 10 clusters: 1024 sign vectors
+    enum = [
+        wild_cluster_bootstrap(y[few], x[few], codes[few], contrast, "rademacher", 9999)
+        for codes in (numbers, scrambled)
+    ]
+    assert enum[0].enumerated and enum[1].enumerated
+    assert enum[0].p_value == enum[1].p_value
+
+
+def test_weights_are_numpys_draws_in_cluster_order() -> None:
+    # Source: numpy's Generator.integers, the documented stream of draw_weights: one
+    # (draws, clusters) array of point indices per call.
+    rad = draw_weights("rademacher", 7, 5, np.random.default_rng(3))
+    assert np.array_equal(rad, np.random.default_rng(3).integers(0, 2, size=(5, 7)) * 2.0 - 1.0)
+    webb = draw_weights("webb", 7, 5, np.random.default_rng(3))
+    idx = np.random.default_rng(3).integers(0, 6, size=(5, 7))
+    points = np.array([-np.sqrt(1.5), -1.0, -np.sqrt(0.5), np.sqrt(0.5), 1.0, np.sqrt(1.5)])
+    assert np.array_equal(webb, points[idx])
+
+
+@pytest.mark.parametrize("func", [cr2_test, wild_cluster_bootstrap])
+@pytest.mark.parametrize("case", ["dummies_and_intercept", "inexact_combination", "two_constants"])
+def test_collinear_designs_are_refused(func: Callable[..., object], case: str) -> None:
+    # Exactly collinear designs whose floating-point columns are not exactly dependent
+    # (decimal coefficients, centred dummies): refused as rank-deficient, one line.
+    y, x, cluster = _seeded_design("within", 8)
+    n = y.size
+    grp = np.arange(n) % 3
+    if case == "dummies_and_intercept":
+        x = np.column_stack([x, *[(grp == k).astype(float) for k in range(3)]])
+    elif case == "inexact_combination":
+        x = np.column_stack([x, 0.1 * x[:, 1] + 0.3 * x[:, 2] + 0.7])
+    else:
+        x = np.column_stack([x, np.full(n, 2.5)])
+    with pytest.raises(DesignError, match="full column rank") as err:
+        func(y, x, cluster, np.eye(x.shape[1])[[1]])
+    assert "\n" not in str(err.value)

@@ -24,11 +24,13 @@ from replicheck.claim import (
     spec_beside,
 )
 from replicheck.clustering import measure_clustering
+from replicheck.codebook import shared_codes
 from replicheck.display import display_data
 from replicheck.errors import InputError
 from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
+from replicheck.partitions import units_per_level
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
@@ -188,7 +190,7 @@ def _levels(
     rows_removed = f"{k} groups" if single else f"{n_params} model parameters"
     levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(term.codes)))]
     if term.unit is not None and choice.unit is not None:
-        per = tuple(int(np.unique(term.unit[term.codes == j]).size) for j in range(k))
+        per = tuple(int(c) for c in units_per_level(term.unit, term.codes, k))
         levels.append(
             Level(choice.unit, "units", choice.n_units, choice.n_units - k, f"{k} groups", per)
         )
@@ -313,166 +315,186 @@ def audit(
         raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
     if effect is not None and not (np.isfinite(effect) and effect > 0):
         raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
-    clock = _Stopwatch()
-    c = make_claim(
-        data,
-        response=response,
-        treatment=treatment,
-        unit=unit,
-        claim=claim,
-        alpha=alpha,
-        na=na,
-        sheet=sheet,
-        spec=spec,
-        find_spec=find_spec,
-        formula=formula,
-    )
-    clock.lap("claim")
-    table = read_table(
-        data if isinstance(data, pd.DataFrame) else Path(data),
-        sheet=c.sheet,
-        na_values=c.na_values,
-        progress=progress,
-    )
-    if name is not None and isinstance(data, pd.DataFrame):
-        table = replace(table, source=str(name))
-    c, stated = _resolve(table, c)
-    formula_blocks: list[str] = []
-    if c.formula is not None:
-        terms, formula_blocks = _formula_terms(c, table.data)
-        c = replace(c, treatments=tuple(f for f in c.treatments if f not in formula_blocks))
-    frame = _analysis_frame(table, c)
-    if c.formula is None:
-        terms = model_terms(frame, c.treatments)
-    terms, dropped = drop_unreplicated(frame, terms, c.treatments)
-    reported = _reported_by_term(c, terms)
-    interactions = [t.name for t in terms if t.is_interaction]
-    clock.lap("read")
-    hidden_scan = HiddenScan()
-    if hidden:
-        order_col = None if order is None else resolve_column(table.columns, order, "order")
-        hidden_scan = scan_hidden(
+    with shared_codes():  # each column coded once for every stage
+        clock = _Stopwatch()
+        c = make_claim(
+            data,
+            response=response,
+            treatment=treatment,
+            unit=unit,
+            claim=claim,
+            alpha=alpha,
+            na=na,
+            sheet=sheet,
+            spec=spec,
+            find_spec=find_spec,
+            formula=formula,
+        )
+        clock.lap("claim")
+        table = read_table(
+            data if isinstance(data, pd.DataFrame) else Path(data),
+            sheet=c.sheet,
+            na_values=c.na_values,
+            progress=progress,
+        )
+        if name is not None and isinstance(data, pd.DataFrame):
+            table = replace(table, source=str(name))
+        c, stated = _resolve(table, c)
+        formula_blocks: list[str] = []
+        if c.formula is not None:
+            terms, formula_blocks = _formula_terms(c, table.data)
+            c = replace(c, treatments=tuple(f for f in c.treatments if f not in formula_blocks))
+        frame = _analysis_frame(table, c)
+        if c.formula is None:
+            terms = model_terms(frame, c.treatments)
+        terms, dropped = drop_unreplicated(frame, terms, c.treatments)
+        reported = _reported_by_term(c, terms)
+        interactions = [t.name for t in terms if t.is_interaction]
+        clock.lap("read")
+        hidden_scan = HiddenScan()
+        if hidden:
+            order_col = None if order is None else resolve_column(table.columns, order, "order")
+            hidden_scan = scan_hidden(
+                frame,
+                c.response,
+                c.treatments,
+                seed=seed,
+                dayfirst=dayfirst,
+                order=order_col,
+            )
+            for g in hidden_scan.derived:
+                frame[g.name] = derived_column(g, frame.index)
+        for t in terms:
+            if t.is_interaction:
+                frame[t.name] = interaction_levels(frame, t.factors)
+        clock.lap("hidden")
+        structure = infer_structure(
             frame,
             c.response,
-            c.treatments,
-            seed=seed,
-            dayfirst=dayfirst,
-            order=order_col,
+            [t.name for t in terms],
+            exclude=c.treatments,
+            interactions=interactions,
+            stated_unit=stated or None,
+            unit_labels=unit_labels,
         )
-        for g in hidden_scan.derived:
-            frame[g.name] = derived_column(g, frame.index)
-    for t in terms:
-        if t.is_interaction:
-            frame[t.name] = interaction_levels(frame, t.factors)
-    clock.lap("hidden")
-    structure = infer_structure(
-        frame,
-        c.response,
-        [t.name for t in terms],
-        exclude=c.treatments,
-        interactions=interactions,
-        stated_unit=stated or None,
-        unit_labels=unit_labels,
-    )
-    y = frame[c.response].to_numpy(dtype=float)
-    inputs: list[TermInput] = []
-    for t in terms:
-        choice = structure.unit_of(t.name)
-        codes, labels = codes_of(frame[t.name])
-        confounded = choice.relation == "confounded"
-        units = unit_codes(frame, choice) if choice.unit is not None and not confounded else None
-        inputs.append(TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded))
-    strata = {s.name: group_codes(frame, s.columns) for s in structure.strata if s.kind != "rows"}
-    blocks = {
-        s.name: strata[s.name] for s in structure.strata if s.kind == "block" and s.name in strata
-    }
-    fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
-    kind = response_kind(y)
-    coding = yes_no_coding(table.data[c.response])
-    first_claim = reported.get(terms[0].name)
-    row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
-    clock.lap("structure")
-    fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
-    clock.lap("refit")
-    single = len(terms) == 1 and not fixed_blocks
-    X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
-    for b in fixed_blocks:
-        X = np.hstack([X, np.eye(int(b.max()) + 1)[b]])
-    n_params = int(np.linalg.matrix_rank(X))
-    evidence_terms: list[TermEvidence] = []
-    for i, ti in enumerate(inputs):
-        tr = fits.term(ti.term)
-        clustering = None
-        per_level: dict[str, int] = {}
-        if ti.unit is not None and ti.unit_name is not None:
-            v = tr.unit_variance
-            reml = (v.var_unit, v.var_residual) if v is not None and v.converged else None
-            clustering = measure_clustering(
-                y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml, kind=kind
+        y = frame[c.response].to_numpy(dtype=float)
+        inputs: list[TermInput] = []
+        for t in terms:
+            choice = structure.unit_of(t.name)
+            codes, labels = codes_of(frame[t.name])
+            confounded = choice.relation == "confounded"
+            units = (
+                unit_codes(frame, choice) if choice.unit is not None and not confounded else None
             )
-            for k, label in enumerate(ti.labels):
-                per_level[label] = int(np.unique(ti.unit[ti.codes == k]).size)
-        rec = None
-        if ti.term in reported:
-            as_claimed = tr.get("as_claimed")
-            assert as_claimed is not None
-            unit_level = [a for a in tr.analyses if a.level == "units" and a.p_value is not None]
-            levels = _levels(
-                len(frame), ti, n_params, structure.unit_of(ti.term), structure, single, unit_level
+            inputs.append(
+                TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded)
             )
-            rec = reconcile(
-                reported[ti.term], c.alpha, levels, as_claimed, len(index[ti.term]), unit_level
+        strata = {
+            s.name: group_codes(frame, s.columns) for s in structure.strata if s.kind != "rows"
+        }
+        blocks = {
+            s.name: strata[s.name]
+            for s in structure.strata
+            if s.kind == "block" and s.name in strata
+        }
+        fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
+        kind = response_kind(y)
+        coding = yes_no_coding(table.data[c.response])
+        first_claim = reported.get(terms[0].name)
+        row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
+        clock.lap("structure")
+        fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
+        clock.lap("refit")
+        single = len(terms) == 1 and not fixed_blocks
+        X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
+        for b in fixed_blocks:
+            X = np.hstack([X, np.eye(int(b.max()) + 1)[b]])
+        n_params = int(np.linalg.matrix_rank(X))
+        evidence_terms: list[TermEvidence] = []
+        for i, ti in enumerate(inputs):
+            tr = fits.term(ti.term)
+            clustering = None
+            per_level: dict[str, int] = {}
+            if ti.unit is not None and ti.unit_name is not None:
+                v = tr.unit_variance
+                reml = (v.var_unit, v.var_residual) if v is not None and v.converged else None
+                clustering = measure_clustering(
+                    y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml, kind=kind
+                )
+                counts = units_per_level(ti.unit, ti.codes, len(ti.labels))
+                for k, label in enumerate(ti.labels):
+                    per_level[label] = int(counts[k])
+            rec = None
+            if ti.term in reported:
+                as_claimed = tr.get("as_claimed")
+                assert as_claimed is not None
+                unit_level = [
+                    a for a in tr.analyses if a.level == "units" and a.p_value is not None
+                ]
+                levels = _levels(
+                    len(frame),
+                    ti,
+                    n_params,
+                    structure.unit_of(ti.term),
+                    structure,
+                    single,
+                    unit_level,
+                )
+                rec = reconcile(
+                    reported[ti.term], c.alpha, levels, as_claimed, len(index[ti.term]), unit_level
+                )
+            evidence_terms.append(
+                TermEvidence(
+                    ti.term,
+                    ti.factors,
+                    structure.unit_of(ti.term),
+                    clustering,
+                    tr,
+                    per_level,
+                    i == 0,
+                    rec,
+                )
             )
-        evidence_terms.append(
-            TermEvidence(
-                ti.term,
-                ti.factors,
-                structure.unit_of(ti.term),
-                clustering,
-                tr,
-                per_level,
-                i == 0,
-                rec,
-            )
+        primary = next(
+            (t for t in evidence_terms if t.reconciliation is not None), evidence_terms[0]
         )
-    primary = next((t for t in evidence_terms if t.reconciliation is not None), evidence_terms[0])
-    first_claimed = primary.analysis("as_claimed")
-    assert first_claimed is not None
-    overall = primary.reconciliation or reconcile(
-        None, c.alpha, [], first_claimed, len(index[primary.term])
-    )
-    evidence = Evidence(
-        claim=c,
-        n_rows_read=table.n_rows,
-        n_rows_used=len(frame),
-        structure=structure,
-        terms=tuple(evidence_terms),
-        reconciliation=overall,
-        formula_blocks=tuple(formula_blocks),
-        unreplicated=tuple(t.name for t in dropped),
-        response_kind=kind,
-        response_coding=coding,
-        hidden=hidden_scan,
-    )
-    clock.lap("clustering")
-    verdict = decide(evidence)
-    needs = _needs(inputs, evidence, y, c, power, effect)
-    shown = inputs[evidence_terms.index(primary)]
-    display = display_data(
-        frame,
-        shown.term,
-        y,
-        shown.codes,
-        shown.labels,
-        primary.unit.columns,
-        shown.unit,
-        shown.unit_name or primary.unit.unit,
-        shown.confounded,
-    )
-    clock.lap("report data")
-    return Report(
-        table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
-    )
+        first_claimed = primary.analysis("as_claimed")
+        assert first_claimed is not None
+        overall = primary.reconciliation or reconcile(
+            None, c.alpha, [], first_claimed, len(index[primary.term])
+        )
+        evidence = Evidence(
+            claim=c,
+            n_rows_read=table.n_rows,
+            n_rows_used=len(frame),
+            structure=structure,
+            terms=tuple(evidence_terms),
+            reconciliation=overall,
+            formula_blocks=tuple(formula_blocks),
+            unreplicated=tuple(t.name for t in dropped),
+            response_kind=kind,
+            response_coding=coding,
+            hidden=hidden_scan,
+        )
+        clock.lap("clustering")
+        verdict = decide(evidence)
+        needs = _needs(inputs, evidence, y, c, power, effect)
+        shown = inputs[evidence_terms.index(primary)]
+        display = display_data(
+            frame,
+            shown.term,
+            y,
+            shown.codes,
+            shown.labels,
+            primary.unit.columns,
+            shown.unit,
+            shown.unit_name or primary.unit.unit,
+            shown.confounded,
+        )
+        clock.lap("report data")
+        return Report(
+            table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
+        )
 
 
 class _Stopwatch:

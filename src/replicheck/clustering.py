@@ -16,6 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from replicheck.partitions import units_in_levels
 from replicheck.stats.classic import DesignError
 from replicheck.stats.clustering import anova_components, design_effect
 from replicheck.stats.discrete import Overdispersion, ResponseKind, unit_overdispersion
@@ -81,8 +82,9 @@ def measure_clustering(
     sizes = np.bincount(unit, minlength=n_units)
     deff = design_effect(sizes, icc)
     per_level: dict[str, float] = {}
+    members = units_in_levels(unit, treatment, len(treatment_labels))
     for k, label in enumerate(treatment_labels):
-        in_level = np.unique(unit[treatment == k])
+        in_level = members[k]
         if in_level.size == 0:
             continue
         d = design_effect(sizes[in_level], icc)

@@ -176,7 +176,9 @@ def unit_view(
     sizes = np.bincount(pair_codes, minlength=keys.size)
     means = np.bincount(pair_codes, weights=y, minlength=keys.size) / sizes
     pair_unit, pair_level = keys // k_levels, keys % k_levels
-    order = np.argsort(pair_codes, kind="stable")
+    # rows grouped by (unit, level); a 16-bit key lets numpy use its radix sort
+    key = pair_codes.astype(np.uint16) if keys.size <= 1 << 16 else pair_codes
+    order = np.argsort(key, kind="stable")
     bounds = np.concatenate([[0], np.cumsum(sizes)])
     n_units = int(unit_codes.max()) + 1 if n else 0
     thinned = False

@@ -12,12 +12,27 @@ import numpy as np
 import pandas as pd
 
 
+def _already_dense(values: np.ndarray) -> bool:
+    """Whether integer ``values`` are already the codes ``0..k-1`` with every code used."""
+    if values.size == 0 or not np.issubdtype(values.dtype, np.integer):
+        return False
+    lo, hi = int(values.min()), int(values.max())
+    if lo != 0 or hi >= values.size:
+        return False
+    return bool(np.all(np.bincount(values.astype(np.intp, copy=False), minlength=hi + 1)))
+
+
 def dense_codes(values: np.ndarray) -> np.ndarray:
     """Codes ``0..k-1`` numbering the distinct values in increasing order.
 
-    The same result as ``np.unique(values, return_inverse=True)[1]``, by hashing.
+    The same result as ``np.unique(values, return_inverse=True)[1]``, by hashing
+    (integer codes that already are ``0..k-1`` with every code used are
+    returned as they are, without hashing).
     """
-    codes, _ = pd.factorize(np.asarray(values).reshape(-1), sort=True)
+    flat = np.asarray(values).reshape(-1)
+    if _already_dense(flat):
+        return flat.astype(np.int64)  # a copy: callers may change their codes in place
+    codes, _ = pd.factorize(flat, sort=True)
     return codes.astype(np.int64, copy=False)
 
 
@@ -41,9 +56,30 @@ def is_nested(fine: np.ndarray, coarse: np.ndarray) -> bool:
     """Whether every level of ``fine`` lies inside one level of ``coarse``."""
     if fine.size == 0:
         return True
+    top = int(fine.max())
+    if int(fine.min()) >= 0 and top <= 4 * fine.size + 1024:
+        # write each row's coarse code at its fine level, read it back: a fine level
+        # spread over two coarse levels keeps only one of them and fails the check
+        image = np.empty(top + 1, dtype=np.asarray(coarse).dtype)
+        image[fine] = coarse
+        return bool(np.array_equal(image[fine], coarse))
     return n_distinct(pair_codes(fine, coarse)) == n_distinct(fine)
 
 
 def same_partition(a: np.ndarray, b: np.ndarray) -> bool:
     """Whether two codings group the rows identically."""
     return int(a.max()) == int(b.max()) and is_nested(a, b)
+
+
+def units_per_level(unit: np.ndarray, level: np.ndarray, k: int) -> np.ndarray:
+    """Number of distinct ``unit`` codes among the rows of each ``level`` code ``0..k-1``."""
+    pairs = pd.unique(unit.astype(np.int64, copy=False) * np.int64(max(k, 1)) + level)
+    return np.bincount(pairs % max(k, 1), minlength=k)
+
+
+def units_in_levels(unit: np.ndarray, level: np.ndarray, k: int) -> list[np.ndarray]:
+    """The distinct ``unit`` codes (increasing) among the rows of each ``level`` code ``0..k-1``."""
+    pairs = np.sort(pd.unique(level.astype(np.int64, copy=False) * (int(unit.max()) + 1) + unit))
+    per = pairs // (int(unit.max()) + 1)
+    cuts = np.searchsorted(per, np.arange(k + 1))
+    return [pairs[cuts[j] : cuts[j + 1]] % (int(unit.max()) + 1) for j in range(k)]

@@ -7,6 +7,7 @@ and return frozen dataclasses.
 from replicheck.stats.classic import (
     DesignError,
     TestResult,
+    cell_term_f,
     ols_term_f,
     oneway_anova,
     two_sample_t,
@@ -37,6 +38,7 @@ __all__ = [
     "TTest",
     "TestResult",
     "anova_components",
+    "cell_term_f",
     "design_effect",
     "fit_reml",
     "icc_from_components",

@@ -189,6 +189,14 @@ def ols_term_f(y: np.ndarray, x_full: np.ndarray, x_reduced: np.ndarray) -> Test
             raise DesignError(f"{name} design matrix contains non-finite values")
     rss_f, rank_f, _ = _rss_and_rank(arr, xf)
     rss_r, rank_r, _ = _rss_and_rank(arr, xr)
+    return _extra_sum_f(xf, xr, n, (rss_f, rank_f), (rss_r, rank_r))
+
+
+def _extra_sum_f(
+    xf: np.ndarray, xr: np.ndarray, n: int, full: tuple[float, int], reduced: tuple[float, int]
+) -> TestResult:
+    """The extra-sum-of-squares F from both fits' (RSS, rank); checks that ``xr`` is in ``xf``."""
+    (rss_f, rank_f), (rss_r, rank_r) = full, reduced
     # The reduced model must be nested in the full one.
     if xr.shape[1] > 0:
         coef, *_ = np.linalg.lstsq(xf, xr, rcond=None)
@@ -212,6 +220,51 @@ def ols_term_f(y: np.ndarray, x_full: np.ndarray, x_reduced: np.ndarray) -> Test
         df=(df1, df2),
         p_value=float(stats.f.sf(f, df1, df2)),
     )
+
+
+def cell_term_f(
+    y: np.ndarray, cell: np.ndarray, cell_full: np.ndarray, cell_reduced: np.ndarray
+) -> TestResult:
+    """:func:`ols_term_f` for designs whose rows are constant within cells, from the cells.
+
+    ``cell`` codes the rows ``0..C-1``; row ``c`` of ``cell_full`` and
+    ``cell_reduced`` is the design row of every observation in cell ``c`` (for
+    example dummies of a block and of the treatment cells, collapsed to the
+    block x treatment cells). The result equals ``ols_term_f(y,
+    cell_full[cell], cell_reduced[cell])`` without forming the n-row
+    matrices: the residual sum of squares of a design constant within cells
+    splits as ``sum_i (y_i - ybar_c(i))^2 + sum_c n_c (ybar_c - x_c'b)^2``, the
+    first part (computed from deviations, one pass) fixed, the second a
+    least-squares fit of the cell means weighted by the cell sizes. Ranks and
+    nesting are those of the distinct rows, which span the same row space.
+    """
+    arr = _as_response(y)
+    n = arr.shape[0]
+    codes = np.asarray(cell)
+    if codes.ndim != 1 or codes.shape[0] != n or not np.issubdtype(codes.dtype, np.integer):
+        raise DesignError(f"cell codes must be one-dimensional integers with {n} entries")
+    xf = np.asarray(cell_full, dtype=float)
+    xr = np.asarray(cell_reduced, dtype=float)
+    k = xf.shape[0] if xf.ndim == 2 else -1
+    for name, mat in (("full", xf), ("reduced", xr)):
+        if mat.ndim != 2 or mat.shape[0] != k:
+            raise DesignError(f"{name} design matrix must be 2-D with one row per cell")
+        if not np.all(np.isfinite(mat)):
+            raise DesignError(f"{name} design matrix contains non-finite values")
+    if n and (int(codes.min()) < 0 or int(codes.max()) >= k):
+        raise DesignError(f"cell codes must lie in 0..{k - 1}")
+    sizes = np.bincount(codes, minlength=k).astype(float)
+    if np.any(sizes == 0):
+        raise DesignError("every cell must hold at least one row")
+    means = np.bincount(codes, weights=arr, minlength=k) / sizes
+    dev = arr - means[codes]
+    ss_within = float(dev @ dev)
+    root = np.sqrt(sizes)
+    rss_f, rank_f, _ = _rss_and_rank(root * means, root[:, None] * xf)
+    rss_r, rank_r, _ = _rss_and_rank(root * means, root[:, None] * xr)
+    full = (rss_f + ss_within, rank_f)
+    reduced = (rss_r + ss_within, rank_r)
+    return _extra_sum_f(xf, xr, n, full, reduced)
 
 
 def pearson_chi2(y: np.ndarray, group: np.ndarray) -> TestResult:

@@ -123,18 +123,16 @@ def response_kind(y: np.ndarray) -> ResponseKind:
         raise DesignError(f"response must be numeric, got dtype {arr.dtype}") from exc
     if not np.all(np.isfinite(vals)):
         raise DesignError("response contains missing or non-finite values")
-    distinct = np.unique(vals)
-    if distinct.size < 2:
+    # min, max and equality tests instead of the sorted distinct values (one pass each)
+    lowest, highest = float(vals.min()), float(vals.max())
+    if lowest == highest:
         raise DesignError("response has the same value in every row; nothing to test")
-    if distinct.size == 2 and distinct[0] == 0.0 and distinct[1] == 1.0:
+    if lowest == 0.0 and highest == 1.0 and bool(np.all((vals == 0.0) | (vals == 1.0))):
         return "binary"
     integer = bool(np.all(vals == np.round(vals)))
-    if (
-        integer
-        and distinct[0] >= 0.0
-        and distinct.size >= 3
-        and float(vals.mean()) <= COUNT_MEAN_LIMIT
-    ):
+    # three or more distinct values: not two (binary has been ruled out above for 0/1)
+    several = not bool(np.all((vals == lowest) | (vals == highest)))
+    if integer and lowest >= 0.0 and several and float(vals.mean()) <= COUNT_MEAN_LIMIT:
         return "count"
     return "continuous"
 

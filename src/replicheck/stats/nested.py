@@ -136,7 +136,7 @@ _MULTI_START_GROUPS = 20_000  # groups (all levels) up to which three starts are
 _NEWTON_STOP = 1e-10
 # exceptions that mark a point where the criterion cannot be evaluated
 _FAILURES: tuple[type[Exception], ...] = (np.linalg.LinAlgError, DesignError, FloatingPointError)
-_ROW_BLOCK = 1 << 18  # rows per block when accumulating centred cross-products
+_ROW_BLOCK = 1 << 14  # rows per block when accumulating centred cross-products
 
 
 # ---------------------------------------------------------------------------
@@ -274,20 +274,24 @@ def summarise(
     inner = codes[-1]
     g_inner = sizes[-1]
     counts = np.bincount(inner, minlength=g_inner).astype(np.int64)
+    columns = [np.ascontiguousarray(xx[:, j]) for j in range(p)] + [yy]
     sums = np.empty((g_inner, p + 1))
-    for j in range(p):
-        sums[:, j] = np.bincount(inner, weights=xx[:, j], minlength=g_inner)
-    sums[:, p] = np.bincount(inner, weights=yy, minlength=g_inner)
+    for j, col in enumerate(columns):
+        sums[:, j] = np.bincount(inner, weights=col, minlength=g_inner)
     with np.errstate(invalid="ignore", divide="ignore"):
         means = sums / counts[:, None]
+    # second sweep: deviations from the group means, a block of rows at a time
+    # (blocks small enough to stay in cache), one column at a time
+    mean_cols = [np.ascontiguousarray(means[:, j]) for j in range(p + 1)]
     within = np.zeros((p + 1, p + 1))
+    dev = np.empty((p + 1, min(n, _ROW_BLOCK)))
     for start in range(0, n, _ROW_BLOCK):
-        rows = slice(start, min(n, start + _ROW_BLOCK))
-        mu = means[inner[rows]]
-        dev = np.empty((mu.shape[0], p + 1))
-        np.subtract(xx[rows], mu[:, :p], out=dev[:, :p])
-        np.subtract(yy[rows], mu[:, p], out=dev[:, p])
-        within += dev.T @ dev
+        stop = min(n, start + _ROW_BLOCK)
+        idx = inner[start:stop]
+        block = dev[:, : stop - start]
+        for j, col in enumerate(columns):
+            np.subtract(col[start:stop], mean_cols[j].take(idx), out=block[j])
+        within += block @ block.T
     within = 0.5 * (within + within.T)
     return NestedSummaries(
         n=n,

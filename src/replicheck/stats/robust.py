@@ -17,13 +17,46 @@ Two corrections for few clusters, both at the level of the experimental unit
   with Rademacher or Webb (2013, Queen's Economics Department Working Paper
   1315) six-point weights, all draws computed at once with matrix products.
 
-Notation: ``X = QR`` (thin QR), ``M = (X'X)^-1 = R^-1 R^-T``; ``Q_g`` are the
-rows of ``Q`` in cluster ``g`` and ``K_g = Q_g'Q_g`` (the cluster's share of
-the identity, ``sum_g K_g = I``). The leverage block ``H_gg = X_g M X_g'`` is
-``Q_g Q_g'``, whose non-zero eigenvalues are those of ``K_g``; so the CR2
-adjustment ``A_g = (I - H_gg)^(-1/2)`` acts on ``Q_g`` as
-``A_g Q_g = Q_g phi(K_g)`` with ``phi(l) = (1 - l)^(-1/2)``, and everything
-below costs O(n p^2) whatever the cluster sizes.
+Notation: ``R`` is the upper-triangular factor of ``X'X = R'R`` (QR's ``R``
+up to the signs of its rows), ``M = (X'X)^-1 = R^-1 R^-T`` and ``Q = X R^-1``
+(orthonormal columns); ``Q_g`` are the rows of ``Q`` in cluster ``g`` and
+``K_g = Q_g'Q_g`` (the cluster's share of the identity, ``sum_g K_g = I``).
+The leverage block ``H_gg = X_g M X_g'`` is ``Q_g Q_g'``, whose non-zero
+eigenvalues are those of ``K_g``; so the CR2 adjustment
+``A_g = (I - H_gg)^(-1/2)`` acts on ``Q_g`` as ``A_g Q_g = Q_g phi(K_g)`` with
+``phi(l) = (1 - l)^(-1/2)``.
+
+Per-cluster sums. Both tests see the rows only through per-cluster summaries:
+with ``S_g = X_g'X_g`` and ``s_g = X_g'y_g``, ``X'X = sum_g S_g``,
+``K_g = R^-T S_g R^-1`` and the residual scores are
+``Q_g'e_g = R^-T (s_g - S_g beta)`` (the restricted fit's likewise with its
+coefficients). The clusters are numbered in increasing order of the given
+codes (one ``numpy.bincount`` of the codes, or ``pandas.factorize(sort=True)``
+for negative or very large codes; the rows are never sorted), and the sums
+come from one weighted ``numpy.bincount`` per entry of the upper triangle of
+``X'X`` and of ``X'y``. Everything else is done on the ``G`` clusters: the
+cost is O(n p^2) for the sums plus O(G p^3), whatever the cluster sizes.
+
+Change of basis. Forming ``X'X`` squares the condition number of ``X``, so
+the sums are taken in a well-conditioned basis ``Z = X T``: when ``X`` has a
+constant column the other columns are centred on their means, every column is
+scaled to unit length, and the result is multiplied by the inverse Cholesky
+factor of its own (equilibrated) Gram matrix, so that ``Z'Z`` is close to the
+identity before the per-cluster sums are formed (the "CholeskyQR2" scheme,
+accurate like a Householder QR while the condition number of the equilibrated
+``X`` is below about 1e8: Yamamoto, Nakatsukasa, Yanagisawa & Fukaya 2015,
+Electron. Trans. Numer. Anal. 44:306-326). Fitted values, residuals, the hat
+blocks ``H_gg`` and ``L beta`` are unchanged when ``X`` becomes ``X T`` and
+``L`` becomes ``L T``, and so is every CR2 and bootstrap quantity. ``y`` enters
+as the residuals ``e0`` of a first fit in that basis (``s_g = Z_g'e0_g``), so
+that ``s_g - S_g delta`` only carries a small correction ``delta``. The
+constant column of ``Z`` (put first) needs no products: its sums are its
+level times the cluster sizes or times the sums of the other columns. With
+several contrasts the statistics are unchanged by ``L -> A L`` (``A``
+invertible), and the rows of ``L R^-1`` are replaced by an orthonormal basis
+of their span, so that an ill-conditioned ``L M L'`` costs no accuracy. The
+design is refused as rank-deficient when the smallest eigenvalue of the
+equilibrated Gram matrix is at or below ``1e-12`` of the largest.
 """
 
 from __future__ import annotations
@@ -31,6 +64,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 from scipy import stats
 
 from replicheck.stats.classic import DesignError
@@ -55,8 +89,15 @@ _EIG_TOL = 1e-12
 # A contrast whose working-model expectation of the CR2 variance is below this share
 # of its model-based variance is not estimable from between-cluster variation.
 _LOST_TOL = 1e-8
+# The design is refused as rank-deficient when the smallest eigenvalue of its
+# equilibrated (centred, unit-length columns) Gram matrix is at or below this share
+# of the largest: some combination of the standardised columns is below about 1e-6
+# of their length. Exactly collinear designs give shares of 1e-15 or less from
+# rounding; above this one the first Cholesky factor is accurate enough for the
+# second step to restore full accuracy.
+_RANK_TOL = 1e-12
 _TIE_TOL = 1e-9  # relative tolerance when comparing bootstrap statistics to the observed one
-_CHUNK = 4_000_000  # bootstrap values (clusters x contrasts x draws) held at once
+_CHUNK = 262_144  # bootstrap values (draws x clusters x contrasts) held at once
 
 
 @dataclass(frozen=True)
@@ -104,23 +145,100 @@ class BootstrapTest:
 
 @dataclass(frozen=True)
 class _Fit:
-    """OLS fit by thin QR, rows sorted by cluster."""
+    """Per-cluster summaries of an OLS fit (see the module docstring)."""
 
-    y: np.ndarray  # (n,) sorted by cluster
-    q_mat: np.ndarray  # (n, p) Q of X = QR, sorted rows
-    r_mat: np.ndarray  # (p, p) upper triangular R
-    starts: np.ndarray  # (G,) first sorted row of each cluster
-    beta: np.ndarray  # (p,)
-    resid: np.ndarray  # (n,) sorted
-    lr: np.ndarray  # (q, p) L R^-1
-    estimate: np.ndarray  # (q,) L beta
+    grams: np.ndarray  # (G, p, p) K_g = Q_g'Q_g
+    qe: np.ndarray  # (G, p) Q_g'e_g, unrestricted residuals
+    lr: np.ndarray  # (q, p) L R^-1 (q > 1: orthonormal rows spanning the same space)
+    estimate: np.ndarray  # (q,) L beta, for the L of ``lr``
     n: int
     p: int
     n_clusters: int
 
 
+def _cluster_numbers(cl: np.ndarray) -> tuple[np.ndarray, int]:
+    """Cluster numbers ``0..G-1`` in increasing order of the given codes, and ``G``.
+
+    Non-negative codes of moderate size are numbered with one ``bincount``;
+    others with ``pandas.factorize(sort=True)``. Neither sorts the rows.
+    """
+    n = cl.shape[0]
+    if n == 0:
+        return np.zeros(0, dtype=np.intp), 0
+    low, high = int(cl.min()), int(cl.max())
+    if low >= 0 and high <= 2 * n + 1024:
+        present = np.bincount(cl.astype(np.intp, copy=False), minlength=high + 1) > 0
+        number = np.cumsum(present) - 1
+        return number[cl], int(number[-1]) + 1
+    codes, uniques = pd.factorize(cl, sort=True)
+    return np.asarray(codes, dtype=np.intp), len(uniques)
+
+
+def _rank_deficient() -> DesignError:
+    return DesignError("design matrix is not of full column rank")
+
+
+def _inv_upper(upper: np.ndarray) -> np.ndarray:
+    """Inverse of a small upper-triangular matrix (LU does no row exchanges here)."""
+    return np.triu(np.linalg.inv(upper))
+
+
+def _basis(xt: np.ndarray) -> tuple[np.ndarray, np.ndarray, float | None]:
+    """A well-conditioned basis of the columns of ``X``: ``(Z', T, level)``, ``Z = X T``.
+
+    ``xt`` is ``X'`` (p, n). When ``X`` has a constant column, ``T`` centres
+    the other columns on their means and puts the constant first, so that the
+    first column of ``Z`` is the constant ``level`` (``None`` otherwise). ``T``
+    also scales every column to unit length and multiplies by the inverse
+    Cholesky factor of the resulting Gram matrix, so that ``Z'Z`` is close to
+    the identity. ``Z'`` is returned as a (p, n) C-ordered array.
+
+    Raises :class:`DesignError` for a column of zeros, two constant columns, or
+    when the smallest eigenvalue of the equilibrated Gram matrix is at or below
+    ``_RANK_TOL`` of the largest.
+    """
+    p = xt.shape[0]
+    high, low = xt.max(axis=1), xt.min(axis=1)
+    flat = high == low
+    if np.any(flat & (high == 0.0)) or np.count_nonzero(flat) > 1:
+        raise _rank_deficient()
+    order = np.arange(p)
+    shift = np.eye(p)
+    if flat.any():
+        c = int(np.flatnonzero(flat)[0])
+        means = xt.mean(axis=1)
+        means[c] = 0.0
+        scaled = xt - means[:, None]  # row c is untouched
+        shift[c, :] -= means / high[c]  # X shift is centred, as column c is high[c] * 1
+        order = np.concatenate([[c], np.delete(order, c)])
+        high, low = high - means, low - means
+    else:
+        scaled = xt.copy()
+    amax = np.maximum(high, -low)  # largest absolute value (near enough when centred)
+    scaled *= (1.0 / amax)[:, None]
+    gram = scaled @ scaled.T
+    length = np.sqrt(np.diag(gram))
+    equil = (gram / np.outer(length, length))[np.ix_(order, order)]
+    eig = np.linalg.eigvalsh(equil)
+    if not eig[0] > _RANK_TOL * eig[-1]:
+        raise _rank_deficient()
+    try:
+        upper = np.linalg.cholesky(equil).T  # equil = upper'upper (columns in ``order``)
+    except np.linalg.LinAlgError:
+        raise _rank_deficient() from None
+    # Z = scaled' P D^-1 upper^-1, P selecting the columns in ``order``, D = diag(length)
+    mix = np.zeros((p, p))
+    mix[order, :] = _inv_upper(upper) / length[order][:, None]
+    zt = mix.T @ scaled
+    level = None
+    if flat.any():
+        level = float(mix[order[0], 0] * scaled[order[0], 0])
+        zt[0] = level  # exactly constant: mix[:, 0] is zero but for the constant column
+    return zt, shift @ (mix / amax[:, None]), level
+
+
 def _prepare(y: np.ndarray, x: np.ndarray, cluster: np.ndarray, contrast: np.ndarray) -> _Fit:
-    """Validate the inputs, fit OLS and sort the rows by cluster code."""
+    """Validate the inputs and reduce the OLS fit to per-cluster summaries."""
     yy = np.asarray(y, dtype=float)
     if yy.ndim != 1:
         raise DesignError(f"response must be one-dimensional, got shape {yy.shape}")
@@ -147,36 +265,52 @@ def _prepare(y: np.ndarray, x: np.ndarray, cluster: np.ndarray, contrast: np.nda
         raise DesignError("response, design matrix or hypothesis matrix has non-finite values")
     if np.linalg.matrix_rank(ll) < ll.shape[0]:
         raise DesignError("hypothesis matrix rows are linearly dependent")
-    _, codes = np.unique(cl, return_inverse=True)
-    codes = codes.reshape(-1)
-    n_clusters = int(codes.max()) + 1 if n else 0
+    codes, n_clusters = _cluster_numbers(cl)
     if n_clusters < 2:
         raise DesignError(f"cluster-robust tests need at least 2 clusters, found {n_clusters}")
     if n <= p:
         raise DesignError(f"{n} observations cannot fit {p} coefficients with residual df")
-    order = np.argsort(codes, kind="stable")
-    ys, xs = yy[order], xx[order]
-    starts = np.searchsorted(codes[order], np.arange(n_clusters))
-    q_mat, r_mat = np.linalg.qr(xs)
-    if np.linalg.matrix_rank(r_mat) < p:
-        raise DesignError("design matrix is not of full column rank")
-    qty = q_mat.T @ ys
-    beta = np.linalg.solve(r_mat, qty)
-    resid = ys - q_mat @ qty
-    # L R^-1 = (R^-T L')'
-    lr = np.linalg.solve(r_mat.T, ll.T).T
-    return _Fit(ys, q_mat, r_mat, starts, beta, resid, lr, ll @ beta, n, p, n_clusters)
+    zt, basis, level = _basis(np.ascontiguousarray(xx.T))
+    # a first fit (Z'Z is close to I) and its residuals; the exact fit adds ``delta``
+    start = zt @ yy
+    resid0 = yy - start @ zt
 
+    def per_cluster(values: np.ndarray | None) -> np.ndarray:
+        return np.bincount(codes, weights=values, minlength=n_clusters).astype(float)
 
-def _cluster_sums(values: np.ndarray, starts: np.ndarray) -> np.ndarray:
-    """Sums of the sorted rows of ``values`` over each cluster (first axis)."""
-    return np.add.reduceat(values, starts, axis=0)
+    def times(i: int, values: np.ndarray) -> np.ndarray:
+        """Per-cluster sums of ``Z_i * values`` (one product fewer for the constant)."""
+        if i == 0 and level is not None:
+            return level * per_cluster(values)
+        return per_cluster(zt[i] * values)
 
-
-def _cluster_grams(fit: _Fit) -> np.ndarray:
-    """``K_g = Q_g'Q_g`` for every cluster, shape (G, p, p)."""
-    outer = fit.q_mat[:, :, None] * fit.q_mat[:, None, :]
-    return _cluster_sums(outer, fit.starts)
+    sums = np.empty((n_clusters, p, p))  # S_g = Z_g'Z_g
+    for j in range(p):
+        if j == 0 and level is not None:
+            sums[:, 0, 0] = level * level * per_cluster(None)
+        else:
+            sums[:, 0, j] = sums[:, j, 0] = times(0, zt[j])
+        for i in range(1, j + 1):
+            sums[:, i, j] = sums[:, j, i] = per_cluster(zt[i] * zt[j])
+    scores0 = np.column_stack([times(i, resid0) for i in range(p)])  # Z_g'e0_g
+    total = sums.sum(axis=0)
+    try:
+        upper = np.linalg.cholesky(total).T  # R of Z'Z = R'R
+    except np.linalg.LinAlgError:
+        raise _rank_deficient() from None
+    inv_r = _inv_upper(upper)  # R^-1
+    delta = inv_r @ (inv_r.T @ scores0.sum(axis=0))  # (Z'Z)^-1 Z'e0
+    qe = (scores0 - sums @ delta) @ inv_r  # rows (R^-T Z_g'e_g)'
+    grams = inv_r.T @ sums @ inv_r
+    beta_z = start + delta
+    lr = ll @ basis @ inv_r  # L T R^-1, as L beta = (L T) beta_Z
+    if lr.shape[0] == 1:
+        return _Fit(grams, qe, lr, lr @ (upper @ beta_z), n, p, n_clusters)
+    # Several contrasts: every statistic is unchanged by L -> A L (A invertible), so test
+    # the equivalent hypothesis with orthonormal rows of L R^-1 (L M L' = I), whose
+    # estimate U'(R beta_Z) does not suffer from an ill-conditioned L M L'.
+    orth = np.linalg.qr(lr.T)[0].T
+    return _Fit(grams, qe, orth, orth @ (upper @ beta_z), n, p, n_clusters)
 
 
 def _inv_sqrt(values: np.ndarray) -> np.ndarray:
@@ -260,7 +394,7 @@ def cr2_test(y: np.ndarray, X: np.ndarray, cluster: np.ndarray, L: np.ndarray) -
     """
     fit = _prepare(y, X, cluster, L)
     q = fit.lr.shape[0]
-    grams = _cluster_grams(fit)
+    grams = fit.grams
     lam, vecs = np.linalg.eigh(grams)  # (G, p), (G, p, p)
     one_minus = 1.0 - lam
     phi = _inv_sqrt(one_minus)
@@ -270,7 +404,7 @@ def cr2_test(y: np.ndarray, X: np.ndarray, cluster: np.ndarray, L: np.ndarray) -
         return _through(vecs, weights)
 
     # v_g = phi(K_g) Q_g' e_g;  L V L' = sum_g (L R^-1 v_g)(L R^-1 v_g)'
-    qe = _cluster_sums(fit.q_mat * fit.resid[:, None], fit.starts)  # (G, p)
+    qe = fit.qe  # (G, p)
     v = np.einsum("gab,gb->ga", through(phi), qe)
     scores = v @ fit.lr.T  # (G, q)
     lvl = scores.T @ scores
@@ -286,7 +420,12 @@ def cr2_test(y: np.ndarray, X: np.ndarray, cluster: np.ndarray, L: np.ndarray) -
     lw = whiten @ fit.lr  # (q, p)
     d_mats = np.einsum("ap,gpr,br->gab", lw, through(phi**2 * lam), lw)  # (G, q, q)
     h_mats = np.einsum("ap,gpr->gar", lw, through(phi * lam))  # (G, q, p)
-    eta = q * (q + 1) / _htz_total_variance(d_mats, h_mats)
+    total_variance = _htz_total_variance(d_mats, h_mats)
+    if not (np.isfinite(total_variance) and total_variance > 0.0):
+        raise DesignError(
+            "the CR2 degrees of freedom cannot be computed: the values are too extreme"
+        )
+    eta = q * (q + 1) / total_variance
     est = fit.estimate
     try:
         chol = np.linalg.cholesky(lvl)
@@ -364,17 +503,27 @@ def draw_weights(kind: str, n_clusters: int, draws: int, rng: np.random.Generato
     ``+-1``, ``+-sqrt(3/2)`` with probability 1/6 each (mean 0, variance 1).
     Each row holds the weights of the clusters in increasing code order.
     """
+    points, picks = _draw_picks(kind, n_clusters, draws, rng)
+    return points[picks]
+
+
+_RADEMACHER_POINTS = np.array([-1.0, 1.0])
+
+
+def _draw_picks(
+    kind: str, n_clusters: int, draws: int, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray]:
+    """The support of the weights and, per draw and cluster, the index of the point drawn."""
     if kind == "rademacher":
-        return rng.integers(0, 2, size=(draws, n_clusters)).astype(float) * 2.0 - 1.0
+        return _RADEMACHER_POINTS, rng.integers(0, 2, size=(draws, n_clusters))
     if kind == "webb":
-        return WEBB_POINTS[rng.integers(0, 6, size=(draws, n_clusters))]
+        return WEBB_POINTS, rng.integers(0, 6, size=(draws, n_clusters))
     raise DesignError(f"unknown bootstrap weights {kind!r}: use 'rademacher' or 'webb'")
 
 
 def _all_signs(n_clusters: int) -> np.ndarray:
-    """Every Rademacher sign vector, shape (2**G, G)."""
-    bits = (np.arange(2**n_clusters)[:, None] >> np.arange(n_clusters)[None, :]) & 1
-    return bits.astype(float) * 2.0 - 1.0
+    """Every Rademacher sign vector as picks of ``(-1, 1)``, shape (2**G, G)."""
+    return (np.arange(2**n_clusters)[:, None] >> np.arange(n_clusters)[None, :]) & 1
 
 
 def _wald_per_draw(numer: np.ndarray, meat: np.ndarray) -> np.ndarray:
@@ -448,13 +597,12 @@ def wild_cluster_bootstrap(
     fit = _prepare(y, X, cluster, L)
     n_cl, q = fit.n_clusters, fit.lr.shape[0]
     kappa = n_cl / (n_cl - 1.0) * (fit.n - 1.0) / (fit.n - fit.p)
-    grams = _cluster_grams(fit)
+    grams = fit.grams
     _check_estimable(fit, _omega(fit, grams))
     lrk = np.einsum("ap,gpr->gar", fit.lr, grams)  # (G, q, p): L R^-1 K_g
 
     # observed statistic, unrestricted residuals
-    qe = _cluster_sums(fit.q_mat * fit.resid[:, None], fit.starts)  # (G, p)
-    obs_scores = qe @ fit.lr.T  # (G, q)
+    obs_scores = fit.qe @ fit.lr.T  # (G, q)
     obs_meat = kappa * (obs_scores.T @ obs_scores)
     try:
         np.linalg.cholesky(obs_meat)
@@ -468,10 +616,9 @@ def wild_cluster_bootstrap(
             "the cluster-robust variance of the tested contrast is zero (too few clusters)"
         )
 
-    # restricted residuals: e_r = e + Q Lr' (Lr Lr')^-1 L b
+    # restricted residuals: e_r = e + Q Lr' (Lr Lr')^-1 L b, so Q_g'e_r,g = Q_g'e_g + K_g shift
     shift = fit.lr.T @ np.linalg.solve(fit.lr @ fit.lr.T, fit.estimate)
-    resid_r = fit.resid + fit.q_mat @ shift
-    a = _cluster_sums(fit.q_mat * resid_r[:, None], fit.starts)  # (G, p)
+    a = fit.qe + grams @ shift  # (G, p)
     c = a @ fit.lr.T  # (G, q)
 
     kind = weights
@@ -479,22 +626,26 @@ def wild_cluster_bootstrap(
         kind = "webb" if n_cl < WEBB_BELOW else "rademacher"
     enumerated = kind == "rademacher" and n_cl < 63 and 2**n_cl <= draws
     if enumerated:
-        wmat = _all_signs(n_cl)
+        points, picks = _RADEMACHER_POINTS, _all_signs(n_cl)
         used_seed: int | None = None
     else:
-        wmat = draw_weights(kind, n_cl, draws, np.random.default_rng(seed))
+        points, picks = _draw_picks(kind, n_cl, draws, np.random.default_rng(seed))
         used_seed = seed
-    n_draws = wmat.shape[0]
+    n_draws = picks.shape[0]
 
     threshold = observed * (1.0 - _TIE_TOL)
     hits = 0
+    lrk_rows = lrk.reshape(n_cl * q, fit.p)  # row (g, s): (L R^-1 K_g)[s]
     chunk = max(1, _CHUNK // max(1, n_cl * q))
     for lo in range(0, n_draws, chunk):
-        w = wmat[lo : lo + chunk]  # (b, G)
+        w = np.take(points, picks[lo : lo + chunk])  # (b, G)
         aw = w @ a  # (b, p): sum_h w_h a_h
         numer = w @ c  # (b, q)
-        scores = c[None, :, :] * w[:, :, None] - np.einsum("gqp,bp->bgq", lrk, aw)
-        meat = kappa * np.einsum("bgq,bgr->bqr", scores, scores)
+        scores = w[:, :, None] * c[None, :, :] - (aw @ lrk_rows.T).reshape(-1, n_cl, q)
+        if q == 1:
+            meat = kappa * np.einsum("bg,bg->b", scores[:, :, 0], scores[:, :, 0])[:, None, None]
+        else:
+            meat = kappa * np.einsum("bgq,bgr->bqr", scores, scores)
         hits += int(np.sum(_wald_per_draw(numer, meat) >= threshold))
     p_value = hits / n_draws if enumerated else (1 + hits) / (1 + n_draws)
     return BootstrapTest(

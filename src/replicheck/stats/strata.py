@@ -86,7 +86,7 @@ from scipy import sparse, stats
 from scipy.sparse.csgraph import connected_components
 
 from replicheck.errors import InputError
-from replicheck.partitions import first_seen_codes
+from replicheck.partitions import dense_codes, first_seen_codes
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -179,6 +179,12 @@ class _Factor:
         """The transposed indicator matrix (levels x rows), sparse."""
         n = self.codes.size
         return sparse.csr_matrix((np.ones(n), (self.codes, np.arange(n))), shape=(self.levels, n))
+
+
+def _equally_replicated(codes: np.ndarray) -> bool:
+    """Whether every class of a factor has the same number of rows (one hashing pass)."""
+    counts = np.bincount(dense_codes(codes))
+    return bool(np.all(counts == counts[0]))
 
 
 def _canonical(codes: np.ndarray) -> np.ndarray:
@@ -557,6 +563,8 @@ def is_balanced_orthogonal(
         n = int(first.shape[0]) if first.ndim >= 1 else 0
     if n < 2:
         raise InputError("at least two rows are needed")
+    if not all(_equally_replicated(codes) for _, codes in given):
+        return False  # condition 2 fails already for a given factor
     structure = _build_structure(n, [_factor(name, codes) for name, codes in given])
     if not (structure.orthogonal and structure.balanced):
         return False

@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.codebook import column_codes, combined_codes
 from replicheck.structure.alignment import alignment
 
 # Common practice (no published threshold): at most 5% of the rows, and at
@@ -59,28 +60,17 @@ class Relation:
 
 def codes_of(values: pd.Series) -> tuple[np.ndarray, list[str]]:
     """Integer codes 0..k-1 and level labels of a column (missing -> -1)."""
-    codes, uniques = pd.factorize(values, sort=True)
-    return codes.astype(np.int64), [str(u) for u in uniques]
+    cc = column_codes(values)
+    return cc.codes, [str(u) for u in cc.uniques]
 
 
 def group_codes(data: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
     """Codes 0..k-1 of the observed combinations of several columns (vectorised).
 
-    A row missing any of the columns gets -1.
+    A row missing any of the columns gets -1. The codes are read-only (shared
+    within an audit, :mod:`replicheck.codebook`).
     """
-    combined = np.zeros(len(data), dtype=np.int64)
-    missing = np.zeros(len(data), dtype=bool)
-    for col in columns:
-        codes, uniques = pd.factorize(data[col], sort=True)
-        missing |= codes < 0
-        combined = combined * (len(uniques) + 1) + codes
-        combined, _ = pd.factorize(combined, sort=True)
-    combined = combined.astype(np.int64)
-    if missing.any():
-        combined[missing] = -1
-        kept = combined >= 0
-        combined[kept] = pd.factorize(combined[kept], sort=True)[0]
-    return combined
+    return combined_codes([data[c] for c in columns])
 
 
 def contingency(col: np.ndarray, trt: np.ndarray) -> Contingency:
@@ -97,9 +87,20 @@ def contingency(col: np.ndarray, trt: np.ndarray) -> Contingency:
 def _majority_exceptions(inner: np.ndarray, outer: np.ndarray) -> np.ndarray:
     """Rows whose ``outer`` code is not the majority ``outer`` code of their ``inner`` level."""
     k_o = int(outer.max()) + 1
-    counts = np.zeros((int(inner.max()) + 1, k_o), dtype=np.int64)
-    np.add.at(counts, (inner, outer), 1)
-    majority = counts.argmax(axis=1)
+    k_i = int(inner.max()) + 1
+    pair = inner.astype(np.int64) * k_o + outer
+    if k_i * k_o <= 4 * pair.size + 1024:
+        counts = np.bincount(pair, minlength=k_i * k_o).reshape(k_i, k_o)
+        majority = counts.argmax(axis=1)
+    else:  # too many combinations for a table: count the pairs that occur
+        codes, seen = pd.factorize(pair)
+        n_pair = np.bincount(codes)
+        p_in, p_out = seen // k_o, seen % k_o
+        # per inner level the most frequent outer level, the smallest among ties
+        order = np.lexsort((p_out, -n_pair, p_in))
+        lead = order[np.concatenate([[True], p_in[order][1:] != p_in[order][:-1]])]
+        majority = np.zeros(k_i, dtype=np.int64)
+        majority[p_in[lead]] = p_out[lead]
     return np.flatnonzero(outer != majority[inner])
 
 
@@ -115,7 +116,7 @@ def classify(
     of exceptions.
     """
     ok = col_values.notna() & trt_values.notna()
-    cv, tv = col_values[ok], trt_values[ok]
+    cv, tv = (col_values, trt_values) if ok.all() else (col_values[ok], trt_values[ok])
     col, _ = codes_of(cv)
     trt, t_labels = codes_of(tv)
     ct = contingency(col, trt)

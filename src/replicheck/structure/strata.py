@@ -27,8 +27,8 @@ from itertools import combinations
 import numpy as np
 import pandas as pd
 
-from replicheck.partitions import is_nested
-from replicheck.stats.classic import DesignError, ols_term_f
+from replicheck.partitions import dense_codes, is_nested, pair_codes
+from replicheck.stats.classic import DesignError, cell_term_f
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import classify, group_codes
 
@@ -110,15 +110,30 @@ def cell_evidence(
     combined = np.zeros(y.size, dtype=np.int64)
     for t in kept:
         combined = combined * (int(t.max()) + 1) + t
-    treatment_cells = np.unique(combined, return_inverse=True)[1]
+    treatment_cells = dense_codes(combined)
+    # every column of both models is constant within the cells x treatment cells
+    # (the block and the containers hold whole cells): fit on those
+    cell, one = _collapse(pair_codes(dense_codes(cells), treatment_cells))
     reduced = np.hstack(
-        [_dummies(block), _dummies(treatment_cells), *(_dummies(c) for c in containers)]
+        [
+            _dummies(dense_codes(block[one])),
+            _dummies(dense_codes(treatment_cells[one])),
+            *(_dummies(dense_codes(c[one])) for c in containers),
+        ]
     )
-    full = np.hstack([reduced, _dummies(cells)])
+    full = np.hstack([reduced, _dummies(dense_codes(cells[one]))])
     try:
-        return float(ols_term_f(y, full, reduced).p_value)
+        return float(cell_term_f(y, cell, full, reduced).p_value)
     except DesignError:
         return None
+
+
+def _collapse(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Codes ``0..C-1`` of the distinct values of ``codes`` and one row of each."""
+    cell = dense_codes(codes)
+    one = np.empty(int(cell.max()) + 1 if cell.size else 0, dtype=np.int64)
+    one[cell] = np.arange(cell.size)
+    return cell, one
 
 
 def crossed_cells(
@@ -210,10 +225,12 @@ def block_evidence(y: np.ndarray, block: np.ndarray, treatment_cells: np.ndarray
     """p-value of a crossed grouping beyond the full treatment model (OLS F test)."""
     if int(block.max()) + 1 > MAX_CELLS:
         return None
-    reduced = _dummies(treatment_cells)
-    full = np.hstack([reduced, _dummies(block)])
+    # both models are constant within the block x treatment cells: fit on those
+    cell, one = _collapse(pair_codes(dense_codes(block), dense_codes(treatment_cells)))
+    reduced = _dummies(dense_codes(treatment_cells[one]))
+    full = np.hstack([reduced, _dummies(dense_codes(block[one]))])
     try:
-        return float(ols_term_f(y, full, reduced).p_value)
+        return float(cell_term_f(y, cell, full, reduced).p_value)
     except DesignError:
         return None
 

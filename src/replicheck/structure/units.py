@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 
 from replicheck.errors import InputError
-from replicheck.partitions import is_nested, same_partition
+from replicheck.partitions import is_nested, same_partition, units_per_level
 from replicheck.stats.clustering import anova_components
 from replicheck.structure.hidden.time import parse_times
 from replicheck.structure.names import NameHint, name_hint, tokens
@@ -660,11 +660,11 @@ def _blocks(
         source = tuple(derived.get(col, (col,)))
         codes = group_codes(data, (col,))
         hint = name_hint(source[-1])
-        p = block_evidence(y, codes, all_trt)
         if not hint.suggests_unit:
             continue  # an unnamed crossed column with an effect is more likely a covariate
         if col in local_cells and hint.kind in {"location", "container"}:
             continue  # its cells are the units: the labels restart within the treatment
+        p = block_evidence(y, codes, all_trt)
         reason = f"the name suggests a {hint.kind} ('{hint.word}')"
         if p is not None:
             reason += f"; rows differ between its levels beyond the treatment effects: p = {p:.2g}"
@@ -769,8 +769,7 @@ def _choose(data: pd.DataFrame, treatment: str, candidates: list[Candidate]) -> 
         unit_per_trt = np.ones(len(trt_labels), dtype=int)
     else:
         unit = _local_codes(data, (treatment, *best.columns))
-        pairs = np.unique(unit * len(trt_labels) + trt_codes)
-        unit_per_trt = np.bincount(pairs % len(trt_labels), minlength=len(trt_labels))
+        unit_per_trt = units_per_level(unit, trt_codes, len(trt_labels))
     single = tuple(trt_labels[i] for i in np.flatnonzero(unit_per_trt == 1))
     relation = best.relation
     if relation != "partial" and len(single) == len(trt_labels):

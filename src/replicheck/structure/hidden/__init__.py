@@ -16,6 +16,7 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 
+from replicheck.codebook import column_codes
 from replicheck.partitions import is_nested, same_partition
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
 from replicheck.structure.hidden.codes import scan_codes
@@ -29,10 +30,10 @@ __all__ = ["DerivedGrouping", "HiddenScan", "Signal", "derived_column", "scan_hi
 
 def _codes(series: pd.Series) -> np.ndarray | None:
     """Integer codes of a fully observed column, else None."""
-    if series.isna().any():
+    codes = column_codes(series).codes
+    if (codes < 0).any():
         return None
-    codes, _ = pd.factorize(series, sort=False)
-    return np.asarray(codes, dtype=np.int64)
+    return codes
 
 
 def _repeats(g: DerivedGrouping, known: Sequence[tuple[str, np.ndarray]]) -> bool:

@@ -65,6 +65,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.codebook import column_codes
 from replicheck.errors import InputError
 from replicheck.partitions import is_nested, same_partition
 from replicheck.structure.alignment import alignment
@@ -129,36 +130,50 @@ def _is_text(series: pd.Series) -> bool:
     )
 
 
-def _factorize(values: list[str | None]) -> tuple[np.ndarray, list[str]]:
-    codes, uniques = pd.factorize(pd.Series(values, dtype=object), sort=True)
+def _codes_of_labels(labels: list[str | None]) -> tuple[np.ndarray, list[str]]:
+    """Codes of some labels in the sorted order of the distinct ones (None -> -1)."""
+    codes, uniques = pd.factorize(pd.Series(labels, dtype=object), sort=True)
     return np.asarray(codes, dtype=np.int64), [str(u) for u in uniques]
 
 
 def _token_groupings(series: pd.Series, n_cells: int) -> list[_TokenGrouping]:
-    """Token positions and prefixes of an identifier-like text column (none if it is not one)."""
-    present = series.dropna().astype(str)
-    if present.empty or present.nunique() < max(MIN_DISTINCT, 2 * n_cells + 1):
+    """Token positions and prefixes of an identifier-like text column (none if it is not one).
+
+    Everything is decided on the column's distinct values, weighted by how many
+    rows hold each, and mapped back to the rows through the column's codes.
+    """
+    column = column_codes(series)
+    # distinct texts (values that print alike, such as 1 and "1", are one code)
+    text_codes, texts = _codes_of_labels([str(u) for u in column.uniques])
+    known = column.codes >= 0
+    row_text = np.where(known, text_codes[np.maximum(column.codes, 0)], -1)
+    weight = np.bincount(row_text[known], minlength=len(texts)).astype(float)
+    total = float(weight.sum())
+    if total == 0 or len(texts) < max(MIN_DISTINCT, 2 * n_cells + 1):
         return []
-    if present.str.contains(_DATE_OR_TIME).mean() >= SAME_LENGTH_SHARE:
+    dated = np.array([_DATE_OR_TIME.search(t) is not None for t in texts])
+    if float(weight[dated].sum()) / total >= SAME_LENGTH_SHARE:
         return []
-    split = {v: split_code(v) for v in present.unique()}
-    lengths = present.map(lambda v: len(split[v]))
-    m = int(lengths.mode().iloc[0])
-    if m < 2 or float((lengths == m).mean()) < SAME_LENGTH_SHARE:
+    split = [split_code(t) for t in texts]
+    lengths = np.array([len(toks) for toks in split])
+    by_length = np.bincount(lengths, weights=weight)
+    m = int(np.argmax(by_length))  # the most frequent length (the shortest among ties)
+    if m < 2 or float(by_length[m]) / total < SAME_LENGTH_SHARE:
         return []
-    known = series.notna().to_numpy()
-    rows: list[tuple[str, ...] | None] = [None] * len(series)
-    for i, value in enumerate(series.astype(object).to_numpy()):
-        if known[i]:
-            toks = split[str(value)]
-            rows[i] = toks if len(toks) == m else None
+    usual = [toks if len(toks) == m else None for toks in split]
+
+    def on_rows(labels: list[str | None]) -> tuple[np.ndarray, list[str]]:
+        codes, names = _codes_of_labels(labels)
+        return np.where(row_text >= 0, codes[np.maximum(row_text, 0)], -1), names
+
     out: list[_TokenGrouping] = []
     for i in range(m):
-        codes, labels = _factorize([r[i] if r is not None else None for r in rows])
+        codes, labels = on_rows([u[i] if u is not None else None for u in usual])
         out.append(_TokenGrouping(str(i + 1), i, False, codes, labels))
         if 0 < i < m - 1:
-            joined = ["-".join(r[: i + 1]) if r is not None else None for r in rows]
-            codes, labels = _factorize(joined)
+            codes, labels = on_rows(
+                ["-".join(u[: i + 1]) if u is not None else None for u in usual]
+            )
             out.append(_TokenGrouping(f"1..{i + 1}", i, True, codes, labels))
     return out
 
@@ -173,6 +188,9 @@ def _on_known(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _same(a: np.ndarray, b: np.ndarray) -> bool:
+    if a.size and int(a.min()) >= 0 and int(b.min()) >= 0:
+        # both known on every row (and coded 0..k-1): no renumbering needed
+        return same_partition(a, b)
     x, y = _on_known(a, b)
     return x.size > 0 and same_partition(x, y)
 

@@ -94,6 +94,7 @@ import pandas as pd
 from scipy.special import gammaln, logsumexp
 from scipy.stats import norm
 
+from replicheck.codebook import column_codes
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
@@ -440,7 +441,7 @@ def _resolve_order(frame: pd.DataFrame, order: str | None, skip: Sequence[str]) 
 
 
 def _codes(values: pd.Series | np.ndarray) -> np.ndarray:
-    return pd.factorize(np.asarray(values), sort=True)[0].astype(np.int64)
+    return dense_codes(np.asarray(values))
 
 
 def _combine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -466,7 +467,7 @@ def _recorded(
         if name in skip:
             continue
         if name not in cache:
-            cache[name] = pd.factorize(frame[column], sort=True)[0].astype(np.int64)
+            cache[name] = column_codes(frame[column]).codes
         along = cache[name][rows]
         if (along < 0).any():
             continue
@@ -503,26 +504,49 @@ def listing(recorded: Sequence[tuple[str, np.ndarray]]) -> list[Stretch]:
     chain: list[Stretch] = []
     # a column with more levels than half the rows cannot be part of a stretch
     left = [(name, codes) for name, codes in recorded if int(codes.max()) + 1 <= m / 2]
+    # Where each column changes between neighbouring rows. Crossing the current
+    # partition with columns changes wherever any of them does, so its number of
+    # runs costs no coding; a crossing is contiguous exactly when its number of
+    # levels equals its number of runs, and never has more levels than runs.
+    # Candidates are therefore coded in increasing order of runs (in column order
+    # among equals) and the first contiguous one is the one that refines least.
+    changes = [codes[1:] != codes[:-1] for _, codes in left]
+    moved = np.zeros(max(m - 1, 0), dtype=bool)
     while left:
         best: tuple[int, tuple[int, ...], np.ndarray] | None = None
+        single_runs: dict[int, int] = {}
         for width in (1, 2):
+            candidates: list[tuple[int, tuple[int, ...]]] = []
             for combo in itertools.combinations(range(len(left)), width):
+                if width == 2 and any(single_runs[i] > m / 2 for i in combo):
+                    continue  # crossing more columns never lowers the runs
+                step = moved.copy()
+                for i in combo:
+                    step |= changes[i]
+                runs = 1 + int(np.count_nonzero(step))
+                if width == 1:
+                    single_runs[combo[0]] = runs
+                if runs <= k_now or runs > m / 2:
+                    continue
+                candidates.append((runs, combo))
+            for runs, combo in sorted(candidates, key=lambda c: c[0]):
                 crossed = current
                 for i in combo:
                     crossed = _combine(crossed, left[i][1])
-                k = int(crossed.max()) + 1
-                if k <= k_now or k > m / 2 or count_runs(crossed) != k:
-                    continue
-                if best is None or k < best[0]:
-                    best = (k, combo, crossed)
+                if int(crossed.max()) + 1 == runs:
+                    best = (runs, combo, crossed)
+                    break
             if best is not None:
                 break
         if best is None:
             break
         k_now, combo, current = best
+        for i in combo:
+            moved |= changes[i]
         names.extend(left[i][0] for i in combo)
         chain.append(Stretch(" x ".join(names), current, k_now))
         left = [c for i, c in enumerate(left) if i not in combo]
+        changes = [c for i, c in enumerate(changes) if i not in combo]
     return chain
 
 
@@ -603,10 +627,10 @@ def _runs_of(
 ) -> tuple[list[Signal], np.ndarray | None, str, dict[str, float]]:
     """Signals of one treatment along the order, and its runs per row when they are derived."""
     pos = ordering.positions
-    rows = pos[frame[treatment].iloc[pos].notna().to_numpy()]
+    rows = pos[column_codes(frame[treatment]).codes[pos] >= 0]
     if rows.size < MIN_ITEMS:
         return [], None, "", {}
-    target = _codes(frame[treatment].iloc[rows])
+    target = _codes(column_codes(frame[treatment]).codes[rows])
     k = int(target.max()) + 1
     if k < 2:
         return [], None, "", {}
@@ -684,10 +708,11 @@ def _runs_of(
     return signals, codes, how, strength
 
 
-def _cell_codes(sub: pd.DataFrame, treatments: Sequence[str]) -> np.ndarray:
-    out = np.zeros(len(sub), dtype=np.int64)
+def _cell_codes(frame: pd.DataFrame, rows: np.ndarray, treatments: Sequence[str]) -> np.ndarray:
+    """Codes of the treatment cells along ``rows`` (where every treatment is recorded)."""
+    out = np.zeros(rows.size, dtype=np.int64)
     for t in treatments:
-        out = _combine(out, _codes(sub[t]))
+        out = _combine(out, _codes(column_codes(frame[t]).codes[rows]))
     return out
 
 
@@ -704,11 +729,11 @@ def _autocorrelation(
     y = pd.to_numeric(frame[response].iloc[pos], errors="coerce")
     keep = y.notna().to_numpy().copy()
     for t in treatments:
-        keep &= frame[t].iloc[pos].notna().to_numpy()
+        keep &= column_codes(frame[t]).codes[pos] >= 0
     rows = pos[keep]
     if rows.size < MIN_ITEMS:
         return None
-    cells = _cell_codes(frame.iloc[rows], treatments)
+    cells = _cell_codes(frame, rows, treatments)
     chain = listing(_recorded(frame, rows, _skip(response, ordering, exclude), cache))
     items = _items(cells, chain)
     item_codes = np.arange(rows.size) if items is None else items.codes

@@ -66,6 +66,7 @@ import pandas as pd
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 
+from replicheck.codebook import column_codes, remembered
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import same_partition
@@ -172,7 +173,11 @@ def _span_days(values: pd.Series) -> int:
 
 
 def _reading(series: pd.Series, dayfirst: bool | None) -> tuple[TimeReading | None, str]:
-    """Read a column as time stamps, or say why not."""
+    """Read a column as time stamps, or say why not (once per column within an audit)."""
+    return remembered("time-reading", series, dayfirst, lambda: _read_times(series, dayfirst))
+
+
+def _read_times(series: pd.Series, dayfirst: bool | None) -> tuple[TimeReading | None, str]:
     if pd.api.types.is_datetime64_any_dtype(series.dtype):
         values = pd.to_datetime(series)
         if getattr(values.dt, "tz", None) is not None:
@@ -397,8 +402,8 @@ def _column_partitions(frame: pd.DataFrame, skip: set[str]) -> list[np.ndarray]:
     for column in frame.columns:
         if str(column) in skip:
             continue
-        codes, _ = pd.factorize(frame[column], sort=False, use_na_sentinel=False)
-        out.append(codes.astype(np.int64))
+        cc = column_codes(frame[column])
+        out.append(np.where(cc.codes < 0, cc.n_levels, cc.codes))
     return out
 
 
