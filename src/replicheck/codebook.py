@@ -26,6 +26,8 @@ from typing import Any, TypeVar
 import numpy as np
 import pandas as pd
 
+from replicheck.partitions import already_dense
+
 # A book stops taking new entries beyond this many bytes of codes (a table of
 # hundreds of columns and millions of rows then codes its later columns anew
 # each time instead of holding them all).
@@ -79,6 +81,9 @@ def _key(raw: object) -> Hashable:
     if isinstance(raw, np.ndarray):
         face = raw.__array_interface__
         return ("numpy", face["data"][0], raw.shape, raw.strides, raw.dtype.str)
+    arrow = getattr(raw, "_pa_array", None)  # pandas' Arrow-backed arrays: the Arrow data
+    if arrow is not None:
+        return ("arrow", id(arrow), len(arrow))
     return ("array", id(raw), len(raw))  # type: ignore[arg-type]
 
 
@@ -105,11 +110,27 @@ def column_codes(values: pd.Series | pd.Index | np.ndarray) -> ColumnCodes:
         hit = book.entries.get(key)
         if hit is not None:
             return hit[1]  # type: ignore[return-value]
-    codes, uniques = pd.factorize(values, sort=True)
-    out = ColumnCodes(_frozen(codes), uniques)
+    if isinstance(raw, np.ndarray) and already_dense(raw.reshape(-1)):
+        # integer codes 0..k-1 with every code used are their own sorted codes
+        out = ColumnCodes(_frozen(raw.astype(np.int64)), np.arange(int(raw.max()) + 1))
+    else:
+        codes, uniques = pd.factorize(values, sort=True)
+        out = ColumnCodes(_frozen(codes), uniques)
     if book is not None:
         _remember(book, key, raw, out, out.codes.nbytes)
     return out
+
+
+def first_seen_codes_of(values: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """``pandas.factorize(values, sort=False)`` (values numbered in order of first
+    appearance, -1 where missing), from the column's shared codes."""
+    coded = column_codes(values)
+    known = coded.codes >= 0
+    order = pd.unique(coded.codes[known])  # sorted codes in order of first appearance
+    rank = np.full(coded.n_levels, -1, dtype=np.int64)
+    rank[order] = np.arange(order.size)
+    codes = np.where(known, rank[np.maximum(coded.codes, 0)], -1)
+    return codes, np.asarray(coded.uniques, dtype=object)[order]
 
 
 def combined_codes(columns: Sequence[pd.Series]) -> np.ndarray:

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 
-def _already_dense(values: np.ndarray) -> bool:
+def already_dense(values: np.ndarray) -> bool:
     """Whether integer ``values`` are already the codes ``0..k-1`` with every code used."""
     if values.size == 0 or not np.issubdtype(values.dtype, np.integer):
         return False
@@ -30,7 +30,7 @@ def dense_codes(values: np.ndarray) -> np.ndarray:
     returned as they are, without hashing).
     """
     flat = np.asarray(values).reshape(-1)
-    if _already_dense(flat):
+    if already_dense(flat):
         return flat.astype(np.int64)  # a copy: callers may change their codes in place
     codes, _ = pd.factorize(flat, sort=True)
     return codes.astype(np.int64, copy=False)

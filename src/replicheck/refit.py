@@ -179,6 +179,8 @@ def _too_many_units(name: str, t: TermInput) -> Analysis:
         f"not run: {n} units exceed the Monte Carlo budget ({MAX_MC_UNITS} units); with so "
         "many units the unit-level F and cluster-robust tests are accurate",
     )
+
+
 MIN_DISCRETE_UNITS = 3  # fewest units per level for a calibrated yes/no or count test
 FEW_DISCRETE_UNITS = (
     "with a yes/no or count response and fewer than 3 units in a level, no test on the "

@@ -73,15 +73,34 @@ def group_codes(data: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
     return combined_codes([data[c] for c in columns])
 
 
+def _pair_counts(col: np.ndarray, trt: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The (column, treatment) code pairs that occur, and how many rows hold each."""
+    k_t = int(trt.max()) + 1 if trt.size else 1
+    k_c = int(col.max()) + 1 if col.size else 1
+    pair = col.astype(np.int64, copy=False) * k_t + trt
+    if k_c * k_t <= 4 * pair.size + 1024:
+        counts = np.bincount(pair, minlength=k_c * k_t)
+        seen = np.flatnonzero(counts)
+        return seen // k_t, seen % k_t, counts[seen]
+    codes, seen = pd.factorize(pair)
+    return seen // k_t, seen % k_t, np.bincount(codes)
+
+
 def contingency(col: np.ndarray, trt: np.ndarray) -> Contingency:
     """Contingency summary of two code arrays of equal length without missing codes."""
     k_c = int(col.max()) + 1 if col.size else 0
     k_t = int(trt.max()) + 1 if trt.size else 0
-    pairs = np.sort(pd.unique(col * max(k_t, 1) + trt))
-    pc, pt = pairs // max(k_t, 1), pairs % max(k_t, 1)
+    pc, pt, _ = _pair_counts(col, trt)
     t_per_c = np.bincount(pc, minlength=k_c)
     c_per_t = np.bincount(pt, minlength=k_t)
     return Contingency(col.size, k_c, k_t, t_per_c, c_per_t)
+
+
+def _misses(inner: np.ndarray, counts: np.ndarray, k_inner: int) -> int:
+    """Rows outside the most frequent partner level of their ``inner`` level, from pair counts."""
+    best = np.zeros(k_inner, dtype=np.int64)
+    np.maximum.at(best, inner, counts)
+    return int(counts.sum() - best.sum())
 
 
 def _majority_exceptions(inner: np.ndarray, outer: np.ndarray) -> np.ndarray:
@@ -162,7 +181,14 @@ def classify(
         )
     limit = max(1, int(np.floor(PARTIAL_SHARE * ct.n_rows)))
     index = cv.index.to_numpy()
+    pc, pt, n_pair = _pair_counts(col, trt)
+    miss = {
+        "nested": _misses(pc, n_pair, ct.n_column_levels),
+        "confounded": _misses(pt, n_pair, ct.n_treatment_levels),
+    }
     for inner, outer, shape in ((col, trt, "nested"), (trt, col, "confounded")):
+        if not 0 < miss[shape] <= limit:
+            continue  # the rows themselves are listed only for a near-clean nesting
         bad = _majority_exceptions(inner, outer)
         if 0 < bad.size <= limit:
             rows = tuple(int(index[i]) + 1 for i in bad)

@@ -19,6 +19,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
+from replicheck.codebook import column_codes
 from replicheck.errors import InputError
 from replicheck.partitions import is_nested, same_partition, units_per_level
 from replicheck.stats.clustering import anova_components
@@ -135,9 +136,9 @@ def grouping_columns(
         if col in exclude:
             continue
         s = data[col]
-        present = s.dropna()
-        n_present = int(present.size)
-        n_unique = int(present.nunique())
+        coded = column_codes(s)
+        n_present = int(np.count_nonzero(coded.codes >= 0))
+        n_unique = coded.n_levels
         if n_present == 0:
             skipped[col] = "all values missing"
         elif n_unique <= 1:
@@ -149,7 +150,7 @@ def grouping_columns(
         elif pd.api.types.is_bool_dtype(s) or not pd.api.types.is_numeric_dtype(s):
             keep.append(col)
         else:
-            vals = present.to_numpy(dtype=float)
+            vals = s.dropna().to_numpy(dtype=float)
             integer = bool(np.all(np.isfinite(vals)) and np.all(vals == np.round(vals)))
             if not integer and n_unique > n_present / 2:
                 skipped[col] = "a continuous measurement"

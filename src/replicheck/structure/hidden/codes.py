@@ -195,6 +195,76 @@ def _same(a: np.ndarray, b: np.ndarray) -> bool:
     return x.size > 0 and same_partition(x, y)
 
 
+def _profile(codes: np.ndarray) -> bytes:
+    """Sorted group sizes of a complete coding: equal for any two identical partitions."""
+    return np.sort(np.bincount(codes)).tobytes()
+
+
+class _Recorded:
+    """The partitions a token grouping must not repeat: every recorded column, each
+    treatment, each treatment x column, and the groupings derived so far.
+
+    Whether a grouping repeats one of them is decided on the rows where both are
+    known (:func:`_same`). For codings known on every row, the sorted group sizes
+    are compared first (identical partitions have the same), and a treatment x
+    column coding is formed only for a grouping nested in both the treatment and
+    the column (it cannot repeat it otherwise), so that a table of hundreds of
+    columns is not crossed column by column.
+    """
+
+    def __init__(
+        self,
+        frame: pd.DataFrame,
+        recorded: Sequence[str],
+        treatments: Sequence[str],
+        trt_codes: dict[str, np.ndarray],
+    ) -> None:
+        self.frame = frame
+        self.columns = {c: group_codes(frame, (c,)) for c in recorded}
+        self.complete = {
+            c: bool(codes.size and codes.min() >= 0) for c, codes in self.columns.items()
+        }
+        self.treatments = list(treatments)
+        self.trt_codes = trt_codes
+        self.extra: list[np.ndarray] = list(trt_codes.values())
+        self.profiles: dict[int, bytes | None] = {}
+
+    def _profile_of(self, codes: np.ndarray) -> bytes | None:
+        key = id(codes)
+        if key not in self.profiles:
+            self.profiles[key] = _profile(codes) if codes.size and codes.min() >= 0 else None
+        return self.profiles[key]
+
+    def add(self, codes: np.ndarray) -> None:
+        self.extra.append(codes)
+
+    def _same_as(self, codes: np.ndarray, mine: bytes | None, other: np.ndarray) -> bool:
+        theirs = self._profile_of(other)
+        if mine is not None and theirs is not None:
+            return mine == theirs and same_partition(codes, other)
+        return _same(codes, other)
+
+    def repeats(self, codes: np.ndarray) -> bool:
+        mine = _profile(codes) if codes.size and codes.min() >= 0 else None
+        for other in [*self.columns.values(), *self.extra]:
+            if self._same_as(codes, mine, other):
+                return True
+        for t in self.treatments:
+            trt = self.trt_codes[t]
+            complete = mine is not None and bool(trt.min() >= 0)
+            # on rows where everything is known, a repeat of a treatment x column
+            # coding is nested in the treatment and in the column
+            in_trt = complete and is_nested(codes, trt)
+            for c, col in self.columns.items():
+                if c == t:
+                    continue
+                if complete and self.complete[c] and not (in_trt and is_nested(codes, col)):
+                    continue
+                if _same(codes, group_codes(self.frame, (t, c))):
+                    return True
+        return False
+
+
 def _word_of(tokens: list[str]) -> tuple[str, str] | None:
     """A unit word spelled by the letters all the tokens share, with its derived-grouping kind."""
     matches = [_LETTERS.match(t) for t in tokens]
@@ -320,7 +390,7 @@ def scan_codes(
     trt_codes = {t: group_codes(frame, (t,)) for t in treatments}
     cells = group_codes(frame, tuple(treatments))
     n_cells = int(cells.max()) + 1 if cells.size and cells.max() >= 0 else 0
-    existing: list[np.ndarray] | None = None
+    known: _Recorded | None = None
     derived: list[DerivedGrouping] = []
     signals: list[Signal] = []
     for col in frame.columns:
@@ -330,11 +400,9 @@ def scan_codes(
         groups = _token_groupings(frame[col], n_cells)
         if not groups:
             continue
-        if existing is None:
-            recorded = [c for c in frame.columns if c != response]
-            existing = [group_codes(frame, (c,)) for c in recorded]
-            existing += [group_codes(frame, (t, c)) for t in treatments for c in recorded if c != t]
-        seen: list[np.ndarray] = [*existing, *trt_codes.values()]
+        if known is None:
+            recorded = [str(c) for c in frame.columns if c != response]
+            known = _Recorded(frame, recorded, treatments, trt_codes)
         signalled: set[str] = set()
         nested_ends: set[int] = set()
         alone = {g.last: g for g in groups if not g.is_prefix}
@@ -348,7 +416,7 @@ def scan_codes(
                 if sig is not None:
                     signals.append(sig)
                     signalled.add(t)
-            if any(_same(group.codes, s) for s in seen):
+            if known.repeats(group.codes):
                 continue
             last = alone[group.last]
             for t in treatments:
@@ -358,20 +426,20 @@ def scan_codes(
                 restart = group.is_prefix and _restarts(last, trt_codes[t])
                 word = _word_of(last.labels)
                 derived.append(_derive(name, group, t, word, found, restart))
-                seen.append(group.codes)
+                known.add(group.codes)
                 nested_ends.add(group.last)
                 break
         for group in alone.values():
             if group.last in nested_ends or int(group.codes.max()) <= 0:
                 continue
             word = _word_of(group.labels)
-            if word is None or any(_same(group.codes, s) for s in seen):
+            if word is None or known.repeats(group.codes):
                 continue
             parent = next((t for t in treatments if _restarts(group, trt_codes[t])), None)
             if parent is None:
                 continue
             derived.append(_derive_restarting(name, group, parent, word))
-            seen.append(group.codes)
+            known.add(group.codes)
     return HiddenScan(tuple(derived), tuple(signals))
 
 

@@ -67,7 +67,13 @@ from scipy import stats
 
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
-from replicheck.partitions import dense_codes, is_nested, pair_codes, same_partition
+from replicheck.partitions import (
+    dense_codes,
+    is_nested,
+    pair_codes,
+    same_partition,
+    units_per_level,
+)
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan
 from replicheck.structure.names import (
     BLOCK_WORDS,
@@ -242,14 +248,14 @@ def _classes(
     classes = _dense(cells * (int(own.max()) + 1) + own)
     k = int(classes.max()) + 1
     sizes = np.bincount(classes, minlength=k)
-    per_cell = np.bincount(cells[np.unique(classes, return_index=True)[1]], minlength=n_cells)
+    cell_of_class = np.empty(k, dtype=np.int64)
+    cell_of_class[classes] = cells  # each class lies in one cell
+    per_cell = np.bincount(cell_of_class, minlength=n_cells)
     if int(per_cell.min()) < MIN_CLASSES_PER_CELL or n / k < MIN_ROWS_PER_CLASS:
         return None
     if float(sizes[sizes == 1].sum()) > MAX_SINGLETON_SHARE * n:
         return None
-    cells_of_value = np.bincount(
-        np.unique(own * n_cells + cells) // n_cells, minlength=int(own.max()) + 1
-    )
+    cells_of_value = units_per_level(cells, own, int(own.max()) + 1)
     grid = cells_of_value[own] == n_cells
     if n_cells < 2 or float(grid.mean()) > MAX_GRID_SHARE:
         return None

@@ -67,6 +67,7 @@ import scipy.sparse as sp
 from scipy.spatial import cKDTree
 from sklearn.cluster import DBSCAN
 
+from replicheck.codebook import first_seen_codes_of
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes
@@ -474,7 +475,7 @@ def _treatment_codes(
     codes = []
     uniques = []
     for column in treatments:
-        c, u = pd.factorize(frame[column], use_na_sentinel=True)
+        c, u = first_seen_codes_of(frame[column])
         codes.append(c)
         uniques.append(u)
     stacked = np.column_stack(codes)

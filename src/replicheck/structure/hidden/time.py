@@ -66,7 +66,7 @@ import pandas as pd
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 
-from replicheck.codebook import column_codes, remembered
+from replicheck.codebook import column_codes, first_seen_codes_of, remembered
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import same_partition
@@ -197,12 +197,15 @@ def _read_times(series: pd.Series, dayfirst: bool | None) -> tuple[TimeReading |
         or isinstance(series.dtype, pd.CategoricalDtype)
     ):
         return None, f"a column of type {series.dtype} is not read as times"
-    raw = series.astype("object")
-    mask = raw.notna().to_numpy().copy()
-    keys, key_values = pd.factorize(raw[mask])
+    # the distinct values in order of first appearance, from the column's codes
+    all_keys, key_values = first_seen_codes_of(series)
+    mask = all_keys >= 0
+    keys = all_keys[mask]
     key_text = np.array([_as_text(v) for v in key_values], dtype=object)
     blank = np.array([not t for t in key_text], dtype=bool)
     if blank.any():  # blank text counts as missing
+        raw = series.astype("object")
+        mask = mask.copy()
         mask[np.flatnonzero(mask)[blank[keys]]] = False
         keys, key_values = pd.factorize(raw[mask])
         key_text = np.array([_as_text(v) for v in key_values], dtype=object)
@@ -387,11 +390,19 @@ def _recode(codes: np.ndarray) -> np.ndarray:
     return pd.factorize(codes, sort=True)[0].astype(np.int64)
 
 
-def _same_as_any(codes: np.ndarray, others: Sequence[np.ndarray]) -> bool:
-    """Whether another coding groups the rows with a known ``codes`` value identically."""
+def _same_as_any(codes: np.ndarray, others: Sequence[np.ndarray], dense: bool = False) -> bool:
+    """Whether another coding groups the rows with a known ``codes`` value identically.
+
+    ``dense``: the others are complete codings ``0..k-1`` (as from
+    :func:`_column_partitions`), compared as they are when ``codes`` is complete.
+    """
     ok = codes >= 0
     if not ok.any():
         return False
+    if dense and ok.all():
+        mine = _recode(codes)
+        top = int(mine.max())
+        return any(int(o.max()) == top and same_partition(mine, o) for o in others)
     mine = _recode(codes[ok])
     return any(same_partition(mine, _recode(o[ok])) for o in others)
 
@@ -594,7 +605,7 @@ def scan_time(
         n_stamped = int(values.notna().sum())
         index = position[source.columns[-1]]
         day = day_codes(values) if source.reading.has_date else None
-        if day is not None and _groups_rows(day) and not _same_as_any(day, existing):
+        if day is not None and _groups_rows(day) and not _same_as_any(day, existing, dense=True):
             n_days = int(day.max()) + 1
             span = (values.max().normalize() - values.min().normalize()).days + 1
             derived.append(
@@ -614,7 +625,7 @@ def scan_time(
             split is not None
             and session is not None
             and _groups_rows(session)
-            and not _same_as_any(session, existing)
+            and not _same_as_any(session, existing, dense=True)
             and not (day is not None and _same_as_any(session, [day]))
         ):
             derived.append(
