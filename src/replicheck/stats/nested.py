@@ -282,17 +282,20 @@ def summarise(
         means = sums / counts[:, None]
     # second sweep: deviations from the group means, a block of rows at a time
     # (blocks small enough to stay in cache), one column at a time
+    # (a column constant over all rows, such as the intercept, deviates by exactly 0)
     mean_cols = [np.ascontiguousarray(means[:, j]) for j in range(p + 1)]
-    within = np.zeros((p + 1, p + 1))
-    dev = np.empty((p + 1, min(n, _ROW_BLOCK)))
+    moving = [j for j, col in enumerate(columns) if j == p or col.min() != col.max()]
+    dev = np.empty((len(moving), min(n, _ROW_BLOCK)))
+    part = np.zeros((len(moving), len(moving)))
     for start in range(0, n, _ROW_BLOCK):
         stop = min(n, start + _ROW_BLOCK)
         idx = inner[start:stop]
         block = dev[:, : stop - start]
-        for j, col in enumerate(columns):
-            np.subtract(col[start:stop], mean_cols[j].take(idx), out=block[j])
-        within += block @ block.T
-    within = 0.5 * (within + within.T)
+        for row, j in enumerate(moving):
+            np.subtract(columns[j][start:stop], mean_cols[j].take(idx), out=block[row])
+        part += block @ block.T
+    within = np.zeros((p + 1, p + 1))
+    within[np.ix_(moving, moving)] = 0.5 * (part + part.T)
     return NestedSummaries(
         n=n,
         p=p,
