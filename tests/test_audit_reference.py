@@ -261,3 +261,10 @@ def test_design_needs_from_r_variances_and_statsmodels_power(ratpup) -> None:  #
     assert needs["units_per_level"] == max(2, math.ceil(n_total / 3 - 1e-9))
     assert needs["effect"]["cohen_f_unit_means"] == pytest.approx(f, rel=1e-5)
     assert needs["units_now"] == 7  # the High dose has 7 litters
+
+
+def test_stage_callback_names_every_stage_once_in_order(ratpup) -> None:  # type: ignore[no-untyped-def]
+    # the stage names documented for audit(stage=...) (and timed in Report.seconds)
+    seen: list[str] = []
+    audit(ratpup, response="weight", treatment="Treatment", stage=seen.append)
+    assert seen == ["claim", "read", "hidden", "structure", "refit", "clustering", "report data"]

@@ -234,3 +234,39 @@ def test_stated_effect_and_power_reach_design_needs(ratpup_csv: Path) -> None:
     f = 0.5 / sd / math.sqrt(6)
     total = FTestAnovaPower().solve_power(effect_size=f, k_groups=3, alpha=0.05, power=0.9)
     assert n["units_per_level"] == max(2, math.ceil(total / 3 - 1e-9))
+
+
+def test_stage_line_on_a_terminal_is_cleared_and_absent_from_pipes(ratpup_csv: Path) -> None:
+    # stderr on a pseudo-terminal (the standard library's pty): the running stage is
+    # shown and the line is cleared at the end; stdout (a pipe) holds the report alone
+    import pty
+
+    args = ["check", str(ratpup_csv), "-r", "weight", "-t", "treatment", "-f", "json"]
+    master, slave = pty.openpty()
+    env = {**os.environ, "PYTHONIOENCODING": "utf-8"}
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "replicheck", *args],
+        stdout=subprocess.PIPE,
+        stderr=slave,
+        env=env,
+    )
+    os.close(slave)
+    err = b""
+    while True:
+        try:
+            chunk = os.read(master, 4096)
+        except OSError:  # the terminal closes when the process ends
+            break
+        if not chunk:
+            break
+        err += chunk
+    out = proc.communicate(timeout=120)[0]
+    os.close(master)
+    assert proc.returncode == 1
+    assert json.loads(out)["verdict"]["status"] == "pseudoreplicated"
+    text = err.decode()
+    for words in ("reading the data", "finding the experimental units", "preparing the report"):
+        assert f"replicheck: {words} ..." in text
+    assert text.endswith("\r\x1b[K")  # nothing left on the line
+    piped = run(*args)  # stderr a pipe: no stage line at all
+    assert "replicheck:" not in piped.stderr

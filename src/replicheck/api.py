@@ -241,6 +241,7 @@ def audit(
     dayfirst: bool | None = None,
     order: str | None = None,
     progress: Callable[[int, int], None] | None = None,
+    stage: Callable[[str], None] | None = None,
     name: str | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
@@ -288,6 +289,10 @@ def audit(
     progress:
         Called as ``progress(done, total)`` while a file is read (bytes hashed
         and parsed; ``total`` is twice the file size), e.g. to drive a progress bar.
+    stage:
+        Called with the name of each stage as it starts (``claim``, ``read``,
+        ``hidden``, ``structure``, ``refit``, ``clustering``, ``report data``),
+        e.g. to say what a long audit is doing.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
         each treatment level) or ``global`` (labels name the same unit everywhere).
@@ -316,7 +321,7 @@ def audit(
     if effect is not None and not (np.isfinite(effect) and effect > 0):
         raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
     with shared_codes():  # each column coded once for every stage
-        clock = _Stopwatch()
+        clock = _Stopwatch(stage)
         c = make_claim(
             data,
             response=response,
@@ -497,17 +502,30 @@ def audit(
         )
 
 
-class _Stopwatch:
-    """Seconds spent in each stage of one audit (for benchmarks; not in the report)."""
+STAGES = ("claim", "read", "hidden", "structure", "refit", "clustering", "report data")
 
-    def __init__(self) -> None:
+
+class _Stopwatch:
+    """Seconds spent in each stage of one audit (for benchmarks; not in the report).
+
+    ``begin`` (if given) is called with the name of each stage of :data:`STAGES`
+    as it starts.
+    """
+
+    def __init__(self, begin: Callable[[str], None] | None = None) -> None:
+        self._begin = begin
         self._last = time.perf_counter()
         self._laps: dict[str, float] = {}
+        if begin is not None:
+            begin(STAGES[0])
 
     def lap(self, stage: str) -> None:
         now = time.perf_counter()
         self._laps[stage] = self._laps.get(stage, 0.0) + now - self._last
         self._last = now
+        following = STAGES.index(stage) + 1
+        if self._begin is not None and following < len(STAGES):
+            self._begin(STAGES[following])
 
     def seconds(self) -> dict[str, float]:
         return dict(self._laps)

@@ -80,6 +80,42 @@ class _ReadBar:
             self._bar = None
 
 
+_STAGE_WORDS = {
+    "claim": "reading the claim",
+    "read": "reading the data",
+    "hidden": "looking for groupings that no column names",
+    "structure": "finding the experimental units",
+    "refit": "refitting with the unit as the replicate",
+    "clustering": "measuring clustering",
+    "report data": "preparing the report",
+}
+
+
+class _StageLine:
+    """One line on standard error saying which stage of the audit is running (terminals
+    only); the line is cleared when the audit ends, so nothing is left in the output."""
+
+    def __init__(self, read_bar: _ReadBar) -> None:
+        self._shown = False
+        self._read_bar = read_bar
+        self._on = sys.stderr.isatty()
+
+    def begin(self, stage: str) -> None:
+        if not self._on:
+            return
+        if stage != "read":
+            self._read_bar.close()  # the reading bar, if any, ends where reading ends
+        sys.stderr.write("\r\033[K" + f"replicheck: {_STAGE_WORDS.get(stage, stage)} ...")
+        sys.stderr.flush()
+        self._shown = True
+
+    def close(self) -> None:
+        if self._shown:
+            sys.stderr.write("\r\033[K")
+            sys.stderr.flush()
+            self._shown = False
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
 @click.version_option(__version__, prog_name="replicheck")
 def cli() -> None:
@@ -237,6 +273,7 @@ def check(
 
     _check_output(output, data, spec or "")
     bar = _ReadBar()
+    line = _StageLine(bar)
     report = audit(
         data,
         response=response,
@@ -257,8 +294,10 @@ def check(
         dayfirst=None if dates == "auto" else dates == "day-first",
         order=order_col,
         progress=bar.update,
+        stage=line.begin,
     )
     bar.close()
+    line.close()
     if report.claim.spec_path and spec is None:
         click.echo(f"using spec {report.claim.spec_path}", err=True)
     _emit(_render(report, fmt), output)

@@ -207,8 +207,8 @@ def _read_times(series: pd.Series, dayfirst: bool | None) -> tuple[TimeReading |
         raw = series.astype("object")
         mask = mask.copy()
         mask[np.flatnonzero(mask)[blank[keys]]] = False
-        keys, key_values = pd.factorize(raw[mask])
-        key_text = np.array([_as_text(v) for v in key_values], dtype=object)
+        keys, distinct = pd.factorize(raw[mask])
+        key_text = np.array([_as_text(v) for v in distinct], dtype=object)
     if not mask.any():
         return None, "the column holds no values"
     uniq = key_text
