@@ -88,6 +88,12 @@ def _key(raw: object) -> Hashable:
 
 
 def _remember(book: _Book, key: Hashable, keep: object, value: object, nbytes: int) -> None:
+    # what the entry holds alive counts too (a column's values outlive their frame here)
+    nbytes += sum(
+        k.nbytes
+        for k in (keep if isinstance(keep, tuple) else (keep,))
+        if isinstance(k, np.ndarray)
+    )
     if book.nbytes + nbytes > MAX_BOOK_BYTES:
         return
     book.entries[key] = (keep, value)
