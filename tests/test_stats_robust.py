@@ -733,3 +733,71 @@ def test_collinear_designs_are_refused(func: Callable[..., object], case: str) -
     with pytest.raises(DesignError, match="full column rank") as err:
         func(y, x, cluster, np.eye(x.shape[1])[[1]])
     assert "\n" not in str(err.value)
+
+
+def _sum_coded(codes: np.ndarray) -> np.ndarray:
+    k = int(codes.max()) + 1
+    return np.column_stack([(codes == j).astype(float) - (codes == k - 1) for j in range(k - 1)])
+
+
+def test_bootstrap_leaves_out_draws_whose_statistic_is_zero_over_zero() -> None:
+    # A split plot with one row per sub-plot cell (4 blocks x 2 main plots x 9 cells),
+    # every term sum-coded, blocks as fixed effects, main plots as clusters, the
+    # main-plot factor tested. Sign vectors that give the two main plots of each block
+    # opposite signs cancel the contrast and every cluster's score exactly: the
+    # bootstrap statistic is 0/0 for 2**4 = 16 of the 256 vectors. The reference
+    # refits every bootstrap sample on the rows (numpy lstsq) with the CR1 variance
+    # written out, and leaves those draws out. Invented data: the check is the count.
+    rng = np.random.default_rng(4)
+    block, main, cell = (
+        a.ravel() for a in np.meshgrid(range(4), range(2), range(9), indexing="ij")
+    )
+    cluster = block * 2 + main
+    y = rng.normal(size=block.size) + rng.normal(size=8)[cluster] + 0.3 * main
+    a_col = np.where(main == 1, 1.0, -1.0)
+    x = np.column_stack(
+        [
+            np.ones(block.size),
+            a_col,
+            _sum_coded(cell),
+            _sum_coded(cell) * a_col[:, None],
+            _sum_coded(block),
+        ]
+    )
+    contrast = np.zeros((1, x.shape[1]))
+    contrast[0, 1] = 1.0
+    got = wild_cluster_bootstrap(y, x, cluster, contrast, weights="rademacher", draws=9999)
+
+    n, p = x.shape
+    kappa = 8 / 7 * (n - 1) / (n - p)
+
+    def wald(values: np.ndarray) -> tuple[float, float]:
+        beta = np.linalg.lstsq(x, values, rcond=None)[0]
+        resid = values - x @ beta
+        bread = np.linalg.inv(x.T @ x)
+        meat = sum(
+            np.outer(
+                x[cluster == g].T @ resid[cluster == g], x[cluster == g].T @ resid[cluster == g]
+            )
+            for g in range(8)
+        )
+        return float(beta[1]), float(kappa * (bread @ meat @ bread)[1, 1])
+
+    reduced = np.delete(x, 1, axis=1)
+    fitted_r = reduced @ np.linalg.lstsq(reduced, y, rcond=None)[0]
+    resid_r = y - fitted_r
+    b0, v0 = wald(y)
+    observed = b0 * b0 / v0
+    stats_, undefined = [], 0
+    for bits in range(256):
+        w = np.where((bits >> np.arange(8)) & 1, 1.0, -1.0)  # cluster g's sign
+        b, v = wald(fitted_r + w[cluster] * resid_r)
+        if abs(b) < 1e-9 * abs(b0) and v < 1e-18 * v0:
+            undefined += 1
+            continue
+        stats_.append(b * b / v)
+    expected_p = np.mean(np.array(stats_) >= observed * (1 - 1e-9))
+    assert undefined == 16
+    assert got.undefined == 16 and got.enumerated and got.draws == 256
+    assert got.statistic == pytest.approx(observed, rel=1e-9)
+    assert got.p_value == pytest.approx(expected_p, abs=1e-12)

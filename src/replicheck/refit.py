@@ -697,6 +697,11 @@ def _cross_checks(
             if b.enumerated
             else f"{b.draws} draws, {b.weights} weights (seed {b.seed})"
         )
+        if b.undefined:
+            how += (
+                f"; {b.undefined} of them left out: their weights cancel the contrast and its "
+                "variance (the statistic is 0/0)"
+            )
         unit_level("wild_bootstrap", float(b.statistic), None, float(b.p_value), notes=(how,))
     except _SkipBootstrap:
         out.append(_too_many_units("wild_bootstrap", t))

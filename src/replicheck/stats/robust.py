@@ -141,6 +141,7 @@ class BootstrapTest:
     enumerated: bool
     n_clusters: int
     seed: int | None
+    undefined: int = 0  # draws whose statistic is 0/0 (left out of the p-value)
 
 
 @dataclass(frozen=True)
@@ -635,7 +636,24 @@ def wild_cluster_bootstrap(
 
     threshold = observed * (1.0 - _TIE_TOL)
     hits = 0
+    undefined = 0
     lrk_rows = lrk.reshape(n_cl * q, fit.p)  # row (g, s): (L R^-1 K_g)[s]
+    # A draw whose numerator and robust variance both vanish has the statistic 0/0
+    # (its weights cancel the clusters that carry the contrast); its computed value is
+    # rounding noise, so it is left out of the count. "Vanish": below 1e-12 of the
+    # size the terms of the sums could reach with the largest weight.
+    w_max = float(np.max(np.abs(points)))
+    numer_tol = 1e-12 * w_max * float(np.sum(np.linalg.norm(c, axis=1)))
+    score_tol = (
+        1e-12
+        * w_max
+        * (
+            float(np.max(np.linalg.norm(c, axis=1)))
+            + float(np.max(np.linalg.norm(lrk_rows, axis=1)))
+            * float(np.sum(np.linalg.norm(a, axis=1)))
+        )
+    )
+    meat_tol = kappa * n_cl * q * score_tol**2
     chunk = max(1, _CHUNK // max(1, n_cl * q))
     for lo in range(0, n_draws, chunk):
         w = np.take(points, picks[lo : lo + chunk])  # (b, G)
@@ -646,8 +664,17 @@ def wild_cluster_bootstrap(
             meat = kappa * np.einsum("bg,bg->b", scores[:, :, 0], scores[:, :, 0])[:, None, None]
         else:
             meat = kappa * np.einsum("bgq,bgr->bqr", scores, scores)
-        hits += int(np.sum(_wald_per_draw(numer, meat) >= threshold))
-    p_value = hits / n_draws if enumerated else (1 + hits) / (1 + n_draws)
+        void = (np.linalg.norm(numer, axis=1) <= numer_tol) & (
+            np.trace(meat, axis1=1, axis2=2) <= meat_tol
+        )
+        undefined += int(np.sum(void))
+        hits += int(np.sum((_wald_per_draw(numer, meat) >= threshold) & ~void))
+    counted = n_draws - undefined
+    if counted < 1:
+        raise DesignError(
+            "every bootstrap draw gives 0/0: the contrast rests on clusters whose weights cancel"
+        )
+    p_value = hits / counted if enumerated else (1 + hits) / (1 + counted)
     return BootstrapTest(
         statistic=observed / q,
         p_value=float(p_value),
@@ -656,4 +683,5 @@ def wild_cluster_bootstrap(
         enumerated=enumerated,
         n_clusters=n_cl,
         seed=used_seed,
+        undefined=undefined,
     )
