@@ -42,6 +42,7 @@ from replicheck.structure.hidden.order import (
     count_runs,
     find_sequence_column,
     lag1,
+    listing,
     permutation_mean_lag1,
     runs_cdf_two,
     runs_moments,
@@ -646,3 +647,55 @@ def test_hidden_tanks_listed_together_are_derived() -> None:
     expected = np.repeat([0, 1, 2, 3, 4, 5], [10, 5, 5, 10, 5, 5])
     assert scan.derived[0].codes.tolist() == expected.tolist()
     assert "6 runs of 5 to 10 rows" in scan.derived[0].how
+
+
+def _listing_by_brute_force(recorded: list[tuple[str, np.ndarray]]) -> list[tuple[str, int]]:
+    """The greedy listing of ``listing``'s docstring, every crossing coded with numpy.unique."""
+    m = recorded[0][1].size
+    current = np.zeros(m, dtype=np.int64)
+    k_now, names, out = 1, [], []
+    left = [(n, c) for n, c in recorded if np.unique(c).size <= m / 2]
+    while left:
+        best = None
+        for width in (1, 2):
+            for combo in itertools.combinations(range(len(left)), width):
+                stacked = np.column_stack([current, *(left[i][1] for i in combo)])
+                crossed = np.unique(stacked, axis=0, return_inverse=True)[1].reshape(-1)
+                k = int(crossed.max()) + 1
+                runs = 1 + int(np.count_nonzero(crossed[1:] != crossed[:-1]))
+                if k <= k_now or k > m / 2 or runs != k:
+                    continue
+                if best is None or k < best[0]:
+                    best = (k, combo, crossed)
+            if best is not None:
+                break
+        if best is None:
+            break
+        k_now, combo, current = best
+        names.extend(left[i][0] for i in combo)
+        out.append((" x ".join(names), k_now))
+        left = [c for i, c in enumerate(left) if i not in combo]
+    return out
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_listing_equals_the_greedy_search_done_by_brute_force(seed: int) -> None:
+    # generated files sorted by some columns and not others (invented orders; the
+    # reference is the rule itself, every crossing coded from scratch)
+    rng = np.random.default_rng(seed)
+    for _ in range(150):
+        m = int(rng.integers(6, 60))
+        recorded = []
+        for j in range(int(rng.integers(1, 6))):
+            kind = int(rng.integers(0, 4))
+            if kind == 0:  # sorted: contiguous stretches
+                codes = np.sort(rng.integers(0, int(rng.integers(1, 6)), size=m))
+            elif kind == 1:  # shuffled
+                codes = rng.integers(0, int(rng.integers(1, 4)), size=m)
+            elif kind == 2:  # numbered afresh within stretches
+                codes = (np.arange(m) // int(rng.integers(1, 5))) % int(rng.integers(1, 4))
+            else:
+                codes = np.arange(m) // int(rng.integers(1, 8))
+            recorded.append((f"c{j}", np.unique(codes, return_inverse=True)[1].reshape(-1)))
+        got = [(s.name, s.n) for s in listing(recorded)]
+        assert got == _listing_by_brute_force(recorded)
