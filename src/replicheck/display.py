@@ -147,6 +147,28 @@ def _spread_pick(k_total: int, k: int) -> np.ndarray:
     return np.unique(np.round(np.linspace(0, k_total - 1, k)).astype(np.int64))
 
 
+def _values_of(
+    y: np.ndarray, pair_codes: np.ndarray, wanted: Sequence[np.ndarray], n_pairs: int
+) -> dict[int, np.ndarray]:
+    """The values of the rows of each wanted (unit, level) pair, in row order.
+
+    Only the rows of those pairs are sorted (a 16-bit key when there are few,
+    which numpy sorts by radix), not every row.
+    """
+    chosen = np.concatenate(wanted) if wanted else np.zeros(0, dtype=np.int64)
+    if chosen.size == 0:
+        return {}
+    rank = np.full(n_pairs, -1, dtype=np.int64)
+    rank[chosen] = np.arange(chosen.size)
+    of_row = rank[pair_codes]
+    rows = np.flatnonzero(of_row >= 0)
+    key = of_row[rows]
+    key = key.astype(np.uint16) if chosen.size <= 1 << 16 else key
+    rows = rows[np.argsort(key, kind="stable")]
+    bounds = np.concatenate([[0], np.cumsum(np.bincount(of_row[rows], minlength=chosen.size))])
+    return {int(g): y[rows[bounds[i] : bounds[i + 1]]] for i, g in enumerate(chosen)}
+
+
 def unit_view(
     term: str,
     y: np.ndarray,
@@ -176,24 +198,21 @@ def unit_view(
     sizes = np.bincount(pair_codes, minlength=keys.size)
     means = np.bincount(pair_codes, weights=y, minlength=keys.size) / sizes
     pair_unit, pair_level = keys // k_levels, keys % k_levels
-    # rows grouped by (unit, level); a 16-bit key lets numpy use its radix sort
-    key = pair_codes.astype(np.uint16) if keys.size <= 1 << 16 else pair_codes
-    order = np.argsort(key, kind="stable")
-    bounds = np.concatenate([[0], np.cumsum(sizes)])
     n_units = int(unit_codes.max()) + 1 if n else 0
-    thinned = False
-    levels = []
-    for k, level in enumerate(level_labels):
+    picked = []
+    for k in range(k_levels):
         ids = np.flatnonzero(pair_level == k)
         ids = ids[np.argsort(means[ids], kind="stable")]
-        many = ids.size > MAX_UNITS
-        chosen = ids[_spread_pick(ids.size, MAX_UNITS)]
+        picked.append((ids, ids[_spread_pick(ids.size, MAX_UNITS)], ids.size > MAX_UNITS))
+    values = _values_of(y, pair_codes, [c for _, c, many in picked if not many], keys.size)
+    thinned = False
+    levels = []
+    for (ids, chosen, many), level in zip(picked, level_labels, strict=True):
         names = name(pair_unit[chosen])
         units = []
         for j, g in enumerate(chosen):
-            vals = y[order[bounds[g] : bounds[g + 1]]]
-            shown = np.empty(0) if many else _even_ranks(vals, MAX_POINTS)
-            thinned = thinned or shown.size < vals.size
+            shown = np.empty(0) if many else _even_ranks(values[int(g)], MAX_POINTS)
+            thinned = thinned or bool(shown.size < sizes[g])
             units.append(
                 UnitPoints(
                     str(names[j]),
