@@ -150,6 +150,10 @@ def combined_codes(columns: Sequence[pd.Series]) -> np.ndarray:
         hit = book.entries.get(key)
         if hit is not None:
             return hit[1]  # type: ignore[return-value]
+    if len(columns) == 1:
+        single = column_codes(columns[0]).codes
+        if single.size == 0 or int(single.min()) >= 0:
+            return single  # one column with no missing value: its own codes, not a copy
     n = len(columns[0]) if columns else 0
     combined = np.zeros(n, dtype=np.int64)
     missing = np.zeros(n, dtype=bool)
