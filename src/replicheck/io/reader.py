@@ -609,6 +609,12 @@ def _missing_in_column(series: pd.Series, codes: _MissingCodes, decimal: str) ->
     labels = text.mask(missing).astype(str)
     if keys is None:
         return labels
+    if (
+        series.dtype == labels.dtype
+        and not bool(missing.any())
+        and bool((labels.to_numpy(dtype=object) == cells.to_numpy(dtype=object)).all())
+    ):
+        return series  # a text column with nothing to change: kept as it is, not rebuilt
     return pd.Series(labels.array.take(keys, allow_fill=True), index=series.index)
 
 
