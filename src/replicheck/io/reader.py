@@ -38,6 +38,7 @@ from pandas.api.types import (
     is_timedelta64_dtype,
 )
 
+from replicheck.codebook import column_codes
 from replicheck.errors import InputError
 from replicheck.io.arrow_csv import Dialect, read_delimited
 from replicheck.io.columns import (
@@ -630,10 +631,10 @@ def _distinct_cells(series: pd.Series) -> tuple[np.ndarray | None, pd.Series]:
     try:
         if head.nunique(dropna=True) > _DISTINCT_SHARE * max(len(head), 1):
             return None, series
-        keys, distinct = series.factorize()
+        coded = column_codes(series)  # shared with the later stages of an audit
     except TypeError:  # unhashable cells (lists, ...)
         return None, series
-    return keys, pd.Series(distinct)
+    return np.asarray(coded.codes), pd.Series(coded.uniques)
 
 
 def _apply_missing(
