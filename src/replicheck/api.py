@@ -24,7 +24,7 @@ from replicheck.claim import (
     spec_beside,
 )
 from replicheck.clustering import measure_clustering
-from replicheck.codebook import shared_codes
+from replicheck.codebook import allow_for, shared_codes
 from replicheck.display import display_data
 from replicheck.errors import InputError
 from replicheck.formula import rename_columns
@@ -350,6 +350,7 @@ def audit(
             terms, formula_blocks = _formula_terms(c, table.data)
             c = replace(c, treatments=tuple(f for f in c.treatments if f not in formula_blocks))
         frame = _analysis_frame(table, c)
+        allow_for(frame)
         if c.formula is None:
             terms = model_terms(frame, c.treatments)
         terms, dropped = drop_unreplicated(frame, terms, c.treatments)

@@ -28,9 +28,10 @@ import pandas as pd
 
 from replicheck.partitions import already_dense
 
-# A book stops taking new entries beyond this many bytes of codes (a table of
-# hundreds of columns and millions of rows then codes its later columns anew
-# each time instead of holding them all).
+# A book stops taking new entries beyond this many bytes (codes and the values
+# they keep alive), or four times the table's size when that is more
+# (:func:`allow_for`): past it, later columns are coded anew each time instead
+# of being held.
 MAX_BOOK_BYTES = 2 << 30
 
 
@@ -50,6 +51,7 @@ class ColumnCodes:
 class _Book:
     entries: dict[Hashable, tuple[object, object]]
     nbytes: int = 0
+    limit: int = MAX_BOOK_BYTES
 
 
 T = TypeVar("T")
@@ -68,6 +70,15 @@ def shared_codes() -> Iterator[None]:
         yield
     finally:
         _BOOK.reset(token)
+
+
+def allow_for(frame: pd.DataFrame) -> None:
+    """Let the open book (if any) hold codes up to four times the frame's size
+    (never less than ``MAX_BOOK_BYTES``), so that a wide table is coded once too."""
+    book = _BOOK.get()
+    if book is not None:
+        size = int(frame.memory_usage(index=False, deep=False).sum())
+        book.limit = max(book.limit, 4 * size)
 
 
 def _values_of(values: pd.Series | pd.Index | np.ndarray) -> object:
@@ -94,7 +105,7 @@ def _remember(book: _Book, key: Hashable, keep: object, value: object, nbytes: i
         for k in (keep if isinstance(keep, tuple) else (keep,))
         if isinstance(k, np.ndarray)
     )
-    if book.nbytes + nbytes > MAX_BOOK_BYTES:
+    if book.nbytes + nbytes > book.limit:
         return
     book.entries[key] = (keep, value)
     book.nbytes += nbytes
