@@ -248,6 +248,51 @@ def test_boundary_estimates_equal_general_reml(
     assert ours.varpar_names == (*(n for n in d.names if n not in zero), "residual")
 
 
+@pytest.mark.parametrize("seed", range(40))
+def test_one_level_grid_search_finds_the_general_optimum(seed: int) -> None:
+    # One grouping level: the fit scans the criterion on a grid of lam and
+    # polishes the best point by Newton's method; the general fit (fit_reml,
+    # validated against lmerTest) runs L-BFGS-B from three starts. Random
+    # designs from nearly no unit variance to units that explain almost all of
+    # it, balanced and not, with and without covariates.
+    rng = np.random.default_rng(1000 + seed)
+    units = int(rng.integers(4, 40))
+    rows = (1, int(rng.integers(2, 12))) if seed % 2 else int(rng.integers(2, 9))
+    unit_sd = float(10.0 ** rng.uniform(-2.5, 1.5)) if seed % 5 else 0.0
+    extras = [frozenset(), frozenset({"covariate"}), frozenset({"covariate", "within"})]
+    d = make_design(seed, (units, rows), (unit_sd,), extras=extras[seed % 3], arms=2 + seed % 2)
+    ref = fit_reml(d.y, d.x, dict(zip(d.names, d.levels, strict=True)), d.fixed)
+    ours = _fit(d.y, d.x, d.levels, d.names, d.fixed)
+    _assert_same_fit(ours, ref, d.contrast)
+
+
+def test_one_level_falls_back_to_the_full_search(monkeypatch: pytest.MonkeyPatch) -> None:
+    # a grid that cannot be evaluated sends the one-level fit to the
+    # three-start search, which must reach the same optimum as the general fit
+    from replicheck.stats import nested
+
+    def broken(self: object, lams: np.ndarray) -> np.ndarray:
+        return np.full(np.shape(lams), np.nan)
+
+    monkeypatch.setattr(nested._Tree, "deviance_grid", broken)
+    d = make_design(4, (15, (1, 8)), (0.7,), extras=frozenset({"covariate"}))
+    ref = fit_reml(d.y, d.x, dict(zip(d.names, d.levels, strict=True)), d.fixed)
+    _assert_same_fit(_fit(d.y, d.x, d.levels, d.names, d.fixed), ref, d.contrast)
+
+
+def test_deviance_grid_equals_the_criterion_point_by_point() -> None:
+    # the batched criterion of one level (reml_search step 0) against the
+    # recursion evaluated one lam at a time, lme4's REMLcrit both
+    from replicheck.stats.nested import _build_tree, _recentre
+
+    d = make_design(3, (14, (1, 9)), (0.8,), extras=frozenset({"covariate", "within"}))
+    tree, _, _ = _recentre(_build_tree(summarise(d.y, d.x, d.levels, d.names, d.fixed)))
+    lams = np.concatenate([[0.0], np.logspace(-6, 6, 25)])
+    grid = tree.deviance_grid(lams)
+    one_by_one = [tree.profiled_deviance(np.array([lam])) for lam in lams]
+    np.testing.assert_allclose(grid, one_by_one, rtol=1e-12)
+
+
 def test_missing_values_dropped_before_summarising() -> None:
     d = make_design(5, (12, (1, 4), (1, 6)), (1.0, 0.5), extras=ALL)
     rng = np.random.default_rng(0)

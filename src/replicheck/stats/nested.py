@@ -101,8 +101,12 @@ and described in :mod:`replicheck.stats.reml_search`: L-BFGS-B over
 0), an active set that pins negligible components at exactly 0 and releases
 them when the gradient at 0 is negative (Karush-Kuhn-Tucker), Newton steps on
 the unprofiled deviance ``D`` in log-variance coordinates, and a first-order
-optimality check (``converged``). Here it uses three theta starts up to 20,000
-groups (beyond, lme4's single start ``theta = 1``) and stops the Newton polish
+optimality check (``converged``). Up to 20,000 groups (all levels) it starts
+from the best point of a grid of ``lam`` evaluated in one batch
+(:func:`_deviance_grid`) when there is one grouping level, going straight to
+the Newton steps and falling back to the full search when that does not give
+a checked optimum, and from three theta starts when there are more; beyond
+20,000 groups from lme4's single start ``theta = 1``. It stops the Newton polish
 at log steps below ``1e-10`` (the error left after such a step is of order its
 square). ``vcov_varpar`` is twice the inverse Hessian of ``D`` in the variance
 parameters left after dropping boundary components (inverted in log
@@ -130,7 +134,7 @@ from replicheck.stats.reml_search import (
 __all__ = ["NestedSummaries", "combine", "fit_nested_reml", "summarise"]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
-_MULTI_START_GROUPS = 20_000  # groups (all levels) up to which three starts are used
+_MULTI_START_GROUPS = 20_000  # groups (all levels) up to which a grid or three starts are used
 # largest log-variance step at which the Newton polish stops (Newton: the
 # error left after such a step is ~step^2)
 _NEWTON_STOP = 1e-10
@@ -198,6 +202,20 @@ def _check_names(level_names: Sequence[str], n_levels: int) -> tuple[str, ...]:
     return names
 
 
+def _indicator_within_constant(
+    col: np.ndarray, low: float, high: float, sums: np.ndarray, counts: np.ndarray
+) -> bool:
+    """Whether ``col`` (extremes ``low``, ``high``) holds only 0 and 1 and is
+    constant within every group.
+
+    Exact: sums of 0/1 values are integers, so a group is then constant when
+    its sum is 0 or its count.
+    """
+    if low != 0.0 or high != 1.0 or not np.all((sums == 0.0) | (sums == counts)):
+        return False
+    return np.count_nonzero(col == 1.0) + np.count_nonzero(col == 0.0) == col.size
+
+
 def summarise(
     y: np.ndarray,
     X: np.ndarray,
@@ -233,7 +251,15 @@ def summarise(
         raise DesignError("the fixed-effects matrix has no columns")
     if len(fixed_names) != p:
         raise DesignError(f"{len(fixed_names)} fixed-effect names given for {p} columns")
-    if not (np.all(np.isfinite(yy)) and np.all(np.isfinite(xx))):
+    # one contiguous array per column (a single transposing copy of a row-major X)
+    if p > 1 and not xx.flags.f_contiguous:
+        xx = np.asfortranarray(xx)
+    columns = [xx[:, j] for j in range(p)] + [yy]
+    # the extremes of each column: all finite exactly when both are (NaN and
+    # infinities propagate to them), and equal for a column constant over all rows
+    lows = [float(col.min()) for col in columns]
+    highs = [float(col.max()) for col in columns]
+    if not (np.all(np.isfinite(lows)) and np.all(np.isfinite(highs))):
         raise DesignError(
             "response or fixed-effects matrix contains missing or non-finite values; "
             "drop those rows before summarising"
@@ -274,17 +300,29 @@ def summarise(
     inner = codes[-1]
     g_inner = sizes[-1]
     counts = np.bincount(inner, minlength=g_inner).astype(np.int64)
-    columns = [np.ascontiguousarray(xx[:, j]) for j in range(p)] + [yy]
     sums = np.empty((g_inner, p + 1))
     for j, col in enumerate(columns):
-        sums[:, j] = np.bincount(inner, weights=col, minlength=g_inner)
+        if lows[j] == highs[j]:  # a constant column (the intercept): no pass needed
+            sums[:, j] = lows[j] * counts
+        else:
+            sums[:, j] = np.bincount(inner, weights=col, minlength=g_inner)
     with np.errstate(invalid="ignore", divide="ignore"):
         means = sums / counts[:, None]
     # second sweep: deviations from the group means, a block of rows at a time
-    # (blocks small enough to stay in cache), one column at a time
-    # (a column constant over all rows, such as the intercept, deviates by exactly 0)
+    # (blocks small enough to stay in cache), one column at a time. Columns
+    # whose deviations are exactly 0 are skipped: a column constant over all
+    # rows (such as the intercept), and a 0/1 indicator constant within every
+    # group (such as a treatment given to whole units)
     mean_cols = [np.ascontiguousarray(means[:, j]) for j in range(p + 1)]
-    moving = [j for j, col in enumerate(columns) if j == p or col.min() != col.max()]
+    moving = [
+        j
+        for j, col in enumerate(columns)
+        if j == p
+        or (
+            lows[j] != highs[j]
+            and not _indicator_within_constant(col, lows[j], highs[j], sums[:, j], counts)
+        )
+    ]
     dev = np.empty((len(moving), min(n, _ROW_BLOCK)))
     part = np.zeros((len(moving), len(moving)))
     for start in range(0, n, _ROW_BLOCK):
@@ -403,6 +441,10 @@ class _Tree:
     def profiled_deviance(self, lam: np.ndarray) -> float:
         """lme4's REMLcrit at ``lam``."""
         return _profiled(self, lam, grad=False)[0]
+
+    def deviance_grid(self, lams: np.ndarray) -> np.ndarray:
+        """lme4's REMLcrit at many values of a single level's ``lam`` at once."""
+        return _deviance_grid(self, lams)
 
     def polish_start(self, lam: np.ndarray, active: Sequence[int]) -> PolishPoint:
         """Unprofiled deviance at ``lam`` and the profiled ``s_e`` (Newton start)."""
@@ -898,6 +940,41 @@ def _profiled(tree: _Tree, lam: np.ndarray, grad: bool = True) -> tuple[float, n
     return dev, np.asarray(g)
 
 
+def _deviance_grid(tree: _Tree, lams: np.ndarray) -> np.ndarray:
+    """lme4's REMLcrit of a one-level tree at each ``lam`` in ``lams``.
+
+    The recursion of the module docstring with ``K = 1`` and ``s_e = 1``:
+    ``W'V^{-1}W = S_w + sum_g w_g mu_g mu_g'`` with ``w_g = n_g / (1 + lam n_g)``
+    and ``log|V| = sum_g log(1 + lam n_g)``, for all ``lam`` in one batch (a
+    grid that locates the optimum before Newton's method polishes it).
+    Raises ``LinAlgError`` when a cross-product matrix is not positive definite.
+    """
+    if tree.k != 1:
+        raise DesignError("the deviance grid is for one grouping level")
+    lam = np.asarray(lams, dtype=float)
+    p, nmp = tree.p, tree.n - tree.p
+    n_g, mu = tree.counts, tree.means
+    scaled = lam[:, None] * n_g[None, :]
+    w = n_g[None, :] / (1.0 + scaled)
+    logdet_v = np.log1p(scaled).sum(axis=1)
+    m = mu.shape[1]
+    if mu.shape[0] * m * m <= 1 << 22:
+        outer = (mu[:, :, None] * mu[:, None, :]).reshape(mu.shape[0], m * m)
+        mats = tree.within[None] + (w @ outer).reshape(lam.size, m, m)
+    else:
+        mats = np.stack([tree.within + (mu.T * wg) @ mu for wg in w])
+    scale = np.sqrt(np.einsum("gii->gi", mats))
+    if not (np.all(scale > 0.0) and np.all(np.isfinite(mats))):
+        raise linalg.LinAlgError("degenerate cross-product matrix")
+    chol = np.linalg.cholesky(mats / (scale[:, :, None] * scale[:, None, :]))
+    diag = np.einsum("gii->gi", chol) * scale
+    logdet_a = 2.0 * np.sum(np.log(diag[:, :p]), axis=1)
+    rvr = diag[:, p] ** 2
+    if not np.all(rvr > 0.0):
+        raise DesignError("the model fits the response exactly; residual variance is zero")
+    return np.asarray(logdet_v + logdet_a + nmp * (1.0 + _LOG_2PI + np.log(rvr / nmp)))
+
+
 @dataclass(frozen=True, eq=False)
 class _Second:
     deviance: float  # unprofiled REML deviance
@@ -988,9 +1065,18 @@ def fit_nested_reml(s: NestedSummaries) -> MixedFit:
     tree = _build_tree(s)
     _check_design(tree, s)
     tree, t_mat, b0 = _recentre(tree)
-    # three starts while evaluations are cheap; lme4's single start theta = 1 beyond
-    starts = (1.0, 0.0625, 16.0) if sum(tree.sizes) <= _MULTI_START_GROUPS else (1.0,)
-    fit = fit_components(tree, s.fixed_names, starts, newton_stop=_NEWTON_STOP, failures=_FAILURES)
+    # while evaluations are cheap: a grid for one level, three starts for more;
+    # lme4's single start theta = 1 beyond
+    cheap = sum(tree.sizes) <= _MULTI_START_GROUPS
+    starts = (1.0, 0.0625, 16.0) if cheap else (1.0,)
+    fit = fit_components(
+        tree,
+        s.fixed_names,
+        starts,
+        newton_stop=_NEWTON_STOP,
+        failures=_FAILURES,
+        grid=tree.deviance_grid if tree.k == 1 and cheap else None,
+    )
     # back from the centred fixed-effects coordinates of _recentre
     return replace(
         fit,
