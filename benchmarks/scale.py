@@ -221,7 +221,7 @@ def main() -> None:
         line = (
             f"| {cfg.rows:,} | {cfg.units:,} | {cfg.levels} | {len(df.columns)} | "
             f"{total:.2f} | {stages} | "
-            f"{floor:.3f} | {total / floor:.0f} | {fit_s:.2f} | {sm_text} | {ratio} | {diff} |"
+            f"{floor:.3f} | {total / floor:.0f} | {fit_s:.3f} | {sm_text} | {ratio} | {diff} |"
         )
         lines.append(line)
         print(line, flush=True)
