@@ -168,7 +168,9 @@ def read_table(
         digest, parsed = _read_file(Path(label), label, sheet, codes, wanted, progress)
     else:
         raise InputError(f"expected a file path or a DataFrame, got {type(source).__name__}")
-    data = _apply_missing(parsed.frame, parsed.blank, codes, parsed.decimal)
+    data = _apply_missing(
+        parsed.frame, parsed.blank, codes, parsed.decimal, consume=digest is not None
+    )
     if len(data) == 0:
         where = "the DataFrame" if digest is None else f"{label}:"
         raise InputError(f"{where} has no data rows")
@@ -638,20 +640,29 @@ def _distinct_cells(series: pd.Series) -> tuple[np.ndarray | None, pd.Series]:
 
 
 def _apply_missing(
-    frame: pd.DataFrame, blank: set[int], codes: _MissingCodes, decimal: str
+    frame: pd.DataFrame,
+    blank: set[int],
+    codes: _MissingCodes,
+    decimal: str,
+    consume: bool = True,
 ) -> pd.DataFrame:
     """Apply missing codes; drop all-missing rows and unnamed all-missing columns.
 
-    Consumes ``frame``: each column is taken out of it before the next is
+    With ``consume``, each column is taken out of ``frame`` before the next is
     converted, so a frame with one block per column (as pyarrow gives) is never
-    held twice.
+    held twice. A frame whose columns share blocks (a DataFrame given by the
+    caller and copied) is read column by column instead (``consume=False``):
+    taking a column out of a shared block copies the rest of the block, which
+    costs columns x table.
     """
     names = [str(c) for c in frame.columns]
-    frame.columns = pd.Index([str(i) for i in range(len(names))])  # names may repeat
+    if consume:
+        frame.columns = pd.Index([str(i) for i in range(len(names))])  # names may repeat
     filled = np.zeros(len(frame), dtype=bool)
     converted: dict[str, pd.Series] = {}
     for i, name in enumerate(names):
-        column = _missing_in_column(frame.pop(str(i)), codes, decimal)
+        raw = frame.pop(str(i)) if consume else frame.iloc[:, i]
+        column = _missing_in_column(raw, codes, decimal)
         present = column.notna().to_numpy(dtype=bool)
         if i in blank and not present.any():
             continue

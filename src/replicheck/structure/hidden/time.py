@@ -596,7 +596,8 @@ def scan_time(
         raise InputError(f"column '{missing[0]}' is not in the data")
     skip = {str(response), *map(str, treatments), *map(str, exclude)}
     sources, signals = _sources(frame, skip, dayfirst)
-    existing = _column_partitions(frame, {str(response), *map(str, treatments)})
+    # the partitions of the other columns, coded only when a time column is found
+    existing = _column_partitions(frame, {str(response), *map(str, treatments)}) if sources else []
     position = {str(c): i for i, c in enumerate(frame.columns)}
     derived: list[DerivedGrouping] = []
     reported: list[tuple[str, np.ndarray]] = []
