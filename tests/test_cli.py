@@ -270,3 +270,28 @@ def test_stage_line_on_a_terminal_is_cleared_and_absent_from_pipes(ratpup_csv: P
     assert text.endswith("\r\x1b[K")  # nothing left on the line
     piped = run(*args)  # stderr a pipe: no stage line at all
     assert "replicheck:" not in piped.stderr
+
+
+def _loaded_after(statement: str, modules: tuple[str, ...]) -> list[str]:
+    code = (
+        f"import sys\n{statement}\n"
+        f"print(' '.join(m for m in {modules!r} if m in sys.modules))"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120
+    )
+    return out.stdout.split()
+
+
+def test_the_command_line_starts_without_the_statistics_stack() -> None:
+    # --help and usage errors must not wait for scipy, statsmodels and the rest:
+    # the command module loads them only when an audit runs
+    heavy = ("scipy", "statsmodels", "sklearn", "formulaic", "matplotlib", "replicheck.api")
+    assert _loaded_after("import replicheck.cli", heavy) == []
+    # an audit loads the formula parser, the GEE and scikit-learn only when used
+    optional = ("formulaic", "statsmodels.genmod", "sklearn")
+    assert _loaded_after("import replicheck.api", optional) == []
+    assert _loaded_after("import replicheck.api", ("scipy.stats", "pandas")) == [
+        "scipy.stats",
+        "pandas",
+    ]

@@ -25,6 +25,7 @@ from replicheck.claim import (
 )
 from replicheck.clustering import measure_clustering
 from replicheck.codebook import allow_for, shared_codes
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.display import display_data
 from replicheck.errors import InputError
 from replicheck.formula import rename_columns
@@ -36,7 +37,6 @@ from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
 from replicheck.stats.discrete import response_kind
 from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
-from replicheck.stats.randomisation import DEFAULT_SEED
 from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes

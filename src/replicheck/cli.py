@@ -16,9 +16,9 @@ from typing import Any
 import click
 
 from replicheck import __version__
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
 from replicheck.screen.command import screen_command
-from replicheck.stats.randomisation import DEFAULT_SEED
 
 FORMATS = ("text", "json", "markdown", "html")
 

@@ -28,21 +28,23 @@ import re
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import TypeVar
-
-from formulaic import Formula
-from formulaic.errors import FormulaicError
-from formulaic.parser import DefaultFormulaParser
-from formulaic.parser.types import Token
+from typing import TYPE_CHECKING, TypeVar
 
 from replicheck.errors import InputError
+
+if TYPE_CHECKING:
+    from formulaic.parser.types import Token
+
+# formulaic is imported where a formula is read (loading it takes a noticeable
+# part of a second, and most audits name their columns instead)
 
 __all__ = ["ModelFormula", "factor_name", "parse_formula", "rename_columns", "replace_response"]
 
 _T = TypeVar("_T")
-# formulaic raises its own errors for bad formulas, and on some malformed input
-# (unbalanced brackets in Python code, stray operators) Python's own exceptions
-_PARSE_ERRORS = (FormulaicError, SyntaxError, ValueError, IndexError, AttributeError, TypeError)
+# formulaic raises its own errors for bad formulas (caught first), and on some
+# malformed input (unbalanced brackets in Python code, stray operators) Python's
+# own exceptions
+_PARSE_ERRORS = (SyntaxError, ValueError, IndexError, AttributeError, TypeError)
 _RANDOM = "replicheck finds the random structure from the data; give the fixed terms only"
 _ANSI = re.compile(r"\x1b\[[0-9;]*m")
 
@@ -125,6 +127,8 @@ def _quoted(name: str, text: str) -> str:
 
 def _quietly(text: str, run: Callable[[], _T]) -> _T:
     """Run a formulaic step, turning its exceptions into one-line InputErrors."""
+    from formulaic.errors import FormulaicError
+
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", SyntaxWarning)
@@ -136,6 +140,8 @@ def _quietly(text: str, run: Callable[[], _T]) -> _T:
 
 
 def _tokens(text: str) -> list[Token]:
+    from formulaic.parser import DefaultFormulaParser
+
     return _quietly(text, lambda: list(DefaultFormulaParser().get_tokens(text)))
 
 
@@ -146,6 +152,8 @@ def _first_line(err: Exception) -> str:
 
 def _rewrite(text: str) -> tuple[str, list[str]]:
     """Check the tokens, replace C()/Q() by quoted names; also the names in text order."""
+    from formulaic.parser.types import Token
+
     tokens = _tokens(text)
     tildes = [t for t in tokens if t.kind is Token.Kind.OPERATOR and t.token == "~"]
     if not tildes:
@@ -197,6 +205,8 @@ def parse_formula(text: str) -> ModelFormula:
         raise InputError("the formula is empty: write it as 'response ~ treatment'")
     text = text.strip()
     rewritten, names = _rewrite(text)
+    from formulaic import Formula
+
     parsed = _quietly(text, lambda: Formula(rewritten, _ordering="none"))
     lhs = getattr(parsed, "lhs", None)
     rhs = getattr(parsed, "rhs", None)
@@ -253,6 +263,8 @@ def factor_name(expr: str) -> str:
 
 def replace_response(formula: ModelFormula, response: str) -> ModelFormula:
     """The same right-hand side with another response column (like R's ``update(f, y2 ~ .)``)."""
+    from formulaic.parser.types import Token
+
     tokens = _tokens(formula.text)
     tilde = next(t for t in tokens if t.kind is Token.Kind.OPERATOR and t.token == "~")
     end = tilde.source_end if tilde.source_end is not None else formula.text.index("~")

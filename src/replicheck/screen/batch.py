@@ -248,7 +248,7 @@ def screen(
         A path is missing, an option is out of range, the outputs would land
         among the data, the spec index is bad, or there is no data file.
     """
-    from replicheck.stats.randomisation import DEFAULT_SEED
+    from replicheck.defaults import DEFAULT_SEED
 
     if jobs is not None and (isinstance(jobs, bool) or jobs < 1):
         raise InputError(f"--jobs must be at least 1, got {jobs!r}")

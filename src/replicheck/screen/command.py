@@ -8,9 +8,9 @@ from typing import Any
 
 import click
 
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.screen.batch import DEFAULT_OUT, DEFAULT_TIME_LIMIT
 from replicheck.screen.summary import SEVERITY, Row
-from replicheck.stats.randomisation import DEFAULT_SEED
 
 
 @click.command("screen")

@@ -23,9 +23,10 @@ from itertools import combinations, product
 
 import numpy as np
 
+from replicheck.defaults import DEFAULT_SEED
+
 MAX_EXACT = 100_000
 MONTE_CARLO_DRAWS = 20_000
-DEFAULT_SEED = 20261201
 _REL_TOL = 1e-9
 
 

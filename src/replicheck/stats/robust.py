@@ -67,6 +67,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -78,7 +79,6 @@ __all__ = [
     "wild_cluster_bootstrap",
 ]
 
-DEFAULT_SEED = 20261201
 DEFAULT_DRAWS = 9999
 WEBB_BELOW = 12  # "auto" uses Webb weights below this many clusters (common practice)
 # Webb (2013): +-sqrt(3/2), +-1, +-sqrt(1/2), each with probability 1/6.

@@ -40,7 +40,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from sklearn.metrics import adjusted_mutual_info_score
 
 from replicheck.errors import InputError
 
@@ -114,6 +113,8 @@ def alignment(
     c = _dense(col[present])
     t = _dense(trt[present])
     table = contingency_table(c, t)
+    from sklearn.metrics import adjusted_mutual_info_score  # loaded when first needed
+
     ami = float(adjusted_mutual_info_score(t, c))
     majority = table.argmax(axis=1)  # ties: lowest treatment code
     aligned = t == majority[c]

@@ -95,6 +95,7 @@ from scipy.special import gammaln, logsumexp
 from scipy.stats import norm
 
 from replicheck.codebook import column_codes
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
@@ -107,7 +108,6 @@ DERIVE_ALPHA = 0.001  # derive runs (strict screening level, common practice)
 N_DRAWS = 4000
 MIN_EXCESS_R1 = 0.1  # autocorrelation above its permutation mean worth reporting (chosen)
 MIN_ITEMS = 6  # fewer positions along the order say nothing (a chosen value)
-DEFAULT_SEED = 20261201
 _CHUNK_ELEMENTS = 4_000_000
 _WORK = 20_000_000  # permutation work (positions x draws) beyond which moments are used
 

@@ -65,7 +65,6 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy.spatial import cKDTree
-from sklearn.cluster import DBSCAN
 
 from replicheck.codebook import first_seen_codes_of
 from replicheck.errors import InputError
@@ -420,6 +419,8 @@ def _zones(
     n = len(points)
     one_way = sp.csr_matrix((dd, (r, c)), shape=(n, n))
     graph = one_way.maximum(one_way.T)  # symmetric; a mutual pair keeps its distance
+    from sklearn.cluster import DBSCAN  # loaded only when coordinates are scanned
+
     codes = DBSCAN(eps=eps * (1 + _TIE_TOL), min_samples=1, metric="precomputed").fit_predict(graph)
     return np.asarray(codes, dtype=np.int64), eps
 

@@ -67,6 +67,7 @@ from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 
 from replicheck.codebook import column_codes, first_seen_codes_of, remembered
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import same_partition
@@ -78,7 +79,6 @@ PARSE_SHARE = 0.90  # share of non-missing cells that must read as times (a chos
 SESSION_GAP_FACTOR = 5.0  # a session ends at a gap of more than 5 x the median gap (chosen)
 SESSION_GAP_FLOOR_S = 30 * 60.0  # ... and of more than 30 min (common practice, see above)
 N_DRAWS = 2000
-DEFAULT_SEED = 20261201
 _CHUNK_ELEMENTS = 4_000_000
 _WORK = 20_000_000  # Monte Carlo work (rows x draws) beyond which fewer draws are made
 
