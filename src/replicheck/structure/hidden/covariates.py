@@ -65,6 +65,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from replicheck.codebook import column_codes
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import (
@@ -207,10 +208,13 @@ def scan_covariates(
         if n < MIN_ROWS:
             continue
         v, y, cells = values[ok], y_all[ok], _dense(cells_all[ok])
-        n_values = int(np.unique(v).size)
+        # the values' codes (in increasing order of value) from the column's
+        # shared codes, which are sorted by value too: no sort of the rows here
+        own = dense_codes(column_codes(frame[col]).codes[ok])
+        n_values = int(own.max()) + 1
         if n_values < MIN_DISTINCT or n_values > MAX_DISTINCT_SHARE * n:
             continue
-        found = _classes(v, y, cells)
+        found = _classes(v, own, y, cells)
         if found is None:
             continue
         classes, test = found
@@ -225,7 +229,6 @@ def scan_covariates(
         if _explained(groupings, col, ok, classes, cells):
             continue
         integer = bool(np.all(v == np.round(v)))
-        own = _dense(v)
         if integer and same_partition(own, classes):
             continue  # an integer unit number, not a covariate
         codes = np.full(len(frame), -1, dtype=np.int64)
@@ -239,12 +242,14 @@ def scan_covariates(
 
 
 def _classes(
-    v: np.ndarray, y: np.ndarray, cells: np.ndarray
+    v: np.ndarray, own: np.ndarray, y: np.ndarray, cells: np.ndarray
 ) -> tuple[np.ndarray, tuple[float, int, int, float]] | None:
-    """Value classes within cells and their lack-of-fit test, when they pass rules 1 to 3."""
+    """Value classes within cells and their lack-of-fit test, when they pass rules 1 to 3.
+
+    ``own`` codes the covariate's values ``v`` ``0..k-1`` in increasing order of value.
+    """
     n = v.size
     n_cells = int(cells.max()) + 1
-    own = _dense(v)
     classes = _dense(cells * (int(own.max()) + 1) + own)
     k = int(classes.max()) + 1
     sizes = np.bincount(classes, minlength=k)
