@@ -273,10 +273,7 @@ def test_stage_line_on_a_terminal_is_cleared_and_absent_from_pipes(ratpup_csv: P
 
 
 def _loaded_after(statement: str, modules: tuple[str, ...]) -> list[str]:
-    code = (
-        f"import sys\n{statement}\n"
-        f"print(' '.join(m for m in {modules!r} if m in sys.modules))"
-    )
+    code = f"import sys\n{statement}\nprint(' '.join(m for m in {modules!r} if m in sys.modules))"
     out = subprocess.run(
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120
     )
