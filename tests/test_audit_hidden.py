@@ -105,6 +105,31 @@ def test_processing_runs_along_an_injection_order() -> None:
     assert doc["terms"][0]["p_value"] == pytest.approx(expected, rel=1e-9)
 
 
+def test_a_measurement_with_a_tied_reading_does_not_hide_file_order_runs() -> None:
+    # hand-built example: 36 extracts listed in processing order, 6 runs of 6 with
+    # the diets alternating by run and a drift between runs; a body-mass column with
+    # one tied reading (two control rows) is nested in the diet by chance. It is a
+    # measurement, not a record of units, so the runs are still the units; a
+    # subject number repeated twice in the same way is a record of units.
+    rng = np.random.default_rng(5)
+    run = np.arange(36) // 6
+    diet = np.where(run % 2 == 0, "control", "enriched")
+    y = 10 + rng.normal(0, 1.5, 6)[run] + rng.normal(0, 0.3, 36)
+    mass = np.round(rng.normal(30, 3, 36), 3)
+    mass[1] = mass[0]
+    frame = pd.DataFrame({"diet": diet, "area": y, "body_mass_g": mass})
+    doc = audit(frame, response="area", treatment="diet").to_dict()
+    assert doc["experimental_units"][0]["unit"] == "run[file order]"
+    assert doc["experimental_units"][0]["n_units"] == 6
+    assert doc["terms"][0]["p_value"] == pytest.approx(_unit_means_p(y, run, diet), rel=1e-9)
+    subject = np.arange(36)
+    subject[1] = subject[0]
+    subject[20] = subject[19]
+    ids = pd.DataFrame({"diet": diet, "area": y, "subject": subject})
+    unit = audit(ids, response="area", treatment="diet").to_dict()["experimental_units"][0]
+    assert unit["unit"] == "subject"
+
+
 def test_tanks_inside_composite_sample_codes() -> None:
     # hand-built example: 3 feeds x 4 tanks x 5 fish; the tank shows only in codes
     # such as "F2-TANK3-07" (tank numbers restart within each feed).

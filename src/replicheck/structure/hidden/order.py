@@ -66,7 +66,9 @@ The runs are not split further: a break of the response inside a run would
 be a guess.
 
 **The file order** yields runs only when no recorded column is already a
-replicated grouping nested in the treatment: files are often listed by
+replicated grouping nested in the treatment (a measurement, numbers with
+fractional values and more distinct values than half the rows, does not count:
+a few tied readings would make it look nested): files are often listed by
 treatment in several stretches (sheets pasted one after another), which says
 nothing about processing when the units are recorded. Runs in the file order
 are reported as the Signal ``treatment-in-file-runs`` (a note), runs along a
@@ -448,6 +450,18 @@ def _combine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return _codes(a * (int(b.max()) + 1) + b)
 
 
+def _measurement(series: pd.Series, n_levels: int, n_rows: int) -> bool:
+    """Whether a column reads as a measurement rather than a record of units: numbers
+    with fractional values and more distinct values than half the rows (a few tied
+    readings make such a column look nested in the treatment by chance)."""
+    numeric = pd.api.types.is_numeric_dtype(series.dtype)
+    if n_levels <= n_rows / 2 or not numeric or pd.api.types.is_bool_dtype(series.dtype):
+        return False
+    values = series.to_numpy(dtype=float, na_value=np.nan)
+    finite = values[np.isfinite(values)]
+    return bool(np.any(finite != np.round(finite)))
+
+
 def _recorded(
     frame: pd.DataFrame,
     rows: np.ndarray,
@@ -674,7 +688,10 @@ def _runs_of(
     if test.p_value >= DERIVE_ALPHA:
         return signals, None, "", {}
     if ordering.from_file and any(
-        k < int(c.max()) + 1 < rows.size and is_nested(c, target) for _, c in recorded
+        k < int(c.max()) + 1 < rows.size
+        and is_nested(c, target)
+        and not _measurement(frame[name], int(c.max()) + 1, rows.size)
+        for name, c in recorded
     ):
         # The file order makes a unit only when no recorded column does: a file
         # listed by treatment in several stretches (sheets pasted together) says
