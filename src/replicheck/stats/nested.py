@@ -118,6 +118,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
+from typing import TypeVar
 
 import numpy as np
 from scipy import linalg
@@ -134,6 +135,7 @@ from replicheck.stats.reml_search import (
 __all__ = ["NestedSummaries", "combine", "fit_nested_reml", "summarise"]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
+_F = TypeVar("_F", float, np.ndarray)
 _MULTI_START_GROUPS = 20_000  # groups (all levels) up to which a grid or three starts are used
 # largest log-variance step at which the Newton polish stops (Newton: the
 # error left after such a step is ~step^2)
@@ -916,10 +918,15 @@ def _profiled_sigma2(tree: _Tree, ev: _Reml) -> float:
     return ev.rvr / (tree.n - tree.p)
 
 
+def _crit(nmp: int, logdet_v: _F, logdet_a: _F, rvr: _F) -> _F:
+    """lme4's REMLcrit from ``log|V|``, ``log|A|`` and ``r'V^{-1}r`` at ``s_e = 1``
+    (floats, or arrays of them), ``nmp = n - p``."""
+    return logdet_v + logdet_a + nmp * (1.0 + _LOG_2PI + np.log(rvr / nmp))
+
+
 def _remlcrit(tree: _Tree, ev: _Reml) -> float:
     """lme4's REMLcrit from the quantities at ``s_e = 1``, ``s_l = lam_l``."""
-    nmp = tree.n - tree.p
-    return float(ev.logdet_v + ev.logdet_a + nmp * (1.0 + _LOG_2PI + np.log(ev.rvr / nmp)))
+    return float(_crit(tree.n - tree.p, ev.logdet_v, ev.logdet_a, ev.rvr))
 
 
 def _profiled(tree: _Tree, lam: np.ndarray, grad: bool = True) -> tuple[float, np.ndarray]:
@@ -972,7 +979,7 @@ def _deviance_grid(tree: _Tree, lams: np.ndarray) -> np.ndarray:
     rvr = diag[:, p] ** 2
     if not np.all(rvr > 0.0):
         raise DesignError("the model fits the response exactly; residual variance is zero")
-    return np.asarray(logdet_v + logdet_a + nmp * (1.0 + _LOG_2PI + np.log(rvr / nmp)))
+    return np.asarray(_crit(nmp, logdet_v, logdet_a, rvr))
 
 
 @dataclass(frozen=True, eq=False)
