@@ -249,7 +249,7 @@ def test_load_spec_valid(tmp_path: Path) -> None:
     assert load_spec(path) == {
         "response": "weight",
         "treatment": ("feed", "temp"),
-        "unit": "tank",
+        "unit": ("tank",),
         "claim": "F(2, 57) = 8.31, p = .001",
         "alpha": 0.01,
         "na": ("NA", "-99", "9.5"),
@@ -263,7 +263,9 @@ def test_load_spec_scalars(tmp_path: Path) -> None:
 
 
 def test_load_spec_unknown_key_lists_allowed(tmp_path: Path) -> None:
-    with pytest.raises(InputError, match=r"unknown key 'respones'.*allowed keys: alpha, claim"):
+    with pytest.raises(
+        InputError, match=r"unknown key 'respones'.*allowed keys: alpha, block, claim"
+    ):
         load_spec(_write(tmp_path, 'respones = "weight"\n'))
 
 
@@ -388,7 +390,14 @@ def test_build_claim_defaults() -> None:
         ({"response": "y", "treatments": ["g"], "alpha": 0.0}, "alpha"),
         ({"response": "y", "treatments": ["y"]}, "both the response and a treatment"),
         ({"response": "y", "treatments": ["g", "g"]}, "given twice"),
-        ({"response": "y", "treatments": ["g"], "unit": "y"}, "response and the unit"),
+        ({"response": "y", "treatments": ["g"], "unit": "y"}, "both the response and a unit"),
+        ({"response": "y", "treatments": ["g"], "unit": "g"}, "both a treatment and a unit"),
+        (
+            {"response": "y", "treatments": ["g"], "roles": {"block": "b", "unit": "b"}},
+            "stated both as",
+        ),
+        ({"response": "y", "treatments": ["g"], "unit": "a::b"}, "empty part"),
+        ({"response": "y", "treatments": ["g"], "unit_labels": "sideways"}, "unit-labels"),
         ({"response": "y", "treatments": ["g"], "claim_text": "hello"}, "no statistic"),
         ({"response": "y", "treatments": ["g"], "spec": {"colour": 1}}, "unknown key 'colour'"),
     ],
@@ -517,13 +526,18 @@ def test_match_term() -> None:
 def test_spec_keys() -> None:
     assert SPEC_KEYS == (
         "alpha",
+        "block",
         "claim",
+        "covariate",
         "formula",
+        "ignore",
         "na",
         "response",
         "sheet",
         "treatment",
         "unit",
+        "unit_labels",
+        "within",
     )
 
 

@@ -60,11 +60,22 @@ def test_entry_error_is_reported_as_partial_alignment_with_its_row() -> None:
     assert doc["verdict"]["status"] == "pseudoreplicated"
 
 
-def test_stated_unit_crossed_with_treatment_is_not_trusted() -> None:
+def test_stated_unit_crossed_with_treatment_is_used_and_disputed() -> None:
+    # Sex varies within every dose: stated as the unit, it is still used, as the
+    # sex x dose cells (the only reading of "pups of one sex are not independent"
+    # under which each dose level was applied to a unit), and the report says the data
+    # disagree, with the litter analysis that replicheck would choose beside it.
     doc = _doc(PUPS, unit="sex")
-    assert "stated-unit-not-supported" in _rules(doc)
-    # the unit found from the data stays the litter
-    assert doc["experimental_units"][0]["unit"] == "Litter"
+    u = doc["experimental_units"][0]
+    assert u["source"] == "stated" and set(u["columns"]) == {"sex", "Treatment"}
+    assert u["n_units"] == 6
+    findings = [f for f in doc["findings"] if f["rule"] == "stated-unit-not-supported"]
+    assert findings and all(f["severity"] == "warning" for f in findings)
+    assert any("crossed with 'Treatment'" in f["message"] for f in findings)
+    alt = doc["terms"][0]["alternatives"]
+    assert [a["unit"] for a in alt] == ["Litter"] and alt[0]["kind"] == "stated"
+    assert alt[0]["df"] == pytest.approx([2.0, 24.0], abs=3.0)  # litter-level df
+    assert any("Litter" in f["message"] for f in findings)
 
 
 def test_stated_unit_that_agrees_is_confirmed() -> None:

@@ -31,18 +31,25 @@ from replicheck.errors import InputError
 from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
-from replicheck.partitions import units_per_level
+from replicheck.partitions import same_partition, units_per_level
 from replicheck.reconcile import Level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit
 from replicheck.report.model import Report
-from replicheck.stats.discrete import response_kind
+from replicheck.roles import Roles, Statement
+from replicheck.stats.discrete import ResponseKind, response_kind
 from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
 from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import codes_of, group_codes
 from replicheck.structure.terms import Term, drop_unreplicated, interaction_levels, model_terms
-from replicheck.structure.units import Structure, UnitChoice, infer_structure, unit_codes
-from replicheck.verdict import Evidence, TermEvidence, decide
+from replicheck.structure.units import (
+    Structure,
+    UnitChoice,
+    complete_codes,
+    infer_structure,
+    unit_codes,
+)
+from replicheck.verdict import AlternativeEvidence, Evidence, TermEvidence, decide
 
 
 def make_claim(
@@ -50,7 +57,7 @@ def make_claim(
     *,
     response: str | None = None,
     treatment: str | Sequence[str] = (),
-    unit: str | None = None,
+    unit: str | Sequence[str] | None = None,
     claim: str | Sequence[str] | None = None,
     alpha: float | None = None,
     na: Sequence[str] = (),
@@ -58,6 +65,8 @@ def make_claim(
     spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
     find_spec: bool = True,
     formula: str | None = None,
+    roles: Mapping[str, object] | None = None,
+    unit_labels: str | None = None,
 ) -> Claim:
     """Build the claim from options, an explicit spec, or the spec found beside the data file."""
     spec_data: Mapping[str, object] | None = None
@@ -85,21 +94,25 @@ def make_claim(
         sheet=sheet,
         spec=spec_data,
         spec_path=spec_path,
+        roles=roles,
+        unit_labels=unit_labels,
     )
 
 
-def _resolve_unit(cols: Sequence[str], unit: str) -> tuple[str, ...]:
-    """A stated unit: one column, or an implicit grouping 'a:b' of several."""
+def _resolve_statement(
+    cols: Sequence[str], text: str, parts: tuple[str, ...], role: str
+) -> tuple[str, ...]:
+    """A stated role's columns as the data spell them: one column, or 'a:b' for several."""
     try:
-        return (resolve_column(cols, unit, "unit"),)
+        return (resolve_column(cols, text, role),)
     except InputError:
-        if ":" not in unit:
+        if len(parts) < 2:
             raise
-    return tuple(resolve_column(cols, part.strip(), "unit") for part in unit.split(":"))
+    return tuple(resolve_column(cols, part, role) for part in parts)
 
 
-def _resolve(table: Table, claim: Claim) -> tuple[Claim, tuple[str, ...]]:
-    """Column names as the data spell them; the stated unit as a tuple of columns."""
+def _resolve(table: Table, claim: Claim) -> Claim:
+    """Column names as the data spell them, in the response, treatments, formula and roles."""
     cols = table.columns
     response = resolve_column(cols, claim.response, "response")
     treatments = tuple(resolve_column(cols, t, "treatment") for t in claim.treatments)
@@ -107,44 +120,70 @@ def _resolve(table: Table, claim: Claim) -> tuple[Claim, tuple[str, ...]]:
         raise InputError(f"the same column is named twice as a treatment: {', '.join(treatments)}")
     if response in treatments:
         raise InputError(f"column '{response}' cannot be both the response and a treatment")
-    unit: tuple[str, ...] = () if claim.unit is None else _resolve_unit(cols, claim.unit)
-    if response in unit or (len(unit) == 1 and unit[0] in treatments):
-        raise InputError(
-            f"'{claim.unit}' cannot be the unit: it is the response or a treatment column"
-        )
+    statements = []
+    for st in claim.roles.statements:
+        columns = _resolve_statement(cols, st.text, st.columns, st.role)
+        if response in columns or (len(columns) == 1 and columns[0] in treatments):
+            raise InputError(
+                f"'{st.text}' cannot be a {st.role}: it is the response or a treatment column"
+            )
+        statements.append(replace(st, columns=columns))
+    roles = Roles(tuple(statements))
+    seen: dict[str, str] = {}
+    for st in roles.statements:
+        if len(st.columns) == 1:
+            col = st.columns[0]
+            if seen.get(col, st.role) != st.role:
+                raise InputError(
+                    f"column '{col}' is stated both as {seen[col]} and as {st.role}: give each "
+                    "column one role"
+                )
+            seen[col] = st.role
     formula = claim.formula
     if formula is not None:
         mapping = {claim.response: response}
         mapping.update(dict(zip(claim.treatments, treatments, strict=True)))
         formula = rename_columns(formula, mapping)
-    resolved = replace(
-        claim,
-        response=response,
-        treatments=treatments,
-        unit=":".join(unit) if unit else None,
-        formula=formula,
-    )
-    return resolved, unit
+    return replace(claim, response=response, treatments=treatments, roles=roles, formula=formula)
 
 
 def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[str]]:
     """Model terms of a formula, and the factors read as blocks rather than treatments.
 
-    A factor that enters the formula only as a main effect, whose name says
-    block, place, unit or subject (not time: periods and days are usually
-    fixed effects of a claimed model), beside at least one other factor, is a
-    block of the design: replicheck puts it in the random structure.
+    A factor of the formula is a block of the design (replicheck puts it in the
+    random structure, and the claimed row-level model keeps it as a fixed
+    effect) when it is stated as a block, when it is part of a stated unit
+    together with another factor (``B`` in a stated whole plot ``B:V``), or
+    when it enters only as a main effect, beside at least one other factor,
+    and its name says block, place, unit or subject (not time: periods and
+    days are usually fixed effects of a claimed model).
     """
     assert claim.formula is not None
     in_interaction = {f for t in claim.formula.terms if len(t) > 1 for f in t}
-    blocks = [
+    stated_blocks = set(claim.roles.columns("block"))
+    unit_parts = {
+        f
+        for s in claim.roles.units
+        if len(s.columns) > 1
+        for f in s.columns
+        if any(g != f and g in claim.treatments for g in s.columns)
+    }
+    named = {
         f
         for f in claim.treatments
         if f not in in_interaction
         and name_hint(f).suggests_unit
         and name_hint(f).kind != "time"
         and len(claim.treatments) > 1
+    }
+    factors = set(claim.treatments)
+    blocks = [
+        f
+        for f in claim.treatments
+        if f in stated_blocks or (f in unit_parts and f not in in_interaction) or f in named
     ]
+    if len(blocks) == len(factors):
+        blocks = []
     terms = [
         Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
     ]
@@ -225,15 +264,20 @@ def audit(
     *,
     response: str | None = None,
     treatment: str | Sequence[str] = (),
-    unit: str | None = None,
+    unit: str | Sequence[str] | None = None,
     claim: str | Sequence[str] | None = None,
     alpha: float | None = None,
     na: Sequence[str] = (),
     sheet: str | None = None,
     spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
     find_spec: bool = True,
-    unit_labels: str = "auto",
+    unit_labels: str | None = None,
     formula: str | None = None,
+    block: str | Sequence[str] | None = None,
+    within: str | Sequence[str] | None = None,
+    covariate: str | Sequence[str] | None = None,
+    ignore: str | Sequence[str] | None = None,
+    roles: Mapping[str, object] | None = None,
     seed: int = DEFAULT_SEED,
     power: float = 0.8,
     effect: float | None = None,
@@ -250,10 +294,20 @@ def audit(
     ----------
     data:
         A path (CSV/TSV/text, .xlsx, Parquet) or a DataFrame. Never written to.
-    response, treatment, unit:
-        Column names (matched case- and space-insensitively). ``treatment``
-        may be a list. ``unit`` is the user's belief about the experimental
-        unit: it is checked against the data, not trusted.
+    response, treatment:
+        Column names (matched exactly, else case- and space-insensitively when
+        that is unambiguous). ``treatment`` may be a list.
+    unit, block, within, covariate, ignore:
+        Stated roles of columns (one name or a list; see
+        :data:`replicheck.roles.ROLE_FIELDS`): the experimental unit (several for
+        several levels; ``"a:b"`` for an implicit grouping such as block x
+        variety), blocks, within-unit factors (times, periods), covariates, and
+        columns to leave out. A stated role is always used; where the data
+        disagree the report says so with the evidence and shows the analysis
+        replicheck would choose beside it.
+    roles:
+        The same statements as a mapping of role to names (as the command line
+        passes them); keyword arguments above win for their role.
     claim:
         The reported result, e.g. ``"F(2, 57) = 8.31, p = .001"``, or several,
         each prefixed with its term: ``["variety: F(2, 10) = 1.49, p = .27"]``.
@@ -295,7 +349,11 @@ def audit(
         e.g. to say what a long audit is doing.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
-        each treatment level) or ``global`` (labels name the same unit everywhere).
+        each treatment level) or ``global`` (labels name the same unit
+        everywhere); by default the spec's ``unit_labels``, else ``auto``.
+    sheet, find_spec:
+        The sheet of an ``.xlsx`` workbook; whether to use a spec file found
+        beside the data file.
 
     Returns
     -------
@@ -322,11 +380,20 @@ def audit(
         raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
     with shared_codes():  # each column coded once for every stage
         clock = _Stopwatch(stage)
+        given = dict(roles or {})
+        for key, value in (
+            ("unit", unit),
+            ("block", block),
+            ("within", within),
+            ("covariate", covariate),
+            ("ignore", ignore),
+        ):
+            if value is not None:
+                given[key] = value
         c = make_claim(
             data,
             response=response,
             treatment=treatment,
-            unit=unit,
             claim=claim,
             alpha=alpha,
             na=na,
@@ -334,6 +401,8 @@ def audit(
             spec=spec,
             find_spec=find_spec,
             formula=formula,
+            roles=given,
+            unit_labels=unit_labels,
         )
         clock.lap("claim")
         table = read_table(
@@ -344,11 +413,20 @@ def audit(
         )
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))
-        c, stated = _resolve(table, c)
+        c = _resolve(table, c)
+        ignored = c.roles.columns("ignore")
+        if ignored:
+            table = replace(table, data=table.data.drop(columns=list(ignored)))
         formula_blocks: list[str] = []
         if c.formula is not None:
             terms, formula_blocks = _formula_terms(c, table.data)
-            c = replace(c, treatments=tuple(f for f in c.treatments if f not in formula_blocks))
+            c = replace(
+                c,
+                treatments=tuple(f for f in c.treatments if f not in formula_blocks),
+                roles=c.roles.added(
+                    Statement("block", (b,), "in the claimed formula") for b in formula_blocks
+                ),
+            )
         frame = _analysis_frame(table, c)
         allow_for(frame)
         if c.formula is None:
@@ -380,8 +458,10 @@ def audit(
             [t.name for t in terms],
             exclude=c.treatments,
             interactions=interactions,
-            stated_unit=stated or None,
-            unit_labels=unit_labels,
+            roles=c.roles,
+            unit_labels=c.unit_labels or "auto",
+            derived_columns=[g.name for g in hidden_scan.derived],
+            file_order=[g.name for g in hidden_scan.derived if g.name.endswith("[file order]")],
         )
         y = frame[c.response].to_numpy(dtype=float)
         inputs: list[TermInput] = []
@@ -396,20 +476,25 @@ def audit(
                 TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded)
             )
         strata = {
-            s.name: group_codes(frame, s.columns) for s in structure.strata if s.kind != "rows"
+            s.name: complete_codes(group_codes(frame, s.columns))
+            for s in structure.strata
+            if s.kind != "rows"
         }
         blocks = {
             s.name: strata[s.name]
             for s in structure.strata
             if s.kind == "block" and s.name in strata
         }
-        fixed_blocks = [group_codes(frame, (b,)) for b in formula_blocks]
+        fixed_blocks = [complete_codes(group_codes(frame, (b,))) for b in formula_blocks]
         kind = response_kind(y)
         coding = yes_no_coding(table.data[c.response])
         first_claim = reported.get(terms[0].name)
         row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
         clock.lap("structure")
         fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
+        alternatives = _refit_alternatives(
+            frame, y, structure, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2
+        )
         clock.lap("refit")
         single = len(terms) == 1 and not fixed_blocks
         X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
@@ -459,6 +544,7 @@ def audit(
                     per_level,
                     i == 0,
                     rec,
+                    tuple(alternatives.get(ti.term, ())),
                 )
             )
         primary = next(
@@ -501,6 +587,45 @@ def audit(
         return Report(
             table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
         )
+
+
+def _refit_alternatives(
+    frame: pd.DataFrame,
+    y: np.ndarray,
+    structure: Structure,
+    inputs: Sequence[TermInput],
+    strata: Mapping[str, np.ndarray],
+    blocks: Mapping[str, np.ndarray],
+    fixed_blocks: Sequence[np.ndarray],
+    seed: int,
+    kind: ResponseKind,
+    row_chi2: bool | None,
+) -> dict[str, list[AlternativeEvidence]]:
+    """Each alternative reading of a term's unit, refitted with that unit in its place."""
+    out: dict[str, list[AlternativeEvidence]] = {}
+    for alt in structure.alternatives:
+        at = next((i for i, t in enumerate(inputs) if t.term == alt.term), None)
+        if at is None:
+            continue
+        ti = inputs[at]
+        choice = alt.choice
+        confounded = choice.relation == "confounded"
+        codes = unit_codes(frame, choice) if choice.unit is not None and not confounded else None
+        new = replace(ti, unit=codes, unit_name=choice.unit, confounded=confounded)
+        others = [t for t in inputs if t.term != ti.term and t.unit is not None]
+        kept = {
+            name: c
+            for name, c in strata.items()
+            if ti.unit is None
+            or not same_partition(c, ti.unit)
+            or any(same_partition(c, o.unit) for o in others if o.unit is not None)
+        }
+        if codes is not None and int(codes.max()) + 1 < len(frame) and choice.unit is not None:
+            kept[choice.unit] = codes
+        term_inputs = [new if i == at else t for i, t in enumerate(inputs)]
+        fit = refit(y, term_inputs, kept, blocks, fixed_blocks, seed, kind, row_chi2)
+        out.setdefault(ti.term, []).append(AlternativeEvidence(alt, fit.term(ti.term)))
+    return out
 
 
 STAGES = ("claim", "read", "hidden", "structure", "refit", "clustering", "report data")

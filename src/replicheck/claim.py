@@ -48,14 +48,16 @@ import os
 import re
 import tomllib
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import NamedTuple, cast
 
 from replicheck.errors import InputError
 from replicheck.formula import ModelFormula, factor_name, parse_formula, replace_response
+from replicheck.roles import ROLE_FIELDS, Roles, stated_roles
 
 __all__ = [
+    "LIST_KEYS",
     "SPEC_KEYS",
     "SPEC_SUFFIX",
     "Claim",
@@ -70,7 +72,24 @@ __all__ = [
 ]
 
 SPEC_SUFFIX = ".replicheck.toml"
-SPEC_KEYS = ("alpha", "claim", "formula", "na", "response", "sheet", "treatment", "unit")
+SPEC_KEYS = tuple(
+    sorted(
+        (
+            "alpha",
+            "claim",
+            "formula",
+            "na",
+            "response",
+            "sheet",
+            "treatment",
+            "unit_labels",
+            *(f.key for f in ROLE_FIELDS),
+        )
+    )
+)
+# keys whose value may be a list (in an index cell, values separated by ';')
+LIST_KEYS = ("treatment", "claim", "na", *(f.key for f in ROLE_FIELDS))
+UNIT_LABEL_MODES = ("auto", "local", "global")
 _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
 
 
@@ -495,7 +514,7 @@ class Claim:
 
     response: str
     treatments: tuple[str, ...]
-    unit: str | None = None
+    roles: Roles = field(default_factory=Roles)
     reported: ReportedResult | None = None
     alpha: float = 0.05
     na_values: tuple[str, ...] = ()
@@ -503,6 +522,13 @@ class Claim:
     spec_path: str | None = None
     reported_terms: tuple[tuple[str, ReportedResult], ...] = ()
     formula: ModelFormula | None = None
+    unit_labels: str | None = None  # auto | local | global, from the spec
+
+    @property
+    def unit(self) -> str | None:
+        """The first stated unit as written ('a:b' for a combination), if any."""
+        units = self.roles.units
+        return units[0].text if units else None
 
 
 def spec_beside(data_path: str | os.PathLike[str]) -> Path | None:
@@ -559,9 +585,22 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
         names = ", ".join(repr(k) for k in unknown)
         raise InputError(f"unknown key {names} in {source}; allowed keys: {', '.join(SPEC_KEYS)}")
     out: dict[str, object] = {}
-    for key in ("response", "unit", "formula"):
+    for key in ("response", "formula"):
         if key in spec:
             out[key] = _text(spec[key], key, source)
+    roles = stated_roles({}, source, spec=spec, spec_source=f"in {source}")
+    for role in ROLE_FIELDS:
+        values = tuple(s.text for s in roles.of(role.key))
+        if values:
+            out[role.key] = values
+    if "unit_labels" in spec:
+        value = spec["unit_labels"]
+        if value not in UNIT_LABEL_MODES:
+            raise InputError(
+                f"'unit_labels' in {source} must be one of {', '.join(UNIT_LABEL_MODES)}, "
+                f"not {value!r}"
+            )
+        out["unit_labels"] = value
     if "claim" in spec:
         value = spec["claim"]
         if isinstance(value, list | tuple):
@@ -699,7 +738,7 @@ def build_claim(
     *,
     response: str | None,
     treatments: Sequence[str],
-    unit: str | None,
+    unit: str | Sequence[str] | None = None,
     claim_text: str | None,
     alpha: float | None,
     na_values: Sequence[str],
@@ -708,6 +747,8 @@ def build_claim(
     spec_path: str | None = None,
     formula: str | None = None,
     claim_texts: Sequence[str] = (),
+    roles: Mapping[str, object] | None = None,
+    unit_labels: str | None = None,
 ) -> Claim:
     """Merge command-line values with a spec; command-line values win.
 
@@ -731,6 +772,11 @@ def build_claim(
     (it becomes ``reported``), the others go to ``reported_terms`` in the order
     given. Term names must name a formula term, or treatments when there is no
     formula; two results for the same term are refused.
+
+    Stated roles (``unit`` and ``roles``, a mapping of :data:`replicheck.roles.ROLE_FIELDS`
+    keys to a column or a list of columns) replace the spec's values of the same
+    role; see :func:`replicheck.roles.stated_roles`. ``unit_labels`` (auto, local,
+    global) replaces the spec's.
 
     Treatments given on the command line replace the spec's list; na values
     are the union (spec first); alpha defaults to 0.05. An integer sheet from
@@ -761,9 +807,20 @@ def build_claim(
         raise InputError(f"column {resp!r} cannot be both the response and a treatment")
     if model is not None and model.response != resp:
         model = replace_response(model, resp)
-    u = unit if unit is not None else cast("str | None", s.get("unit"))
-    if u is not None and _text(u, "unit", "the command line") == resp:
-        raise InputError(f"column {resp!r} cannot be both the response and the unit")
+    given = dict(roles or {})
+    if unit is not None:
+        given["unit"] = unit
+    stated = stated_roles(
+        given,
+        "in the options",
+        spec=s,
+        spec_source=f"in {spec_path or 'the spec'}",
+        response=resp,
+        treatments=treats,
+    )
+    labels = unit_labels if unit_labels is not None else cast("str | None", s.get("unit_labels"))
+    if labels is not None and labels not in UNIT_LABEL_MODES:
+        raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
     if isinstance(claim_texts, str):
         claim_texts = (claim_texts,)
     texts = [*([claim_text] if claim_text is not None else []), *claim_texts]
@@ -778,7 +835,7 @@ def build_claim(
     return Claim(
         response=resp,
         treatments=treats,
-        unit=u,
+        roles=stated,
         reported=reported,
         alpha=a,
         na_values=na,
@@ -786,4 +843,5 @@ def build_claim(
         spec_path=spec_path,
         reported_terms=per_term,
         formula=model,
+        unit_labels=labels,
     )

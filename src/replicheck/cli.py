@@ -128,6 +128,22 @@ def cli() -> None:
     """
 
 
+def _role_options(command: Any) -> Any:
+    """One repeatable option per statable role, from the one table of roles."""
+    from replicheck.roles import ROLE_FIELDS
+
+    for field in reversed(ROLE_FIELDS):
+        names = [field.option] + ([field.short] if field.short else [])
+        command = click.option(
+            *names,
+            f"role_{field.key}",
+            metavar="COL",
+            multiple=True,
+            help=field.help,
+        )(command)
+    return command
+
+
 @cli.command()
 @click.argument("data", type=click.Path(dir_okay=True, path_type=str))
 @click.option("-r", "--response", metavar="COL", help="Column holding the measured response.")
@@ -145,13 +161,7 @@ def cli() -> None:
     help="The claimed model instead of -r/-t, e.g. 'yield ~ variety * nitrogen + block'; "
     "main-effect factors named like blocks, places or subjects are blocks of the design.",
 )
-@click.option(
-    "-u",
-    "--unit",
-    metavar="COL",
-    help="The column you believe is the experimental unit (checked, not trusted); an "
-    "implicit plot as 'block:variety'.",
-)
+@_role_options
 @click.option(
     "-c",
     "--claim",
@@ -165,9 +175,9 @@ def cli() -> None:
     "--spec",
     metavar="FILE",
     type=click.Path(dir_okay=False, path_type=str),
-    help="TOML file with response, treatment (or formula), unit, claim (one or a list), "
-    "alpha, na, sheet. "
-    "Default: NAME.replicheck.toml beside the data file, if present.",
+    help="TOML file with response, treatment (or formula), claim (one or a list), the "
+    "stated roles unit, block, within, covariate, ignore (one or a list each), unit_labels, "
+    "alpha, na, sheet. Default: NAME.replicheck.toml beside the data file, if present.",
 )
 @click.option("--no-spec", is_flag=True, help="Ignore a spec file found beside the data.")
 @click.option("--alpha", type=float, metavar="A", help="Significance level (default 0.05).")
@@ -182,10 +192,10 @@ def cli() -> None:
 @click.option(
     "--unit-labels",
     type=click.Choice(["auto", "local", "global"]),
-    default="auto",
-    show_default=True,
+    default=None,
     help="local: unit labels restart within each treatment level ('tank 1' of each "
-    "feed is a different tank); global: a label names one unit everywhere.",
+    "feed is a different tank); global: a label names one unit everywhere; auto (the "
+    "default, or the spec's unit_labels): decided from the data.",
 )
 @click.option(
     "-f",
@@ -246,14 +256,13 @@ def check(
     response: str | None,
     treatments: Sequence[str],
     formula: str | None,
-    unit: str | None,
     claim_texts: Sequence[str],
     spec: str | None,
     no_spec: bool,
     alpha: float | None,
     na_codes: Sequence[str],
     sheet: str | None,
-    unit_labels: str,
+    unit_labels: str | None,
     fmt: str,
     output: str | None,
     seed: int,
@@ -262,6 +271,7 @@ def check(
     hidden: bool,
     dates: str,
     order_col: str | None,
+    **role_values: Sequence[str],
 ) -> None:
     """Audit DATA against its claimed analysis.
 
@@ -278,8 +288,8 @@ def check(
         data,
         response=response,
         treatment=treatments,
-        unit=unit,
         claim=tuple(claim_texts) or None,
+        roles={k.removeprefix("role_"): tuple(v) for k, v in role_values.items() if v},
         formula=formula,
         alpha=alpha,
         na=na_codes,

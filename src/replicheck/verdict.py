@@ -17,8 +17,7 @@ from replicheck.numbers import count_text, p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
 from replicheck.structure.hidden.base import HiddenScan
-from replicheck.structure.names import name_hint
-from replicheck.structure.units import Structure, UnitChoice
+from replicheck.structure.units import Alternative, Structure, UnitChoice
 
 SEVERITIES = ("error", "warning", "note")
 STATUSES = ("ok", "pseudoreplicated", "confounded", "unclear")
@@ -49,6 +48,18 @@ class Finding:
 
 
 @dataclass(frozen=True)
+class AlternativeEvidence:
+    """Another reading of a term's unit, refitted: what the verdict would rest on then."""
+
+    reading: Alternative
+    refit: TermRefit
+
+    @property
+    def corrected(self) -> Analysis | None:
+        return self.refit.get(self.refit.corrected or "")
+
+
+@dataclass(frozen=True)
 class TermEvidence:
     """What the audit found for one term."""
 
@@ -60,6 +71,7 @@ class TermEvidence:
     units_per_level: dict[str, int]
     claimed: bool  # the primary term: the first treatment
     reconciliation: Reconciliation | None = None  # when a result was reported for this term
+    alternatives: tuple[AlternativeEvidence, ...] = ()
 
     def analysis(self, name: str) -> Analysis | None:
         return self.refit.get(name)
@@ -166,8 +178,35 @@ def block_of(t: TermEvidence, ev: Evidence) -> str | None:
     return None
 
 
+def _conclusion(a: Analysis | None, alpha: float) -> str:
+    """What a corrected analysis concludes: significant, not significant, or no test."""
+    if a is None or a.p_value is None:
+        return "untestable"
+    return "significant" if a.p_value < alpha else "not significant"
+
+
+def disputed_readings(t: TermEvidence, ev: Evidence) -> tuple[AlternativeEvidence, ...]:
+    """Readings supported by the data alone or the names alone whose conclusion differs."""
+    alpha = ev.claim.alpha
+    mine = "untestable" if t.unit.relation == "confounded" else _conclusion(t.corrected, alpha)
+    out = []
+    for alt in t.alternatives:
+        if alt.reading.kind != "reading":
+            continue
+        theirs = (
+            "untestable"
+            if alt.reading.choice.relation == "confounded"
+            else _conclusion(alt.corrected, alpha)
+        )
+        if theirs != mine:
+            out.append(alt)
+    return tuple(out)
+
+
 def term_status(t: TermEvidence, ev: Evidence) -> str:
     """The status of one term from its unit and, for the claimed term, the reported df."""
+    if disputed_readings(t, ev):
+        return "unclear"
     u = t.unit
     if u.relation == "confounded":
         return "confounded"
@@ -310,30 +349,82 @@ def _mismatch(ev: Evidence) -> Iterator[Finding]:
             )
 
 
-@rule("stated-unit-not-supported", "the user's stated unit disagrees with the data")
+def _analysis_text(a: Analysis | None) -> str:
+    if a is None or a.p_value is None or a.df is None or a.statistic is None:
+        return "no valid test"
+    return _f(a)
+
+
+@rule("stated-unit-not-supported", "the data disagree with a stated unit")
 def _stated(ev: Evidence) -> Iterator[Finding]:
-    stated = ev.claim.unit
-    if stated is None or not ev.terms:
-        return
     advice = (
-        "Check how the treatment was applied; the unit is the smallest thing that received a "
-        "treatment level independently."
+        "Check how the treatment was applied: the unit is the smallest thing that received a "
+        "treatment level independently. The stated unit was used; the analysis replicheck "
+        "would choose is shown beside it."
     )
-    for kind, text in ev.structure.readings:
-        if kind == "stated-unit-not-supported":
-            yield Finding(kind, "warning", _cap(text) + ".", advice, (stated,))
-            return
-    t = ev.terms[0]
-    if t.unit.unit is None or stated not in t.unit.columns:
-        where = f"; replicheck used '{t.unit.unit}'" if t.unit.unit else ""
-        yield Finding(
-            "stated-unit-not-supported",
-            "warning",
-            f"The stated unit '{stated}' is not the coarsest grouping within which '{t.term}' is "
-            f"constant{where}.",
-            advice,
-            (stated,),
-        )
+    for kind, text, columns in ev.structure.disputes:
+        if kind != "stated-unit-not-supported":
+            continue
+        yield Finding(kind, "warning", _cap(text) + ".", advice, columns)
+    for t in ev.terms:
+        for alt in t.alternatives:
+            if alt.reading.kind != "stated":
+                continue
+            other = alt.reading.choice
+            theirs = other.unit or "the rows"
+            yield Finding(
+                "stated-unit-not-supported",
+                "warning",
+                f"For '{t.term}' the stated unit '{t.unit.unit}' was used: "
+                f"{_analysis_text(t.corrected)}. {_cap(alt.reading.why)}; with '{theirs}' as "
+                f"the unit, as replicheck would read the data: "
+                f"{_analysis_text(alt.corrected)}.",
+                f"What settles it: {alt.reading.settle}.",
+                (*t.factors, *t.unit.columns, *other.columns),
+            )
+
+
+@rule("stated-role-disputed", "the data disagree with a stated block or within-unit factor")
+def _role_disputed(ev: Evidence) -> Iterator[Finding]:
+    for kind, text, columns in ev.structure.disputes:
+        if kind == "stated-role-disputed":
+            yield Finding(
+                kind,
+                "warning",
+                _cap(text) + ".",
+                "The statement was used as given; check it against the methods.",
+                columns,
+            )
+
+
+@rule(
+    "unit-reading-open",
+    "the data and the names support different units, with different conclusions",
+)
+def _reading_open(ev: Evidence) -> Iterator[Finding]:
+    for t in ev.terms:
+        disputed = set(map(id, disputed_readings(t, ev)))
+        for alt in t.alternatives:
+            if alt.reading.kind != "reading":
+                continue
+            other = alt.reading.choice
+            differs = id(alt) in disputed
+            taken = t.unit.unit or "the rows"
+            yield Finding(
+                "unit-reading-open",
+                "warning" if differs else "note",
+                f"Two readings of the unit of '{t.term}' remain: with '{taken}' as the unit "
+                f"(as taken), {_analysis_text(t.corrected)}; with '{other.unit or 'the rows'}' "
+                f"({other.n_units} units), {_analysis_text(alt.corrected)}. Why the second is "
+                f"plausible: {alt.reading.why}. "
+                + (
+                    "The two lead to different conclusions, so the status is 'unclear'."
+                    if differs
+                    else "Both lead to the same conclusion."
+                ),
+                f"What settles it: {alt.reading.settle}.",
+                (*t.factors, *other.columns),
+            )
 
 
 def _reading_rule(name: str) -> Rule:
@@ -650,40 +741,32 @@ def _dropped(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("crossed-grouping", "a block, day or subject crossed with the treatments")
+@rule("crossed-grouping", "a block or a within-unit factor crossed with the treatments")
 def _crossed(ev: Evidence) -> Iterator[Finding]:
     used = {c for t in ev.terms for c in t.unit.columns}
-    blocks = {b.name for b in ev.structure.blocks}
-    crossed: dict[str, list[str]] = {}
-    detail: dict[str, str] = {}
-    for r in ev.structure.relations:
-        if r.relation != "crossed" or r.column in used or ":" in r.column:
+    for b in ev.structure.blocks:
+        if b.name in used:
             continue
-        if r.column not in blocks and not name_hint(r.column).suggests_unit:
-            continue  # an unnamed crossed column is a covariate: nothing to say
-        crossed.setdefault(r.column, []).append(r.treatment)
-        detail.setdefault(r.column, r.detail)
-    for col, treatments in crossed.items():
-        names = ", ".join(f"'{t}'" for t in treatments)
-        if col in blocks:
-            yield Finding(
-                "crossed-grouping",
-                "note",
-                f"'{col}' is crossed with {names} ({detail[col]}); it is not a unit of the "
-                f"treatments but a block, and the corrected model holds it as a random effect.",
-                f"Check that '{col}' was a blocking or subject factor in the design.",
-                (col,),
+        stated = b.reason.startswith("stated")
+        if b.kind == "within":
+            text = (
+                f"'{b.name}' is a within-unit factor ({b.reason}): it is not a unit of the "
+                f"treatments, and the corrected model holds it as a random effect crossed with "
+                f"the units."
             )
+            advice = f"Check that '{b.name}' indexes repeated measurements (times, periods)."
         else:
-            yield Finding(
-                "crossed-grouping",
-                "note",
-                f"'{col}' is crossed with {names} ({detail[col]}). It is not a unit of the "
-                f"treatments, but it may be a block whose effect belongs in the model.",
-                f"If '{col}' is a block or a repeatedly measured subject, say so in the "
-                f"analysis; it does not inflate n the way a unit does.",
-                (col, *treatments),
+            text = (
+                f"'{b.name}' is a block of the design ({b.reason}): it is not a unit of the "
+                f"treatments, and the corrected model holds it as a random effect."
             )
+            advice = (
+                f"Check that '{b.name}' was a blocking or subject factor; if not, state its "
+                f"role (--covariate {b.name} or --ignore {b.name})."
+            )
+        if stated:
+            advice = "As stated."
+        yield Finding("crossed-grouping", "note", text, advice, tuple(b.columns))
 
 
 def decide(ev: Evidence) -> Verdict:

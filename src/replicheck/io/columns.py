@@ -52,20 +52,22 @@ def clean_names(raw: Sequence[object]) -> tuple[list[str], set[int]]:
 def check_names(names: Sequence[str], blank: set[int], label: str) -> None:
     """Raise :class:`InputError` for a header without names or with duplicates.
 
-    Names that differ only in case count as duplicates: they would be confused
-    by anyone reading a report, and by :func:`resolve_column`.
+    Names are duplicates when they are equal after surrounding spaces are
+    stripped. Names that differ only in case (``class`` and ``Class``) are
+    distinct columns, as in the source: :func:`resolve_column` matches a name
+    exactly first and ignores case only when that is unambiguous.
     """
     if len(names) == len(blank):
         raise InputError(f"{label}: no column names (the header row is empty)")
     groups: dict[str, list[str]] = {}
     for i, name in enumerate(names):
         if i not in blank:
-            groups.setdefault(name.casefold(), []).append(name)
-    duplicates = [quote_list(group) for group in groups.values() if len(group) > 1]
+            groups.setdefault(name, []).append(name)
+    duplicates = [repr(name) for name, group in groups.items() if len(group) > 1]
     if duplicates:
         raise InputError(
-            f"{label}: duplicate column names (ignoring case and surrounding spaces): "
-            + "; ".join(duplicates)
+            f"{label}: duplicate column names (ignoring surrounding spaces): "
+            + ", ".join(duplicates)
         )
 
 
@@ -205,8 +207,11 @@ def yes_no_coding(series: pd.Series) -> tuple[str, str] | None:
     The column must hold exactly two distinct values, at least one of which
     reads as "yes" (yes, y, true, present, positive, success, alive, survived,
     germinated, infected, ...) or "no" (no, n, false, absent, negative,
-    failure, dead, ...); the "yes" value is 1. Two other words (male/female)
-    are not a yes/no outcome.
+    failure, dead, ...); the "yes" value is 1. Values written with a code,
+    such as ``0_no``/``1_yes``, ``1 = yes``/``0 = no`` or ``No (0)``/``Yes (1)``,
+    are read by their word, and two words coded 0 and 1 (``0_absent``,
+    ``1_present``) by their code. Two other words (male/female) are not a
+    yes/no outcome.
     """
     if is_bool_dtype(series) or is_numeric_dtype(series):
         return None
@@ -216,7 +221,7 @@ def yes_no_coding(series: pd.Series) -> tuple[str, str] | None:
     if len(values) != 2:
         return None
     a, b = values
-    la, lb = a.lower(), b.lower()
+    (ca, la), (cb, lb) = _coded_word(a), _coded_word(b)
     if la in _YES and lb not in _YES:
         return b, a
     if lb in _YES and la not in _YES:
@@ -225,7 +230,24 @@ def yes_no_coding(series: pd.Series) -> tuple[str, str] | None:
         return a, b
     if lb in _NO and la not in _NO:
         return b, a
+    if {ca, cb} == {"0", "1"}:  # '0_absent' / '1_present': the code says which is 1
+        return (a, b) if ca == "0" else (b, a)
     return None
+
+
+_CODED = (
+    re.compile(r"^(?P<code>\d+)\s*[_=:.)\]\-]*\s*(?P<word>[^\d\s].*)$"),
+    re.compile(r"^(?P<word>[^\d\s].*?)\s*[(\[=:_\-]\s*(?P<code>\d+)\s*[)\]]?$"),
+)
+
+
+def _coded_word(value: str) -> tuple[str | None, str]:
+    """A value's numeric code and its word: '1_yes' -> ('1', 'yes'), 'No (0)' -> ('0', 'no')."""
+    for pattern in _CODED:
+        m = pattern.match(value)
+        if m:
+            return m.group("code"), m.group("word").strip().lower()
+    return None, value.lower()
 
 
 def numeric_column(table: Table, column: str, role: str = "response") -> pd.Series:

@@ -23,7 +23,7 @@ from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit, TermRefit
 from replicheck.stats.power import DesignNeeds
 from replicheck.structure.units import Structure
-from replicheck.verdict import Evidence, TermEvidence, Verdict
+from replicheck.verdict import AlternativeEvidence, Evidence, TermEvidence, Verdict
 
 SCHEMA = "replicheck/report-v1"
 
@@ -97,6 +97,25 @@ def _randomization(tr: TermRefit | None) -> dict[str, Any] | None:
         "exact": r.exact,
         "draws": r.draws,
         "seed": r.seed,
+    }
+
+
+def _alternative(a: AlternativeEvidence) -> dict[str, Any]:
+    corrected = a.corrected
+    choice = a.reading.choice
+    return {
+        "kind": a.reading.kind,
+        "unit": choice.unit,
+        "columns": list(choice.columns),
+        "relation": choice.relation,
+        "n_units": choice.n_units,
+        "why": a.reading.why,
+        "settle": a.reading.settle,
+        "method": a.refit.corrected,
+        "test": corrected.test if corrected else None,
+        "statistic": corrected.statistic if corrected else None,
+        "df": list(corrected.df) if corrected and corrected.df else None,
+        "p_value": corrected.p_value if corrected else None,
     }
 
 
@@ -296,6 +315,7 @@ class Report:
                     "clustering": _clustering(te.clustering),
                     "reported_check": _reported_check(rec),
                     "randomization": _randomization(te.refit),
+                    "alternatives": [_alternative(a) for a in te.alternatives],
                 }
             )
         doc = {
@@ -332,6 +352,18 @@ class Report:
                 "summary": self.verdict.summary,
             },
             "experimental_units": units,
+            "roles": [
+                {
+                    "column": r.column,
+                    "role": r.role,
+                    "source": r.source,
+                    "evidence": r.evidence,
+                    "columns": list(r.columns) or [r.column],
+                    "terms": list(r.terms),
+                }
+                for r in s.roles
+            ],
+            "stated_roles": c.roles.to_list(),
             "design": {
                 "strata": [
                     {

@@ -42,11 +42,11 @@ from dataclasses import dataclass
 from fnmatch import fnmatchcase
 from pathlib import Path
 
-from replicheck.claim import SPEC_KEYS, spec_beside
+from replicheck.claim import LIST_KEYS, SPEC_KEYS, spec_beside
 from replicheck.errors import InputError
 
 INDEX_COLUMNS = ("file", *SPEC_KEYS)
-LIST_KEYS = ("treatment", "claim", "na")
+
 _GLOB_CHARS = frozenset("*?[")
 
 

@@ -88,7 +88,9 @@ CONTAINER_WORDS: frozenset[str] = frozenset(
 
 # Blocks of the design: groupings that hold units under several treatments
 # and carry an effect of their own, whatever else their cells are.
-BLOCK_WORDS: frozenset[str] = frozenset({"block", "blk", "bloc", "bloque", "blok", "blocco"})
+BLOCK_WORDS: frozenset[str] = frozenset(
+    {"block", "blk", "bloc", "bloque", "blok", "blocco", "pair", "stratum", "strata"}
+)
 
 # Places that hold many units, often under several treatments at once (a
 # bench, a shelf, a block). When crossed with treatment they are blocks, not
@@ -166,14 +168,24 @@ PROCESS_WORDS: frozenset[str] = frozenset(
         "clinic",
         "hospital",
         "school",
+        "sch",
         "class",
         "classroom",
+        "cls",
+        "teacher",
+        "tch",
+        "instructor",
+        "tutor",
+        "study",
         "ward",
         "village",
         "herd",
         "flock",
         "population",
         "operator",
+        "worker",
+        "technician",
+        "analyst",
         "machine",
         "instrument",
         "assay",
@@ -221,6 +233,8 @@ TIME_WORDS: frozenset[str] = frozenset(
         "season",
         "year",
         "period",
+        "phase",
+        "occasion",
         "visit",
         "harvest",
         "tag",
@@ -251,6 +265,8 @@ INDIVIDUAL_WORDS: frozenset[str] = frozenset(
         "donor",
         "patient",
         "participant",
+        "respondent",
+        "resp",
         "individual",
         "mouse",
         "rat",
@@ -265,6 +281,13 @@ INDIVIDUAL_WORDS: frozenset[str] = frozenset(
         "person",
         "subj",
         "sub",
+        "judge",
+        "rater",
+        "taster",
+        "panelist",
+        "panellist",
+        "assessor",
+        "observer",
         "pt",
         "pid",
         "tier",

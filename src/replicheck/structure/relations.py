@@ -26,11 +26,13 @@ import numpy as np
 import pandas as pd
 
 from replicheck.codebook import column_codes, combined_codes
-from replicheck.structure.alignment import alignment
+from replicheck.structure.alignment import alignment, contingency_table, cramers_v
 
 # Common practice (no published threshold): at most 5% of the rows, and at
 # least one, may break an otherwise clean nesting before we call it partial.
 PARTIAL_SHARE = 0.05
+# A near-nesting needs a large association (see _real_alignment).
+PARTIAL_MIN_V = 0.5
 
 
 @dataclass(frozen=True)
@@ -123,6 +125,28 @@ def _majority_exceptions(inner: np.ndarray, outer: np.ndarray) -> np.ndarray:
     return np.flatnonzero(outer != majority[inner])
 
 
+def _real_alignment(col: np.ndarray, trt: np.ndarray, shape: str) -> bool:
+    """Whether a near-nesting is a real association, not a nearly constant column.
+
+    A column with one value on all but a few rows is "confounded but for a few
+    rows" with any treatment (every level sits in its common value), and a
+    column of nearly distinct values is "nested but for a few rows" with any.
+    Real alignment needs replicated levels (half the rows in levels of two or
+    more), a large association, Cramer's V of at least 0.5 (large for
+    a 2-level table: Cohen 1988, Statistical Power Analysis, ch. 7), and, for
+    the confounded shape, treatment levels that sit in different values.
+    """
+    sizes = np.bincount(col)
+    if float(sizes[sizes > 1].sum()) < 0.5 * col.size:
+        return False  # most rows alone in their level: aligned by construction, not by design
+    table = contingency_table(col, trt)
+    if not cramers_v(table) >= PARTIAL_MIN_V:
+        return False
+    if shape == "confounded":
+        return int(np.unique(table.argmax(axis=0)).size) >= 2
+    return True
+
+
 def classify(
     column: str,
     treatment: str,
@@ -190,7 +214,7 @@ def classify(
         if not 0 < miss[shape] <= limit:
             continue  # the rows themselves are listed only for a near-clean nesting
         bad = _majority_exceptions(inner, outer)
-        if 0 < bad.size <= limit:
+        if 0 < bad.size <= limit and _real_alignment(col, trt, shape):
             rows = tuple(int(index[i]) + 1 for i in bad)
             shown = ", ".join(str(r) for r in rows[:10]) + (" ..." if len(rows) > 10 else "")
             return rel(

@@ -20,8 +20,9 @@ Experiments, ch. 10).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 from itertools import combinations
 
 import numpy as np
@@ -29,6 +30,7 @@ import pandas as pd
 
 from replicheck.partitions import dense_codes, is_nested, pair_codes
 from replicheck.stats.classic import DesignError, cell_term_f
+from replicheck.structure.evidence import on_every_scale
 from replicheck.structure.names import name_hint
 from replicheck.structure.relations import classify, group_codes
 
@@ -37,6 +39,11 @@ from replicheck.structure.relations import classify, group_codes
 EVIDENCE_P = 0.01
 # Dense least squares on more cell columns than this is too slow for a screen.
 MAX_CELLS = 2000
+# Occasions (within-unit factors, times) with more levels than this are a fine time scale,
+# not occasions: they enter neither the cell tests nor the random strata (a chosen value).
+MAX_OCCASIONS = 50
+# A series over time has at least this many points per cell on average (a chosen value).
+SERIES_POINTS = 3
 # Cells of a block with combinations of at most this many treatments.
 MAX_CELL_FACTORS = 3
 
@@ -81,6 +88,7 @@ def cell_evidence(
     treatments: Sequence[np.ndarray],
     within: np.ndarray | None = None,
     containers: Sequence[np.ndarray] = (),
+    additive: Sequence[np.ndarray] = (),
 ) -> float | None:
     """p-value of the block x treatment cells beyond additive block and full treatment effects.
 
@@ -93,10 +101,25 @@ def cell_evidence(
     ``containers`` are groupings already taken as units that hold whole cells
     (main plots around sub-plot cells); they enter the reduced model so that
     their effects are not mistaken for differences between the cells.
+    ``additive`` factors (measurement occasions) enter both models additively.
     """
-    if int(cells.max()) + 1 > MAX_CELLS:
+    ok = (block >= 0) & (cells >= 0)
+    for t in [*treatments, *additive]:
+        ok &= t >= 0
+    for c in containers:
+        ok &= c >= 0
+    if within is not None:
+        ok &= within >= 0
+    if not ok.all():
+        y, block, cells = y[ok], dense_codes(block[ok]), dense_codes(cells[ok])
+        treatments = [dense_codes(t[ok]) for t in treatments]
+        additive = [dense_codes(t[ok]) for t in additive]
+        containers = [dense_codes(c[ok]) for c in containers]
+        within = None if within is None else dense_codes(within[ok])
+    if y.size == 0 or int(cells.max()) + 1 > MAX_CELLS:
         return None
     kept = list(treatments)
+    extra = list(additive)
     if within is not None:
         k = int(within.max()) + 1
         sizes = np.bincount(within, minlength=k)
@@ -104,6 +127,7 @@ def cell_evidence(
         first = np.zeros(k, dtype=np.int64)
         first[within[::-1]] = np.arange(within.size)[::-1]
         kept = [t[first] for t in treatments if is_nested(within, t)]
+        extra = [dense_codes(t[first]) for t in additive if is_nested(within, t)]
         block = np.unique(block[first], return_inverse=True)[1]
         cells = np.unique(cells[first], return_inverse=True)[1]
         containers = [np.unique(c[first], return_inverse=True)[1] for c in containers]
@@ -113,12 +137,18 @@ def cell_evidence(
     treatment_cells = dense_codes(combined)
     # every column of both models is constant within the cells x treatment cells
     # (the block and the containers hold whole cells): fit on those
-    cell, one = _collapse(pair_codes(dense_codes(cells), treatment_cells))
+    if int(treatment_cells.max()) + 1 > MAX_CELLS:
+        return None
+    key = pair_codes(dense_codes(cells), treatment_cells)
+    for x in extra:
+        key = pair_codes(dense_codes(key), x)
+    cell, one = _collapse(key)
     reduced = np.hstack(
         [
             _dummies(dense_codes(block[one])),
             _dummies(dense_codes(treatment_cells[one])),
             *(_dummies(dense_codes(c[one])) for c in containers),
+            *(_dummies(dense_codes(x[one])) for x in extra),
         ]
     )
     full = np.hstack([reduced, _dummies(dense_codes(cells[one]))])
@@ -126,6 +156,34 @@ def cell_evidence(
         return float(cell_term_f(y, cell, full, reduced).p_value)
     except DesignError:
         return None
+
+
+def _time_series(cells: np.ndarray, times: Sequence[np.ndarray]) -> bool:
+    """Whether the rows of every cell are one series over time: a time named as such
+    indexes them, one row per time point, three or more points per cell on average
+    (a subject under one formulation sampled over hours is one occasion, one unit of
+    the formulation; two years of one variety at one site are two trials, not a series)."""
+    for t in times:
+        ok = (cells >= 0) & (t >= 0)
+        if not ok.all():
+            continue
+        pair = dense_codes(pair_codes(dense_codes(cells), dense_codes(t)))
+        n_pairs = int(pair.max()) + 1
+        if n_pairs == cells.size and n_pairs >= SERIES_POINTS * (int(cells.max()) + 1):
+            return True
+    return False
+
+
+def _cells_p(
+    block: np.ndarray,
+    cells: np.ndarray,
+    treatments: Sequence[np.ndarray],
+    inner: np.ndarray | None,
+    holders: Sequence[np.ndarray],
+    occasions: Sequence[np.ndarray],
+    y: np.ndarray,
+) -> float | None:
+    return cell_evidence(y, block, cells, treatments, inner, holders, occasions)
 
 
 def _collapse(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -141,8 +199,11 @@ def crossed_cells(
     y: np.ndarray,
     cols: Sequence[str],
     treatments: Sequence[str],
-    stated: tuple[str, ...],
+    stated: Sequence[tuple[str, ...]],
     groupings: Sequence[str] = (),
+    guard: Callable[[np.ndarray, str], bool] | None = None,
+    adjust: Sequence[str] = (),
+    times: Sequence[str] = (),
 ) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, ...]], list[CellGrouping]]:
     """Add block x treatment cell columns for groupings crossed with treatments.
 
@@ -151,15 +212,25 @@ def crossed_cells(
     irrigation x variety sub-plots in a split-split plot). The evidence for
     each is measured on the means of the coarsest grouping inside its cells.
 
-    The caller passes only groupings whose names say block, place, time or
-    subject (or the stated unit's parts): for an unnamed column, cells that
-    differ beyond the main effects are more likely a covariate x treatment
-    interaction than plots.
+    The caller passes the groupings that may carry plots (blocks and places,
+    stated or named; the stated unit's parts). Cells whose rows are one series
+    over time (one row per time point of ``times``, columns named as times) are
+    units without further evidence: a subject sampled over hours under one
+    formulation is one occasion of it. The evidence has to hold on
+    every scale the response allows (:func:`replicheck.structure.evidence.scales`:
+    an interaction that the log scale removes is a scale effect, not plots).
+    ``guard(cells, treatment)`` may refuse cells, e.g. cells that would split a
+    recorded unit of the treatment (cells of week x diet around pigs).
 
     Returns the data with the cell columns added, their names, the columns
     each is made of, and the evidence for each.
     """
     all_trt = [group_codes(data, (t,)) for t in treatments]
+    # within-unit factors and times enter both models additively: the cells are judged
+    # on what they add beyond the measurement occasions too
+    occasions = [
+        c for c in (group_codes(data, (a,)) for a in adjust) if int(c.max()) + 1 <= MAX_OCCASIONS
+    ]
     crossed = {
         (col, trt): classify(col, trt, data[col], data[trt]).relation == "crossed"
         for col in cols
@@ -190,9 +261,14 @@ def crossed_cells(
         n_cells = int(cells.max()) + 1
         inner = coarsest_inside(data, cells, [g for g in inner_pool if g != name])
         holders = [c for c in taken if is_nested(cells, c) and int(c.max()) < n_cells - 1]
-        p = cell_evidence(y, group_codes(data, (col,)), cells, all_trt, inner, holders)
-        is_stated = set(stated) == {col, *combo}
-        credible = is_stated or (p is not None and p < EVIDENCE_P)
+        block_codes = group_codes(data, (col,))
+        p = on_every_scale(
+            partial(_cells_p, block_codes, cells, all_trt, inner, holders, occasions), y
+        )
+        is_stated = any(set(st) == {col, *combo} for st in stated)
+        allowed = guard is None or all(guard(cells, t) for t in combo)
+        series = allowed and _time_series(cells, [group_codes(data, (t,)) for t in times])
+        credible = is_stated or series or (allowed and p is not None and p < EVIDENCE_P)
         if credible:
             taken.append(cells)
         derived[name] = (col, *combo)

@@ -1,14 +1,42 @@
-"""Candidate experimental units and the choice of the unit for a treatment.
+"""Candidate experimental units and the unit of every term: the structure stage.
 
-The experimental unit for a treatment is the coarsest grouping of the rows
+The experimental unit of a treatment is the coarsest grouping of the rows
 within which the treatment never varies (Hurlbert 1984, Ecological Monographs
 54:187-211; Lazic, Clarke-Williams & Munafo 2018, PLoS Biology 16:e2005282).
 When that grouping has one level per treatment level the design is
 confounded: no test of the treatment is possible.
 
-Candidates are ranked with an explained score from three inputs: the name of
-the column, its structure relative to the treatment, and how strongly the
-observations cluster within it.
+The structure of the data decides; a column's name is a tie-breaker only.
+The stage runs in this order, each step in its own module:
+
+1. which columns can be groupings, and which are labels of the treatments or
+   covariates (:mod:`replicheck.structure.columns`);
+2. which groupings are within-unit factors (:mod:`replicheck.structure.crossed`);
+3. which labels restart within another grouping (:mod:`replicheck.structure.labels`);
+4. which block x treatment cells are implicit plots
+   (:func:`replicheck.structure.strata.crossed_cells`);
+5. the candidate units of every term and the choice (here), then the blocks
+   and the strata; the role of every column (:mod:`replicheck.structure.design`).
+
+The rules for candidates, each with its reason in docs/method.md:
+
+* what the user states is used; evidence against a statement is reported,
+  never used to replace it (a stated unit the treatment varies within is
+  used as stated x treatment cells);
+* a recorded grouping nested in a treatment, replicated, and nested by
+  design rather than by chance, is a unit candidate whatever its name; other
+  groupings need a name that says unit or clustering evidence (the F test of
+  the units beyond every treatment term and the within-unit factors, p < 0.01);
+* a derived grouping (a reading of labels, implicit plots, a grouping found by
+  the hidden scans) must hold whole recorded units of the treatment (cells of
+  week x diet that split the pigs never are the unit of the diet), and runs
+  along the file order (how the file was sorted as often as how samples were
+  processed) give way to any other credible unit;
+* a partial alignment needs real association; a nearly constant column is
+  never a unit (:func:`replicheck.structure.relations.classify`);
+* when two readings remain plausible (one supported by the data alone, the
+  other by the names alone) both are kept: the refit tests both and the
+  verdict is ``unclear`` when they lead to different conclusions.
 """
 
 from __future__ import annotations
@@ -19,12 +47,28 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from replicheck.codebook import column_codes
-from replicheck.errors import InputError
-from replicheck.partitions import is_nested, same_partition, units_per_level
-from replicheck.stats.clustering import anova_components
-from replicheck.structure.hidden.time import parse_times
-from replicheck.structure.names import NameHint, name_hint, tokens
+from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
+from replicheck.roles import ColumnRole, Roles, Statement
+from replicheck.structure import evidence as ev
+from replicheck.structure.columns import (
+    MIN_REPLICATED_SHARE,
+    grouping_columns,
+    is_alias,
+    numeric_kind,
+    treatment_labels,
+)
+from replicheck.structure.crossed import (
+    Block,
+    named_block,
+    structural_block,
+    within_factors,
+)
+from replicheck.structure.crossed import (
+    blocks as find_blocks,
+)
+from replicheck.structure.design import block_disputes, column_roles, within_disputes
+from replicheck.structure.labels import LabelReading, localise
+from replicheck.structure.names import NameHint, name_hint
 from replicheck.structure.relations import (
     PairRelation,
     Relation,
@@ -34,20 +78,30 @@ from replicheck.structure.relations import (
     pair_relation,
 )
 from replicheck.structure.strata import (
-    EVIDENCE_P,
+    MAX_OCCASIONS,
     CellGrouping,
     Stratum,
-    block_evidence,
     build_strata,
-    cell_evidence,
-    coarsest_inside,
     crossed_cells,
 )
 
+__all__ = [
+    "Alternative",
+    "Block",
+    "Candidate",
+    "Structure",
+    "UnitChoice",
+    "grouping_columns",
+    "infer_structure",
+    "unit_codes",
+]
+
 # Common practice (no published threshold): clustering counts as evidence for
-# an unnamed grouping when the one-way F test of units within treatment has
-# p < 0.01.
+# an unnamed grouping when its F test against the rows within it has p < 0.01.
 CLUSTER_EVIDENCE_P = 0.01
+# A nesting is structure, not chance, when a column of these level sizes would
+# lie inside the treatment levels by chance with probability below 1 in 1000.
+CHANCE_NESTING_LOG10 = -3.0
 
 UNIT_LABEL_MODES = ("auto", "local", "global")
 
@@ -69,6 +123,9 @@ class Candidate:
     credible: bool
     score: float
     reasons: tuple[str, ...]
+    stated: bool = False
+    recorded: bool = True  # a column of the file (not a derived grouping or reading)
+    support: str = "none"  # stated | structure | name | evidence | none
 
 
 @dataclass(frozen=True)
@@ -87,6 +144,22 @@ class UnitChoice:
 
 
 @dataclass(frozen=True)
+class Alternative:
+    """Another reading of a term's unit that stays plausible, and what would settle it.
+
+    ``kind`` is ``stated`` when the taken unit was stated and this is the one
+    replicheck would take, ``reading`` when the data and the names support
+    different readings.
+    """
+
+    term: str
+    choice: UnitChoice
+    kind: str
+    why: str
+    settle: str
+
+
+@dataclass(frozen=True)
 class Structure:
     """Everything the structure stage found."""
 
@@ -100,6 +173,9 @@ class Structure:
     strata: tuple[Stratum, ...] = ()  # coarse to fine, ending with the rows
     factor_relations: tuple[PairRelation, ...] = ()  # every pair of treatments and strata
     blocks: tuple[Block, ...] = ()
+    roles: tuple[ColumnRole, ...] = ()
+    alternatives: tuple[Alternative, ...] = ()
+    disputes: tuple[tuple[str, str, tuple[str, ...]], ...] = ()  # (rule, text, columns)
 
     def unit_of(self, term: str) -> UnitChoice:
         """The unit chosen for a term."""
@@ -108,93 +184,11 @@ class Structure:
                 return u
         raise KeyError(term)
 
-
-def _norm(s: str) -> str:
-    return "".join(ch for ch in str(s).lower() if ch.isalnum())
-
-
-def _is_time_stamp(s: pd.Series) -> bool:
-    """Whether a column holds times of day (with or without dates), not bare dates."""
-    if pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
-        return False
-    if isinstance(s.dtype, pd.CategoricalDtype):
-        return False  # groupings derived from the data ("day 3", "zone 2") and coded factors
-    values, _ = parse_times(s)
-    if values is None:
-        return False
-    stamps = pd.to_datetime(values.dropna())
-    return bool((stamps != stamps.dt.normalize()).any())
+    def alternatives_of(self, term: str) -> tuple[Alternative, ...]:
+        return tuple(a for a in self.alternatives if a.term == term)
 
 
-def grouping_columns(
-    data: pd.DataFrame, exclude: Sequence[str]
-) -> tuple[list[str], dict[str, str]]:
-    """Columns that can act as groupings, and the reason each other column was skipped."""
-    keep: list[str] = []
-    skipped: dict[str, str] = {}
-    for col in data.columns:
-        if col in exclude:
-            continue
-        s = data[col]
-        coded = column_codes(s)
-        n_present = int(np.count_nonzero(coded.codes >= 0))
-        n_unique = coded.n_levels
-        if n_present == 0:
-            skipped[col] = "all values missing"
-        elif n_unique <= 1:
-            skipped[col] = "a single value"
-        elif n_unique == n_present:
-            skipped[col] = "a row identifier (every value distinct)"
-        elif _is_time_stamp(s):
-            skipped[col] = "a time stamp (its days and sessions are weighed instead)"
-        elif pd.api.types.is_bool_dtype(s) or not pd.api.types.is_numeric_dtype(s):
-            keep.append(col)
-        else:
-            vals = s.dropna().to_numpy(dtype=float)
-            integer = bool(np.all(np.isfinite(vals)) and np.all(vals == np.round(vals)))
-            if not integer and n_unique > n_present / 2:
-                skipped[col] = "a continuous measurement"
-            else:
-                keep.append(col)
-    return keep, skipped
-
-
-def _is_alias(column: str, treatment: str, col_values: pd.Series, trt_values: pd.Series) -> bool:
-    """Whether a column with the treatment's partition reads as another label of it."""
-    hint = name_hint(column)
-    if hint.suggests_unit:
-        return False
-    if hint.kind == "label" or set(tokens(treatment)) & set(tokens(column)):
-        return True
-    ok = col_values.notna() & trt_values.notna()
-    pairs = pd.DataFrame({"c": col_values[ok].astype(str), "t": trt_values[ok].astype(str)})
-    pairs = pairs.drop_duplicates()
-    contained = [
-        len(_norm(t)) >= 2 and (_norm(t) in _norm(c) or _norm(c) in _norm(t))
-        for c, t in zip(pairs["c"], pairs["t"], strict=True)
-    ]
-    return bool(contained) and all(contained)
-
-
-def _icc(y: np.ndarray, unit: np.ndarray, trt: np.ndarray) -> tuple[float | None, float | None]:
-    """ANOVA ICC of units within treatment and the p-value of its F test."""
-    n_units = int(unit.max()) + 1
-    n_trt = int(trt.max()) + 1
-    if n_units - n_trt < 1 or y.size - n_units < 1:
-        return None, None
-    comp = anova_components(y, unit, trt)
-    return float(comp.icc), float(comp.p_value)
-
-
-def _local_codes(data: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
-    return group_codes(data, columns)
-
-
-def unit_codes(data: pd.DataFrame, choice: UnitChoice) -> np.ndarray:
-    """Integer unit codes of the rows for a chosen unit (each row its own unit when none)."""
-    if not choice.columns:
-        return np.arange(len(data), dtype=np.int64)
-    return _local_codes(data, choice.columns)
+# ------------------------------------------------------------------ candidates
 
 
 def _candidate(
@@ -206,25 +200,34 @@ def _candidate(
     name: str,
     alias: bool,
     stated: bool,
+    recorded: bool,
+    all_trt: np.ndarray,
 ) -> Candidate:
     trt, _ = codes_of(data[treatment])
-    unit = _local_codes(data, (treatment, *columns)) if relation.relation != "confounded" else None
+    unit = group_codes(data, (treatment, *columns)) if relation.relation != "confounded" else None
     hint = name_hint(columns[-1])
+    if columns[-1] in data.columns and numeric_kind(data[columns[-1]]) == "measurement":
+        hint = NameHint("none", None)  # a name cannot make a measurement a grouping
     reasons: list[str] = []
     score = 0.0
+    support = "none"
     if stated:
         score += 3
-        reasons.append("stated by the user as the unit")
+        reasons.append("stated as the unit")
+        support = "stated"
     if hint.suggests_unit:
         score += 2
-        reasons.append(f"the name suggests a {hint.kind} ('{hint.word}')")
+        reasons.append(f"the name suggests {_article(hint.kind)} {hint.kind} ('{hint.word}')")
     elif hint.kind == "label":
         reasons.append(f"the name suggests a label ('{hint.word}')")
     n_units = relation.n_levels
     icc = icc_p = None
+    structural = False
     if unit is not None:
-        n_units = int(unit.max()) + 1
-        icc, icc_p = _icc(y, unit, trt)
+        n_units = int(unit[unit >= 0].max()) + 1 if (unit >= 0).any() else 0
+        icc, icc_p = ev.unit_evidence(y, unit, trt, all_trt)
+        ok = ev.present(unit, trt)
+        structural = recorded and relation.relation == "nested" and _by_design(unit[ok], trt[ok])
     mean_size = len(data) / max(n_units, 1)
     if relation.relation == "nested":
         score += 2
@@ -237,11 +240,22 @@ def _candidate(
         reasons.append(relation.detail)
     if icc is not None and icc_p is not None:
         score += min(2.0, 4.0 * max(icc, 0.0))
-        reasons.append(f"residual ICC {icc:.2f} within '{treatment}' (F test p = {icc_p:.2g})")
+        reasons.append(
+            f"residual ICC {icc:.2f} within '{treatment}' (F test beyond every treatment term: "
+            f"p = {icc_p:.2g})"
+        )
     if alias:
         reasons.append("read as another label of the treatment, not a unit")
     evidence = icc_p is not None and icc_p < CLUSTER_EVIDENCE_P
-    credible = not alias and (stated or hint.suggests_unit or evidence)
+    if support == "none":
+        if structural:
+            support = "structure"
+            reasons.append("a recorded grouping nested in the treatment, replicated by design")
+        elif hint.suggests_unit:
+            support = "name"
+        elif evidence:
+            support = "evidence"
+    credible = not alias and support != "none"
     return Candidate(
         treatment=treatment,
         name=name,
@@ -256,207 +270,31 @@ def _candidate(
         credible=credible,
         score=round(score, 2),
         reasons=tuple(reasons),
+        stated=stated,
+        recorded=recorded,
+        support=support,
     )
 
 
-def _drop_aliases(
-    data: pd.DataFrame, cols: list[str], treatments: Sequence[str], stated_unit: str | None
-) -> tuple[list[str], list[tuple[str, str]]]:
-    """Remove columns that are other labels of a treatment (same partition, label-like)."""
-    keep: list[str] = []
-    readings: list[tuple[str, str]] = []
-    for col in cols:
-        alias_of = None
-        if col != stated_unit:
-            for trt in treatments:
-                rel = classify(col, trt, data[col], data[trt])
-                same = rel.relation == "confounded" and rel.n_levels == len(
-                    rel.levels_per_treatment
-                )
-                if same and _is_alias(col, trt, data[col], data[trt]):
-                    alias_of = trt
-                    break
-        if alias_of is None:
-            keep.append(col)
-            continue
-        readings.append(
-            (
-                "column-reads-as-treatment-label",
-                f"'{col}' has exactly one level per level of '{alias_of}' and reads as another "
-                f"label of it, so it was not taken as a unit; if '{col}' names physical units, "
-                f"the design is confounded (state --unit {col})",
-            )
-        )
-    return keep, readings
+def _covers_levels(codes: np.ndarray, trt: np.ndarray) -> bool:
+    """Whether a column holds values on at least half the rows of every treatment level."""
+    ok = trt >= 0
+    k = int(trt[ok].max()) + 1
+    present = np.bincount(trt[ok], weights=(codes[ok] >= 0).astype(float), minlength=k)
+    return bool(np.all(present >= 0.5 * np.bincount(trt[ok], minlength=k)))
 
 
-def _localise(
-    data: pd.DataFrame,
-    cols: list[str],
-    treatments: Sequence[str],
-    stated_unit: str | None,
-    unit_labels: str,
-    y: np.ndarray | None = None,
-) -> tuple[pd.DataFrame, list[str], dict[str, tuple[str, ...]], list[tuple[str, str]]]:
-    """Replace unit labels that restart within a parent by parent:label groupings.
-
-    Labels often restart: tank 1 of every feed, plot 1 of every block, wafer 1
-    of every lot, well 1 of every plate, subject 1 of every sequence. A column
-    is read that way when it is crossed with a possible parent and its name
-    says container (tank, cage, pot, plot, wafer, a replicate number), or,
-    for a parent that is itself a grouping, container, location or individual
-    (plot, well, subject); under ``--unit-labels local`` any column qualifies.
-    Possible parents: treatments (for containers: a container receives a
-    treatment; for places such as plates only when their cells with the
-    treatment cluster, as plates that each received one compound do), and
-    groupings whose names say unit, block, place or subject,
-    or that are nested in a treatment; for subjects any grouping (subject 1
-    of every sequence or cohort), and a treatment when one subject label
-    carries two of its levels at the same time point. Times never are:
-    subjects are measured again in every period.
-
-    Of the possible parents, one with a finer possible parent nested in it is
-    dropped (labels restart within the finest of a chain: lot, not source).
-    Of the rest, the parent within whose cells the most other treatments are
-    constant is taken (plots within blocks keep their whole-plot treatment),
-    then the one with the fewest cells (the coarsest: in a split plot the
-    whole plots belong to the whole-plot treatment).
-    """
-    if unit_labels == "global":
-        return data, cols, {}, []
-    local_mode = unit_labels == "local"
-    current: dict[str, tuple[tuple[str, ...], np.ndarray]] = {
-        c: ((c,), group_codes(data, (c,))) for c in [*cols, *treatments]
-    }
-    trt_codes = {t: current[t][1] for t in treatments}
-
-    def parent_ok(g: str) -> bool:
-        kind = name_hint(g).kind
-        if kind == "time":
-            return False  # subjects are measured again in every period: no restart
-        if name_hint(g).suggests_unit:
-            return True
-        return any(is_nested(current[g][1], trt_codes[t]) for t in treatments)
-
-    derived: dict[str, tuple[str, ...]] = {}
-    readings: list[tuple[str, str]] = []
-    renamed: dict[str, str] = {}
-    extra: dict[str, pd.Series] = {}
-    parent_of: dict[str, str] = {}
-    order = sorted(cols, key=lambda c: int(current[c][1].max()))
-    for col in order:
-        kind = name_hint(col).kind
-        child_of_trt = local_mode or kind == "container"
-        child_of_group = local_mode or kind in {"container", "block", "location", "individual"}
-        options = [t for t in treatments if child_of_trt]
-        if kind == "individual" and not child_of_trt:
-            options += [
-                t for t in treatments if _two_places_at_once(data, col, t, [*cols, *treatments])
-            ]
-        if kind == "location" and y is not None and not child_of_trt:
-            options += [t for t in treatments if _cells_cluster(data, y, col, t, cols, treatments)]
-        options += [
-            g
-            for g in cols
-            if g != col
-            and child_of_group
-            and name_hint(g).kind != "time"
-            and (parent_ok(g) or kind == "individual")
-        ]
-        codes = current[col][1]
-        if any(is_nested(codes, trt_codes[t]) for t in treatments):
-            continue  # already a unit of a treatment: its labels are its own
-        crossing: list[str] = []
-        for parent in options:
-            rel = classify(col, parent, pd.Series(codes), pd.Series(current[parent][1]))
-            if rel.relation == "crossed":
-                crossing.append(parent)
-        crossing = [
-            p
-            for p in crossing
-            if not any(q != p and is_nested(current[q][1], current[p][1]) for q in crossing)
-        ]
-        if kind == "individual" and any(p not in treatments for p in crossing):
-            # subject 1 of every sequence: a grouping explains the restart before a treatment
-            crossing = [p for p in crossing if p not in treatments]
-        if not crossing:
-            continue
-
-        def rank(parent: str, codes: np.ndarray = codes) -> tuple[int, int]:
-            cells = group_codes(pd.DataFrame({"p": current[parent][1], "c": codes}), ("p", "c"))
-            constant = sum(1 for t in treatments if t != parent and is_nested(cells, trt_codes[t]))
-            return (-constant, int(cells.max()) + 1)
-
-        parent = min(crossing, key=rank)
-        parent_of[col] = parent
-        current[col] = ((*current[parent][0], col), group_codes(data, (*current[parent][0], col)))
-    # A parent localised after its child (wells before the plates that restart
-    # within compounds): rebuild every chain from the top, parents first.
-    final: dict[str, tuple[str, ...]] = {}
-
-    def chain(col: str) -> tuple[str, ...]:
-        if col not in parent_of:
-            return (col,)
-        if col not in final:
-            final[col] = (*chain(parent_of[col]), col)
-        return final[col]
-
-    for col in parent_of:
-        source = chain(col)
-        name = ":".join(source)
-        renamed[col] = name
-        derived[name] = source
-        extra[name] = pd.Series(group_codes(data, source), index=data.index)
-        parent = ":".join(chain(parent_of[col]))
-        example = data[col].dropna().iloc[0]
-        readings.append(
-            (
-                "labels-local-to-treatment",
-                f"labels of '{col}' repeat under several levels of '{parent}' ('{col}' "
-                f"{example!s} appears under more than one), so replicheck read each {col} "
-                f"within its {parent} ('{name}') as a distinct unit; if one physical {col} "
-                f"carries the same label everywhere, rerun with --unit-labels global",
-            )
-        )
-    if extra:
-        data = data.assign(**extra)
-    return data, [renamed.get(c, c) for c in cols], derived, readings
+def _article(word: str) -> str:
+    return "an" if word[:1] in "aeiou" else "a"
 
 
-def _two_places_at_once(data: pd.DataFrame, col: str, treatment: str, cols: Sequence[str]) -> bool:
-    """Whether one subject label has two treatment levels at the same time point.
-
-    A subject cannot receive two treatments at once: when a label carries
-    different levels of a treatment in the same period, week or session, the
-    labels must restart within the treatment (mouse 1 of every diet).
-    """
-    times = [c for c in cols if c not in (col, treatment) and name_hint(c).kind == "time"]
-    for t in times:
-        per_cell = data.groupby([col, t], observed=True)[treatment].nunique()
-        if bool((per_cell > 1).any()):
-            return True
-    return False
-
-
-def _cells_cluster(
-    data: pd.DataFrame,
-    y: np.ndarray,
-    col: str,
-    treatment: str,
-    cols: Sequence[str],
-    treatments: Sequence[str],
-) -> bool:
-    """Whether the cells of a place and a treatment differ beyond their main effects."""
-    rel = classify(col, treatment, data[col], data[treatment])
-    if rel.relation != "crossed":
-        return False
-    cells = group_codes(data, (col, treatment))
-    if len(data) / (int(cells.max()) + 1) < 1.5:
-        return False
-    inner = coarsest_inside(data, cells, [c for c in cols if c != col])
-    trts = [group_codes(data, (t,)) for t in treatments]
-    p = cell_evidence(y, group_codes(data, (col,)), cells, trts, inner)
-    return p is not None and p < EVIDENCE_P
+def _whole_units(cand_codes: np.ndarray, recorded_units: Sequence[np.ndarray]) -> bool:
+    """Whether a grouping holds whole units of every recorded unit grouping (or sits inside one)."""
+    for r in recorded_units:
+        ok = ev.present(cand_codes, r)
+        if not (is_nested(r[ok], cand_codes[ok]) or is_nested(cand_codes[ok], r[ok])):
+            return False
+    return True
 
 
 def _one_treatment(
@@ -464,36 +302,46 @@ def _one_treatment(
     y: np.ndarray,
     treatment: str,
     cols: list[str],
-    stated: tuple[str, ...],
-    derived: dict[str, tuple[str, ...]],
+    stated: Sequence[tuple[str, ...]],
+    derived: Mapping[str, tuple[str, ...]],
     cells: Mapping[str, CellGrouping],
-) -> tuple[list[Relation], list[Candidate], UnitChoice, list[tuple[str, str]], list[str]]:
+    recorded: set[str],
+    all_trt: np.ndarray,
+    main: bool,
+) -> tuple[list[Relation], list[Candidate], list[tuple[str, str]], list[str]]:
     relations: list[Relation] = []
     candidates: list[Candidate] = []
     readings: list[tuple[str, str]] = []
     ambiguous: list[str] = []
+    trt_codes = group_codes(data, (treatment,))
     for col in cols:
         rel = classify(col, treatment, data[col], data[treatment])
         relations.append(rel)
+        if not _covers_levels(group_codes(data, (col,)), trt_codes):
+            continue  # missing for most of a treatment level: no unit of the treatment
         source = derived.get(col, (col,))
-        is_stated = bool(stated) and (
-            set(source) == set(stated) if len(stated) > 1 else source[-1] == stated[0]
+        is_stated = any(
+            set(source) == set(s) or (len(s) == 1 and source == (s[0],)) for s in stated
         )
+        is_recorded = col in recorded
         if col in cells and rel.relation != "nested":
             continue
         if rel.relation == "nested":
-            cand = _candidate(data, y, treatment, source, rel, col, False, is_stated)
+            cand = _candidate(
+                data, y, treatment, source, rel, col, False, is_stated, is_recorded, all_trt
+            )
             if col in cells:
                 cell = cells[col]
                 p = "not computed" if cell.p_value is None else f"p = {cell.p_value:.2g}"
                 cand = replace(
                     cand,
-                    credible=cell.credible,
+                    credible=cell.credible or is_stated,
+                    support="stated" if is_stated else ("evidence" if cell.credible else "none"),
                     reasons=(
                         *cand.reasons[:-1],
                         f"cells of '{cell.block}' x '{cell.treatment}' "
                         + ("differ" if cell.credible else "do not differ")
-                        + f" beyond the block and treatment effects ({p})",
+                        + f" beyond the block and treatment effects on every scale ({p})",
                     ),
                 )
             candidates.append(cand)
@@ -501,27 +349,109 @@ def _one_treatment(
             # the exceptions make the column cross the treatment; within each treatment
             # level its labels still name units, so the unit is treatment x column
             candidates.append(
-                _candidate(data, y, treatment, (treatment, col), rel, col, False, is_stated)
+                _candidate(
+                    data,
+                    y,
+                    treatment,
+                    (treatment, col),
+                    rel,
+                    col,
+                    False,
+                    is_stated,
+                    is_recorded,
+                    all_trt,
+                )
             )
         elif rel.relation == "confounded":
             same = rel.n_levels == len(rel.levels_per_treatment)
-            alias = same and not is_stated and _is_alias(col, treatment, data[col], data[treatment])
-            cand = _candidate(data, y, treatment, source, rel, col, alias, is_stated)
-            candidates.append(cand)
-            if alias:
-                pass  # aliases of main treatments were removed before; this is a coarser one
-            elif not cand.credible:
-                ambiguous.append(col)
-        elif is_stated:
-            readings.append(
-                (
-                    "stated-unit-not-supported",
-                    f"the stated unit '{col}' is {rel.relation} with '{treatment}': the treatment "
-                    f"varies within it, so it cannot be the unit the treatment was applied to",
-                )
+            alias = same and not is_stated and is_alias(col, treatment, data[col], data[treatment])
+            cand = _candidate(
+                data, y, treatment, source, rel, col, alias, is_stated, is_recorded, all_trt
             )
+            candidates.append(cand)
+            if not alias and not cand.credible and main:
+                ambiguous.append(col)
     candidates.sort(key=lambda c: (not c.credible, c.n_units, -c.score))
-    return relations, candidates, _choose(data, treatment, candidates), readings, ambiguous
+    return relations, candidates, readings, ambiguous
+
+
+def _choice(data: pd.DataFrame, treatment: str, best: Candidate | None) -> UnitChoice:
+    n = len(data)
+    if best is None:
+        return UnitChoice(
+            treatment,
+            None,
+            (),
+            "none",
+            n,
+            n,
+            "rows",
+            "no grouping was found within which the treatment is constant; "
+            "each row is taken as its own replicate",
+        )
+    trt_codes, trt_labels = codes_of(data[treatment])
+    if best.relation == "confounded":
+        unit_per_trt = np.ones(len(trt_labels), dtype=int)
+    else:
+        unit = group_codes(data, (treatment, *best.columns))
+        ok = ev.present(unit, trt_codes)
+        unit_per_trt = units_per_level(dense_codes(unit[ok]), trt_codes[ok], len(trt_labels))
+    single = tuple(trt_labels[i] for i in np.flatnonzero(unit_per_trt == 1))
+    relation = best.relation
+    if relation != "partial" and len(single) == len(trt_labels):
+        relation = "confounded"
+    reading = (
+        f"'{best.name}' is the grouping stated as the unit; '{treatment}' never varies within it"
+        if best.stated
+        else f"'{best.name}' is the coarsest grouping within which '{treatment}' never varies"
+    )
+    n_units = best.n_units if relation != "confounded" else max(best.n_units, len(trt_labels))
+    return UnitChoice(
+        treatment=treatment,
+        unit=best.name,
+        columns=best.columns,
+        relation=relation,
+        n_units=n_units,
+        n_observations=n,
+        source="stated" if best.stated else "inferred",
+        reading=reading,
+        single_unit_levels=single,
+    )
+
+
+def _stated_cells(data: pd.DataFrame, treatment: str, stated: tuple[str, ...]) -> Candidate:
+    """A stated unit that the treatment varies within, used as stated x treatment cells."""
+    columns = (*stated, treatment)
+    codes = group_codes(data, columns)
+    n_units = int(codes.max()) + 1
+    return Candidate(
+        treatment=treatment,
+        name=":".join(columns),
+        columns=columns,
+        relation="nested",
+        n_units=n_units,
+        mean_size=len(data) / max(n_units, 1),
+        hint=name_hint(stated[-1]),
+        icc=None,
+        icc_p=None,
+        alias=False,
+        credible=True,
+        score=3.0,
+        reasons=(
+            f"stated as the unit; '{treatment}' varies within it, so each "
+            f"{':'.join(stated)} x {treatment} cell is taken as a unit",
+        ),
+        stated=True,
+        recorded=False,
+        support="stated",
+    )
+
+
+# ------------------------------------------------------------------ the stage
+
+
+def _statement_columns(roles: Roles, role: str) -> list[tuple[str, ...]]:
+    return [s.columns for s in roles.of(role)]
 
 
 def infer_structure(
@@ -533,71 +463,301 @@ def infer_structure(
     interactions: Sequence[str] = (),
     stated_unit: str | Sequence[str] | None = None,
     unit_labels: str = "auto",
+    roles: Roles | None = None,
+    derived_columns: Sequence[str] = (),
+    file_order: Sequence[str] = (),
 ) -> Structure:
-    """Relations, ranked candidate units, the chosen unit of every term, and the strata.
+    """Roles of the columns, ranked candidate units, the unit of every term, and the strata.
 
     ``data`` holds only the analysed rows. ``terms`` are factor columns of
     ``data`` (treatment columns, and columns holding the combinations of
     several treatments for interaction terms); ``exclude`` lists further
     columns that are not groupings (the treatment columns themselves). Terms
     named in ``interactions`` get a unit but add no relations or readings of
-    their own, and the stated unit is checked against main terms only. A
-    stated unit may be one column or several (an implicit plot such as
-    block x variety).
+    their own. ``roles`` are the stated roles (column names as the data spell
+    them); ``stated_unit`` is a shorthand for one stated unit (one column, or
+    several for an implicit grouping such as block x variety).
+    ``derived_columns`` are groupings added by the hidden-grouping scans (not
+    columns of the file), ``file_order`` those of them read off the file order.
     """
+    from replicheck.errors import InputError
+    from replicheck.structure.hidden.space import coordinate_columns
+
     if unit_labels not in UNIT_LABEL_MODES:
         raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
-    stated: tuple[str, ...] = (
-        ()
-        if stated_unit is None
-        else (stated_unit,)
-        if isinstance(stated_unit, str)
-        else tuple(stated_unit)
-    )
-    single = stated[0] if len(stated) == 1 else None
+    roles = roles or Roles()
+    if stated_unit is not None:
+        cols_ = (stated_unit,) if isinstance(stated_unit, str) else tuple(stated_unit)
+        roles = roles.added([Statement("unit", cols_, "in the options")])
+    st_units = _statement_columns(roles, "unit")
+    st_blocks = _statement_columns(roles, "block")
+    st_within = list(roles.columns("within"))
+    st_cov = roles.columns("covariate")
+    main_terms = [t for t in terms if t not in interactions]
     y = data[response].to_numpy(dtype=float)
-    cols, skipped = grouping_columns(data, (response, *terms, *exclude))
-    for col in stated:
-        if col in cols or (len(stated) > 1 and col in terms):
+    forced = {c for cols_ in (*st_units, *st_blocks) for c in cols_ if c not in terms}
+    forced |= set(st_within)
+    cols, skipped = grouping_columns(
+        data,
+        (response, *terms, *exclude, *st_cov),
+        derived=derived_columns,
+        forced=sorted(forced),
+        treatments=main_terms,
+    )
+    recorded = {c for c in data.columns if c not in derived_columns}
+    all_trt = ev.combined([group_codes(data, (t,)) for t in main_terms])
+    stated_cols = {c for s in roles.statements for c in s.columns}
+    blocks_stated = {c for s in st_blocks if len(s) == 1 for c in s}
+    cols, readings, labels = treatment_labels(data, cols, main_terms, stated_cols)
+    coordinates = {c for pair in coordinate_columns(data[cols]) for c in pair} if cols else set()
+    # recorded units of each treatment: recorded groupings nested in it, by design
+    recorded_units = {
+        t: [
+            group_codes(data, (c,))
+            for c in cols
+            if c in recorded
+            and c not in st_within
+            and c not in blocks_stated
+            and _is_recorded_unit(data, c, t)
+        ]
+        for t in main_terms
+    }
+    unit_codings = {
+        c: group_codes(data, (c,))
+        for c in cols
+        if c in recorded and any(_is_recorded_unit(data, c, t) for t in main_terms)
+    }
+    within = within_factors(
+        data,
+        [c for c in cols if c not in stated_cols and c in recorded and c not in coordinates],
+        st_within,
+        unit_codings,
+        all_trt,
+        y,
+    )
+    time_named = [c for c in cols if name_hint(c).kind == "time"]
+    loc = localise(
+        data,
+        y,
+        cols,
+        main_terms,
+        set(within) | set(time_named) | (stated_cols - blocks_stated),
+        [*time_named, *[w for w in within if w not in time_named]],
+        unit_labels,
+        all_trt,
+        recorded_units,
+        blocks_stated,
+        set(derived_columns),
+    )
+    data, cols, derived = loc.data, loc.columns, dict(loc.derived)
+    readings += loc.readings
+    local_units = {
+        c: group_codes(data, (c,))
+        for c in loc.derived
+        if any(is_nested(group_codes(data, (c,)), group_codes(data, (t,))) for t in main_terms)
+    }
+    within.update(
+        within_factors(
+            data,
+            [
+                c
+                for c in cols
+                if c not in within
+                and c not in stated_cols
+                and c not in local_units
+                and c in recorded
+                and c not in coordinates
+            ],
+            (),
+            local_units,
+            all_trt,
+            y,
+        )
+    )
+    # a grouping the hidden scans derived from a within-unit factor is that factor again
+    cols = [c for c in cols if not (c in derived_columns and _source_of(c) in within)]
+    # (only groupings derived from one column, such as a covariate's value classes)
+    # groupings that may carry implicit plots: blocks named or stated (decisive), and
+    # blocks by structure alone (a reading kept apart, for the verdict to weigh)
+    first_unit = next((u[0] for u in recorded_units.values() if u), None)
+    adjust = [c for c in cols if c in within or name_hint(c).kind == "time"]
+    trt_frame = {t: group_codes(data, (t,)) for t in main_terms}
+
+    def guard(cells: np.ndarray, term: str) -> bool:
+        return _plots_hold_sub_units(cells, recorded_units.get(term, []), trt_frame)
+
+    stated_plot_parts = {c for s in st_units if len(s) > 1 for c in s if c not in terms}
+    eligible: list[str] = []
+    unnamed: list[str] = []
+    for c in cols:
+        if c in within or (c in coordinates and not _complete(data, c, main_terms)):
             continue
-        reason = skipped.get(col, "it is the response or a treatment column")
-        if reason.startswith("a row identifier"):
-            cols.append(col)
-            skipped.pop(col)
-        else:
-            raise InputError(f"the stated unit '{col}' cannot be a grouping: {reason}")
+        if name_hint(derived.get(c, (c,))[-1]).kind == "time":
+            continue  # a time holds measurement occasions, never plots
+        source = derived.get(c, (c,))[-1]
+        if c in blocks_stated or c in stated_plot_parts or named_block(data, c, source, main_terms):
+            eligible.append(c)
+        elif structural_block(data, c, main_terms, all_trt, first_unit, cols):
+            unnamed.append(c)
+    data, cell_cols, cell_parts, cells = crossed_cells(
+        data,
+        y,
+        eligible,
+        main_terms,
+        st_units,
+        groupings=cols,
+        guard=guard,
+        adjust=adjust,
+        times=time_named,
+    )
+    data, _, alt_parts, alt_cells = crossed_cells(
+        data,
+        y,
+        unnamed,
+        main_terms,
+        (),
+        groupings=cols,
+        guard=guard,
+        adjust=adjust,
+    )
+    derived.update(cell_parts)
+    derived.update(alt_parts)
+    evidence = {c.name: c for c in cells}
+    model_cells = ev.combined(
+        [
+            np.maximum(all_trt, 0),
+            *(np.maximum(group_codes(data, (w,)), 0) for w in within if w in data.columns),
+        ]
+    )
     relations: list[Relation] = []
     candidates: list[Candidate] = []
     ambiguous: list[str] = []
     units: list[UnitChoice] = []
-    main_terms = [t for t in terms if t not in interactions]
-    cols, readings = _drop_aliases(data, cols, main_terms, single)
-    data, cols, derived, local = _localise(data, cols, main_terms, single, unit_labels, y)
-    readings += local
-    originals = [
-        c for c in cols if c not in derived and (name_hint(c).suggests_unit or c in stated)
-    ]
-    data, cell_cols, cell_parts, cells = crossed_cells(
-        data, y, originals, main_terms, stated, groupings=cols
-    )
-    derived.update(cell_parts)
-    evidence = {c.name: c for c in cells}
+    alternatives: list[Alternative] = []
+    disputes: list[tuple[str, str, tuple[str, ...]]] = []
+    unit_pool = [c for c in cols if c not in within and c not in blocks_stated] + cell_cols
     for term in terms:
         main = term not in interactions
-        r, c, choice, rd, amb = _one_treatment(
-            data, y, term, cols + cell_cols, stated if main else (), derived, evidence
+        r, cands, rd, amb = _one_treatment(
+            data,
+            y,
+            term,
+            unit_pool,
+            st_units if main else [],
+            derived,
+            evidence,
+            recorded,
+            model_cells,
+            main,
         )
+        cands = _screen(data, term, cands, recorded_units.get(term, []), set(file_order))
         if main:
             relations += [x for x in r if x.column not in evidence]
             readings += rd
             ambiguous += [a for a in amb if a not in ambiguous]
-        candidates += c
+        candidates += cands
+        credible = [c for c in cands if c.credible]
+        stated_c = [c for c in credible if c.stated]
+        inferred = [c for c in credible if not c.stated]
+        best: Candidate | None = None
+        if stated_c:
+            best = stated_c[0]
+            if inferred and inferred[0].n_units < best.n_units and main:
+                alternatives.append(
+                    Alternative(
+                        term,
+                        _choice(data, term, inferred[0]),
+                        "stated",
+                        f"'{inferred[0].name}' is a coarser grouping within which '{term}' is "
+                        f"also constant ({inferred[0].n_units} units against {best.n_units})",
+                        f"how '{term}' was applied: to each {best.name} on its own, or to "
+                        f"whole {inferred[0].name} units",
+                    )
+                )
+        elif main and st_units and not any(_constant_in_any(data, t, st_units) for t in main_terms):
+            # a stated unit the treatment varies within: honoured as stated x treatment cells
+            s = st_units[0]
+            best = _stated_cells(data, term, s)
+            candidates.append(best)
+            rel = classify(
+                ":".join(s), term, pd.Series(group_codes(data, s), index=data.index), data[term]
+            )
+            disputes.append(
+                (
+                    "stated-unit-not-supported",
+                    f"the stated unit '{':'.join(s)}' is {rel.relation} with '{term}' "
+                    f"({rel.detail}): '{term}' varies within it, so it cannot be what each "
+                    f"level was applied to; as stated, each {':'.join(s)} x {term} cell was "
+                    f"taken as a unit",
+                    (*s, term),
+                )
+            )
+            alternatives.append(
+                Alternative(
+                    term,
+                    _choice(data, term, inferred[0] if inferred else None),
+                    "stated",
+                    "the unit replicheck finds in the data",
+                    f"how '{term}' was applied, and to what",
+                )
+            )
+        elif inferred:
+            best = inferred[0]
+        choice = _choice(data, term, best)
         units.append(choice)
+        if main and not stated_c and choice.source != "stated":
+            taken_labels = {c for u in units for c in u.columns}
+            alternatives += _reading_alternatives(
+                data,
+                term,
+                choice,
+                alt_cells,
+                [r for r in loc.name_only if r.column not in taken_labels],
+            )
     readings += _cell_readings(cells, units)
     chosen = {u.unit for u in units}
-    local_cells = {c.block for c in cells if c.name in chosen}
-    blocks = _blocks(data, y, cols, main_terms, relations, derived, local_cells)
-    strata = _strata(data, terms, units, candidates, blocks)
+    # within-unit factors of the chosen units (times within the cells of subject x date)
+    chosen_units = {
+        u.unit: group_codes(data, (u.treatment, *u.columns))
+        for u in units
+        if u.unit is not None and u.columns and u.relation != "confounded" and u.n_units < len(data)
+    }
+    used = {c for u in units for c in u.columns} | {u.unit for u in units if u.unit}
+    within.update(
+        within_factors(
+            data,
+            [
+                c
+                for c in cols
+                if c not in within
+                and c not in stated_cols
+                and c not in used
+                and c not in coordinates
+            ],
+            (),
+            chosen_units,
+            all_trt,
+            y,
+        )
+    )
+    term_unit = next(iter(chosen_units.values()), first_unit)
+    found_blocks = find_blocks(
+        data,
+        y,
+        cols,
+        main_terms,
+        derived,
+        within,
+        blocks_stated,
+        st_blocks,
+        {c.block for c in cells if c.name in chosen},
+        all_trt,
+        term_unit,
+        coordinates,
+        {c for c in used if c not in main_terms and c not in blocks_stated}
+        - {c.block for c in cells},
+    )
+    strata = _strata(data, terms, units, candidates, found_blocks)
     factors = {t: data[t] for t in main_terms}
     for st in strata:
         if st.kind != "rows" and st.name not in factors:
@@ -608,6 +768,8 @@ def infer_structure(
         for i, a in enumerate(names)
         for b in names[i + 1 :]
     )
+    disputes += block_disputes(data, main_terms, st_blocks, roles)
+    disputes += within_disputes(data, main_terms, roles, within, units)
     return Structure(
         relations=tuple(relations),
         candidates=tuple(candidates),
@@ -616,61 +778,218 @@ def infer_structure(
         readings=tuple(dict.fromkeys(readings)),
         ambiguous=tuple(ambiguous),
         strata=strata,
-        blocks=tuple(blocks),
+        blocks=tuple(found_blocks),
         factor_relations=pairs,
+        roles=column_roles(
+            data,
+            response,
+            main_terms,
+            roles,
+            skipped,
+            labels,
+            units,
+            found_blocks,
+            strata,
+            within,
+            derived,
+            derived_columns,
+            cols,
+        ),
+        alternatives=tuple(alternatives),
+        disputes=tuple(disputes),
     )
 
 
-@dataclass(frozen=True)
-class Block:
-    """A grouping crossed with the treatments that carries an effect of its own."""
+def _plots_hold_sub_units(
+    cells: np.ndarray, rec_units: Sequence[np.ndarray], treatments: Mapping[str, np.ndarray]
+) -> bool:
+    """Whether block x treatment cells can be plots around the recorded units of the term.
 
-    name: str
-    columns: tuple[str, ...]
-    n_levels: int
-    p_value: float | None
-    reason: str
-
-
-def _blocks(
-    data: pd.DataFrame,
-    y: np.ndarray,
-    cols: Sequence[str],
-    treatments: Sequence[str],
-    relations: Sequence[Relation],
-    derived: Mapping[str, tuple[str, ...]],
-    local_cells: set[str] = frozenset(),  # type: ignore[assignment]
-) -> list[Block]:
-    """Groupings crossed with every treatment whose names say block, place, time or subject.
-
-    A crossed column with an effect but no such name (sex, genotype) is more
-    likely a covariate than a block and is left out of the random structure.
-    A place or container whose cells with a treatment are that treatment's
-    units (plates numbered 1..6 within every compound) is a local label, not a
-    block; a column named as a block, time or subject stays a block.
+    A plot holds whole recorded units (R1), and the recorded units inside one
+    plot differ in the treatments applied to them (the sub-plots of a split
+    plot, each with its own variety); several recorded units with the same
+    treatments inside one cell are replicates of it (eight plots of one
+    variety in one year), so they, not the cell, are the units.
     """
-    crossed: dict[str, int] = {}
-    for r in relations:
-        if r.relation == "crossed":
-            crossed[r.column] = crossed.get(r.column, 0) + 1
-    all_trt = group_codes(data, treatments)
-    out: list[Block] = []
-    for col in cols:
-        if crossed.get(col, 0) != len(treatments):
+    for r in rec_units:
+        ok = ev.present(cells, r)
+        if not is_nested(r[ok], cells[ok]):
+            return False
+        constant = [t[ok] for t in treatments.values() if is_nested(r[ok], t[ok])]
+        key = ev.combined([cells[ok], *constant])
+        per = np.bincount(
+            dense_codes(key)[np.unique(ev.combined([key, r[ok]]), return_index=True)[1]]
+        )
+        if int(per.max()) > 1:
+            return False
+    return True
+
+
+def _source_of(derived_name: str) -> str:
+    """The column a hidden grouping was derived from ('container[DOSE]' -> 'DOSE')."""
+    inside = derived_name.partition("[")[2].rstrip("]")
+    return "" if "," in inside else inside.strip()
+
+
+def _complete(data: pd.DataFrame, col: str, treatments: Sequence[str]) -> bool:
+    from replicheck.structure.crossed import complete
+
+    return complete(data, col, treatments)
+
+
+def _screen(
+    data: pd.DataFrame,
+    term: str,
+    cands: list[Candidate],
+    rec_units: Sequence[np.ndarray],
+    file_order: set[str],
+) -> list[Candidate]:
+    """Derived candidates that split a recorded unit of the term are not its units; runs
+    along the file order give way to any other credible unit."""
+    kept: list[Candidate] = []
+    for c in cands:
+        if not (c.recorded or c.stated or c.relation == "confounded") and rec_units:
+            codes = group_codes(data, (term, *c.columns))
+            if not _whole_units(codes, rec_units):
+                c = replace(
+                    c,
+                    credible=False,
+                    reasons=(
+                        *c.reasons,
+                        "splits a recorded unit of the treatment, so it cannot be its unit",
+                    ),
+                )
+        kept.append(c)
+    others = [c for c in kept if c.credible and not set(c.columns) & file_order]
+    if others:
+        kept = [
+            replace(
+                c,
+                credible=False,
+                reasons=(
+                    *c.reasons,
+                    "runs along the file order give way to the recorded or derived units",
+                ),
+            )
+            if c.credible and set(c.columns) & file_order
+            else c
+            for c in kept
+        ]
+    return sorted(kept, key=lambda c: (not c.credible, c.n_units, -c.score))
+
+
+def _is_recorded_unit(data: pd.DataFrame, col: str, term: str) -> bool:
+    """A recorded grouping nested in the term, replicated, nested by design."""
+    codes = group_codes(data, (col,))
+    t = group_codes(data, (term,))
+    ok = ev.present(codes, t)
+    if not ok.any():
+        return False
+    c, tt = codes[ok], t[ok]
+    return is_nested(c, tt) and _by_design(c, tt)
+
+
+def _by_design(unit: np.ndarray, trt: np.ndarray) -> bool:
+    """Whether a grouping nested in a treatment is nested by design: replicated (half the
+    rows in levels of two rows or more), two or more units in every treatment level (a
+    column constant over a whole level, as a duration that is zero for every untreated
+    fly, is no record of units), and unlikely to be nested by chance."""
+    units = dense_codes(unit)
+    levels = dense_codes(trt)
+    per = units_per_level(units, levels, int(levels.max()) + 1)
+    return (
+        int(per.min()) >= 2
+        and ev.replicated_share(units) >= MIN_REPLICATED_SHARE
+        and ev.chance_nesting(units, levels) < CHANCE_NESTING_LOG10
+    )
+
+
+def _constant_in_any(data: pd.DataFrame, term: str, stated: Sequence[tuple[str, ...]]) -> bool:
+    t = group_codes(data, (term,))
+    for s in stated:
+        codes = group_codes(data, s)
+        ok = ev.present(codes, t)
+        if is_nested(codes[ok], t[ok]):
+            return True
+    return False
+
+
+def _reading_alternatives(
+    data: pd.DataFrame,
+    term: str,
+    choice: UnitChoice,
+    alt_cells: Sequence[CellGrouping],
+    name_only: Sequence[LabelReading],
+) -> list[Alternative]:
+    """Readings supported by the data alone or the names alone that give another unit."""
+    out: list[Alternative] = []
+    for c in alt_cells:
+        if c.treatment != term or not c.credible:
             continue
-        source = tuple(derived.get(col, (col,)))
-        codes = group_codes(data, (col,))
-        hint = name_hint(source[-1])
-        if not hint.suggests_unit:
-            continue  # an unnamed crossed column with an effect is more likely a covariate
-        if col in local_cells and hint.kind in {"location", "container"}:
-            continue  # its cells are the units: the labels restart within the treatment
-        p = block_evidence(y, codes, all_trt)
-        reason = f"the name suggests a {hint.kind} ('{hint.word}')"
-        if p is not None:
-            reason += f"; rows differ between its levels beyond the treatment effects: p = {p:.2g}"
-        out.append(Block(col, source, int(codes.max()) + 1, p, reason))
+        cols = (c.block, term)
+        cand = _plain_candidate(data, term, cols, f"{c.block}:{term}")
+        alt = _choice(data, term, cand)
+        if choice.unit is not None and alt.n_units >= choice.n_units:
+            continue
+        out.append(
+            Alternative(
+                term,
+                alt,
+                "reading",
+                f"the {c.block} x {term} cells differ beyond the {c.block} and treatment "
+                f"effects on every scale (p = {c.p_value:.2g}), as the plots of a "
+                f"randomised-block or split-plot design would; but nothing names '{c.block}' "
+                "as a block of plots",
+                f"whether each {c.block} x {term} cell was one plot that received its "
+                f'{term} (state --unit "{c.block}:{term}") or the rows were allocated one by '
+                f"one (state --block {c.block})",
+            )
+        )
+    for r in name_only:
+        if r.parent != term:
+            continue
+        cols = (term, r.column)
+        cand = _plain_candidate(data, term, cols, f"{term}:{r.column}")
+        alt = _choice(data, term, cand)
+        if choice.unit is not None and alt.n_units >= choice.n_units:
+            continue
+        p = "not computed" if r.cells_p is None else f"p = {r.cells_p:.2g}"
+        out.append(
+            Alternative(
+                term,
+                alt,
+                "reading",
+                f"labels of '{r.column}' repeat under every level of '{term}' and the name "
+                f"says container, as if numbered afresh within each level ('{r.column}' 1 of "
+                f"every {term}); the data do not show it (cells {p})",
+                f"whether one physical {r.column} carries the same label under every {term} "
+                f"(--unit-labels global) or each {term} had its own (--unit-labels local)",
+            )
+        )
     return out
+
+
+def _plain_candidate(
+    data: pd.DataFrame, term: str, columns: tuple[str, ...], name: str
+) -> Candidate:
+    codes = group_codes(data, (term, *columns))
+    n_units = int(codes.max()) + 1
+    return Candidate(
+        term,
+        name,
+        columns,
+        "nested",
+        n_units,
+        len(data) / max(n_units, 1),
+        name_hint(columns[-1]),
+        None,
+        None,
+        False,
+        True,
+        0.0,
+        (),
+        recorded=False,
+    )
 
 
 def _strata(
@@ -686,6 +1005,8 @@ def _strata(
 
     def add(name: str, columns: tuple[str, ...], kind: str) -> str:
         codes = group_codes(data, columns)
+        if int(codes.max()) + 1 >= n or int(codes.max()) < 1:
+            return name
         for other, (_, oc, _) in groupings.items():
             if same_partition(codes, oc):
                 return other
@@ -693,25 +1014,55 @@ def _strata(
         return name
 
     for b in blocks:
-        add(b.name, b.columns, "block")
+        if b.kind == "within" and b.n_levels > MAX_OCCASIONS:
+            continue  # a fine time scale, not occasions: no random stratum of its own
+        add(b.name, b.columns, b.kind)
     for u in units:
         if u.unit is None or u.relation == "confounded" or u.n_units >= n:
             term_strata[u.treatment] = None
             continue
-        term_strata[u.treatment] = add(u.unit, u.columns, "unit")
+        term_strata[u.treatment] = add(u.unit, (u.treatment, *u.columns), "unit")
     for u in units:
         if u.unit is None or u.relation == "confounded" or u.n_units >= n:
             continue
-        unit_codes_ = group_codes(data, u.columns)
+        unit_codes_ = group_codes(data, (u.treatment, *u.columns))
         for c in candidates:
             if c.treatment != u.treatment or not c.credible or c.relation != "nested":
                 continue
             if c.n_units <= u.n_units or c.n_units >= n:
                 continue
-            codes = group_codes(data, c.columns)
+            codes = group_codes(data, (u.treatment, *c.columns))
             if is_nested(codes, unit_codes_):
                 add(c.name, c.columns, "subunit")
     return build_strata(groupings, term_strata, n)
+
+
+def unit_codes(data: pd.DataFrame, choice: UnitChoice) -> np.ndarray:
+    """Integer unit codes of the rows for a chosen unit (each row its own unit when none).
+
+    Units are numbered within the levels of the term, so a label that restarts
+    within a treatment level never joins two units; a row with no value in a
+    unit column is a unit of its own.
+    """
+    if not choice.columns:
+        return np.arange(len(data), dtype=np.int64)
+    cols = (
+        choice.columns
+        if choice.treatment in choice.columns or choice.treatment not in data
+        else (choice.treatment, *choice.columns)
+    )
+    return complete_codes(group_codes(data, cols))
+
+
+def complete_codes(codes: np.ndarray) -> np.ndarray:
+    """Codes with every missing (-1) row given a level of its own, numbered after the others."""
+    missing = codes < 0
+    if not missing.any():
+        return codes
+    out = np.array(codes, dtype=np.int64)
+    top = int(out.max()) + 1 if (~missing).any() else 0
+    out[missing] = top + np.arange(int(missing.sum()))
+    return out
 
 
 def _cell_readings(
@@ -727,10 +1078,10 @@ def _cell_readings(
                     "unit-reading-uncertain",
                     f"each '{c.block}' x '{c.treatment}' cell holds {c.mean_size:.3g} rows on "
                     f"average and the cells differ beyond the {c.block} and treatment effects "
-                    f"({p}), so replicheck took each cell as the unit that received "
-                    f"'{c.treatment}' (a plot in a split-plot or randomised-block design); if the "
-                    f"rows were instead allocated to '{c.treatment}' one by one within each "
-                    f"{c.block}, the rows are the units and '{c.block}' is a block",
+                    f"on every scale ({p}), so replicheck took each cell as the unit that "
+                    f"received '{c.treatment}' (a plot in a split-plot or randomised-block "
+                    f"design); if the rows were instead allocated to '{c.treatment}' one by one "
+                    f"within each {c.block}, the rows are the units and '{c.block}' is a block",
                 )
             )
         elif not c.credible and not c.other_treatments_inside and ":" not in c.treatment:
@@ -746,47 +1097,3 @@ def _cell_readings(
                 )
             )
     return out
-
-
-def _choose(data: pd.DataFrame, treatment: str, candidates: list[Candidate]) -> UnitChoice:
-    n = len(data)
-    credible = [c for c in candidates if c.credible]
-    if not credible:
-        return UnitChoice(
-            treatment,
-            None,
-            (),
-            "none",
-            n,
-            n,
-            "rows",
-            "no grouping was found within which the treatment is constant; "
-            "each row is taken as its own replicate",
-        )
-    best = credible[0]
-    stated = "stated by the user as the unit" in best.reasons
-    trt_codes, trt_labels = codes_of(data[treatment])
-    if best.relation == "confounded":
-        unit_per_trt = np.ones(len(trt_labels), dtype=int)
-    else:
-        unit = _local_codes(data, (treatment, *best.columns))
-        unit_per_trt = units_per_level(unit, trt_codes, len(trt_labels))
-    single = tuple(trt_labels[i] for i in np.flatnonzero(unit_per_trt == 1))
-    relation = best.relation
-    if relation != "partial" and len(single) == len(trt_labels):
-        relation = "confounded"
-    reading = f"'{best.name}' is the coarsest grouping within which '{treatment}' never varies" + (
-        " (stated by the user and confirmed by the data)" if stated else ""
-    )
-    n_units = best.n_units if relation != "confounded" else max(best.n_units, len(trt_labels))
-    return UnitChoice(
-        treatment=treatment,
-        unit=best.name,
-        columns=best.columns,
-        relation=relation,
-        n_units=n_units,
-        n_observations=n,
-        source="stated" if stated else "inferred",
-        reading=reading,
-        single_unit_levels=single,
-    )
