@@ -448,8 +448,11 @@ rule("labels-local-to-treatment", "unit labels repeat under several treatment le
 rule("unit-reading-uncertain", "the data allow plots (cells) or rows within blocks as units")(
     _reading_rule("unit-reading-uncertain")
 )
-rule("column-reads-as-treatment-label", "a column has the treatment's partition, read as a label")(
+rule("column-reads-as-treatment-label", "a column is a function of the treatments: a label")(
     _reading_rule("column-reads-as-treatment-label")
+)
+rule("grouping-not-weighed", "a grouping could not be weighed as a unit and was left out")(
+    _reading_rule("grouping-not-weighed")
 )
 
 

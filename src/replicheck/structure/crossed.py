@@ -243,11 +243,20 @@ def crossed_with_all(
 
 
 def _units_per_cell(
-    codes: np.ndarray, all_trt: np.ndarray, unit: np.ndarray | None
+    codes: np.ndarray,
+    all_trt: np.ndarray,
+    unit: np.ndarray | None,
+    series: Sequence[np.ndarray] = (),
 ) -> tuple[float, int]:
-    """Mean and largest number of units (rows when none) in a block x treatment cell."""
+    """Mean and largest number of units in a block x treatment cell: recorded units, or
+    rows; a cell whose rows are one series over a time (one row per time point) is one."""
     ok = ev.present(codes, all_trt, *(() if unit is None else (unit,)))
     cells = ev.combined([codes[ok], all_trt[ok]])
+    if unit is None:
+        for t in series:
+            tt = t[ok]
+            if ev.present(tt).all() and int(ev.combined([cells, tt]).max()) + 1 == cells.size:
+                return 1.0, 1  # each row of a cell at its own time point: one series
     if unit is not None:
         pairs = ev.combined([cells, unit[ok]])
         first = np.unique(pairs, return_index=True)[1]
@@ -268,14 +277,16 @@ def structural_block(
     all_trt: np.ndarray,
     unit: np.ndarray | None,
     others: Sequence[str] = (),
+    series: Sequence[np.ndarray] = (),
 ) -> bool:
-    """A block by structure alone: the treatments side by side, about one unit each, and no
-    other grouping held whole inside it (a sequence that holds whole subjects, each of
-    them a block, is a characteristic of the subjects)."""
+    """A block by structure alone: the treatments side by side, about one unit each (a
+    series over time counting as one), and no other block held whole inside it (a
+    sequence that holds whole subjects, each of them a block, is a characteristic of
+    the subjects)."""
     if not crossed_with_all(data, col, treatments):
         return False
     codes = group_codes(data, (col,))
-    mean, most = _units_per_cell(codes, all_trt, unit)
+    mean, most = _units_per_cell(codes, all_trt, unit, series)
     if not (mean <= BLOCK_MAX_CELL and most <= BLOCK_MOST_CELL and _size_cv(codes) <= BLOCK_MAX_CV):
         return False
     k = int(codes.max()) + 1
@@ -301,8 +312,13 @@ def named_block(data: pd.DataFrame, col: str, source: str, treatments: Sequence[
     hint = name_hint(source)
     if not hint.suggests_unit:
         return False
-    if indicator(data, col) and len(tokens(source)) > 1:
-        return False  # a yes/no column whose name only contains a place word (nerve_block_x)
+    words = tokens(source)
+    if hint.word not in (words[0], words[-1]) and f"{hint.word}s" not in (words[0], words[-1]):
+        return False  # the word inside a longer name (postOp4hour_cough): no block
+    if indicator(data, col) and (
+        len(words) > 1 or hint.kind not in {"block", "location", "process"}
+    ):
+        return False  # a yes/no column: a block only when it names places (site 0/1)
     if numeric_kind(data[col]) == "measurement":
         return False
     if not crossed_with_all(data, col, treatments, share=NAMED_BLOCK_SHARE):

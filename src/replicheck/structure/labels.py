@@ -35,6 +35,11 @@ Which parents are possible (names break these ties):
 * never a time or a within-unit factor (subjects are measured again in every
   period).
 
+A label that is already a unit of a treatment (inside one of its levels) restarts
+within a grouping it crosses only when one label is at two levels of the
+grouping on one occasion (patient 1 seen at visit 1 in three clinics): one unit
+is measured once per occasion.
+
 Local units must keep recorded groupings whole: a unit of a treatment holds
 whole units of every recorded grouping nested in the treatment, and cannot
 split a recorded grouping its label is constant within (a music background
@@ -53,7 +58,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from replicheck.partitions import is_nested, same_partition
+from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.structure import evidence as ev
 from replicheck.structure.columns import numeric_kind
 from replicheck.structure.crossed import indicator
@@ -117,6 +122,23 @@ def _keeps_whole(
     return True
 
 
+def _at_two_places(label: np.ndarray, parent: np.ndarray, occasions: Sequence[np.ndarray]) -> bool:
+    """Whether one label is at two levels of the parent on one occasion (patient 1 seen at
+    visit 1 in three clinics): one unit is measured once per occasion, so the label names
+    several units, one within each parent level."""
+    for occ in occasions:
+        ok = ev.present(label, parent, occ)
+        if not ok.any():
+            continue
+        key = ev.combined([label[ok], occ[ok]])
+        per = np.bincount(
+            dense_codes(key)[np.unique(ev.combined([key, parent[ok]]), return_index=True)[1]]
+        )
+        if int(per.max()) > 1:
+            return True
+    return False
+
+
 def localise(
     data: pd.DataFrame,
     y: np.ndarray,
@@ -157,6 +179,7 @@ def localise(
         for c in (group_codes(data, (t,)) for t in times if t in data.columns)
         if int(c.max()) + 1 <= MAX_OCCASIONS
     ]
+    occasion_codes = [group_codes(data, (t,)) for t in times if t in data.columns]
     taken: list[LabelReading] = []
     name_only: list[LabelReading] = []
     parent_of: dict[str, str] = {}
@@ -194,13 +217,20 @@ def localise(
         if indicator(data, col) and not local_mode:
             continue  # a yes/no column marks a state, not a unit
         codes = current[col][1]
-        if any(is_nested(codes[codes >= 0], trt_codes[t][codes >= 0]) for t in treatments):
-            continue  # already a unit of a treatment: its labels are its own
+        # a label already inside one level of a treatment may still restart within a
+        # grouping it crosses (patient 1 of every clinic, all of them on arm A), never
+        # within a treatment
+        unit_of_treatment = any(
+            is_nested(codes[codes >= 0], trt_codes[t][codes >= 0]) for t in treatments
+        )
         kind = name_hint(col).kind
         individual = kind == "individual"
         label_of_units = kind in {"container", "identifier"}
+        treatment_parents = (label_of_units or local_mode) and not (
+            stated_block or unit_of_treatment
+        )
         options = [
-            *(treatments if (label_of_units or local_mode) and not stated_block else []),
+            *(treatments if treatment_parents else []),
             *[
                 g
                 for g in cols
@@ -229,6 +259,8 @@ def localise(
         supported: list[LabelReading] = []
         for parent in crossing:
             pc = current[parent][1]
+            if unit_of_treatment and not _at_two_places(codes, pc, occasion_codes):
+                continue  # a unit's labels are its own unless one label is two places at once
             as_treatment = parent in treatments or any(
                 same_partition(np.maximum(pc, 0), np.maximum(tc, 0)) for tc in trt_codes.values()
             )

@@ -315,64 +315,98 @@ def _one_treatment(
     ambiguous: list[str] = []
     trt_codes = group_codes(data, (treatment,))
     for col in cols:
-        rel = classify(col, treatment, data[col], data[treatment])
-        relations.append(rel)
-        if not _covers_levels(group_codes(data, (col,)), trt_codes):
-            continue  # missing for most of a treatment level: no unit of the treatment
-        source = derived.get(col, (col,))
-        is_stated = any(
-            set(source) == set(s) or (len(s) == 1 and source == (s[0],)) for s in stated
-        )
-        is_recorded = col in recorded
-        if col in cells and rel.relation != "nested":
+        try:
+            found = _weigh(
+                data,
+                y,
+                treatment,
+                col,
+                trt_codes,
+                stated,
+                derived,
+                cells,
+                recorded,
+                all_trt,
+                main,
+            )
+        except (ArithmeticError, ValueError, np.linalg.LinAlgError) as err:
+            # a well-formed file never stops the audit: the grouping is left out, said why
+            readings.append(
+                (
+                    "grouping-not-weighed",
+                    f"'{col}' could not be weighed as a unit of '{treatment}' "
+                    f"({type(err).__name__}: {err}), so it was left out of the candidates",
+                )
+            )
             continue
-        if rel.relation == "nested":
-            cand = _candidate(
-                data, y, treatment, source, rel, col, False, is_stated, is_recorded, all_trt
-            )
-            if col in cells:
-                cell = cells[col]
-                p = "not computed" if cell.p_value is None else f"p = {cell.p_value:.2g}"
-                cand = replace(
-                    cand,
-                    credible=cell.credible or is_stated,
-                    support="stated" if is_stated else ("evidence" if cell.credible else "none"),
-                    reasons=(
-                        *cand.reasons[:-1],
-                        f"cells of '{cell.block}' x '{cell.treatment}' "
-                        + ("differ" if cell.credible else "do not differ")
-                        + f" beyond the block and treatment effects on every scale ({p})",
-                    ),
-                )
+        if found is None:
+            continue
+        rel, cand, is_ambiguous = found
+        relations.append(rel)
+        if cand is not None:
             candidates.append(cand)
-        elif rel.relation == "partial":
-            # the exceptions make the column cross the treatment; within each treatment
-            # level its labels still name units, so the unit is treatment x column
-            candidates.append(
-                _candidate(
-                    data,
-                    y,
-                    treatment,
-                    (treatment, col),
-                    rel,
-                    col,
-                    False,
-                    is_stated,
-                    is_recorded,
-                    all_trt,
-                )
-            )
-        elif rel.relation == "confounded":
-            same = rel.n_levels == len(rel.levels_per_treatment)
-            alias = same and not is_stated and is_alias(col, treatment, data[col], data[treatment])
-            cand = _candidate(
-                data, y, treatment, source, rel, col, alias, is_stated, is_recorded, all_trt
-            )
-            candidates.append(cand)
-            if not alias and not cand.credible and main:
-                ambiguous.append(col)
+        if is_ambiguous:
+            ambiguous.append(col)
     candidates.sort(key=lambda c: (not c.credible, c.n_units, -c.score))
     return relations, candidates, readings, ambiguous
+
+
+def _weigh(
+    data: pd.DataFrame,
+    y: np.ndarray,
+    treatment: str,
+    col: str,
+    trt_codes: np.ndarray,
+    stated: Sequence[tuple[str, ...]],
+    derived: Mapping[str, tuple[str, ...]],
+    cells: Mapping[str, CellGrouping],
+    recorded: set[str],
+    all_trt: np.ndarray,
+    main: bool,
+) -> tuple[Relation, Candidate | None, bool] | None:
+    """The relation of one grouping to one term, and the candidate unit it makes, if any."""
+    rel = classify(col, treatment, data[col], data[treatment])
+    if not _covers_levels(group_codes(data, (col,)), trt_codes):
+        return rel, None, False  # missing for most of a treatment level: no unit of it
+    source = derived.get(col, (col,))
+    is_stated = any(set(source) == set(s) or (len(s) == 1 and source == (s[0],)) for s in stated)
+    is_recorded = col in recorded
+    if col in cells and rel.relation != "nested":
+        return rel, None, False
+    if rel.relation == "nested":
+        cand = _candidate(
+            data, y, treatment, source, rel, col, False, is_stated, is_recorded, all_trt
+        )
+        if col in cells:
+            cell = cells[col]
+            p = "not computed" if cell.p_value is None else f"p = {cell.p_value:.2g}"
+            cand = replace(
+                cand,
+                credible=cell.credible or is_stated,
+                support="stated" if is_stated else ("evidence" if cell.credible else "none"),
+                reasons=(
+                    *cand.reasons[:-1],
+                    f"cells of '{cell.block}' x '{cell.treatment}' "
+                    + ("differ" if cell.credible else "do not differ")
+                    + f" beyond the block and treatment effects on every scale ({p})",
+                ),
+            )
+        return rel, cand, False
+    if rel.relation == "partial":
+        # the exceptions make the column cross the treatment; within each treatment
+        # level its labels still name units, so the unit is treatment x column
+        cand = _candidate(
+            data, y, treatment, (treatment, col), rel, col, False, is_stated, is_recorded, all_trt
+        )
+        return rel, cand, False
+    if rel.relation == "confounded":
+        same = rel.n_levels == len(rel.levels_per_treatment)
+        alias = same and not is_stated and is_alias(col, treatment, data[col], data[treatment])
+        cand = _candidate(
+            data, y, treatment, source, rel, col, alias, is_stated, is_recorded, all_trt
+        )
+        return rel, cand, not alias and not cand.credible and main
+    return rel, None, False
 
 
 def _choice(data: pd.DataFrame, treatment: str, best: Candidate | None) -> UnitChoice:
@@ -589,6 +623,7 @@ def infer_structure(
     stated_plot_parts = {c for s in st_units if len(s) > 1 for c in s if c not in terms}
     eligible: list[str] = []
     unnamed: list[str] = []
+    series = [group_codes(data, (t,)) for t in time_named if t in data.columns]
     for c in cols:
         if c in within or (c in coordinates and not _complete(data, c, main_terms)):
             continue
@@ -597,8 +632,12 @@ def infer_structure(
         source = derived.get(c, (c,))[-1]
         if c in blocks_stated or c in stated_plot_parts or named_block(data, c, source, main_terms):
             eligible.append(c)
-        elif structural_block(data, c, main_terms, all_trt, first_unit, cols):
-            unnamed.append(c)
+        elif structural_block(data, c, main_terms, all_trt, first_unit, cols, series):
+            # cells that hold series over time are occasions (units) by structure
+            if first_unit is None and _series_cells(data, c, main_terms, series):
+                eligible.append(c)
+            else:
+                unnamed.append(c)
     data, cell_cols, cell_parts, cells = crossed_cells(
         data,
         y,
@@ -823,6 +862,22 @@ def _plots_hold_sub_units(
         if int(per.max()) > 1:
             return False
     return True
+
+
+def _series_cells(
+    data: pd.DataFrame, col: str, treatments: Sequence[str], series: Sequence[np.ndarray]
+) -> bool:
+    from replicheck.structure.strata import SERIES_POINTS
+
+    cells = group_codes(data, (col, *treatments))
+    for t in series:
+        ok = ev.present(cells, t)
+        if not ok.all():
+            continue
+        n = int(ev.combined([cells, t]).max()) + 1
+        if n == cells.size and n >= SERIES_POINTS * (int(cells.max()) + 1):
+            return True
+    return False
 
 
 def _source_of(derived_name: str) -> str:
