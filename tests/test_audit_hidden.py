@@ -122,11 +122,17 @@ def test_a_measurement_with_a_tied_reading_does_not_hide_file_order_runs() -> No
     assert doc["experimental_units"][0]["unit"] == "run[file order]"
     assert doc["experimental_units"][0]["n_units"] == 6
     assert doc["terms"][0]["p_value"] == pytest.approx(_unit_means_p(y, run, diet), rel=1e-9)
+    # a subject number shared by two rows only twice: nearly every value distinct, no
+    # record of units (the same rule as the structure stage), so the runs stay
     subject = np.arange(36)
     subject[1] = subject[0]
     subject[20] = subject[19]
     ids = pd.DataFrame({"diet": diet, "area": y, "subject": subject})
     unit = audit(ids, response="area", treatment="diet").to_dict()["experimental_units"][0]
+    assert unit["unit"] == "run[file order]"
+    # every subject measured twice: a record of units, which stops the runs
+    twice = pd.DataFrame({"diet": diet, "area": y, "subject": np.arange(36) // 2})
+    unit = audit(twice, response="area", treatment="diet").to_dict()["experimental_units"][0]
     assert unit["unit"] == "subject"
 
 

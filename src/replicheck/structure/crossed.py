@@ -16,7 +16,9 @@ the design's random structure in one of two ways:
   (phase and hour: every unit holds every level, with numbers of rows within a
   factor 2 of each other),
   and groupings made of a within-unit factor's levels (the study period of a
-  week). A characteristic that merely varies
+  week). Unless named as a time, occasions are shared (each level of W is held
+  by 1.5 units or more on average: values that differ from row to row are no
+  occasions) and a yes/no state is no occasion. A characteristic that merely varies
   between the rows of a unit (a pupil's sex within a school, a score) puts
   many rows in each cell or few of its levels in each unit. A grouping whose
   name says container, subject, place or source (plot 1 to 3 of every main
@@ -129,6 +131,8 @@ def within_factors(
         kind = name_hint(w).kind
         if kind in {"container", "individual", "location", "process", "block"}:
             return None  # a named container, subject, place or source: labels of sub-units
+        if kind != "time" and indicator(data, w):
+            return None  # a yes/no state of a row, not an occasion
         for name, s in units.items():
             if name == w:
                 continue
@@ -149,6 +153,7 @@ def within_factors(
                 continue  # jointly, only factors laid out evenly in every unit
             timed = name_hint(w).kind == "time"
             regular = coverage >= WITHIN_COVERAGE and size <= WITHIN_MAX_CELL
+            regular = regular and _units_per_level(a, b) >= 1.5  # occasions shared by units
             if per_unit >= 1.5 and (timed or regular):
                 return name
         return None
@@ -188,6 +193,13 @@ def within_factors(
             out[g] = out[w]
             break
     return out
+
+
+def _units_per_level(unit: np.ndarray, w: np.ndarray) -> float:
+    """Mean number of units holding each level of W."""
+    pairs = ev.combined([dense_codes(w), dense_codes(unit)])
+    first = np.unique(pairs, return_index=True)[1]
+    return float(np.bincount(dense_codes(w)[first]).mean())
 
 
 def _shared(

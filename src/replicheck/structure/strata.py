@@ -160,16 +160,21 @@ def cell_evidence(
 
 def _time_series(cells: np.ndarray, times: Sequence[np.ndarray]) -> bool:
     """Whether the rows of every cell are one series over time: a time named as such
-    indexes them, one row per time point, three or more points per cell on average
-    (a subject under one formulation sampled over hours is one occasion, one unit of
-    the formulation; two years of one variety at one site are two trials, not a series)."""
+    indexes them, one row per time point, three or more points per cell on average,
+    and the cells share their time points (each holds half of them or more): a subject
+    under one formulation sampled over hours is one occasion, one unit of the
+    formulation; two years of one variety at one site are two trials, not a series,
+    and ages that differ from row to row are no time points."""
     for t in times:
         ok = (cells >= 0) & (t >= 0)
         if not ok.all():
             continue
-        pair = dense_codes(pair_codes(dense_codes(cells), dense_codes(t)))
+        c, tt = dense_codes(cells), dense_codes(t)
+        pair = dense_codes(pair_codes(c, tt))
         n_pairs = int(pair.max()) + 1
-        if n_pairs == cells.size and n_pairs >= SERIES_POINTS * (int(cells.max()) + 1):
+        k_cells, k_times = int(c.max()) + 1, int(tt.max()) + 1
+        shared = n_pairs >= 0.5 * k_cells * k_times  # the cells share their time points
+        if n_pairs == cells.size and n_pairs >= SERIES_POINTS * k_cells and shared:
             return True
     return False
 

@@ -247,13 +247,14 @@ def _candidate(
     if alias:
         reasons.append("read as another label of the treatment, not a unit")
     evidence = icc_p is not None and icc_p < CLUSTER_EVIDENCE_P
+    replicated = unit is None or ev.replicated_share(unit[unit >= 0]) >= MIN_REPLICATED_SHARE
     if support == "none":
         if structural:
             support = "structure"
             reasons.append("a recorded grouping nested in the treatment, replicated by design")
-        elif hint.suggests_unit:
-            support = "name"
-        elif evidence:
+        elif hint.suggests_unit and replicated:
+            support = "name"  # a name cannot make units of rows that are nearly all alone
+        elif evidence and replicated:
             support = "evidence"
     credible = not alias and support != "none"
     return Candidate(
@@ -675,6 +676,21 @@ def infer_structure(
     alternatives: list[Alternative] = []
     disputes: list[tuple[str, str, tuple[str, ...]]] = []
     unit_pool = [c for c in cols if c not in within and c not in blocks_stated] + cell_cols
+    # a stated unit made of several columns that are not a block and treatments (pups of
+    # one sex in one litter) is a grouping of its own
+    made = {tuple(derived[c]) for c in cell_cols if c in derived}
+    combos: dict[str, pd.Series] = {}
+    for combo in st_units:
+        if len(combo) < 2 or any(c in terms for c in combo) or tuple(combo) in made:
+            continue
+        name = ":".join(combo)
+        if name in data.columns:
+            continue
+        combos[name] = pd.Series(group_codes(data, combo), index=data.index)
+        derived[name] = tuple(combo)
+        unit_pool.append(name)
+    if combos:
+        data = data.assign(**combos)
     for term in terms:
         main = term not in interactions
         r, cands, rd, amb = _one_treatment(
@@ -867,17 +883,9 @@ def _plots_hold_sub_units(
 def _series_cells(
     data: pd.DataFrame, col: str, treatments: Sequence[str], series: Sequence[np.ndarray]
 ) -> bool:
-    from replicheck.structure.strata import SERIES_POINTS
+    from replicheck.structure.strata import _time_series
 
-    cells = group_codes(data, (col, *treatments))
-    for t in series:
-        ok = ev.present(cells, t)
-        if not ok.all():
-            continue
-        n = int(ev.combined([cells, t]).max()) + 1
-        if n == cells.size and n >= SERIES_POINTS * (int(cells.max()) + 1):
-            return True
-    return False
+    return _time_series(group_codes(data, (col, *treatments)), series)
 
 
 def _source_of(derived_name: str) -> str:

@@ -66,9 +66,10 @@ The runs are not split further: a break of the response inside a run would
 be a guess.
 
 **The file order** yields runs only when no recorded column is already a
-replicated grouping nested in the treatment (a measurement, numbers with
-fractional values and more distinct values than half the rows, does not count:
-a few tied readings would make it look nested): files are often listed by
+replicated grouping nested in the treatment (half the rows or more in levels
+of two rows or more; a measurement, numbers with fractional values and more
+distinct values than half the rows, does not count: a few tied readings would
+make it look nested): files are often listed by
 treatment in several stretches (sheets pasted one after another), which says
 nothing about processing when the units are recorded. Runs in the file order
 are reported as the Signal ``treatment-in-file-runs`` (a note), runs along a
@@ -101,6 +102,7 @@ from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
 from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
+from replicheck.structure.evidence import replicated_share
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
 from replicheck.structure.hidden.time import parse_times
 from replicheck.structure.names import name_hint, tokens
@@ -690,6 +692,7 @@ def _runs_of(
     if ordering.from_file and any(
         k < int(c.max()) + 1 < rows.size
         and is_nested(c, target)
+        and replicated_share(c) >= 0.5
         and not _measurement(frame[name], int(c.max()) + 1, rows.size)
         for name, c in recorded
     ):
