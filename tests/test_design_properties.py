@@ -295,3 +295,22 @@ def test_stated_roles_give_the_true_units(
     for block in roles.get("block", []):
         role = next(r for r in doc["roles"] if r["column"] == block)
         assert role["role"] == "block" and role["source"].startswith("stated")
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_codes_at_random_within_units_are_no_occasions(seed: int) -> None:
+    # nlme::RatPupWeight (dose given per litter, about 12 pups per litter) with an
+    # invented column of random codes 1 to 6: every litter holds most codes, two
+    # pups per litter x code on average, as a pup's measurement occasions would.
+    # But the counts scatter as chance makes them (variance about the mean), where
+    # a schedule of occasions holds about one or a fixed number per cell: the code
+    # is no within-unit factor and changes nothing.
+    d = _real("nlme", "RatPupWeight")
+    base = _doc(d, response="weight", treatment=["Treatment"])
+    rng = np.random.default_rng(seed)
+    noisy = d.assign(tray=rng.integers(1, 7, len(d)))
+    doc = _doc(noisy, response="weight", treatment=["Treatment"])
+    roles = {r["column"]: r["role"] for r in doc["roles"]}
+    assert roles["tray"] not in ("within", "block", "unit")
+    _assert_same_verdict(d, base, noisy, doc)
+    assert doc["terms"][0]["p_value"] == pytest.approx(base["terms"][0]["p_value"], rel=1e-9)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from typing import Any
 
+import design_sim as ds
 import numpy as np
 import pandas as pd
 import pytest
@@ -244,6 +245,35 @@ def test_a_label_of_treatment_combinations_is_not_a_unit() -> None:
     assert _term(doc, "contour")["p_value"] is not None
 
 
+def _dosed(column: str, seed: int = 9) -> pd.DataFrame:
+    """Invented: 120 patients randomised one by one to placebo or drug; the drug
+    patients at 5, 10 or 20 mg, the amount in a numeric column that is 0 for placebo."""
+    rng = np.random.default_rng(seed)
+    arm = rng.permutation(np.repeat(["placebo", "drug"], 60))
+    amount = np.where(arm == "drug", rng.choice([5, 10, 20], 120), 0)
+    y = 10 + 0.05 * amount + rng.normal(0, 1, 120)
+    return pd.DataFrame({"arm": arm, column: amount, "y": y})
+
+
+def test_an_amount_zero_for_the_control_is_part_of_the_treatment() -> None:
+    d = _dosed("dose_mg")
+    doc = _doc(d, response="y", treatment="arm")
+    assert _roles(doc)["dose_mg"] == "label"
+    assert _unit(doc)["unit"] is None and doc["verdict"]["status"] == "ok"
+    # the claimed test stands: Student's t on the 120 patients (scipy)
+    ref = scipy.stats.ttest_ind(d.y[d.arm == "drug"], d.y[d.arm == "placebo"])
+    assert _term(doc, "arm")["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-9)
+
+
+def test_a_unit_named_column_zero_for_the_control_stays_a_unit() -> None:
+    # The same numbers named as tanks: all placebo animals in tank 0, the drug in
+    # tanks 5, 10 and 20. A name that says unit keeps the reading of units.
+    d = _dosed("tank")
+    doc = _doc(d, response="y", treatment="arm")
+    assert _roles(doc)["tank"] == "unit"
+    assert doc["verdict"]["status"] != "ok"
+
+
 def test_a_nearly_constant_flag_is_never_a_unit() -> None:
     # Invented: a randomised trial of 600 with a yes/no flag that is "yes" on 18 rows.
     rng = np.random.default_rng(6)
@@ -409,3 +439,45 @@ def test_a_column_that_cannot_be_weighed_is_left_out_not_fatal() -> None:
     doc = _doc(d, response="y", treatment="feed")
     assert doc["verdict"]["status"] == "pseudoreplicated"
     assert _unit(doc)["n_units"] == 9
+
+
+# --------------------------------------------------- split-split plot, no plot columns
+
+
+def test_main_plots_the_data_do_not_show_are_named_with_the_statement_that_sets_them() -> None:
+    """Invented split-split plot without plot columns (tests/design_sim.py, seed 1).
+
+    The sub-plots (block x irrigation x variety cells) differ clearly and are
+    taken as units; the main plots (block x irrigation cells) do not differ
+    beyond the effects on the sub-plot means, so they are not taken, and the
+    note names them with the p-value and the statement that would set them.
+    Reference: statsmodels' sequential F of block:irrigation on the 24
+    sub-plot means after block + irrigation * variety, the larger p of the raw
+    and log scales.
+    """
+    d = ds.split_split_plot(1, labels="none")
+    doc = _doc(d, response="y", treatment=["irrigation", "variety", "nitro"])
+    assert _unit(doc, "irrigation")["unit"] == "block:irrigation:variety"
+    ps = []
+    for scale in (np.asarray, np.log):
+        sub = (
+            d.assign(s=scale(d["y"]))
+            .groupby(["block", "irrigation", "variety"], as_index=False)["s"]
+            .mean()
+        )
+        fit = smf.ols("s ~ block + irrigation * variety + block:irrigation", data=sub).fit()
+        ps.append(float(anova_lm(fit, typ=1).loc["block:irrigation", "PR(>F)"]))
+    p = max(ps)
+    assert p > 0.01
+    notes = [
+        f["message"]
+        for f in doc["findings"]
+        if f["rule"] == "unit-reading-uncertain" and "'block' x 'irrigation' cell" in f["message"]
+    ]
+    assert len(notes) == 1
+    assert f"(p = {p:.2g})" in notes[0]
+    assert '--unit "block:irrigation"' in notes[0]
+    stated = _doc(
+        d, response="y", treatment=["irrigation", "variety", "nitro"], unit="block:irrigation"
+    )
+    assert _unit(stated, "irrigation")["n_units"] == 8

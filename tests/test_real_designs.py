@@ -44,9 +44,6 @@ KNOWN = {
     "DAAG-rice": "the Block x treatment cells (6 plants) differ beyond the block and "
     "treatment effects, so they are read as plots; the documentation says nothing of the "
     "layout and the package's example treats plants as replicates",
-    "drc-auxins": "the undocumented column r (1-3) holds every preparation and its cells "
-    "with the herbicide differ, so the plot reading is kept beside the rows and the two "
-    "disagree: unclear",
     "survival-rats2": "obs numbers the intervals of each rat, but its levels carry no "
     "shared effect, so it is read as numbering sub-samples, not occasions",
     "survival-myeloid": "flt3 stratified the randomisation, but nothing in its name or "

@@ -27,7 +27,8 @@ from replicheck.report import figures
 ALLOWED_TAGS = {
     "html", "head", "meta", "title", "style", "body", "header", "h1", "h2", "p", "main",
     "section", "span", "table", "thead", "tbody", "tr", "th", "td", "figure", "img",
-    "figcaption", "ul", "li", "div", "strong", "small", "blockquote", "code", "footer",
+    "figcaption", "ul", "li", "div", "strong", "small", "blockquote", "code", "footer", "h3",
+    "em",
 }  # fmt: skip
 XSS = "<script>alert(1)</script>"
 

@@ -287,3 +287,40 @@ def test_roles_in_a_screening_index(tmp_path: Path) -> None:
     bad.write_text("file,response,treatment,unit,block\nx.csv,y,t,a,a\n", encoding="utf-8")
     with pytest.raises(InputError, match=r"stated both as unit.*line 2"):
         load_index(bad)
+
+
+# ---------------------------------------------------------------- in the reports
+
+
+def test_reports_show_the_roles_and_the_other_reading_with_its_refit(tmp_path: Path) -> None:
+    # nlme::RatPupWeight with a stated unit of pups of one sex in a litter: the
+    # litter, the unit the data give, is refitted beside it. Its mixed-model test
+    # is R's lmerTest on a random litter intercept (fixtures/audit/ratpup_lmertest.json:
+    # F = 1.834 on (2, 21.68) df, p = 0.1837), and every report shows it with the
+    # role of every column.
+    ref = json.loads(
+        (Path(__file__).parent.parent / "fixtures/audit/ratpup_lmertest.json").read_text()
+    )
+    path = tmp_path / "ratpup.csv"
+    RATPUP.to_csv(path, index=False)
+    args = ("check", str(path), "-r", "weight", "-t", "Treatment", "-u", "Litter:sex")
+    doc = json.loads(_cli(*args, "--format", "json").stdout)
+    alt = doc["terms"][0]["alternatives"][0]
+    assert alt["unit"] == "Litter" and alt["kind"] == "stated"
+    assert alt["statistic"] == pytest.approx(ref["F"], rel=1e-6)
+    assert alt["df"][1] == pytest.approx(ref["den_df"], rel=1e-4)
+    assert alt["p_value"] == pytest.approx(ref["p"], rel=1e-4)
+    text = " ".join(_cli(*args).stdout.split())  # the text report wraps lines
+    assert "other readings of the unit" in text
+    assert "Treatment: Litter (the unit found in the data; nested, 27 units;" in text
+    assert "F(2, 21.68) = 1.83, p = 0.184" in text
+    roles = text[text.index("ROLES OF THE COLUMNS") :]
+    assert "Litter:sex: experimental unit (stated in the options)" in roles
+    assert "Lsize: covariate (inferred)" in roles
+    md = _cli(*args, "--format", "markdown").stdout
+    assert "| `Litter:sex` | experimental unit | stated in the options |" in md
+    assert "### Other readings of the unit" in md
+    html_path = tmp_path / "r.html"
+    _cli(*args, "--format", "html", "-o", str(html_path))
+    page = html_path.read_text()
+    assert "<h3>Roles of the columns</h3>" in page and "<td>Lsize</td><td>covariate</td>" in page

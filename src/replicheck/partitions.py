@@ -52,10 +52,15 @@ def pair_codes(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return a.astype(np.int64, copy=False) * (int(b.max()) + 1 if b.size else 1) + b
 
 
+_PREFIX = 2048  # rows looked at first by is_nested, to reject most pairs cheaply
+
+
 def is_nested(fine: np.ndarray, coarse: np.ndarray) -> bool:
     """Whether every level of ``fine`` lies inside one level of ``coarse``."""
     if fine.size == 0:
         return True
+    if fine.size > 4 * _PREFIX and not is_nested(fine[:_PREFIX], coarse[:_PREFIX]):
+        return False  # a level split within the first rows is split in all of them
     top = int(fine.max())
     if int(fine.min()) >= 0 and top <= 4 * fine.size + 1024:
         # write each row's coarse code at its fine level, read it back: a fine level

@@ -19,12 +19,14 @@ from replicheck.report.markdown import suggested_wording
 from replicheck.report.text import (
     STATUS_WORDS,
     TERMS_HEADER,
+    alternative_items,
     analyses_header,
     analyses_rows,
     fmt_df,
     fmt_num,
     fmt_p,
     needs_sentence,
+    roles_rows,
     terms_rows,
 )
 
@@ -45,6 +47,7 @@ body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, sans-serif; co
 h1 { font-size: 1.35rem; margin: 0 0 .25rem; }
 h2 { font-size: 1.1rem; margin: 2rem 0 .5rem; border-bottom: 1px solid var(--rule);
   padding-bottom: .2rem; }
+h3 { font-size: 1rem; margin: 1.25rem 0 .4rem; }
 .meta { color: var(--muted); font-size: .85rem; margin: 0; word-break: break-all; }
 .verdict { border: 2px solid var(--tone); border-left-width: .8rem; border-radius: .3rem;
   padding: .8rem 1rem; margin: 1rem 0; background: var(--panel); }
@@ -329,6 +332,22 @@ def _design_section(doc: dict[str, Any]) -> str:
             + _e("; ".join(f"{b['name']} ({b['n_levels']}): {b['reason']}" for b in blocks))
             + "</p>"
         )
+    alts = alternative_items(doc)
+    if alts:
+        out.append("<h3>Other readings of the unit (each refitted)</h3>")
+        out.append(
+            "<ul>"
+            + "".join(
+                f"<li><strong>{_e(term)}</strong>: {_e(head)}. {_e(why)}. "
+                f"<em>Settled by:</em> {_e(settle)}.</li>"
+                for term, head, why, settle in alts
+            )
+            + "</ul>"
+        )
+    roles = roles_rows(doc)
+    if roles:
+        out.append("<h3>Roles of the columns</h3>")
+        out.append(_table(["column", "role", "source", "why"], roles))
     return "\n".join(out)
 
 

@@ -8,12 +8,14 @@ from typing import Any
 from replicheck.report.text import (
     STATUS_WORDS,
     TERMS_HEADER,
+    alternative_items,
     analyses_header,
     analyses_rows,
     fmt_df,
     fmt_num,
     fmt_p,
     needs_sentence,
+    roles_rows,
     terms_rows,
 )
 
@@ -76,6 +78,19 @@ def render_markdown(doc: dict[str, Any]) -> str:
         ]
         for r in terms_rows(doc):
             lines.append("| " + " | ".join(_esc(x) for x in r) + " |")
+    alts = alternative_items(doc)
+    if alts:
+        lines += ["", "### Other readings of the unit (each refitted)", ""]
+        for term, head, why, settle in alts:
+            lines.append(
+                f"- `{_esc(term)}`: {_esc(head)}. {_esc(why)}. *Settled by:* {_esc(settle)}."
+            )
+    roles = roles_rows(doc)
+    if roles:
+        lines += ["", "### Roles of the columns", "", "| column | role | source | why |"]
+        lines.append("|---|---|---|---|")
+        for col, role, source, why in roles:
+            lines.append(f"| `{_esc(col)}` | {role} | {_esc(source)} | {_esc(why)} |")
     lines += [
         "",
         "### Analyses",

@@ -170,6 +170,47 @@ def design_tree(doc: dict[str, Any]) -> list[str]:
     return lines
 
 
+ROLE_WORDS = {
+    "unit": "experimental unit",
+    "subunit": "sub-unit",
+    "block": "block",
+    "within": "within-unit factor",
+    "covariate": "covariate",
+    "label": "label of the treatments",
+    "identifier": "row identifier",
+    "ignored": "ignored",
+    "other": "no role",
+}
+
+
+def roles_rows(doc: dict[str, Any]) -> list[list[str]]:
+    """Column, role, where the role came from, and why: every column but the claimed ones."""
+    return [
+        [r["column"], ROLE_WORDS.get(r["role"], r["role"]), r["source"], r["evidence"]]
+        for r in doc.get("roles", [])
+        if r["role"] not in ("response", "treatment")
+    ]
+
+
+def alternative_items(doc: dict[str, Any]) -> list[tuple[str, str, str, str]]:
+    """Each other reading of a term's unit: (term, unit and its test, why, what settles it)."""
+    out = []
+    for t in doc["terms"]:
+        for a in t.get("alternatives", []):
+            unit = a["unit"] or "each row"
+            kind = "the unit found in the data" if a["kind"] == "stated" else "another reading"
+            if a["p_value"] is not None and a["test"]:
+                test = (
+                    f"{a['method']}: {a['test']}({fmt_df(a['df'])}) = "
+                    f"{fmt_num(a['statistic'])}, {p_phrase(a['p_value'])}"
+                )
+            else:
+                test = f"{a['method']}: no test"
+            head = f"{unit} ({kind}; {a['relation']}, {a['n_units']} units; {test})"
+            out.append((t["term"], head, a["why"], a["settle"]))
+    return out
+
+
 def hidden_lines(doc: dict[str, Any]) -> list[str]:
     """Derived groupings with how they were found, and the signals worth reading."""
     h = doc.get("hidden") or {}
@@ -269,6 +310,18 @@ def render_text(doc: dict[str, Any]) -> str:
             out.append(f"    {k['grouping']}{of} (score {k['score']:g}){flag}")
             for r in k["reasons"]:
                 out.append(_wrap(r, "        ", "      - "))
+    alts = alternative_items(doc)
+    if alts:
+        out.append("  other readings of the unit (each refitted):")
+        for term, head, why, settle in alts:
+            out.append(_wrap(f"{term}: {head}", "        ", "    "))
+            out.append(_wrap(f"why: {why}", "        ", "      - "))
+            out.append(_wrap(f"settled by: {settle}", "        ", "      - "))
+    roles = roles_rows(doc)
+    if roles:
+        out += ["", "ROLES OF THE COLUMNS"]
+        for col, role, source, why in roles:
+            out.append(_wrap(f"{col}: {role} ({source}) - {why}", "      ", "  "))
     for t in doc["terms"]:
         cl = t["clustering"]
         if cl.get("icc") is not None:

@@ -25,7 +25,9 @@ within-unit factor) or something else, with the reason:
   feeds: a unit confounded with them); a numeric attribute of a treatment (a
   duration with fractions that each level fixes) is a label whatever its name,
   and so is a measurement that a treatment cuts into ranges (a score cut into
-  low, medium and high), unless its levels look like units measured repeatedly.
+  low, medium and high), unless its levels look like units measured repeatedly;
+  a number that is zero exactly in some treatment levels (a dose, an incentive
+  amount, zero for the control) is the amount of the treatment given.
 """
 
 from __future__ import annotations
@@ -133,6 +135,8 @@ def grouping_columns(
             skipped[col] = "all values missing"
         elif n_unique <= 1:
             skipped[col] = "a single value"
+        elif n_unique == n_present and numeric_kind(s) == "measurement":
+            skipped[col] = "a continuous measurement"
         elif n_unique == n_present:
             skipped[col] = "a row identifier (every value distinct)"
         elif is_time_stamp(s):
@@ -239,6 +243,43 @@ def _binned_by(data: pd.DataFrame, col: str, treatments: Sequence[str]) -> str |
     return None
 
 
+def _amount_of(data: pd.DataFrame, col: str, treatments: Sequence[str]) -> tuple[str, str] | None:
+    """The treatment whose control a numeric column marks with zero, if any.
+
+    A column holding the amount of a treatment given (a dose, an incentive in
+    dollars) is zero exactly for the untreated and takes other values for the
+    treated: its zeros fill whole levels of the treatment and nothing else.
+    Unit labels are not coded that way (a control arm is not one unit numbered
+    zero beside treated units numbered through). Returns the treatment and a
+    description of its zero levels.
+    """
+    if not pd.api.types.is_numeric_dtype(data[col]) or pd.api.types.is_bool_dtype(data[col]):
+        return None
+    values = data[col].to_numpy(dtype=float)
+    known = np.isfinite(values)
+    zero = known & (values == 0)
+    if not zero.any() or zero.all() or np.unique(values[known & ~zero]).size < 2:
+        return None
+    col_codes = column_codes(data[col]).codes
+
+    def fixed_by(t: str) -> bool:  # one value per level of t: name t first (a dose's 1/dose)
+        c = column_codes(data[t]).codes
+        ok = (c >= 0) & (col_codes >= 0)
+        return is_nested(c[ok], col_codes[ok])
+
+    for t in sorted(treatments, key=lambda t: not fixed_by(t)):
+        codes = column_codes(data[t]).codes
+        ok = known & (codes >= 0)
+        zero_levels = np.unique(codes[ok & zero])
+        in_zero = np.isin(codes, zero_levels) & ok
+        if bool(np.all(zero[in_zero])) and not bool(np.any(zero[ok & ~in_zero])):
+            if not (ok & ~in_zero).any():
+                continue
+            names = pd.unique(data[t][in_zero].astype(str))
+            return t, " and ".join(f"'{t}' = {n}" for n in names[:3])
+    return None
+
+
 def yes_no_column(s: pd.Series) -> bool:
     """A yes/no column (0/1, true/false, yes/no): it marks membership or a state, never a
     unit or a block."""
@@ -307,6 +348,19 @@ def treatment_labels(
                     f"{', '.join(repr(t) for t in treatments)} (a function of the treatments "
                     f"alone), so it was read as a label of the treatment combinations, not a "
                     f"unit; if each value marks one physical unit, state --unit {col}",
+                )
+            )
+            continue
+        amount = None if unit_name else _amount_of(data, col, treatments)
+        if amount is not None:
+            labels[col] = amount[0]
+            readings.append(
+                (
+                    "column-reads-as-treatment-label",
+                    f"'{col}' is 0 in every row of {amount[1]} and only there: a quantity of "
+                    f"the treatment '{amount[0]}' (an amount or dose, zero for the control), "
+                    f"read as part of it, not a unit; if each value marks one physical unit, "
+                    f"state --unit {col}",
                 )
             )
             continue

@@ -54,8 +54,9 @@ the design's random structure in one of two ways:
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -68,6 +69,8 @@ from replicheck.structure.relations import classify, group_codes
 
 WITHIN_MAX_CELL = 3.0  # rows per unit x level of a within-unit factor (a chosen value)
 WITHIN_COVERAGE = 0.5  # share of a treatment level's levels each unit holds (a chosen value)
+WITHIN_DISPERSION = 0.5  # variance / mean of the unit x level counts (a chosen value)
+WITHIN_SAME_COUNT = 0.8  # share of unit x level cells holding the commonest count (chosen)
 BLOCK_MAX_CELL = 2.5  # units per block x treatment cell (two controls per treated unit)
 BLOCK_MOST_CELL = 3  # and at most this many in any one cell (a chosen value)
 BLOCK_MAX_CV = 0.5  # spread of block sizes for an unnamed block (a chosen value)
@@ -92,16 +95,12 @@ def _cells_and_coverage(
 ) -> tuple[float, float, float]:
     """Mean rows per S x W cell, mean W levels per S level, and the mean share of the W
     levels of its treatment level that each S level holds."""
-    cells = ev.combined([s, w])
-    n_cells = int(cells.max()) + 1
-    s_d = dense_codes(s)
-    k_s = int(s_d.max()) + 1
-    per_unit = np.bincount(s_d[np.unique(cells, return_index=True)[1]], minlength=k_s)
-    tw = ev.combined([trt, w])
-    t_d = dense_codes(trt)
-    levels_in_trt = np.bincount(
-        t_d[np.unique(tw, return_index=True)[1]], minlength=int(t_d.max()) + 1
-    )
+    s_d, w_d, t_d = dense_codes(s), dense_codes(w), dense_codes(trt)
+    k_s, k_w, k_t = int(s_d.max()) + 1, int(w_d.max()) + 1, int(t_d.max()) + 1
+    cells = pd.unique(s_d * k_w + w_d)  # the distinct S x W cells, by hashing
+    n_cells = int(cells.size)
+    per_unit = np.bincount(cells // k_w, minlength=k_s)
+    levels_in_trt = np.bincount(pd.unique(t_d * k_w + w_d) // k_w, minlength=k_t)
     unit_trt = np.zeros(k_s, dtype=np.int64)
     unit_trt[s_d] = t_d
     coverage = float(np.mean(per_unit / np.maximum(levels_in_trt[unit_trt], 1)))
@@ -154,6 +153,7 @@ def within_factors(
             timed = name_hint(w).kind == "time"
             regular = coverage >= WITHIN_COVERAGE and size <= WITHIN_MAX_CELL
             regular = regular and _units_per_level(a, b) >= 1.5  # occasions shared by units
+            regular = regular and _scheduled(a, cell_w, partial(_shared, y, a, b, trt_cells, ok))
             if per_unit >= 1.5 and (timed or regular):
                 return name
         return None
@@ -195,11 +195,34 @@ def within_factors(
     return out
 
 
+def _scheduled(unit: np.ndarray, w: np.ndarray, shared: Callable[[], bool]) -> bool:
+    """Whether the rows of the units follow a schedule of W's levels, not chance.
+
+    Occasions follow a schedule: each unit is measured once (or a fixed number of
+    times) at each occasion it attends, so the counts of its non-empty unit x
+    level cells hardly vary. A code unrelated to the design spreads each unit's
+    rows over its levels at random: the counts scatter as Poisson counts do
+    (with two rows per cell on average, the variance of the non-empty counts is
+    about 0.7 of their mean). W is scheduled when that variance is at most half
+    the mean (the index of dispersion, Fisher 1950; the bound is a chosen
+    value) and either most cells (80%) hold the same count, as a schedule does
+    and sparse random codes (one row per cell on average: 58% single rows) do
+    not, or W's levels carry one effect across the units, as conditions and
+    occasions do and random codes do not (``shared``, evaluated only then).
+    """
+    sizes = np.bincount(ev.combined([unit, w]))
+    sizes = sizes[sizes > 0]
+    if float(sizes.var()) > WITHIN_DISPERSION * float(sizes.mean()):
+        return False
+    return bool(np.bincount(sizes).max() >= WITHIN_SAME_COUNT * sizes.size) or shared()
+
+
 def _units_per_level(unit: np.ndarray, w: np.ndarray) -> float:
     """Mean number of units holding each level of W."""
-    pairs = ev.combined([dense_codes(w), dense_codes(unit)])
-    first = np.unique(pairs, return_index=True)[1]
-    return float(np.bincount(dense_codes(w)[first]).mean())
+    w_d, u_d = dense_codes(w), dense_codes(unit)
+    k_w = int(w_d.max()) + 1
+    pairs = pd.unique(u_d * k_w + w_d)  # distinct unit x level pairs
+    return float(np.bincount(pairs % k_w, minlength=k_w).mean())
 
 
 def _shared(
@@ -270,9 +293,9 @@ def _units_per_cell(
             if ev.present(tt).all() and int(ev.combined([cells, tt]).max()) + 1 == cells.size:
                 return 1.0, 1  # each row of a cell at its own time point: one series
     if unit is not None:
-        pairs = ev.combined([cells, unit[ok]])
-        first = np.unique(pairs, return_index=True)[1]
-        cells = cells[first]
+        k = int(cells.max()) + 1
+        pairs = pd.unique(dense_codes(unit[ok]) * k + cells)  # distinct cell x unit pairs
+        cells = pairs % k
     counts = np.bincount(cells)
     return float(counts.mean()), int(counts.max())
 
@@ -338,6 +361,44 @@ def named_block(data: pd.DataFrame, col: str, source: str, treatments: Sequence[
     return _size_cv(group_codes(data, (col,))) <= NAMED_BLOCK_MAX_CV
 
 
+def _holds_whole(codes: np.ndarray, unit_codes: Sequence[np.ndarray]) -> bool:
+    """Whether every experimental unit lies inside one level of the grouping.
+
+    The units are laid out in blocks (a bench holds whole pots, a tray whole
+    litters); a grouping that splits the units is a characteristic of their rows
+    or a time within them, not a block of the design.
+    """
+    for u in unit_codes:
+        ok = ev.present(u, codes)
+        if ok.any() and not is_nested(u[ok], codes[ok]):
+            return False
+    return True
+
+
+def _outer_codes(
+    data: pd.DataFrame, codes: np.ndarray, col: str, cols: Sequence[str], all_trt: np.ndarray
+) -> np.ndarray:
+    """The treatment cells crossed with every coarser grouping that holds the column.
+
+    A grouping in which the column is nested and which holds several treatment
+    levels (a run holding plates 1 and 2 of every compound) explains any effect
+    the column's labels share across the treatment; the labels' own effect is
+    weighed within it.
+    """
+    parts = [all_trt]
+    for other in cols:
+        if other == col:
+            continue
+        oc = group_codes(data, (other,))
+        ok = ev.present(codes, oc)
+        n_other = int(np.unique(oc[ok]).size)
+        if not ok.any() or n_other < 2 or n_other >= int(np.unique(codes[ok]).size):
+            continue
+        if is_nested(codes[ok], oc[ok]) and not is_nested(oc[ok], all_trt[ok]):
+            parts.append(oc)
+    return ev.combined(parts) if len(parts) > 1 else all_trt
+
+
 def complete(data: pd.DataFrame, col: str, treatments: Sequence[str]) -> bool:
     """Whether every level of a grouping holds every level of every treatment."""
     return all(
@@ -360,11 +421,17 @@ def blocks(
     unit: np.ndarray | None,
     coordinates: set[str],
     units_taken: set[str],
+    unit_codes: Sequence[np.ndarray] = (),
 ) -> list[Block]:
     """Blocks and within-unit factors, the crossed strata (rules in the module docstring).
 
-    A place or container whose cells with a treatment are that treatment's
-    units is a local label, not a block.
+    A container whose cells with a treatment are that treatment's units, and
+    whose labels carry no effect of their own beyond any coarser grouping that
+    holds them, is a local label (tank 1 of every feed), not a block; a place is
+    a block of its cells (a glasshouse that held each CO2 level for a period)
+    unless it lies inside a coarser grouping that holds several treatments and
+    its labels carry no effect beyond it (plates 1 and 2 of every compound in
+    run 1).
     """
     from replicheck.structure.strata import block_evidence
 
@@ -399,7 +466,9 @@ def blocks(
                 + ("every treatment level" if full else "several treatment levels")
                 + ", about one unit of each, in levels of even size"
             )
-        elif named_block(data, col, source[-1], treatments):
+        elif named_block(data, col, source[-1], treatments) and (
+            hint.kind == "time" or _holds_whole(codes, unit_codes)
+        ):
             take = True
             reason = (
                 f"crossed with the treatments and the name suggests "
@@ -410,8 +479,22 @@ def blocks(
             reason = ""
         if not take:
             continue
-        if col in local_cells and hint.kind in {"location", "container"}:
-            continue  # its cells are the units: the labels restart within the treatment
+        outer = (
+            _outer_codes(data, codes, col, cols, all_trt)
+            if col in local_cells and hint.kind in {"location", "container"}
+            else None
+        )
+        # a place holds several treatments by nature: a block whose cells are the plots
+        # (a glasshouse that held each CO2 level for a period), unless it lies inside a
+        # coarser grouping that holds them (plates 1 and 2 of every compound in run 1)
+        if outer is not None and (hint.kind == "container" or outer is not all_trt):
+            # the labels' own effect, beyond any coarser grouping that holds them
+            ok = ev.present(codes, outer)
+            shared = ev.shared_label_effect(y[ok], codes[ok], all_trt[ok], outer[ok])
+            if shared is None or shared >= 0.05:
+                continue  # its cells are the units and its labels carry no effect of their
+                # own: they restart within the treatment (tank 1 of every feed)
+            # a shared effect: one container or place under every treatment, a block
         p = block_evidence(y, codes, all_trt)
         if p is not None:
             reason += f"; rows differ between its levels beyond the treatment effects: p = {p:.2g}"

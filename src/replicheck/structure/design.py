@@ -102,6 +102,8 @@ def column_roles(
     derived: Mapping[str, tuple[str, ...]],
     derived_columns: Sequence[str],
     cols: Sequence[str],
+    interactions: Sequence[str] = (),
+    other_units: Mapping[str, str] = {},
 ) -> tuple[ColumnRole, ...]:
     """One role for every column of the data (and each derived grouping used), and why."""
     out: list[ColumnRole] = []
@@ -113,24 +115,24 @@ def column_roles(
     out.append(ColumnRole(response, "response", "stated", "the response of the claimed analysis"))
     for t in treatments:
         out.append(ColumnRole(t, "treatment", "stated", "a treatment of the claimed analysis"))
-    unit_terms: dict[tuple[str, ...], list[str]] = {}
-    unit_name: dict[tuple[str, ...], str] = {}
+    unit_terms: dict[str, list[str]] = {}
+    unit_columns: dict[str, tuple[str, ...]] = {}
     for u in units:
         if u.unit is not None and u.columns:
-            key = tuple(c for c in u.columns if c not in treatments) or u.columns
-            unit_terms.setdefault(key, []).append(u.treatment)
-            unit_name[key] = u.unit
-    done = {response, *treatments}
-    for key, terms_ in unit_terms.items():
-        name = unit_name[key]
-        stated = any(s.columns == key or set(s.columns) == set(key) for s in roles.units)
+            unit_terms.setdefault(u.unit, []).append(u.treatment)
+            unit_columns[u.unit] = u.columns
+    done = {response, *treatments, *interactions}
+    for name, terms_ in unit_terms.items():
+        columns = unit_columns[name]
+        key = tuple(c for c in columns if c not in treatments) or columns
+        stated = [s for s in roles.units if set(s.columns) in (set(key), set(columns))]
         out.append(
             ColumnRole(
                 name,
                 "unit",
-                "stated" if stated else "inferred",
+                f"stated {stated[0].source}" if stated else "inferred",
                 f"the experimental unit of {', '.join(repr(t) for t in terms_)}",
-                key,
+                columns,
                 tuple(terms_),
             )
         )
@@ -176,6 +178,9 @@ def column_roles(
                 out.append(ColumnRole(col, "identifier", "inferred", reason))
             else:
                 out.append(ColumnRole(col, "other", "inferred", reason))
+            continue
+        if col in other_units:
+            out.append(ColumnRole(col, "other", "inferred", other_units[col]))
             continue
         out.append(ColumnRole(col, "other", "inferred", "a grouping with no role in the design"))
     return tuple(out)

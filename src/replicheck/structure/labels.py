@@ -113,11 +113,14 @@ def _keeps_whole(
         if g in (col, parent) or g in times:
             continue
         ok = ev.present(gc, codes, cells)
-        if not ok.any() or int(np.unique(gc[ok]).size) <= int(np.unique(codes[ok]).size):
+        if not ok.any():
             continue
-        if not is_nested(gc[ok], codes[ok]):
+        g_ok, c_ok, cells_ok = (gc, codes, cells) if ok.all() else (gc[ok], codes[ok], cells[ok])
+        if not is_nested(g_ok, c_ok):
             continue  # the label is not constant within this grouping
-        if not (is_nested(gc[ok], cells[ok]) or is_nested(cells[ok], gc[ok])):
+        if int(np.unique(g_ok).size) <= int(np.unique(c_ok).size):
+            continue  # the label's own partition
+        if not (is_nested(g_ok, cells_ok) or is_nested(cells_ok, g_ok)):
             return False
     return True
 
@@ -184,12 +187,40 @@ def localise(
     name_only: list[LabelReading] = []
     parent_of: dict[str, str] = {}
 
+    held: dict[str, bool] = {}
+
     def holds_units(g: str) -> bool:
-        gc = current[g][1]
-        ok = gc >= 0
-        return name_hint(g).suggests_unit or any(
-            is_nested(gc[ok & (tc >= 0)], tc[ok & (tc >= 0)]) for tc in trt_codes.values()
-        )
+        if g not in held:
+            gc = current[g][1]
+            ok = gc >= 0
+            held[g] = name_hint(g).suggests_unit or any(
+                is_nested(gc[ok & (tc >= 0)], tc[ok & (tc >= 0)]) for tc in trt_codes.values()
+            )
+        return held[g]
+
+    sizes: dict[str, int | None] = {}  # levels of a grouping known on every row, else None
+
+    def complete_levels(g: str) -> int | None:
+        if g not in sizes:
+            gc = current[g][1]
+            sizes[g] = int(gc.max()) + 1 if ev.present(gc).all() else None
+        return sizes[g]
+
+    def varying_in(cells: np.ndarray, skip: tuple[str, ...]) -> list[np.ndarray]:
+        """Recorded factors that vary within the cells (a pup's sex within litter x tray):
+        they enter both models of the cell test, so that cells differing only in their
+        make-up (more males in one) are not taken for units."""
+        out = []
+        for g, (_, gc) in current.items():
+            if g in skip or g in treatments or g in times:
+                continue
+            k_g = complete_levels(g)
+            if k_g is None or k_g > MAX_OCCASIONS:
+                continue
+            if is_nested(cells, gc) or is_nested(gc, cells):
+                continue  # constant within the cells, or inside them
+            out.append(gc)
+        return out
 
     def inner_of(cells: np.ndarray, skip: tuple[str, ...]) -> np.ndarray | None:
         n_cells = int(cells.max()) + 1
@@ -197,9 +228,10 @@ def localise(
         for g, (_, gc) in current.items():
             if g in skip or g in treatments or g in times:
                 continue
-            if not ev.present(gc).all():
+            k_g = complete_levels(g)
+            if k_g is None:
                 continue
-            k = int(gc.max()) + 1
+            k = k_g
             if k <= n_cells or k >= gc.size or not is_nested(gc, cells):
                 continue
             if best is None or k < int(best.max()) + 1:
@@ -270,24 +302,36 @@ def localise(
             if local_mode:
                 supported.append(LabelReading(col, parent, None, None, "stated"))
                 continue
-            if not _keeps_whole(cells, col, parent, current, recorded_units, times):
-                continue
             if (
                 parent not in treatments
                 and kind not in {"individual", "block"}
                 and not any(is_nested(cells, np.maximum(tc, 0)) for tc in trt_codes.values())
             ):
                 continue  # local groupings are units (inside one treatment level), or blocks
+            if not _keeps_whole(cells, col, parent, current, recorded_units, times):
+                continue
             inner = inner_of(cells, (col, parent))
-            cells_p = ev.cells_beyond(y, codes, pc, list(trt_codes.values()), inner, adjust_codes)
+            test = (
+                y,
+                codes,
+                pc,
+                list(trt_codes.values()),
+                inner,
+                [*adjust_codes, *varying_in(cells, (col, parent))],
+            )
+            cells_p = ev.cells_beyond(*test)
+            if cells_p is not None and cells_p < EVIDENCE_P:
+                ok = ev.present(codes, pc, all_trt)
+                shared = ev.shared_label_effect(y[ok], codes[ok], pc[ok], all_trt[ok])
+                if shared is not None and shared < SHARED_LABEL_P:
+                    continue  # the labels share an effect: one thing everywhere (a block)
+                # the F test screens; random relabelling within the parent decides
+                relabelled = ev.relabelled_cells(*test)
+                cells_p = cells_p if relabelled is None else max(cells_p, relabelled)
             if cells_p is None or cells_p >= EVIDENCE_P:
                 if kind == "container" and parent in treatments:
                     name_only.append(LabelReading(col, parent, cells_p, None, "name"))
                 continue
-            ok = ev.present(codes, pc, all_trt)
-            shared = ev.shared_label_effect(y[ok], codes[ok], pc[ok], all_trt[ok])
-            if shared is not None and shared < SHARED_LABEL_P:
-                continue  # the labels share an effect: one thing everywhere (a block)
             supported.append(LabelReading(col, parent, cells_p, shared, "evidence"))
         if not supported:
             continue
@@ -304,6 +348,8 @@ def localise(
         best = min(supported, key=rank)
         taken.append(best)
         parent_of[col] = best.parent
+        held.pop(col, None)
+        sizes.pop(col, None)
         current[col] = (
             (*current[best.parent][0], col),
             group_codes(data, (*current[best.parent][0], col)),
@@ -335,7 +381,12 @@ def localise(
         else:
             because = (
                 f"the {col} x {r.parent} cells differ beyond both main effects"
-                + ("" if r.cells_p is None else f" (p = {r.cells_p:.2g})")
+                + (
+                    ""
+                    if r.cells_p is None
+                    else f" (p = {r.cells_p:.2g}, the F test and random relabelling of the "
+                    f"{col} labels within each {r.parent} both)"
+                )
                 + f" while the labels carry no shared effect across {r.parent} levels"
                 + ("" if r.shared_p is None else f" (p = {r.shared_p:.2g})")
             )

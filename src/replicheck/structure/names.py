@@ -373,7 +373,26 @@ def tokens(name: str) -> list[str]:
         name = derived.group(1)
     spaced = re.sub(r"([a-z])([A-Z])", r"\1 \2", str(name))
     raw = re.split(r"[^0-9A-Za-zÀ-ÿ]+|(?<=[A-Za-zÀ-ÿ])(?=\d)|(?<=\d)(?=[A-Za-zÀ-ÿ])", spaced)
-    return [_fold(t.lower()) for t in raw if t and not t.isdigit()]
+    out: list[str] = []
+    for t in raw:
+        if t and not t.isdigit():
+            out += _run_together(_fold(t.lower()))
+    return out
+
+
+# Suffixes that statistics packages' naming habits glue to a word (schoolid, childid,
+# plotno, cagenum): split off when what precedes them is a known word.
+_GLUED = ("id", "num", "nr", "no", "code", "idx")
+
+
+def _run_together(token: str) -> list[str]:
+    if token in _KNOWN:
+        return [token]
+    for suffix in _GLUED:
+        stem = token[: -len(suffix)]
+        if token.endswith(suffix) and len(stem) >= 3 and stem in _KNOWN:
+            return [stem, suffix]
+    return [token]
 
 
 _FOLD = {
@@ -400,6 +419,18 @@ _FOLD = {
 
 def _fold(token: str) -> str:
     return "".join(_FOLD.get(ch, ch) for ch in token)
+
+
+_KNOWN: frozenset[str] = (
+    CONTAINER_WORDS
+    | BLOCK_WORDS
+    | LOCATION_WORDS
+    | TIME_WORDS
+    | PROCESS_WORDS
+    | INDIVIDUAL_WORDS
+    | LABEL_WORDS
+    | ID_WORDS
+)
 
 
 @dataclass(frozen=True)

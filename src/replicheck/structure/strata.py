@@ -161,10 +161,11 @@ def cell_evidence(
 def _time_series(cells: np.ndarray, times: Sequence[np.ndarray]) -> bool:
     """Whether the rows of every cell are one series over time: a time named as such
     indexes them, one row per time point, three or more points per cell on average,
-    and the cells share their time points (each holds half of them or more): a subject
-    under one formulation sampled over hours is one occasion, one unit of the
-    formulation; two years of one variety at one site are two trials, not a series,
-    and ages that differ from row to row are no time points."""
+    and the time points are occasions that cells share (each held by two cells or more
+    on average; in a rotation each period's days are shared by the cells of that
+    period only): a subject under one formulation sampled over hours is one occasion,
+    one unit of the formulation; two years of one variety at one site are two trials,
+    not a series, and ages that differ from row to row are no time points."""
     for t in times:
         ok = (cells >= 0) & (t >= 0)
         if not ok.all():
@@ -173,7 +174,7 @@ def _time_series(cells: np.ndarray, times: Sequence[np.ndarray]) -> bool:
         pair = dense_codes(pair_codes(c, tt))
         n_pairs = int(pair.max()) + 1
         k_cells, k_times = int(c.max()) + 1, int(tt.max()) + 1
-        shared = n_pairs >= 0.5 * k_cells * k_times  # the cells share their time points
+        shared = n_pairs >= 2 * k_times  # each time point held by two cells or more on average
         if n_pairs == cells.size and n_pairs >= SERIES_POINTS * k_cells and shared:
             return True
     return False

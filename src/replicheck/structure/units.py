@@ -811,6 +811,7 @@ def infer_structure(
         coordinates,
         {c for c in used if c not in main_terms and c not in blocks_stated}
         - {c.block for c in cells},
+        list(chosen_units.values()),
     )
     strata = _strata(data, terms, units, candidates, found_blocks)
     factors = {t: data[t] for t in main_terms}
@@ -849,6 +850,13 @@ def infer_structure(
             derived,
             derived_columns,
             cols,
+            [t for t in terms if t not in main_terms],
+            {
+                a.choice.columns[-1]: f"the unit of '{a.term}' in another reading, refitted "
+                "beside the one taken"
+                for a in alternatives
+                if a.choice.unit is not None and len(a.choice.columns) == 1
+            },
         ),
         alternatives=tuple(alternatives),
         disputes=tuple(disputes),
@@ -1147,7 +1155,36 @@ def _cell_readings(
                     f"within each {c.block}, the rows are the units and '{c.block}' is a block",
                 )
             )
-        elif not c.credible and not c.other_treatments_inside and ":" not in c.treatment:
+        elif (
+            not c.credible
+            and c.other_treatments_inside
+            and ":" not in c.treatment
+            and any(
+                u.treatment == c.treatment
+                and u.unit is not None
+                and u.unit.startswith(f"{c.block}:")
+                and u.unit != c.name
+                for u in units
+            )
+        ):
+            unit = next(u.unit for u in units if u.treatment == c.treatment)
+            out.append(
+                (
+                    "unit-reading-uncertain",
+                    f"each '{c.block}' x '{c.treatment}' cell holds whole '{unit}' units that "
+                    f"differ in their other treatments, as the main plots of a split plot "
+                    f"would; the cells do not differ beyond the {c.block} and treatment "
+                    f"effects ({p}), so replicheck took '{unit}' as the unit of "
+                    f"'{c.treatment}'; if '{c.treatment}' was applied to whole main plots, "
+                    f'state --unit "{c.block}:{c.treatment}"',
+                )
+            )
+        elif (
+            not c.credible
+            and not c.other_treatments_inside
+            and ":" not in c.treatment
+            and any(u.treatment == c.treatment and u.unit is None for u in units)
+        ):
             out.append(
                 (
                     "unit-reading-uncertain",
