@@ -33,7 +33,7 @@ from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
 from replicheck.partitions import same_partition, units_per_level
 from replicheck.reconcile import Level, reconcile
-from replicheck.refit import Analysis, TermInput, design_matrix, refit
+from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
 from replicheck.report.model import Report
 from replicheck.roles import Roles, Statement
 from replicheck.stats.discrete import ResponseKind, response_kind
@@ -502,6 +502,7 @@ def audit(
             X = np.hstack([X, np.eye(int(b.max()) + 1)[b]])
         n_params = int(np.linalg.matrix_rank(X))
         evidence_terms: list[TermEvidence] = []
+        in_blocks = within_block_tests(y, inputs, blocks) if reported else {}
         for i, ti in enumerate(inputs):
             tr = fits.term(ti.term)
             clustering = None
@@ -532,7 +533,13 @@ def audit(
                     unit_level,
                 )
                 rec = reconcile(
-                    reported[ti.term], c.alpha, levels, as_claimed, len(index[ti.term]), unit_level
+                    reported[ti.term],
+                    c.alpha,
+                    levels,
+                    as_claimed,
+                    len(index[ti.term]),
+                    unit_level,
+                    [*tr.analyses, *([in_blocks[ti.term]] if ti.term in in_blocks else [])],
                 )
             evidence_terms.append(
                 TermEvidence(

@@ -9,10 +9,12 @@ reproduced from the data.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 from replicheck.claim import ReportedResult
+from replicheck.numbers import p_phrase
 from replicheck.refit import Analysis
 
 # Common practice for comparing a reported, rounded statistic with a
@@ -31,6 +33,7 @@ class Reconciliation:
     mismatches: tuple[str, ...]
     claimed_significant: bool | None
     reported_p: float | None = None  # the reported p-value (its bound for "p < x")
+    reproduced_by: str | None = None  # the analysis that gives the reported statistic and df
 
 
 def _p_matches(reported: float, computed: float) -> bool:
@@ -49,6 +52,69 @@ def _error_df(reported: ReportedResult) -> float | None:
     if reported.test == "t":
         return float(reported.df[0])
     return None
+
+
+def _t_of(a: Analysis) -> float | None:
+    """|t| of a one-df test (t squared is F)."""
+    if a.t_statistic is not None:
+        return abs(a.t_statistic)
+    if a.test == "F" and a.df is not None and abs(a.df[0] - 1) < 1e-9 and a.statistic is not None:
+        return math.sqrt(max(a.statistic, 0.0))
+    return None
+
+
+def _close(mine: float, theirs: float) -> bool:
+    return abs(mine - theirs) <= max(STAT_ABS_TOL, STAT_REL_TOL * abs(theirs))
+
+
+def _compared(reported: ReportedResult, a: Analysis) -> tuple[float, float] | None:
+    """(computed, reported) statistics on the reported scale, or None when not comparable."""
+    if reported.statistic is None or a.statistic is None or a.test != "F":
+        return None
+    if reported.test == "t":
+        t = _t_of(a)
+        return None if t is None else (t, abs(reported.statistic))
+    if reported.test == "F":
+        return a.statistic, reported.statistic
+    return None
+
+
+def reproduces(reported: ReportedResult, a: Analysis) -> bool:
+    """Whether an analysis gives the reported statistic on the reported df.
+
+    The error df must agree to the printed integer (Satterthwaite df are often
+    printed rounded), the numerator df exactly, and the statistic within the
+    tolerance of a rounded printed value.
+    """
+    err = _error_df(reported)
+    pair = _compared(reported, a)
+    if err is None or pair is None or a.df is None or len(a.df) < 2:
+        return False
+    if abs(a.df[1] - err) >= 0.5 + 1e-9:
+        return False
+    if reported.test == "F" and reported.df is not None and abs(reported.df[0] - a.df[0]) > 0.5:
+        return False
+    return _close(*pair)
+
+
+# The analyses a paired, blocked or unit-level claim is matched against, in order of
+# preference (the exact classical analyses first).
+_MATCH_ORDER = ("within_blocks", "strata_anova", "unit_means", "mixed_model")
+
+
+def _short(a: Analysis) -> str:
+    return "the row-level analysis" if a.name == "as_claimed" else f"the {a.label.split(':')[0]}"
+
+
+def _shown(a: Analysis, test: str | None) -> str:
+    """An analysis and its result, e.g. "the unit means (F(1, 14) = 4.61, p = 0.0497)"."""
+    if a.df is None or a.statistic is None:
+        return _short(a)
+    den = f"{a.df[1]:.4g}"
+    t = _t_of(a)
+    if test == "t" and t is not None:
+        return f"{_short(a)} (t({den}) = {t:.4g}, {p_phrase(a.p_value)})"
+    return f"{_short(a)} (F({a.df[0]:g}, {den}) = {a.statistic:.4g}, {p_phrase(a.p_value)})"
 
 
 @dataclass(frozen=True)
@@ -76,11 +142,17 @@ def reconcile(
     as_claimed: Analysis,
     num_df: int,
     unit_analyses: Sequence[Analysis] = (),
+    analyses: Sequence[Analysis] = (),
 ) -> Reconciliation:
     """Compare a reported result with the data.
 
     ``levels`` lists the levels the claimed term could have been analysed at,
-    rows first. The reported error df are matched against each level's error
+    rows first. A reported statistic with its df is first matched against
+    every analysis of the term (``analyses``: the row-level one, blocks as
+    fixed effects, the multi-stratum ANOVA, unit means, the mixed model): a
+    paired or blocked test that one of them reproduces is read as that
+    analysis, and its level (rows or units) is the level of the claim.
+    Otherwise the reported error df are matched against each level's error
     df; failing that, a reported "n = K per group" against the replicates per
     group; failing that, an exactly reported p-value that matches one of
     ``unit_analyses`` (and not the row-level analysis) points to the units.
@@ -92,7 +164,40 @@ def reconcile(
     level, grouping, explanation = "unknown", None, None
     rows = levels[0]
     err = _error_df(reported)
-    if err is not None:
+    reference = as_claimed
+    others = sorted(
+        (a for a in analyses if a.name != "as_claimed"),
+        key=lambda a: _MATCH_ORDER.index(a.name) if a.name in _MATCH_ORDER else len(_MATCH_ORDER),
+    )
+    match = None
+    reproduced_by = "as_claimed" if reproduces(reported, as_claimed) else None
+    if reproduced_by is None:
+        match = next((a for a in others if reproduces(reported, a)), None)
+        reproduced_by = None if match is None else match.name
+    if match is not None:
+        reference = match
+        level = "units" if match.level == "units" else "rows"
+        unit = next((lv for lv in levels if lv.kind == "units"), None)
+        grouping = unit.name if level == "units" and unit is not None else None
+        how = (
+            "which allows for the blocks"
+            if match.name == "within_blocks"
+            else "which takes the units as the replicates"
+            if level == "units"
+            else "which allows for the design's strata"
+        )
+        explanation = (
+            f"the reported {reported.test} is reproduced by {_shown(match, reported.test)}, "
+            f"{how}, not by {_shown(as_claimed, reported.test)}"
+        )
+        same = [lv for lv in levels if err is not None and abs(lv.error_df - err) < 0.5]
+        if same and same[0].kind != "rows":
+            lv = same[0]
+            explanation = (
+                f"error df {err:g} = {lv.replicates} levels of '{lv.name}' - {lv.removed}: "
+                + explanation
+            )
+    elif err is not None:
         for lv in levels:
             if abs(lv.error_df - err) < 0.5:
                 level, grouping = lv.kind, (None if lv.kind == "rows" else lv.name)
@@ -139,27 +244,26 @@ def reconcile(
         and abs(reported.df[0] - num_df) > 0.5
     ):
         mismatches.append(f"numerator df {reported.df[0]:g} differs from {num_df} in the data")
-    if (
-        reported.statistic is not None
-        and as_claimed.statistic is not None
-        and level in {"rows", "unknown"}
-    ):
-        mine = as_claimed.statistic
+    checked = match is not None or level in {"rows", "unknown"}
+    if reported.statistic is not None and reference.statistic is not None and checked:
+        mine = reference.statistic
         theirs = reported.statistic
-        if reported.test == "t" and as_claimed.t_statistic is not None:
-            mine, theirs = abs(as_claimed.t_statistic), abs(theirs)
-        if abs(mine - theirs) > max(STAT_ABS_TOL, STAT_REL_TOL * abs(theirs)):
+        if reported.test == "t" and _t_of(reference) is not None:
+            mine, theirs = _t_of(reference) or 0.0, abs(theirs)
+        if not _close(mine, theirs):
+            tried = [_shown(a, reported.test) for a in others if a.statistic is not None]
             mismatches.append(
                 f"reported {reported.test} = {reported.statistic:g}, but the data give "
                 f"{mine:.3g} for the row-level analysis"
+                + (f" (also tried: {'; '.join(tried)})" if tried else "")
             )
     if (
         reported.p_value is not None
-        and as_claimed.p_value is not None
-        and level in {"rows", "unknown"}
+        and reference.p_value is not None
+        and checked
         and reported.p_relation in {"=", "<", "<="}
     ):
-        p, q = as_claimed.p_value, reported.p_value
+        p, q = reference.p_value, reported.p_value
         if reported.p_relation == "=" and not _p_matches(q, p):
             mismatches.append(f"reported p = {q:g}, but the data give p = {p:.3g}")
         if reported.p_relation in {"<", "<="} and p > q * 1.05:
@@ -168,5 +272,11 @@ def reconcile(
     if claimed_sig is None:
         claimed_sig = as_claimed.significant(alpha)
     return Reconciliation(
-        level, grouping, explanation, tuple(mismatches), claimed_sig, reported.p_value
+        level,
+        grouping,
+        explanation,
+        tuple(mismatches),
+        claimed_sig,
+        reported.p_value,
+        reproduced_by,
     )

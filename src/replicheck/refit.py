@@ -153,6 +153,7 @@ LABELS = {
     "cluster_robust": "cluster-robust: CR2 errors, Satterthwaite-type df, units as clusters",
     "wild_bootstrap": "wild cluster bootstrap: null imposed, units as clusters",
     "gee": "GEE: exchangeable correlation within units, bias-reduced covariance",
+    "within_blocks": "analysis within blocks: every row a replicate, blocks as fixed effects",
 }
 
 BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
@@ -415,6 +416,30 @@ def _ols_term_tests(
             )
         )
     return out
+
+
+def within_block_tests(
+    y: np.ndarray, terms: Sequence[TermInput], blocks: Mapping[str, np.ndarray]
+) -> dict[str, Analysis]:
+    """Each term's row-level test with every block as a fixed effect.
+
+    The analysis a paired t test or a randomised-block (or repeated-measures)
+    ANOVA reports: with pairs as blocks, the F of a two-level term is the
+    square of the paired t. Used to recognise such a reported result, not for
+    the verdict.
+    """
+    if not blocks:
+        return {}
+    X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
+    x = np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in blocks.values())])
+    if int(np.linalg.matrix_rank(x)) >= y.size:
+        return {}
+    name = "within_blocks"
+    return {
+        a.term: replace(a, name=name, label=LABELS[name])
+        for a in _ols_term_tests(y, x, index, terms)
+        if a.statistic is not None
+    }
 
 
 def _random_units(terms: Sequence[TermInput], n: int) -> dict[str, np.ndarray]:

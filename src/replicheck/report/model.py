@@ -81,6 +81,7 @@ def _reported_check(rec: Reconciliation | None) -> dict[str, Any] | None:
         "grouping": rec.level_grouping,
         "explanation": rec.explanation,
         "mismatches": list(rec.mismatches),
+        "reproduced_by": rec.reproduced_by,
         "claimed_significant": rec.claimed_significant,
     }
 
