@@ -196,11 +196,13 @@ def test_factor_name(expr: str, name: str) -> None:
         ("np.log(weight) ~ feed", r"function np\.log\(\) is not supported"),
         ("weight ~ log(dose)", r"function log\(\) is not supported.*transform the column"),
         ("weight ~ I(dose**2)", r"function I\(\) is not supported"),
-        ("weight ~ feed + (1|tank)", "replicheck finds the random structure from the data"),
-        ("weight ~ feed + (1 | tank) + (1|day)", "random structure"),
-        ("weight ~ feed + (feed||tank)", "random structure"),
-        ("weight ~ feed | tank", "random structure"),
-        ("weight ~ feed + Error(tank)", "random structure"),
+        ("weight ~ feed + (feed|tank)", "random slopes such as"),
+        ("weight ~ feed + (1 + feed||tank)", "random slopes such as"),
+        ("weight ~ feed | tank", "write random effects in brackets"),
+        ("weight ~ (1|tank)", "no fixed terms"),
+        ("weight ~ feed + (1|log(tank))", "cannot read the grouping"),
+        ("weight ~ feed * Error(tank)", r"give Error\(\) as a term of its own"),
+        ("weight ~ feed + (1|weight)", "also appears in a random-effect term"),
         ("weight ~ .", "'.'"),
         ("weight ~ feed %in% tank", "%in%"),
         ("weight ~ {dose + 1}", "expression, not a column"),
@@ -329,3 +331,26 @@ def test_any_text_gives_formula_or_one_line_input_error(text: str) -> None:
     else:
         assert f.terms and all(f.terms)
         assert f.response not in f.factors
+
+
+@pytest.mark.parametrize(
+    ("text", "terms", "random"),
+    [
+        ("weight ~ feed + (1|tank)", [("feed",)], [("tank",)]),
+        ("weight ~ feed + (1 | tank) + (1|day)", [("feed",)], [("tank",), ("day",)]),
+        ("y ~ a*b + (1|site/plot)", [("a",), ("b",), ("a", "b")], [("site",), ("site", "plot")]),
+        ("y ~ a + (1|block:plot)", [("a",)], [("block", "plot")]),
+        ("y ~ a + Error(block/plot)", [("a",)], [("block",), ("block", "plot")]),
+        ("y ~ a + (1||g) + Error(g)", [("a",)], [("g",)]),
+        ("y ~ a + (1|`dry tank`)", [("a",)], [("dry tank",)]),
+    ],
+)
+def test_random_effect_terms_are_read(
+    text: str, terms: list[tuple[str, ...]], random: list[tuple[str, ...]]
+) -> None:
+    # the syntax of lme4's lmer formulas and of aov's Error() strata (Bates et al.
+    # 2015, J. Stat. Softw. 67(1), table 2; R's ?aov)
+    f = parse_formula(text)
+    assert list(f.terms) == terms
+    assert list(f.random) == random
+    assert not set(f.factors) & {c for g in random for c in g}

@@ -31,8 +31,8 @@ from replicheck.errors import InputError
 from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
-from replicheck.partitions import same_partition, units_per_level
-from replicheck.reconcile import Level, reconcile
+from replicheck.partitions import is_nested, same_partition, units_per_level
+from replicheck.reconcile import Level, Reconciliation, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
 from replicheck.report.model import Report
 from replicheck.roles import Roles, Statement
@@ -143,6 +143,10 @@ def _resolve(table: Table, claim: Claim) -> Claim:
     if formula is not None:
         mapping = {claim.response: response}
         mapping.update(dict(zip(claim.treatments, treatments, strict=True)))
+        for g in formula.random:
+            for col in g:
+                if col not in mapping:
+                    mapping[col] = resolve_column(cols, col, "random-effect grouping")
         formula = rename_columns(formula, mapping)
     return replace(claim, response=response, treatments=treatments, roles=roles, formula=formula)
 
@@ -188,6 +192,61 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
         Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
     ]
     return terms, blocks
+
+
+def _claimed_level(
+    ti: TermInput,
+    random: Mapping[str, np.ndarray],
+    rec: Reconciliation | None,
+    as_claimed: Analysis | None,
+    alpha: float,
+) -> Reconciliation | None:
+    """Where the claimed mixed model tests a term, against the term's experimental unit.
+
+    The model tests a term against the coarsest of its random groupings within
+    which the term is constant; when that grouping holds whole experimental
+    units (the unit itself, or a coarser grouping), the claim is at the units.
+    A grouping inside the unit (fish within tanks), or none, leaves the finer
+    levels or the rows counted as replicates.
+    """
+    if ti.unit is None or ti.unit_name is None:
+        return rec
+    term_codes = ti.codes
+    inside = [
+        (name, codes)
+        for name, codes in random.items()
+        if is_nested(codes, term_codes) and int(codes.max()) + 1 < codes.size
+    ]
+    if inside:
+        name, codes = min(inside, key=lambda nc: int(nc[1].max()))
+        n_g = int(codes.max()) + 1
+        if is_nested(ti.unit, codes):
+            level, grouping = "units", name
+            why = (
+                f"the claimed model's random effect for '{name}' ({n_g} levels) holds whole "
+                f"experimental units of '{ti.term}' ('{ti.unit_name}'), so its test of "
+                f"'{ti.term}' takes them as the replicates"
+            )
+        else:
+            level, grouping = "other", name
+            why = (
+                f"the claimed model's random effect for '{name}' ({n_g} levels) lies within "
+                f"the experimental unit of '{ti.term}' ('{ti.unit_name}', "
+                f"{int(ti.unit.max()) + 1} units), so its test of '{ti.term}' still counts "
+                f"the {name} levels as replicates"
+            )
+    else:
+        level, grouping = "rows", None
+        why = (
+            f"no random effect of the claimed model ({', '.join(random)}) is constant within "
+            f"the levels of '{ti.term}', so its test of '{ti.term}' counts the rows as "
+            f"replicates of the '{ti.unit_name}' units"
+        )
+    if rec is None:
+        significant = None if as_claimed is None else as_claimed.significant(alpha)
+        return Reconciliation(level, grouping, why, (), significant)
+    explanation = why if rec.explanation is None else f"{why}; {rec.explanation}"
+    return replace(rec, level=level, level_grouping=grouping, explanation=explanation)
 
 
 def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
@@ -491,7 +550,11 @@ def audit(
         first_claim = reported.get(terms[0].name)
         row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
         clock.lap("structure")
-        fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2)
+        claimed_random = {
+            ":".join(g): complete_codes(group_codes(frame, g))
+            for g in (c.formula.random if c.formula is not None else ())
+        }
+        fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2, claimed_random)
         alternatives = _refit_alternatives(
             frame, y, structure, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2
         )
@@ -541,6 +604,8 @@ def audit(
                     unit_level,
                     [*tr.analyses, *([in_blocks[ti.term]] if ti.term in in_blocks else [])],
                 )
+            if claimed_random:
+                rec = _claimed_level(ti, claimed_random, rec, tr.get("as_claimed"), c.alpha)
             evidence_terms.append(
                 TermEvidence(
                     ti.term,

@@ -159,7 +159,9 @@ def _role_options(command: Any) -> Any:
     "--formula",
     metavar="FORMULA",
     help="The claimed model instead of -r/-t, e.g. 'yield ~ variety * nitrogen + block'; "
-    "main-effect factors named like blocks, places or subjects are blocks of the design.",
+    "main-effect factors named like blocks, places or subjects are blocks of the design. "
+    "A claimed mixed model gives its random intercepts, '(1|tank)', '(1|site/plot)', or "
+    "'Error(block/plot)': it is fitted as claimed and judged at the experimental units.",
 )
 @_role_options
 @click.option(

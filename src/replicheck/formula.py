@@ -14,11 +14,22 @@ analysis of variance", *Applied Statistics* 22:392-399, as used by R's
 * ``C(a)`` and ``C(a, Sum)`` mean column ``a``; ``Q("odd name")`` and
   ```odd name``` name columns that are not plain identifiers.
 
+Random effects, as the claimed model states them (the syntax that
+mixed-model software shares, and the ``Error()`` strata of classical ANOVA):
+
+* ``(1|g)``: a random intercept for each level of ``g``; ``(1|a:b)`` for each
+  ``a`` x ``b`` combination; ``(1|a/b)`` = ``(1|a) + (1|a:b)``;
+* ``Error(a/b)``: the error strata ``a`` and ``a:b`` (``aov``'s form).
+
+Random slopes (``(x|g)``, ``(1 + x|g)``) are refused for now with a message.
+The random terms are the claim's, judged against the experimental units the
+data show; they are never taken as the design (a random effect for the fish
+does not make the fish the unit of a feed given to tanks).
+
 Parsing and term expansion are done by the formulaic library; this module
-unwraps ``C()``/``Q()`` first, so that removal (``-``) and duplicates work on
-column names, and refuses what replicheck cannot use: transformations such as
-``log(y)``, random-effect syntax ``(1|block)`` and ``Error()`` strata (the
-random structure is found from the data), ``%in%`` and ``.``.
+takes out the random terms, unwraps ``C()``/``Q()`` so that removal (``-``)
+and duplicates work on column names, and refuses what replicheck cannot
+use: transformations such as ``log(y)``, ``%in%`` and ``.``.
 """
 
 from __future__ import annotations
@@ -45,7 +56,7 @@ _T = TypeVar("_T")
 # malformed input (unbalanced brackets in Python code, stray operators) Python's
 # own exceptions
 _PARSE_ERRORS = (SyntaxError, ValueError, IndexError, AttributeError, TypeError)
-_RANDOM = "replicheck finds the random structure from the data; give the fixed terms only"
+_RANDOM = "give Error() as a term of its own, e.g. 'y ~ feed + Error(tank)'"
 _ANSI = re.compile(r"\x1b\[[0-9;]*m")
 
 
@@ -64,6 +75,7 @@ class ModelFormula:
     response: str
     terms: tuple[tuple[str, ...], ...]
     factors: tuple[str, ...]
+    random: tuple[tuple[str, ...], ...] = ()  # groupings with a random intercept or stratum
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -170,7 +182,7 @@ def _rewrite(text: str) -> tuple[str, list[str]]:
         kind, word = tok.kind, tok.token
         if kind is Token.Kind.OPERATOR:
             if "|" in word:
-                raise _fail(text, f"random-effect terms such as (1|block) are refused: {_RANDOM}")
+                raise _fail(text, "write random effects as terms of their own, e.g. (1|tank)")
             if word == "~":
                 after_tilde = True
             elif word == ".":
@@ -204,7 +216,8 @@ def parse_formula(text: str) -> ModelFormula:
     if not isinstance(text, str) or not text.strip():
         raise InputError("the formula is empty: write it as 'response ~ treatment'")
     text = text.strip()
-    rewritten, names = _rewrite(text)
+    fixed, random = _split_random(text)
+    rewritten, names = _rewrite(fixed)
     from formulaic import Formula
 
     parsed = _quietly(text, lambda: Formula(rewritten, _ordering="none"))
@@ -233,7 +246,84 @@ def parse_formula(text: str) -> ModelFormula:
     used = {c for term in ordered for c in term}
     factors = [n for n in dict.fromkeys(names) if n in used]
     factors += [c for term in ordered for c in term if c not in factors]
-    return ModelFormula(text, response, ordered, tuple(dict.fromkeys(factors)))
+    if any(response in g for g in random):
+        raise _fail(text, f"the response {response!r} also appears in a random-effect term")
+    return ModelFormula(text, response, ordered, tuple(dict.fromkeys(factors)), random)
+
+
+_NAME = r"(?:`[^`]+`|[A-Za-z_.][A-Za-z0-9_.]*)"
+_GROUPING = re.compile(rf"^\s*{_NAME}(?:\s*[:/]\s*{_NAME})*\s*$")
+
+
+def _pieces(rhs: str) -> list[str]:
+    """The right-hand side split at '+' outside brackets."""
+    out, depth, start = [], 0, 0
+    for i, ch in enumerate(rhs):
+        if ch in "([{":
+            depth += 1
+        elif ch in ")]}":
+            depth -= 1
+        elif ch == "+" and depth == 0:
+            out.append(rhs[start:i])
+            start = i + 1
+    out.append(rhs[start:])
+    return out
+
+
+def _groupings(expr: str, text: str) -> list[tuple[str, ...]]:
+    """``a/b`` -> (a,), (a, b); ``a:b`` -> (a, b); backticks name odd columns."""
+    if not _GROUPING.match(expr):
+        raise _fail(
+            text,
+            f"cannot read the grouping {expr.strip()!r}: give column names joined by ':' "
+            "(combination) or '/' (nesting), e.g. (1|tank) or (1|site/plot)",
+        )
+    out: list[tuple[str, ...]] = []
+    so_far: list[str] = []
+    for level in expr.split("/"):
+        so_far += [n.strip().strip("`") for n in level.split(":")]
+        out.append(tuple(dict.fromkeys(so_far)))
+    return out
+
+
+def _split_random(text: str) -> tuple[str, tuple[tuple[str, ...], ...]]:
+    """The formula without its random-effect terms, and their groupings in order."""
+    if "|" not in text and "Error" not in text:
+        return text, ()
+    lhs, sep, rhs = text.partition("~")
+    if not sep:
+        return text, ()
+    fixed: list[str] = []
+    random: list[tuple[str, ...]] = []
+    for piece in _pieces(rhs):
+        part = piece.strip()
+        bar = re.fullmatch(r"\((.*?)(\|\|?)(.*)\)", part, flags=re.S)
+        err = re.fullmatch(r"Error\s*\((.*)\)", part, flags=re.S)
+        if bar is not None and "|" not in bar.group(3):
+            effects = re.sub(r"\s+", "", bar.group(1))
+            if effects != "1":
+                raise _fail(
+                    text,
+                    f"random slopes such as {part} are not fitted yet: give random "
+                    "intercepts, (1|g), and (1|g:x) for the g-by-x variation of a "
+                    "categorical x",
+                )
+            random += _groupings(bar.group(3), text)
+        elif err is not None:
+            random += _groupings(err.group(1), text)
+        elif "|" in part:
+            raise _fail(
+                text,
+                f"cannot read {part!r}: write random effects in brackets, e.g. (1|tank)",
+            )
+        else:
+            fixed.append(piece)
+    if not "".join(fixed).strip():
+        raise _fail(
+            text,
+            "no fixed terms on the right of '~': name the treatments, e.g. 'y ~ feed + (1|tank)'",
+        )
+    return f"{lhs}~{'+'.join(fixed)}", tuple(dict.fromkeys(random))
 
 
 def _response(lhs_terms: list[object], text: str) -> str:
@@ -284,4 +374,5 @@ def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelForm
     if len(set(factors)) != len(factors) or response in factors:
         raise _fail(formula.text, "two of its names refer to the same column")
     terms = tuple(tuple(names.get(c, c) for c in term) for term in formula.terms)
-    return ModelFormula(formula.text, response, terms, factors)
+    random = tuple(tuple(names.get(c, c) for c in g) for g in formula.random)
+    return ModelFormula(formula.text, response, terms, factors, random)

@@ -590,6 +590,35 @@ def _mixed_analysis(
     )
 
 
+def _claimed_mixed(
+    y: np.ndarray,
+    X: np.ndarray,
+    index: Mapping[str, list[int]],
+    terms: Sequence[TermInput],
+    random: Mapping[str, np.ndarray],
+    row_level: Sequence[Analysis],
+    two: bool,
+) -> list[Analysis]:
+    """The claimed mixed model's test of every term (REML, Satterthwaite df).
+
+    When it cannot be fitted, the row-level tests stand, with a note saying why.
+    """
+    names = [f"x{j}" for j in range(X.shape[1])]
+    groupings = ", ".join(random)
+    label = f"as claimed: mixed model, random intercepts for {groupings} (REML, Satterthwaite df)"
+    try:
+        fit, _ = fit_mixed(y, X, _distinct(random, int(y.size)) or random, names)
+    except DesignError as err:
+        why = f"the claimed mixed model could not be fitted ({err}); the row-level test is shown"
+        return [replace(a, notes=(*a.notes, why)) for a in row_level]
+    out = []
+    for t in terms:
+        a = _mixed_analysis(fit, X, index[t.term], t, None, int(y.size), two)
+        notes = [f"the variance of {g} was estimated at zero" for g in random if g in fit.boundary]
+        out.append(replace(a, name="as_claimed", label=label, notes=(*a.notes, *notes)))
+    return out
+
+
 def _row_chi2(t: TermInput, y: np.ndarray) -> Analysis:
     """Pearson's chi-squared test of a yes/no response, every row a trial."""
     r = pearson_chi2(y, t.codes)
@@ -763,6 +792,7 @@ def refit(
     seed: int = DEFAULT_SEED,
     kind: ResponseKind = "continuous",
     row_chi2: bool | None = None,
+    claimed_random: Mapping[str, np.ndarray] | None = None,
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -780,6 +810,9 @@ def refit(
     count): it selects GEE as a cross-check and the analysis the corrected
     verdict rests on. ``row_chi2`` makes the row-level test of a single term
     on a yes/no response Pearson's chi-squared (default: for binary responses).
+    ``claimed_random`` are the groupings the claimed model holds as random
+    intercepts: the analysis as claimed is then that mixed model (REML,
+    Satterthwaite df), fitted as claimed whatever the units are.
     """
     n = int(y.size)
     single = len(terms) == 1
@@ -798,6 +831,11 @@ def refit(
         claimed = [row or _plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
     else:
         claimed = _ols_term_tests(y, X, index, terms)
+    if claimed_random:
+        x_claimed = X
+        if fixed_blocks:
+            x_claimed = np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in fixed_blocks)])
+        claimed = _claimed_mixed(y, x_claimed, index, terms, claimed_random, claimed, single)
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
     fit: MixedFit | None = None
     not_fitted = None

@@ -275,11 +275,21 @@ def _pseudo(ev: Evidence) -> Iterator[Finding]:
             f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
             f"row-level analysis counts all {u.n_observations} rows as replicates{how}."
         )
+        if ev.claim.formula is not None and ev.claim.formula.random and rec is not None:
+            msg = (
+                f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but "
+                f"{rec.explanation}."
+            )
         corrected = t.corrected
         if corrected is not None and corrected.p_value is not None:
+            where = (
+                "as claimed"
+                if ev.claim.formula is not None and ev.claim.formula.random
+                else ("row level")
+            )
             msg += (
                 f" With {u.unit} as the replicate: {_f(corrected)} "
-                f"(row level: {_p(claimed.p_value)})."
+                f"({where}: {_p(claimed.p_value)})."
             )
         yield Finding(
             "rows-counted-as-replicates",
@@ -824,18 +834,28 @@ def _term_summary(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> str:
                 f"is confounded. The data alone cannot tell."
             )
         return text
+    mixed_claim = ev.claim.formula is not None and bool(ev.claim.formula.random)
     if tv.status == "ok":
+        source = "claimed model" if mixed_claim else "reported result"
         return (
-            f"'{t.term}' was applied to {u.unit} units ({u.n_units} in all) and the reported "
-            f"result shows the analysis used them as replicates."
+            f"'{t.term}' was applied to {u.unit} units ({u.n_units} in all) and the {source} "
+            f"shows the analysis used them as replicates."
             + (f" Reanalysed that way: {_p(corrected.p_value)}." if corrected is not None else "")
         )
     cl = t.clustering
-    parts = [
-        f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
-        f"row-level analysis treats all {u.n_observations} rows as independent replicates "
-        f"({_p(claimed.p_value)})."
-    ]
+    rec = t.reconciliation
+    if mixed_claim and rec is not None and rec.explanation:
+        first = (
+            f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but "
+            f"{rec.explanation.split('; ')[0]} ({_p(claimed.p_value)})."
+        )
+    else:
+        first = (
+            f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
+            f"row-level analysis treats all {u.n_observations} rows as independent replicates "
+            f"({_p(claimed.p_value)})."
+        )
+    parts = [first]
     if cl is not None:
         anova = f"; one-way ANOVA estimate {cl.icc_anova:.2f}" if cl.icc_method == "REML" else ""
         parts.append(

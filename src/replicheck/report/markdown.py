@@ -178,10 +178,18 @@ def suggested_wording(doc: dict[str, Any]) -> str:
                 f"F({fmt_df(corrected['df'])}) = {fmt_num(corrected['statistic'])}, "
                 f"p = {fmt_p(corrected['p_value'])}."
             )
+        random = doc["claim"].get("random_effects") or []
+        how = (
+            f"while the claimed mixed model's random effects ({', '.join(random)}) do not "
+            f"include {units['unit']}, so its test treats finer levels as independent "
+            f"replicates."
+            if random
+            else f"while the analysis treats the {units['n_observations']} individual "
+            f"observations as independent replicates."
+        )
         return (
             f"The treatment ({trt}) appears to have been applied to {units['unit']} units "
-            f"({units['n_units']} in all), while the analysis treats the "
-            f"{units['n_observations']} individual observations as independent replicates."
+            f"({units['n_units']} in all), {how}"
             f"{extra} Please analyse the data with {units['unit']} as the experimental unit "
             f"(or a mixed model with a random effect for it) and report n accordingly."
         )

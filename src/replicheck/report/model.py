@@ -345,6 +345,9 @@ class Report:
                 "reported": rep,
                 "reported_term": ev.terms[0].term,
                 "spec": c.spec_path,
+                "random_effects": [":".join(g) for g in c.formula.random]
+                if c.formula is not None
+                else [],
             },
             "verdict": {
                 "status": self.verdict.status,

