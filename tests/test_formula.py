@@ -343,6 +343,7 @@ def test_any_text_gives_formula_or_one_line_input_error(text: str) -> None:
         ("y ~ a + Error(block/plot)", [("a",)], [("block",), ("block", "plot")]),
         ("y ~ a + (1||g) + Error(g)", [("a",)], [("g",)]),
         ("y ~ a + (1|`dry tank`)", [("a",)], [("dry tank",)]),
+        ("y ~ a + ((1|g))", [("a",)], [("g",)]),
     ],
 )
 def test_random_effect_terms_are_read(

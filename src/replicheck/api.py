@@ -216,8 +216,10 @@ def _claimed_level(
     inside = [
         (name, codes)
         for name, codes in random.items()
-        if is_nested(codes, term_codes) and int(codes.max()) + 1 < codes.size
-    ]
+        if is_nested(codes, term_codes)
+        and int(codes.max()) + 1 < codes.size
+        and int(units_per_level(codes, term_codes, len(ti.labels)).min()) >= 2
+    ]  # a grouping with one level per term level is the term itself: it tests nothing
     if inside:
         name, codes = min(inside, key=lambda nc: int(nc[1].max()))
         n_g = int(codes.max()) + 1
@@ -239,8 +241,9 @@ def _claimed_level(
     else:
         level, grouping = "rows", None
         why = (
-            f"no random effect of the claimed model ({', '.join(random)}) is constant within "
-            f"the levels of '{ti.term}', so its test of '{ti.term}' counts the rows as "
+            f"none of the claimed model's random effects ({', '.join(random)}) groups the rows "
+            f"within the levels of '{ti.term}' (each of its levels inside one level of "
+            f"'{ti.term}', several per level), so its test of '{ti.term}' counts the rows as "
             f"replicates of the '{ti.unit_name}' units"
         )
     if rec is None:

@@ -297,6 +297,8 @@ def _split_random(text: str) -> tuple[str, tuple[tuple[str, ...], ...]]:
     random: list[tuple[str, ...]] = []
     for piece in _pieces(rhs):
         part = piece.strip()
+        while part.startswith("((") and part.endswith("))") and _pieces(part[1:-1]) == [part[1:-1]]:
+            part = part[1:-1].strip()  # redundant brackets: ((1|tank))
         bar = re.fullmatch(r"\((.*?)(\|\|?)(.*)\)", part, flags=re.S)
         err = re.fullmatch(r"Error\s*\((.*)\)", part, flags=re.S)
         if bar is not None and "|" not in bar.group(3):
