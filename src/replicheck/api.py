@@ -32,6 +32,7 @@ from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
 from replicheck.partitions import is_nested, same_partition, units_per_level
+from replicheck.ranks import rank_tests
 from replicheck.reconcile import Level, Reconciliation, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
 from replicheck.report.model import Report
@@ -607,7 +608,11 @@ def audit(
                     as_claimed,
                     len(index[ti.term]),
                     unit_level,
-                    [*tr.analyses, *([in_blocks[ti.term]] if ti.term in in_blocks else [])],
+                    [
+                        *tr.analyses,
+                        *([in_blocks[ti.term]] if ti.term in in_blocks else []),
+                        *(rank_tests(y, ti, blocks) if reported[ti.term].method else []),
+                    ],
                 )
             if claimed_random:
                 rec = _claimed_level(ti, claimed_random, rec, tr.get("as_claimed"), c.alpha)

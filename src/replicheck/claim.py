@@ -111,6 +111,7 @@ class ReportedResult:
     p_relation: str | None = None  # "=", "<", "<=", ">", ">=", "ns"
     n_per_group: int | None = None
     n_total: int | None = None
+    method: str | None = None  # a rank test named in the text: "signed_rank" or "rank_sum"
 
     def p_upper(self) -> float | None:
         """Largest p consistent with the report (no allowance for rounding of "=")."""
@@ -414,7 +415,24 @@ def parse_reported(text: str) -> ReportedResult:
     n_per_group, n_total = _read_n(norm, text)
     if test is None and p_relation is None and n_per_group is None and n_total is None:
         raise InputError(f"no statistic, p-value or sample size recognised in {text!r}: {_EXAMPLE}")
-    return ReportedResult(text, test, statistic, df, p_value, p_relation, n_per_group, n_total)
+    method = (
+        "signed_rank"
+        if _SIGNED_RANK.search(norm)
+        else "rank_sum"
+        if _RANK_SUM.search(norm)
+        else None
+    )
+    return ReportedResult(
+        text, test, statistic, df, p_value, p_relation, n_per_group, n_total, method
+    )
+
+
+# Rank tests named as papers name them (Wilcoxon 1945; Mann & Whitney 1947).
+_SIGNED_RANK = re.compile(
+    r"signed[-\s]?ranks?|matched[-\s]?pairs?\s+wilcoxon|paired\s+wilcoxon|wilcoxon\s+paired",
+    re.I,
+)
+_RANK_SUM = re.compile(r"rank[-\s]?sum|mann[-\s]?whitney|wilcoxon", re.I)
 
 
 # --- results for single terms --------------------------------------------------

@@ -99,15 +99,29 @@ def reproduces(reported: ReportedResult, a: Analysis) -> bool:
 
 # The analyses a paired, blocked or unit-level claim is matched against, in order of
 # preference (the exact classical analyses first).
-_MATCH_ORDER = ("within_blocks", "strata_anova", "unit_means", "mixed_model")
+_MATCH_ORDER = ("within_blocks", "strata_anova", "unit_means", "mixed_model")  # then the rest
 
 
 def _short(a: Analysis) -> str:
     return "the row-level analysis" if a.name == "as_claimed" else f"the {a.label.split(':')[0]}"
 
 
+def _rank_p_matches(reported: ReportedResult, a: Analysis) -> bool:
+    """Whether a named rank test gives the reported p-value (exact, or within a bound)."""
+    if a.name != reported.method or a.p_value is None or reported.p_value is None:
+        return False
+    if reported.p_relation == "=":
+        return _p_matches(reported.p_value, a.p_value)
+    if reported.p_relation in {"<", "<="}:
+        return a.p_value <= reported.p_value * 1.05
+    return False
+
+
 def _shown(a: Analysis, test: str | None) -> str:
     """An analysis and its result, e.g. "the unit means (F(1, 14) = 4.61, p = 0.0497)"."""
+    if a.test == "rank" and a.statistic is not None:
+        stat = "V" if a.name == "signed_rank" else "W"
+        return f"{_short(a)} ({stat} = {a.statistic:.4g}, {p_phrase(a.p_value)})"
     if a.df is None or a.statistic is None:
         return _short(a)
     den = f"{a.df[1]:.4g}"
@@ -173,6 +187,8 @@ def reconcile(
     reproduced_by = "as_claimed" if reproduces(reported, as_claimed) else None
     if reproduced_by is None:
         match = next((a for a in others if reproduces(reported, a)), None)
+        if match is None and reported.method is not None:
+            match = next((a for a in others if _rank_p_matches(reported, a)), None)
         reproduced_by = None if match is None else match.name
     if match is not None:
         reference = match
@@ -181,13 +197,16 @@ def reconcile(
         grouping = unit.name if level == "units" and unit is not None else None
         how = (
             "which allows for the blocks"
-            if match.name == "within_blocks"
+            if match.name in {"within_blocks", "signed_rank"}
+            else "which counts every row as a replicate"
+            if match.name == "rank_sum"
             else "which takes the units as the replicates"
             if level == "units"
             else "which allows for the design's strata"
         )
         explanation = (
-            f"the reported {reported.test} is reproduced by {_shown(match, reported.test)}, "
+            f"the reported {reported.test or 'p-value'} is reproduced by "
+            f"{_shown(match, reported.test)}, "
             f"{how}, not by {_shown(as_claimed, reported.test)}"
         )
         same = [lv for lv in levels if err is not None and abs(lv.error_df - err) < 0.5]
