@@ -371,11 +371,15 @@ def _df_level(ev: Evidence) -> Iterator[Finding]:
     for prefix, r in _reconciled(ev):
         if r.explanation is None:
             continue
+        mixed = ev.claim.formula is not None and bool(ev.claim.formula.random)
         yield Finding(
             "reported-df-level",
             "note",
             prefix + _cap(r.explanation) + ".",
-            "Check the stated n and degrees of freedom against the design in the methods.",
+            "Check that the claimed model's random effects match how the treatments were "
+            "applied, as the methods describe it."
+            if mixed
+            else "Check the stated n and degrees of freedom against the design in the methods.",
             (),
         )
 
