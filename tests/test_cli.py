@@ -160,7 +160,20 @@ def test_demo_runs_and_lists() -> None:
     r = run("demo", "--list")
     assert r.returncode == 0
     names = [line.split()[0] for line in r.stdout.splitlines()]
-    assert names == ["fishfeed", "cuplids", "kilns"]
+    assert names == ["fishfeed", "cuplids", "kilns", "chambers"]
+
+
+def test_demo_with_a_claimed_mixed_model_writes_its_formula(tmp_path: Path) -> None:
+    r = run("demo", "chambers", "--write", str(tmp_path))
+    assert r.returncode == 0
+    assert 'formula = "height_cm ~ co2 + (1|tray)"' in (
+        tmp_path / "chambers.replicheck.toml"
+    ).read_text(encoding="utf-8")
+    r = run("check", str(tmp_path / "chambers.csv"), "-f", "json")
+    assert r.returncode == 1
+    doc = json.loads(r.stdout)
+    assert doc["claim"]["random_effects"] == ["tray"]
+    assert doc["verdict"]["status"] == "pseudoreplicated"
 
 
 def test_demo_write_then_check(tmp_path: Path) -> None:

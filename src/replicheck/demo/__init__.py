@@ -30,6 +30,13 @@ class Scenario:
     treatment: str
     claim: str
     recipe: Callable[[], pd.DataFrame]
+    formula: str | None = None  # the claimed model, when the invented authors gave one
+
+    @property
+    def claimed_level(self) -> str:
+        """Where the invented analysis put the replicates: the rows, or a random effect's
+        grouping inside the units (a claimed mixed model)."""
+        return "other" if self.formula else "rows"
 
     def frame(self) -> pd.DataFrame:
         """The invented data, generated afresh from the seeded recipe."""
@@ -37,14 +44,18 @@ class Scenario:
 
     def spec(self) -> dict[str, object]:
         """The claim as a spec mapping."""
+        if self.formula:
+            return {"formula": self.formula, "claim": self.claim}
         return {"response": self.response, "treatment": self.treatment, "claim": self.claim}
 
     def command(self) -> str:
         """The equivalent ``replicheck check`` command line on the written files."""
-        return (
-            f"replicheck check {self.name}.csv --response {self.response} "
-            f"--treatment {self.treatment} --claim {shlex.quote(self.claim)}"
+        model = (
+            f"--formula {shlex.quote(self.formula)}"
+            if self.formula
+            else f"--response {self.response} --treatment {self.treatment}"
         )
+        return f"replicheck check {self.name}.csv {model} --claim {shlex.quote(self.claim)}"
 
     def write(self, folder: Path) -> list[Path]:
         """Write ``NAME.csv`` and ``NAME.replicheck.toml`` into ``folder``."""
@@ -53,10 +64,13 @@ class Scenario:
             data = folder / f"{self.name}.csv"
             spec = folder / f"{self.name}.replicheck.toml"
             self.frame().to_csv(data, index=False)
+            model = (
+                f'formula = "{self.formula}"\n'
+                if self.formula
+                else f'response = "{self.response}"\ntreatment = "{self.treatment}"\n'
+            )
             spec.write_text(
-                f"# INVENTED demo data: {self.title}\n"
-                f'response = "{self.response}"\ntreatment = "{self.treatment}"\n'
-                f'claim = "{self.claim}"\n',
+                f'# INVENTED demo data: {self.title}\n{model}claim = "{self.claim}"\n',
                 encoding="utf-8",
             )
         except OSError as err:
@@ -141,6 +155,40 @@ def _glaze_kilns() -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
+def _co2_chambers() -> pd.DataFrame:
+    """Recipe: 2 CO2 levels x 3 growth chambers x 2 trays x 10 seedlings.
+
+    Height N(12, 1.5^2) cm per seedling, +1.5 cm at elevated CO2; chamber effect
+    N(0, 2^2), tray effect N(0, 0.8^2). Trays are numbered T01 to T12 through the
+    chambers. Seed 4410.
+    """
+    rng = np.random.default_rng(4410)
+    rows = []
+    tray_no = 0
+    for c, co2 in enumerate(["ambient"] * 3 + ["elevated"] * 3):
+        chamber_effect = rng.normal(0.0, 2.0)
+        for _ in range(2):
+            tray_no += 1
+            tray_effect = rng.normal(0.0, 0.8)
+            for _ in range(10):
+                rows.append(
+                    {
+                        "chamber": f"C{c + 1}",
+                        "tray": f"T{tray_no:02d}",
+                        "co2": co2,
+                        "height_cm": round(
+                            12.0
+                            + 1.5 * (co2 == "elevated")
+                            + chamber_effect
+                            + tray_effect
+                            + rng.normal(0.0, 1.5),
+                            1,
+                        ),
+                    }
+                )
+    return pd.DataFrame(rows)
+
+
 SCENARIOS: dict[str, Scenario] = {
     s.name: s
     for s in (
@@ -177,6 +225,20 @@ SCENARIOS: dict[str, Scenario] = {
             "glaze",
             "F(2, 42) = 9.1, p < .001",
             _glaze_kilns,
+        ),
+        Scenario(
+            "chambers",
+            "basil seedlings under two CO2 levels, three growth chambers per level",
+            "Invented: a plant lab set three growth chambers to ambient and three to "
+            "elevated CO2, each holding two trays of ten basil seedlings. The invented "
+            "report fits a mixed model with a random intercept per tray, so the trays, not "
+            "the chambers that received the CO2 level, serve as its replicates.",
+            "pseudoreplicated",
+            "height_cm",
+            "co2",
+            "F(1, 10) = 7.78, p = .019",
+            _co2_chambers,
+            "height_cm ~ co2 + (1|tray)",
         ),
     )
 }
