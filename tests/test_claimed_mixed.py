@@ -70,6 +70,32 @@ def test_a_random_effect_inside_the_unit_is_pseudo_replication() -> None:
     assert doc["claim"]["random_effects"] == ["Litter:sex"]
 
 
+def test_rows_missing_a_grouping_value_leave_the_claimed_model() -> None:
+    # as lme4 drops them by default (na.action = na.omit): every 7th litter value missing
+    gappy = PUPS.copy()
+    gappy.loc[gappy.index[::7], "Litter"] = None
+    doc = audit(gappy, formula="weight ~ Treatment + (1|Litter)").to_dict()
+    claimed = _claimed(doc, "Treatment")
+    _same_test(claimed, REF["pups_litter_gappy"])
+    assert any(
+        f"{len(gappy) - REF['pups_litter_gappy']['n_used']} rows" in n for n in claimed["notes"]
+    )
+
+
+def test_missing_unit_values_do_not_stop_the_reports(tmp_path: Path) -> None:
+    gappy = PUPS.copy()
+    gappy.loc[gappy.index[::7], "Litter"] = None
+    data = tmp_path / "gappy.csv"
+    gappy.to_csv(data, index=False)
+    for fmt in ("text", "html", "markdown"):
+        args = [sys.executable, "-m", "replicheck", "check", str(data), "-r", "weight"]
+        out = subprocess.run(
+            [*args, "-t", "Treatment", "-f", fmt], capture_output=True, text=True, check=False
+        )
+        assert out.returncode in (0, 1), out.stderr
+        assert "Traceback" not in out.stderr and "internal error" not in out.stderr
+
+
 def test_a_random_effect_crossed_with_the_treatment_leaves_the_rows() -> None:
     doc = audit(PUPS, formula="weight ~ Treatment + (1|sex)").to_dict()
     term = _term(doc, "Treatment")

@@ -555,8 +555,8 @@ def audit(
         first_claim = reported.get(terms[0].name)
         row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
         clock.lap("structure")
-        claimed_random = {
-            ":".join(g): complete_codes(group_codes(frame, g))
+        claimed_random = {  # -1 marks a missing value: those rows leave the claimed model
+            ":".join(g): group_codes(frame, g)
             for g in (c.formula.random if c.formula is not None else ())
         }
         fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2, claimed_random)
@@ -615,7 +615,8 @@ def audit(
                     ],
                 )
             if claimed_random:
-                rec = _claimed_level(ti, claimed_random, rec, tr.get("as_claimed"), c.alpha)
+                completed = {k: complete_codes(v) for k, v in claimed_random.items()}
+                rec = _claimed_level(ti, completed, rec, tr.get("as_claimed"), c.alpha)
             evidence_terms.append(
                 TermEvidence(
                     ti.term,

@@ -134,7 +134,8 @@ def _labeller(
         if frame is None or not columns:
             return [str(int(g) + 1) for g in chosen]
         rows = frame.iloc[first[chosen]]
-        parts = [rows[c].astype(str).tolist() for c in columns]
+        # a missing value stays missing under pandas' string dtype: name it instead
+        parts = [["(missing)" if pd.isna(v) else str(v) for v in rows[c].tolist()] for c in columns]
         return [":".join(p) for p in zip(*parts, strict=True)]
 
     return label

@@ -606,6 +606,16 @@ def _claimed_mixed(
     names = [f"x{j}" for j in range(X.shape[1])]
     groupings = ", ".join(random)
     label = f"as claimed: mixed model, random intercepts for {groupings} (REML, Satterthwaite df)"
+    known, random = known_groupings(random)
+    y, X = y[known], X[known]
+    dropped = (
+        [
+            f"{int((~known).sum())} rows with a missing grouping value left out, as mixed-model "
+            "software does by default"
+        ]
+        if not known.all()
+        else []
+    )
     try:
         fit, _ = fit_mixed(y, X, _distinct(random, int(y.size)) or random, names)
     except DesignError as err:
@@ -615,8 +625,18 @@ def _claimed_mixed(
     for t in terms:
         a = _mixed_analysis(fit, X, index[t.term], t, None, int(y.size), two)
         notes = [f"the variance of {g} was estimated at zero" for g in random if g in fit.boundary]
-        out.append(replace(a, name="as_claimed", label=label, notes=(*a.notes, *notes)))
+        out.append(replace(a, name="as_claimed", label=label, notes=(*a.notes, *notes, *dropped)))
     return out
+
+
+def known_groupings(
+    random: Mapping[str, np.ndarray],
+) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """The rows where every grouping is known (code >= 0), and the groupings recoded there."""
+    known = np.ones(next(iter(random.values())).size, dtype=bool)
+    for codes in random.values():
+        known &= codes >= 0
+    return known, {name: dense_codes(codes[known]) for name, codes in random.items()}
 
 
 def _row_chi2(t: TermInput, y: np.ndarray) -> Analysis:

@@ -22,13 +22,13 @@ Stram & Lee 1994, Biometrics 50:1171-1177).
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import stats as sps
 
 from replicheck.partitions import dense_codes, is_nested, pair_codes, same_partition
-from replicheck.refit import TermInput, design_matrix, fit_mixed, whitened
+from replicheck.refit import TermInput, design_matrix, fit_mixed, known_groupings, whitened
 from replicheck.stats import DesignError, satterthwaite_test
 
 SLOPE_ALPHA = 0.05  # the likelihood-ratio test of the omitted variance (common practice)
@@ -68,6 +68,11 @@ def omitted_slopes(
     """
     if not random:
         return {}
+    known, random = known_groupings(random)
+    if not known.all():
+        y = y[known]
+        terms = [replace(t, codes=t.codes[known]) for t in terms]
+        fixed_blocks = [b[known] for b in fixed_blocks]
     X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
     for b in fixed_blocks:
         k = int(b.max()) + 1
