@@ -75,11 +75,39 @@ def test_rows_missing_a_grouping_value_leave_the_claimed_model() -> None:
     gappy = PUPS.copy()
     gappy.loc[gappy.index[::7], "Litter"] = None
     doc = audit(gappy, formula="weight ~ Treatment + (1|Litter)").to_dict()
+    _same_test(_claimed(doc, "Treatment"), REF["pups_litter_gappy"])
+    assert doc["input"]["n_rows_used"] == REF["pups_litter_gappy"]["n_used"]
+
+
+def test_rows_missing_a_claimed_grouping_that_is_not_the_unit_leave_its_fit() -> None:
+    # a claimed grouping with missing values that is not the unit (the pup's sex
+    # unknown on every 7th row; litter complete): those rows leave the claimed fit only
+    gappy = PUPS.copy()
+    gappy["sex"] = gappy["sex"].astype(object)
+    gappy.loc[gappy.index[::7], "sex"] = None
+    doc = audit(gappy, formula="weight ~ Treatment + (1|Litter:sex)").to_dict()
     claimed = _claimed(doc, "Treatment")
-    _same_test(claimed, REF["pups_litter_gappy"])
-    assert any(
-        f"{len(gappy) - REF['pups_litter_gappy']['n_used']} rows" in n for n in claimed["notes"]
-    )
+    assert any("46 rows with a missing grouping value left out" in n for n in claimed["notes"])
+    assert doc["input"]["n_rows_used"] == len(gappy)
+
+
+def test_rows_without_their_unit_leave_the_audit() -> None:
+    # Without a claimed model the same 46 rows (litter unknown) leave the audit: the
+    # corrected test is lme4's fit on the 276 rows with a litter (fixture above), not
+    # a fit counting each unknown row as a litter of its own.
+    gappy = PUPS.copy()
+    gappy.loc[gappy.index[::7], "Litter"] = None
+    doc = audit(gappy, response="weight", treatment="Treatment").to_dict()
+    assert doc["input"]["n_rows_used"] == REF["pups_litter_gappy"]["n_used"]
+    assert doc["experimental_units"][0]["n_units"] == 27
+    mixed = next(a for a in doc["analyses"] if a["name"] == "mixed_model")
+    _same_test(mixed, REF["pups_litter_gappy"])
+    (msg,) = [
+        f["message"]
+        for f in doc["findings"]
+        if f["rule"] == "rows-dropped" and f["severity"] == "warning"
+    ]
+    assert msg.startswith("46 of 322 rows were left out because their experimental unit")
 
 
 def test_missing_unit_values_do_not_stop_the_reports(tmp_path: Path) -> None:

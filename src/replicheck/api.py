@@ -254,6 +254,17 @@ def _claimed_level(
     return replace(rec, level=level, level_grouping=grouping, explanation=explanation)
 
 
+def _unit_columns(structure: Structure, terms: Sequence[Term], frame: pd.DataFrame) -> list[str]:
+    """The recorded columns that identify the experimental units of the terms."""
+    out: list[str] = []
+    for t in terms:
+        choice = structure.unit_of(t.name)
+        if choice.unit is None or choice.relation == "confounded":
+            continue
+        out += [col for col in choice.columns if col in frame.columns and col not in out]
+    return [col for col in out if col not in {t.name for t in terms}]
+
+
 def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
     y = numeric_column(table, claim.response, "response")
     frame = table.data.copy()
@@ -516,17 +527,30 @@ def audit(
             if t.is_interaction:
                 frame[t.name] = interaction_levels(frame, t.factors)
         clock.lap("hidden")
-        structure = infer_structure(
-            frame,
-            c.response,
-            [t.name for t in terms],
-            exclude=c.treatments,
-            interactions=interactions,
-            roles=c.roles,
-            unit_labels=c.unit_labels or "auto",
-            derived_columns=[g.name for g in hidden_scan.derived],
-            file_order=[g.name for g in hidden_scan.derived if g.name.endswith("[file order]")],
-        )
+
+        def read_structure(frame: pd.DataFrame) -> Structure:
+            return infer_structure(
+                frame,
+                c.response,
+                [t.name for t in terms],
+                exclude=c.treatments,
+                interactions=interactions,
+                roles=c.roles,
+                unit_labels=c.unit_labels or "auto",
+                derived_columns=[g.name for g in hidden_scan.derived],
+                file_order=[g.name for g in hidden_scan.derived if g.name.endswith("[file order]")],
+            )
+
+        structure = read_structure(frame)
+        # rows whose experimental unit is not recorded cannot be placed among the
+        # replicates: they leave the audit, and the design is read again without them
+        unit_columns = _unit_columns(structure, terms, frame)
+        no_unit = frame[unit_columns].isna().any(axis=1) if unit_columns else None
+        rows_without_unit = 0
+        if no_unit is not None and no_unit.any() and not no_unit.all():
+            rows_without_unit = int(no_unit.sum())
+            frame = frame[~no_unit.to_numpy()]
+            structure = read_structure(frame)
         y = frame[c.response].to_numpy(dtype=float)
         inputs: list[TermInput] = []
         for t in terms:
@@ -643,6 +667,8 @@ def audit(
             claim=c,
             n_rows_read=table.n_rows,
             n_rows_used=len(frame),
+            rows_without_unit=rows_without_unit,
+            unit_columns=tuple(unit_columns) if rows_without_unit else (),
             structure=structure,
             terms=tuple(evidence_terms),
             reconciliation=overall,

@@ -98,6 +98,8 @@ class Evidence:
     response_kind: str = "continuous"  # continuous | binary | count
     response_coding: tuple[str, str] | None = None  # text labels read as 0 and 1
     hidden: HiddenScan = field(default_factory=HiddenScan)  # groupings no column names
+    rows_without_unit: int = 0  # rows left out because their experimental unit is not recorded
+    unit_columns: tuple[str, ...] = ()  # the unit columns with those missing values
 
 
 @dataclass(frozen=True)
@@ -781,7 +783,7 @@ def _boundary(ev: Evidence) -> Iterator[Finding]:
 
 @rule("rows-dropped", "rows were left out for missing values")
 def _dropped(ev: Evidence) -> Iterator[Finding]:
-    lost = ev.n_rows_read - ev.n_rows_used
+    lost = ev.n_rows_read - ev.n_rows_used - ev.rows_without_unit
     if lost > 0:
         yield Finding(
             "rows-dropped",
@@ -790,6 +792,18 @@ def _dropped(ev: Evidence) -> Iterator[Finding]:
             f"value is missing.",
             "Check that the missing values match the paper's stated exclusions.",
             (ev.claim.response, *ev.claim.treatments),
+        )
+    if ev.rows_without_unit > 0:
+        cols = ", ".join(f"'{c}'" for c in ev.unit_columns)
+        yield Finding(
+            "rows-dropped",
+            "warning",
+            f"{ev.rows_without_unit} of {ev.n_rows_read} rows were left out because their "
+            f"experimental unit is not recorded (missing {cols}): a row whose unit is unknown "
+            f"cannot be placed among the replicates, and counting it as a unit of its own "
+            f"would assume it independent of every other row.",
+            "Ask the authors which unit these rows belong to; the audit of the other rows stands.",
+            ev.unit_columns,
         )
 
 
