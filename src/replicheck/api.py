@@ -31,9 +31,9 @@ from replicheck.errors import InputError
 from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
-from replicheck.partitions import is_nested, same_partition, units_per_level
+from replicheck.partitions import same_partition, units_per_level
 from replicheck.ranks import rank_tests
-from replicheck.reconcile import Level, Reconciliation, reconcile
+from replicheck.reconcile import Level, claimed_model_level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
 from replicheck.report.model import Report
 from replicheck.roles import Roles, Statement
@@ -194,64 +194,6 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
         Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
     ]
     return terms, blocks
-
-
-def _claimed_level(
-    ti: TermInput,
-    random: Mapping[str, np.ndarray],
-    rec: Reconciliation | None,
-    as_claimed: Analysis | None,
-    alpha: float,
-) -> Reconciliation | None:
-    """Where the claimed mixed model tests a term, against the term's experimental unit.
-
-    The model tests a term against the coarsest of its random groupings within
-    which the term is constant; when that grouping holds whole experimental
-    units (the unit itself, or a coarser grouping), the claim is at the units.
-    A grouping inside the unit (fish within tanks), or none, leaves the finer
-    levels or the rows counted as replicates.
-    """
-    if ti.unit is None or ti.unit_name is None:
-        return rec
-    term_codes = ti.codes
-    inside = [
-        (name, codes)
-        for name, codes in random.items()
-        if is_nested(codes, term_codes)
-        and int(codes.max()) + 1 < codes.size
-        and int(units_per_level(codes, term_codes, len(ti.labels)).min()) >= 2
-    ]  # a grouping with one level per term level is the term itself: it tests nothing
-    if inside:
-        name, codes = min(inside, key=lambda nc: int(nc[1].max()))
-        n_g = int(codes.max()) + 1
-        if is_nested(ti.unit, codes):
-            level, grouping = "units", name
-            why = (
-                f"the claimed model's random effect for '{name}' ({n_g} levels) holds whole "
-                f"experimental units of '{ti.term}' ('{ti.unit_name}'), so its test of "
-                f"'{ti.term}' takes them as the replicates"
-            )
-        else:
-            level, grouping = "other", name
-            why = (
-                f"the claimed model's random effect for '{name}' ({n_g} levels) lies within "
-                f"the experimental unit of '{ti.term}' ('{ti.unit_name}', "
-                f"{int(ti.unit.max()) + 1} units), so its test of '{ti.term}' still counts "
-                f"the {name} levels as replicates"
-            )
-    else:
-        level, grouping = "rows", None
-        why = (
-            f"none of the claimed model's random effects ({', '.join(random)}) groups the rows "
-            f"within the levels of '{ti.term}' (each of its levels inside one level of "
-            f"'{ti.term}', several per level), so its test of '{ti.term}' counts the rows as "
-            f"replicates of the '{ti.unit_name}' units"
-        )
-    if rec is None:
-        significant = None if as_claimed is None else as_claimed.significant(alpha)
-        return Reconciliation(level, grouping, why, (), significant)
-    explanation = why if rec.explanation is None else f"{why}; {rec.explanation}"
-    return replace(rec, level=level, level_grouping=grouping, explanation=explanation)
 
 
 def _unit_columns(structure: Structure, terms: Sequence[Term], frame: pd.DataFrame) -> list[str]:
@@ -640,7 +582,7 @@ def audit(
                 )
             if claimed_random:
                 completed = {k: complete_codes(v) for k, v in claimed_random.items()}
-                rec = _claimed_level(ti, completed, rec, tr.get("as_claimed"), c.alpha)
+                rec = claimed_model_level(ti, completed, rec, tr.get("as_claimed"), c.alpha)
             evidence_terms.append(
                 TermEvidence(
                     ti.term,

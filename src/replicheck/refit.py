@@ -337,6 +337,13 @@ def _coded(codes: np.ndarray, k: int, coding: str) -> np.ndarray:
     return cols
 
 
+def with_blocks(X: np.ndarray, blocks: Sequence[np.ndarray]) -> np.ndarray:
+    """The design with every block added as a sum-to-zero coded fixed effect."""
+    if not blocks:
+        return X
+    return np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in blocks)])
+
+
 def design_matrix(
     terms: Sequence[TermInput], coding: str
 ) -> tuple[np.ndarray, dict[str, list[int]], list[str]]:
@@ -431,7 +438,7 @@ def within_block_tests(
     if not blocks:
         return {}
     X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
-    x = np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in blocks.values())])
+    x = with_blocks(X, list(blocks.values()))
     if int(np.linalg.matrix_rank(x)) >= y.size:
         return {}
     name = "within_blocks"
@@ -839,7 +846,7 @@ def refit(
     coding = "treatment" if single else "sum"
     X, index, names = design_matrix(terms, coding)
     if fixed_blocks:
-        x_rows = np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in fixed_blocks)])
+        x_rows = with_blocks(X, fixed_blocks)
         claimed = [
             replace(a, label=LABELS["as_claimed"] + ", blocks as fixed effects")
             for a in _ols_term_tests(y, x_rows, index, terms)
@@ -852,9 +859,7 @@ def refit(
     else:
         claimed = _ols_term_tests(y, X, index, terms)
     if claimed_random:
-        x_claimed = X
-        if fixed_blocks:
-            x_claimed = np.hstack([X, *(_coded(b, int(b.max()) + 1, "sum") for b in fixed_blocks)])
+        x_claimed = with_blocks(X, fixed_blocks)
         claimed = _claimed_mixed(y, x_claimed, index, terms, claimed_random, claimed, single)
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
     fit: MixedFit | None = None

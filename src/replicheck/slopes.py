@@ -28,7 +28,14 @@ import numpy as np
 from scipy import stats as sps
 
 from replicheck.partitions import dense_codes, is_nested, pair_codes, same_partition
-from replicheck.refit import TermInput, design_matrix, fit_mixed, known_groupings, whitened
+from replicheck.refit import (
+    TermInput,
+    design_matrix,
+    fit_mixed,
+    known_groupings,
+    whitened,
+    with_blocks,
+)
 from replicheck.stats import DesignError, satterthwaite_test
 
 SLOPE_ALPHA = 0.05  # the likelihood-ratio test of the omitted variance (common practice)
@@ -74,12 +81,7 @@ def omitted_slopes(
         terms = [replace(t, codes=t.codes[known]) for t in terms]
         fixed_blocks = [b[known] for b in fixed_blocks]
     X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
-    for b in fixed_blocks:
-        k = int(b.max()) + 1
-        cols = np.zeros((b.size, k - 1))
-        for j in range(k - 1):
-            cols[:, j] = (b == j).astype(float) - (b == k - 1)
-        X = np.hstack([X, cols])
+    X = with_blocks(X, fixed_blocks)
     names = [f"x{j}" for j in range(X.shape[1])]
     try:
         base, _ = fit_mixed(y, X, random, names)

@@ -83,6 +83,21 @@ def on_every_scale(test: Callable[[np.ndarray], float | None], y: np.ndarray) ->
     return worst
 
 
+def _cells_f(
+    y: np.ndarray, both: np.ndarray, reduced: Sequence[np.ndarray], added: np.ndarray
+) -> float | None:
+    """p of the groupings ``added`` beyond the additive ``reduced`` ones, fitted on the
+    cells ``both`` within which every grouping is constant (:func:`cell_term_f`)."""
+    one = np.empty(int(both.max()) + 1, dtype=np.int64)
+    one[both] = np.arange(both.size)
+    x_reduced = np.hstack([_dummies(c[one]) for c in reduced])
+    x_full = np.hstack([x_reduced, _dummies(added[one])])
+    try:
+        return float(cell_term_f(y, both, x_full, x_reduced).p_value)
+    except DesignError:
+        return None
+
+
 def _dummies(codes: np.ndarray) -> np.ndarray:
     k = int(codes.max()) + 1
     out = np.zeros((codes.size, k))
@@ -124,15 +139,7 @@ def units_beyond_model(
         return float(stats.f.sf(f, df1, df2))
     if n_units + n_cells > MAX_CELLS:
         return None
-    both = dense_codes(pair_codes(unit, cells))
-    one = np.empty(int(both.max()) + 1, dtype=np.int64)
-    one[both] = np.arange(both.size)
-    reduced = _dummies(cells[one])
-    full = np.hstack([reduced, _dummies(unit[one])])
-    try:
-        return float(cell_term_f(y, both, full, reduced).p_value)
-    except DesignError:
-        return None
+    return _cells_f(y, dense_codes(pair_codes(unit, cells)), [cells], unit)
 
 
 def shared_label_effect(
@@ -365,16 +372,7 @@ def _cell_p(
     if int(cells.max()) + 1 > MAX_CELLS or int(trt.max()) + 1 > MAX_CELLS:
         return None
     both = combined([cells, trt, *extra])
-    one = np.empty(int(both.max()) + 1, dtype=np.int64)
-    one[both] = np.arange(both.size)
-    reduced = np.hstack(
-        [_dummies(a[one]), _dummies(b[one]), _dummies(trt[one]), *(_dummies(x[one]) for x in extra)]
-    )
-    full = np.hstack([reduced, _dummies(cells[one])])
-    try:
-        return float(cell_term_f(y, both, full, reduced).p_value)
-    except DesignError:
-        return None
+    return _cells_f(y, both, [a, b, trt, *extra], cells)
 
 
 def unit_evidence(
