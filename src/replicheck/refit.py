@@ -36,6 +36,7 @@ from __future__ import annotations
 import itertools
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 from scipy import stats as sps
@@ -44,6 +45,7 @@ from replicheck.numbers import count_text
 from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.stats.classic import (
     DesignError,
+    TestResult,
     ols_term_f,
     oneway_anova,
     pearson_chi2,
@@ -96,6 +98,12 @@ class TermInput:
     unit: np.ndarray | None  # unit codes, None when each row is its own unit
     unit_name: str | None
     confounded: bool
+    values: np.ndarray | None = None  # a number entering with one slope (a covariate or dose)
+
+    @property
+    def numeric(self) -> bool:
+        """Whether the term is one slope on a number rather than a set of levels."""
+        return self.values is not None
 
 
 @dataclass(frozen=True)
@@ -154,6 +162,7 @@ LABELS = {
     "wild_bootstrap": "wild cluster bootstrap: null imposed, units as clusters",
     "gee": "GEE: exchangeable correlation within units, bias-reduced covariance",
     "within_blocks": "analysis within blocks: every row a replicate, blocks as fixed effects",
+    "lack_of_fit": "lack of fit: unit means of each value against the straight line",
 }
 
 BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
@@ -237,12 +246,55 @@ def _unit_table(
     return means, level, unit_blocks
 
 
+def _per_unit(unit: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """The mean of ``values`` in each unit (the value itself when constant within units)."""
+    n_units = int(unit.max()) + 1
+    return np.bincount(unit, weights=values, minlength=n_units) / np.bincount(
+        unit, minlength=n_units
+    )
+
+
+def unit_covariates(t: TermInput, terms: Sequence[TermInput]) -> dict[str, np.ndarray]:
+    """The other main effects constant within the units of ``t``, as columns of rows.
+
+    For a categorical ``t``: the numeric terms (its unit-level covariates).
+    For a numeric ``t`` (a slope): every other main effect, as the claimed
+    regression holds them (a dose given to dams beside the litter size).
+    """
+    if t.unit is None:
+        return {}
+    out: dict[str, np.ndarray] = {}
+    for o in terms:
+        if o is t or len(o.factors) != 1 or (o.values is None and t.values is None):
+            continue
+        cols = (
+            o.values.reshape(-1, 1)
+            if o.values is not None
+            else _coded(o.codes, len(o.labels), "sum")
+        )
+        if cols.shape[1] and all(np.allclose(_per_unit(t.unit, c)[t.unit], c) for c in cols.T):
+            out[o.term] = cols
+    return out
+
+
 def _randomise(
-    t: TermInput, y: np.ndarray, blocks: Mapping[str, np.ndarray] | None, seed: int
+    t: TermInput,
+    y: np.ndarray,
+    blocks: Mapping[str, np.ndarray] | None,
+    seed: int,
+    covariates: Mapping[str, np.ndarray] | None = None,
 ) -> RandomisationResult | None:
+    """Labels re-assigned among units; unit-level covariates first regressed out of the
+    unit means (the residuals are fixed under the null, so the test stays exact)."""
     means, level, unit_blocks = _unit_table(t, y, blocks)
     if np.unique(level).size < 2 or means.size - np.unique(level).size < 1:
         return None
+    if covariates:
+        assert t.unit is not None
+        z = np.column_stack(
+            [np.ones(means.size), *(_per_unit(t.unit, c) for v in covariates.values() for c in v.T)]
+        )
+        means = means - z @ np.linalg.lstsq(z, means, rcond=None)[0]
     within = None
     for b in unit_blocks:  # labels move only within the cells of every block
         within = b if within is None else within * (int(b.max()) + 1) + b
@@ -251,7 +303,9 @@ def _randomise(
     )
 
 
-def _randomisation_analysis(t: TermInput, r: RandomisationResult) -> Analysis:
+def _randomisation_analysis(
+    t: TermInput, r: RandomisationResult, covariates: Sequence[str] = ()
+) -> Analysis:
     how = (
         f"exact over all {count_text(r.n_assignments)} assignments"
         if r.exact
@@ -268,44 +322,125 @@ def _randomisation_analysis(t: TermInput, r: RandomisationResult) -> Analysis:
         r.statistic if np.isfinite(r.statistic) else None,
         None,
         r.p_value,
-        notes=(f"{how}; smallest attainable p = {r.min_attainable_p:.3g}",),
+        notes=(
+            f"{how}; smallest attainable p = {r.min_attainable_p:.3g}",
+            *(
+                [
+                    "unit means first adjusted for "
+                    + " and ".join(f"'{c}'" for c in covariates)
+                    + " (regressed out)"
+                ]
+                if covariates
+                else []
+            ),
+        ),
+    )
+
+
+def _fitted_first(
+    unit: np.ndarray,
+    unit_blocks: Sequence[np.ndarray],
+    covariates: Mapping[str, np.ndarray] | None,
+) -> np.ndarray:
+    """Columns of the units fitted before a term: intercept, blocks, unit-level covariates."""
+    n_units = int(unit.max()) + 1
+    return np.hstack(
+        [
+            np.ones((n_units, 1)),
+            *(_coded(b, int(b.max()) + 1, "sum") for b in unit_blocks),
+            *(_per_unit(unit, c).reshape(-1, 1) for v in (covariates or {}).values() for c in v.T),
+        ]
     )
 
 
 def _unit_means(
-    t: TermInput, y: np.ndarray, blocks: Mapping[str, np.ndarray] | None = None
+    t: TermInput,
+    y: np.ndarray,
+    blocks: Mapping[str, np.ndarray] | None = None,
+    covariates: Mapping[str, np.ndarray] | None = None,
 ) -> Analysis:
-    """The term tested on one mean per unit; blocks that hold whole units enter additively.
+    """The term tested on one mean per unit; blocks and covariates of whole units first.
 
     Each unit lies in one level of the term (units are nested in it). A block
     constant within every unit (the unit is nested in the block, as whole plots
     in blocks) is fitted first, so the test is the randomised-block analysis of
-    the unit means (in a balanced split plot, the whole-plot F test).
+    the unit means (in a balanced split plot, the whole-plot F test). So are
+    the other numeric terms constant within the units (``covariates``, e.g. a
+    litter size beside a dose given to the dam): the analysis of covariance of
+    the unit means. A numeric term is tested by the regression of the unit
+    means on its value in each unit: its slope has the units' degrees of
+    freedom (the units less the intercept, blocks, covariates and the slope).
     """
     means, unit_level, unit_blocks = _unit_table(t, y, blocks)
     n_units = means.size
-    if not unit_blocks:
+    covariates = covariates or {}
+    if t.values is None and not unit_blocks and not covariates:
         return _plain_test("unit_means", t.term, "units", means, unit_level)
-    reduced = np.hstack(
-        [np.ones((n_units, 1)), *(_coded(b, int(b.max()) + 1, "sum") for b in unit_blocks)]
-    )
-    k = int(unit_level.max()) + 1
-    full = np.hstack([reduced, _coded(unit_level, k, "sum")])
+    assert t.unit is not None
+    reduced = _fitted_first(t.unit, unit_blocks, covariates)
+    if t.values is not None:
+        tested = _per_unit(t.unit, t.values).reshape(-1, 1)
+    else:
+        tested = _coded(unit_level, int(unit_level.max()) + 1, "sum")
+    full = np.hstack([reduced, tested])
     try:
         r = ols_term_f(means, full, reduced)
     except DesignError:
+        if t.values is not None:
+            raise
         return _plain_test("unit_means", t.term, "units", means, unit_level)
-    name = "unit_means"
+    first = [*(["blocks"] if unit_blocks else []), *(f"'{c}'" for c in covariates)]
+    label = LABELS["unit_means"]
+    if t.values is not None:
+        label += f", regressed on '{t.term}'"
+    if first:
+        label += f", {' and '.join(first)} fitted first"
+    slope = t_stat = None
+    if t.values is not None:
+        slope = float(np.linalg.lstsq(full, means, rcond=None)[0][-1])
+        t_stat = float(np.sign(slope) * np.sqrt(max(float(r.statistic), 0.0)))
+    return _unit_f("unit_means", label, t, n_units, r, t_statistic=t_stat, estimate=slope)
+
+
+def _unit_f(
+    name: str, label: str, t: TermInput, n_units: int, r: TestResult, **extra: Any
+) -> Analysis:
+    """A unit-level analysis from an F test result."""
+    df = (float(r.df[0]), float(r.df[1]))
     return Analysis(
-        name,
-        LABELS[name] + ", blocks fitted first",
-        t.term,
-        "units",
-        n_units,
-        float(r.statistic),
-        (float(r.df[0]), float(r.df[1])),
-        float(r.p_value),
+        name, label, t.term, "units", n_units, float(r.statistic), df, float(r.p_value), **extra
     )
+
+
+def _lack_of_fit(
+    t: TermInput,
+    y: np.ndarray,
+    blocks: Mapping[str, np.ndarray] | None,
+    covariates: Mapping[str, np.ndarray] | None,
+) -> Analysis | None:
+    """Whether the unit means depart from the straight line in a number's values.
+
+    The level-by-level analysis of a dose set against its slope: the means of
+    the units regressed on the dose, then on the dose as categories (blocks and
+    unit-level covariates first in both); the F test of the extra k - 2
+    parameters, on the units' residual. None when the number has fewer than
+    three values or the units leave no residual.
+    """
+    if t.values is None or t.unit is None or len(t.labels) < 3:
+        return None
+    means, unit_level, unit_blocks = _unit_table(t, y, blocks)
+    n_units = means.size
+    line = np.hstack(
+        [_fitted_first(t.unit, unit_blocks, covariates), _per_unit(t.unit, t.values).reshape(-1, 1)]
+    )
+    full = np.hstack([line, _coded(unit_level, len(t.labels), "sum")])
+    try:
+        r = ols_term_f(means, full, line)
+    except DesignError:
+        return None
+    name = "lack_of_fit"
+    why = ("departure from a straight line; not a test of the effect itself",)
+    return _unit_f(name, LABELS[name], t, n_units, r, notes=why)
 
 
 def whitened(L: np.ndarray, X: np.ndarray) -> np.ndarray:
@@ -351,14 +486,19 @@ def design_matrix(
     n = terms[0].codes.size
     blocks: dict[str, np.ndarray] = {}
     main = {t.factors[0]: t for t in terms if len(t.factors) == 1}
+
+    def columns_of(t: TermInput) -> np.ndarray:
+        if t.values is not None:  # a number: one slope on its values, as written
+            return t.values.astype(float).reshape(-1, 1)
+        return _coded(t.codes, len(t.labels), coding)
+
     for t in terms:
         if len(t.factors) == 1:
-            blocks[t.term] = _coded(t.codes, len(t.labels), coding)
+            blocks[t.term] = columns_of(t)
         else:
             block = np.ones((n, 1))
             for f in t.factors:
-                m = main[f]
-                part = _coded(m.codes, len(m.labels), coding)
+                part = columns_of(main[f])
                 block = (block[:, :, None] * part[:, None, :]).reshape(n, -1)
             blocks[t.term] = block
     columns = [np.ones((n, 1))]
@@ -417,9 +557,19 @@ def _ols_term_tests(
         f = float(lb @ np.linalg.solve(L @ xtx_inv @ L.T, lb)) / q / s2
         p = float(sps.f.sf(f, q, df_res))
         name = "as_claimed"
+        slope = q == 1 and t.numeric
         out.append(
             Analysis(
-                name, LABELS[name], t.term, "rows", int(y.size), f, (float(q), float(df_res)), p
+                name,
+                LABELS[name],
+                t.term,
+                "rows",
+                int(y.size),
+                f,
+                (float(q), float(df_res)),
+                p,
+                t_statistic=float(np.sign(lb[0]) * np.sqrt(f)) if slope else None,
+                estimate=float(lb[0]) if slope else None,
             )
         )
     return out
@@ -578,7 +728,7 @@ def _mixed_analysis(
     if not fit.converged:
         notes.append("the REML optimiser reported no convergence")
     t_stat = estimate = None
-    if two and len(index) == 1:
+    if (two or t.numeric) and len(index) == 1:
         estimate = float(fit.beta[index[0]])
         t_stat = float(np.sign(estimate) * np.sqrt(test.statistic))
     name = "mixed_model"
@@ -851,7 +1001,7 @@ def refit(
             replace(a, label=LABELS["as_claimed"] + ", blocks as fixed effects")
             for a in _ols_term_tests(y, x_rows, index, terms)
         ]
-    elif single:
+    elif single and not terms[0].numeric:
         t0 = terms[0]
         use_chi2 = kind == "binary" and (row_chi2 is None or row_chi2)
         row = _row_chi2(t0, y) if use_chi2 else None
@@ -898,7 +1048,7 @@ def refit(
         rand = None
         if has_unit:
             try:
-                um = _unit_means(t, y, blocks)
+                um = _unit_means(t, y, blocks, unit_covariates(t, terms))
             except DesignError as err:  # e.g. every unit's proportion the same within levels
                 um = _untested("unit_means", t, f"not computed: {err}")
             if kind != "continuous":
@@ -910,10 +1060,23 @@ def refit(
             analyses.append(um)
             if t.unit is not None and int(t.unit.max()) + 1 > MAX_MC_UNITS:
                 analyses.append(_too_many_units("randomisation", t))
+            elif t.numeric:
+                curve = _lack_of_fit(t, y, blocks, unit_covariates(t, terms))
+                if curve is not None:
+                    analyses.append(curve)
+                analyses.append(
+                    _untested(
+                        "randomisation",
+                        t,
+                        "not run for a number entering with one slope; the cluster-robust "
+                        "test and the wild bootstrap cross-check its unit-level test",
+                    )
+                )
             else:
-                rand = _randomise(t, y, blocks, seed)
+                adjust = unit_covariates(t, terms)
+                rand = _randomise(t, y, blocks, seed, adjust)
                 if rand is not None:
-                    analyses.append(_randomisation_analysis(t, rand))
+                    analyses.append(_randomisation_analysis(t, rand, list(adjust)))
         variance = None
         corrected: str | None = "unit_means" if has_unit else "as_claimed"
         if fit is not None:

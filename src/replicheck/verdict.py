@@ -18,6 +18,7 @@ from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
 from replicheck.slopes import SlopeCheck
 from replicheck.structure.hidden.base import HiddenScan
+from replicheck.structure.numbers import NumberReading
 from replicheck.structure.units import Alternative, Structure, UnitChoice
 
 SEVERITIES = ("error", "warning", "note")
@@ -74,6 +75,7 @@ class TermEvidence:
     reconciliation: Reconciliation | None = None  # when a result was reported for this term
     alternatives: tuple[AlternativeEvidence, ...] = ()
     slope: SlopeCheck | None = None  # a claimed mixed model's omitted grouping x term variation
+    numeric: bool = False  # a number entering with one slope (its levels are not comparisons)
 
     def analysis(self, name: str) -> Analysis | None:
         return self.refit.get(name)
@@ -100,6 +102,7 @@ class Evidence:
     hidden: HiddenScan = field(default_factory=HiddenScan)  # groupings no column names
     rows_without_unit: int = 0  # rows left out because their experimental unit is not recorded
     unit_columns: tuple[str, ...] = ()  # the unit columns with those missing values
+    numbers: tuple[NumberReading, ...] = ()  # how each numeric column of a formula was read
 
 
 @dataclass(frozen=True)
@@ -536,6 +539,34 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
         )
 
 
+@rule("numbers-in-formula", "how each numeric column of a claimed formula was read")
+def _numbers(ev: Evidence) -> Iterator[Finding]:
+    slopes = [r for r in ev.numbers if r.slope]
+    levels = [r for r in ev.numbers if not r.slope and r.n_values > 2]
+    if not slopes and not levels:
+        return
+    parts = [f"'{r.column}' ({r.reason}) enters with one slope" for r in slopes]
+    parts += [f"'{r.column}' ({r.reason}) as categories" for r in levels]
+    advice = []
+    if slopes:
+        advice.append(
+            "If the authors analysed " + " or ".join(f"'{r.column}'" for r in slopes) + " as "
+            "categories, write it C(" + slopes[0].column + ") in the formula."
+        )
+    if levels:
+        advice.append(
+            "If " + " or ".join(f"'{r.column}'" for r in levels) + " is a quantity fitted "
+            "with one slope, state it with --covariate " + levels[0].column + "."
+        )
+    yield Finding(
+        "numbers-in-formula",
+        "note",
+        "In the claimed formula, " + "; ".join(parts) + ".",
+        " ".join(advice),
+        tuple(r.column for r in (*slopes, *levels)),
+    )
+
+
 @rule("unreplicated-interaction", "each treatment combination occurs once")
 def _unreplicated(ev: Evidence) -> Iterator[Finding]:
     for term in ev.unreplicated:
@@ -569,7 +600,7 @@ def _partial(ev: Evidence) -> Iterator[Finding]:
 def _single(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         u = t.unit
-        if u.relation == "confounded" or not u.single_unit_levels:
+        if u.relation == "confounded" or not u.single_unit_levels or t.numeric:
             continue
         levels = ", ".join(f"'{s}'" for s in u.single_unit_levels)
         yield Finding(
@@ -587,6 +618,19 @@ def _few(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         u = t.unit
         if u.unit is None or u.relation == "confounded" or not t.units_per_level:
+            continue
+        if t.numeric:
+            n_units = sum(t.units_per_level.values())
+            if n_units < 2 * FEW_UNITS:
+                yield Finding(
+                    "few-units",
+                    "warning",
+                    f"The slope of '{t.term}' rests on only {n_units} {u.unit} units "
+                    f"({n_units - 2} degrees of freedom after the intercept and the slope): the "
+                    "corrected test has little power.",
+                    "Read a non-significant corrected result as 'not shown', not as 'no effect'.",
+                    tuple(u.columns),
+                )
             continue
         least = min(t.units_per_level.values())
         if 1 < least < FEW_UNITS:
@@ -636,6 +680,8 @@ CROSS_CHECK_MIN_UNITS = {
 def _calibrated(name: str, t: TermEvidence, kind: str) -> bool:
     """Whether a cross-check is calibrated with this term's units (per the study)."""
     fewest = min(t.units_per_level.values()) if t.units_per_level else 0
+    if t.numeric:  # a slope: about half the units on either side of the mean value
+        fewest = sum(t.units_per_level.values()) // 2
     need = CROSS_CHECK_MIN_UNITS[name][0 if kind == "continuous" else 1]
     return fewest >= need
 

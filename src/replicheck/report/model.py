@@ -360,6 +360,17 @@ class Report:
                 "random_effects": [":".join(g) for g in c.formula.random]
                 if c.formula is not None
                 else [],
+                "numbers": [
+                    {
+                        "column": r.column,
+                        "slope": r.slope,
+                        "reason": r.reason,
+                        "n_values": r.n_values,
+                        "min": r.low,
+                        "max": r.high,
+                    }
+                    for r in ev.numbers
+                ],
             },
             "verdict": {
                 "status": self.verdict.status,
