@@ -529,6 +529,7 @@ def test_spec_keys() -> None:
         "block",
         "claim",
         "covariate",
+        "family",
         "formula",
         "ignore",
         "na",

@@ -39,7 +39,7 @@ from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_b
 from replicheck.report.model import Report
 from replicheck.roles import Roles, Statement
 from replicheck.slopes import omitted_slopes
-from replicheck.stats.discrete import ResponseKind, response_kind
+from replicheck.stats.discrete import ResponseKind
 from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
 from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
 from replicheck.structure.names import name_hint
@@ -53,6 +53,7 @@ from replicheck.structure.units import (
     infer_structure,
     unit_codes,
 )
+from replicheck.trials import claimed_kind, expand_trials
 from replicheck.verdict import AlternativeEvidence, Evidence, TermEvidence, decide
 
 
@@ -71,6 +72,7 @@ def make_claim(
     formula: str | None = None,
     roles: Mapping[str, object] | None = None,
     unit_labels: str | None = None,
+    family: str | None = None,
 ) -> Claim:
     """Build the claim from options, an explicit spec, or the spec found beside the data file."""
     spec_data: Mapping[str, object] | None = None
@@ -100,6 +102,7 @@ def make_claim(
         spec_path=spec_path,
         roles=roles,
         unit_labels=unit_labels,
+        family=family,
     )
 
 
@@ -151,6 +154,8 @@ def _resolve(table: Table, claim: Claim) -> Claim:
             for col in g:
                 if col not in mapping:
                     mapping[col] = resolve_column(cols, col, "random-effect grouping")
+        if formula.trials is not None:
+            mapping[formula.trials[1]] = resolve_column(cols, formula.trials[1], "cbind() column")
         formula = rename_columns(formula, mapping)
     return replace(claim, response=response, treatments=treatments, roles=roles, formula=formula)
 
@@ -339,6 +344,7 @@ def audit(
     progress: Callable[[int, int], None] | None = None,
     stage: Callable[[str], None] | None = None,
     name: str | None = None,
+    family: str | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -406,6 +412,11 @@ def audit(
     sheet, find_spec:
         The sheet of an ``.xlsx`` workbook; whether to use a spec file found
         beside the data file.
+    family:
+        ``binomial`` or ``poisson`` when the claimed analysis is a logistic or
+        Poisson regression (by default the spec's; a formula response
+        ``cbind(successes, failures)`` implies binomial, and its rows are read
+        as that many yes/no trials, the file row becoming a grouping).
 
     Returns
     -------
@@ -455,6 +466,7 @@ def audit(
             formula=formula,
             roles=given,
             unit_labels=unit_labels,
+            family=family,
         )
         clock.lap("claim")
         table = read_table(
@@ -466,6 +478,9 @@ def audit(
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))
         c = _resolve(table, c)
+        source_table = table
+        if c.formula is not None and c.formula.trials is not None:
+            table = expand_trials(table, c.formula.trials)
         ignored = c.roles.columns("ignore")
         if ignored:
             table = replace(table, data=table.data.drop(columns=list(ignored)))
@@ -575,7 +590,7 @@ def audit(
             if s.kind == "block" and s.name in strata
         }
         fixed_blocks = [complete_codes(group_codes(frame, (b,))) for b in formula_blocks]
-        kind = response_kind(y)
+        kind = claimed_kind(y, c.family, c.response)
         coding = yes_no_coding(table.data[c.response])
         first_claim = reported.get(terms[0].name)
         row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
@@ -584,7 +599,18 @@ def audit(
             ":".join(g): group_codes(frame, g)
             for g in (c.formula.random if c.formula is not None else ())
         }
-        fits = refit(y, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2, claimed_random)
+        fits = refit(
+            y,
+            inputs,
+            strata,
+            blocks,
+            fixed_blocks,
+            seed,
+            kind,
+            row_chi2,
+            claimed_random,
+            c.family,
+        )
         alternatives = _refit_alternatives(
             frame, y, structure, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2
         )
@@ -667,7 +693,8 @@ def audit(
         )
         evidence = Evidence(
             claim=c,
-            n_rows_read=table.n_rows,
+            n_rows_read=source_table.n_rows,
+            trials=len(table.data) if table is not source_table else None,
             n_rows_used=len(frame),
             rows_without_unit=rows_without_unit,
             unit_columns=tuple(unit_columns) if rows_without_unit else (),
@@ -698,7 +725,7 @@ def audit(
         )
         clock.lap("report data")
         return Report(
-            table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
+            source_table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
         )
 
 

@@ -77,6 +77,7 @@ SPEC_KEYS = tuple(
         (
             "alpha",
             "claim",
+            "family",
             "formula",
             "na",
             "response",
@@ -90,6 +91,7 @@ SPEC_KEYS = tuple(
 # keys whose value may be a list (in an index cell, values separated by ';')
 LIST_KEYS = ("treatment", "claim", "na", *(f.key for f in ROLE_FIELDS))
 UNIT_LABEL_MODES = ("auto", "local", "global")
+FAMILIES = ("binomial", "poisson")  # claimed logistic and Poisson regressions
 _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
 
 
@@ -113,6 +115,8 @@ class ReportedResult:
     n_total: int | None = None
     method: str | None = None  # a rank test named in the text: "signed_rank" or "rank_sum"
     adjusted: bool = False  # the text says the analysis was adjusted for covariates (ANCOVA)
+    ratio: float | None = None  # a reported odds or rate ratio ("OR = 2.1")
+    ratio_ci: tuple[float, float] | None = None  # its 95% interval, when given
 
     def p_upper(self) -> float | None:
         """Largest p consistent with the report (no allowance for rounding of "=")."""
@@ -414,7 +418,14 @@ def parse_reported(text: str) -> ReportedResult:
     if p_relation is None and _NS.search(norm):
         p_relation = "ns"
     n_per_group, n_total = _read_n(norm, text)
-    if test is None and p_relation is None and n_per_group is None and n_total is None:
+    ratio, ratio_ci = _read_ratio(norm)
+    if (
+        test is None
+        and p_relation is None
+        and n_per_group is None
+        and n_total is None
+        and ratio is None
+    ):
         raise InputError(f"no statistic, p-value or sample size recognised in {text!r}: {_EXAMPLE}")
     method = (
         "signed_rank"
@@ -434,7 +445,35 @@ def parse_reported(text: str) -> ReportedResult:
         n_total,
         method,
         bool(_ADJUSTED.search(norm)),
+        ratio,
+        ratio_ci,
     )
+
+
+# odds and rate ratios as papers give them: "OR = 2.1, 95% CI 1.2 to 3.4",
+# "odds ratio 0.45 (0.21-0.97)", "IRR = 0.86 [0.78, 0.94]"
+_RATIO = re.compile(
+    r"(?<![\w.])(?:a?OR|IRR|RR|HR|odds[-\s]ratio|rate[-\s]ratio|risk[-\s]ratio)\s*[=:]?\s*"
+    r"(?P<r>\d+(?:\.\d+)?|\.\d+)"
+    r"(?:\s*[,;]?\s*[(\[]?\s*(?:95\s*%\s*)?(?:c\.?i\.?|confidence interval)?\s*[:=]?\s*"
+    r"(?P<lo>\d+(?:\.\d+)?|\.\d+)\s*(?:-|–|to|,)\s*(?P<hi>\d+(?:\.\d+)?|\.\d+))?",
+    re.I,
+)
+
+
+def _read_ratio(norm: str) -> tuple[float | None, tuple[float, float] | None]:
+    m = _RATIO.search(norm)
+    if m is None:
+        return None, None
+    ratio = float(m["r"])
+    if ratio <= 0:
+        return None, None
+    ci = None
+    if m["lo"] is not None and m["hi"] is not None:
+        lo, hi = float(m["lo"]), float(m["hi"])
+        if 0 < lo <= ratio <= hi:
+            ci = (lo, hi)
+    return ratio, ci
 
 
 # Rank tests named as papers name them (Wilcoxon 1945; Mann & Whitney 1947).
@@ -578,6 +617,7 @@ class Claim:
     reported_terms: tuple[tuple[str, ReportedResult], ...] = ()
     formula: ModelFormula | None = None
     unit_labels: str | None = None  # auto | local | global, from the spec
+    family: str | None = None  # binomial | poisson: a claimed logistic or Poisson regression
 
     @property
     def unit(self) -> str | None:
@@ -648,6 +688,13 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
         values = tuple(s.text for s in roles.of(role.key))
         if values:
             out[role.key] = values
+    if "family" in spec:
+        value = spec["family"]
+        if value not in FAMILIES:
+            raise InputError(
+                f"'family' in {source} must be one of {', '.join(FAMILIES)}, not {value!r}"
+            )
+        out["family"] = value
     if "unit_labels" in spec:
         value = spec["unit_labels"]
         if value not in UNIT_LABEL_MODES:
@@ -806,6 +853,7 @@ def build_claim(
     claim_texts: Sequence[str] = (),
     roles: Mapping[str, object] | None = None,
     unit_labels: str | None = None,
+    family: str | None = None,
 ) -> Claim:
     """Merge command-line values with a spec; command-line values win.
 
@@ -833,7 +881,9 @@ def build_claim(
     Stated roles (``unit`` and ``roles``, a mapping of :data:`replicheck.roles.ROLE_FIELDS`
     keys to a column or a list of columns) replace the spec's values of the same
     role; see :func:`replicheck.roles.stated_roles`. ``unit_labels`` (auto, local,
-    global) replaces the spec's.
+    global) replaces the spec's. ``family`` (binomial, poisson) replaces the
+    spec's; a formula whose response is ``cbind(successes, failures)`` implies
+    binomial.
 
     Treatments given on the command line replace the spec's list; na values
     are the union (spec first); alpha defaults to 0.05. An integer sheet from
@@ -876,6 +926,16 @@ def build_claim(
         treatments=treats,
     )
     labels = unit_labels if unit_labels is not None else cast("str | None", s.get("unit_labels"))
+    fam = family if family is not None else cast("str | None", s.get("family"))
+    if fam is not None and fam not in FAMILIES:
+        raise InputError(f"--family must be one of {', '.join(FAMILIES)}, not {fam!r}")
+    if model is not None and model.trials is not None:
+        if fam == "poisson":
+            raise InputError(
+                "a cbind(successes, failures) response is binomial: it cannot be claimed "
+                "as a Poisson regression"
+            )
+        fam = "binomial"
     if labels is not None and labels not in UNIT_LABEL_MODES:
         raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
     if isinstance(claim_texts, str):
@@ -901,4 +961,5 @@ def build_claim(
         reported_terms=per_term,
         formula=model,
         unit_labels=labels,
+        family=fam,
     )

@@ -192,6 +192,13 @@ def _role_options(command: Any) -> Any:
 )
 @click.option("--sheet", metavar="NAME", help="Sheet of an .xlsx workbook (name or 0-based index).")
 @click.option(
+    "--family",
+    type=click.Choice(["binomial", "poisson"]),
+    default=None,
+    help="The claimed analysis is a logistic (binomial: a yes/no response) or Poisson "
+    "(counts) regression; a formula response cbind(successes, failures) implies binomial.",
+)
+@click.option(
     "--unit-labels",
     type=click.Choice(["auto", "local", "global"]),
     default=None,
@@ -264,6 +271,7 @@ def check(
     alpha: float | None,
     na_codes: Sequence[str],
     sheet: str | None,
+    family: str | None,
     unit_labels: str | None,
     fmt: str,
     output: str | None,
@@ -299,6 +307,7 @@ def check(
         spec=spec,
         find_spec=not no_spec,
         unit_labels=unit_labels,
+        family=family,
         seed=seed,
         power=power,
         effect=effect,

@@ -79,6 +79,9 @@ class ModelFormula:
     factors: tuple[str, ...]
     random: tuple[tuple[str, ...], ...] = ()  # groupings with a random intercept or stratum
     categorical: tuple[str, ...] = ()  # columns written C(x): categories whatever their values
+    # a binomial response cbind(successes, failures): (successes, failures, "failures"),
+    # or cbind(successes, n - successes): (successes, n, "total")
+    trials: tuple[str, str, str] | None = None
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -223,6 +226,8 @@ def parse_formula(text: str) -> ModelFormula:
     if not isinstance(text, str) or not text.strip():
         raise InputError("the formula is empty: write it as 'response ~ treatment'")
     text = text.strip()
+    text_as_written = text
+    text, trials = _split_cbind(text)
     fixed, random = _split_random(text)
     rewritten, names, categorical = _rewrite(fixed)
     from formulaic import Formula
@@ -255,13 +260,16 @@ def parse_formula(text: str) -> ModelFormula:
     factors += [c for term in ordered for c in term if c not in factors]
     if any(response in g for g in random):
         raise _fail(text, f"the response {response!r} also appears in a random-effect term")
+    if trials is not None and trials[1] in used:
+        raise _fail(text_as_written, f"the column {trials[1]!r} of cbind() is also a term")
     return ModelFormula(
-        text,
+        text_as_written,
         response,
         ordered,
         tuple(dict.fromkeys(factors)),
         random,
         tuple(dict.fromkeys(c for c in categorical if c in used)),
+        trials,
     )
 
 
@@ -342,6 +350,39 @@ def _split_random(text: str) -> tuple[str, tuple[tuple[str, ...], ...]]:
     return f"{lhs}~{'+'.join(fixed)}", tuple(dict.fromkeys(random))
 
 
+_CBIND = re.compile(
+    rf"^\s*cbind\s*\(\s*(?P<s>{_NAME})\s*,\s*(?:(?P<n>{_NAME})\s*-\s*(?P<s2>{_NAME})"
+    rf"|(?P<f>{_NAME}))\s*\)\s*~"
+)
+
+
+def _split_cbind(text: str) -> tuple[str, tuple[str, str, str] | None]:
+    """A ``cbind(successes, failures) ~ ...`` formula as ``successes ~ ...`` and its trials."""
+    if "cbind" not in text:
+        return text, None
+    m = _CBIND.match(text)
+    if m is None:
+        raise _fail(
+            text,
+            "write a binomial response as cbind(successes, failures) or "
+            "cbind(successes, total - successes), with column names",
+        )
+
+    def col(name: str) -> str:
+        return name.strip("`")
+
+    successes = col(m["s"])
+    if m["n"] is not None:
+        if col(m["s2"]) != successes:
+            raise _fail(text, "in cbind(s, n - s) the same column must be subtracted")
+        trials = (successes, col(m["n"]), "total")
+    else:
+        trials = (successes, col(m["f"]), "failures")
+    if trials[1] == successes:
+        raise _fail(text, "cbind() needs two different columns")
+    return f"{_quoted(successes, text)} ~{text[m.end() :]}", trials
+
+
 def _response(lhs_terms: list[object], text: str) -> str:
     if len(lhs_terms) != 1:
         raise _fail(text, "give exactly one response column before '~'")
@@ -392,4 +433,7 @@ def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelForm
     terms = tuple(tuple(names.get(c, c) for c in term) for term in formula.terms)
     random = tuple(tuple(names.get(c, c) for c in g) for g in formula.random)
     categorical = tuple(names.get(c, c) for c in formula.categorical)
-    return ModelFormula(formula.text, response, terms, factors, random, categorical)
+    trials = formula.trials
+    if trials is not None:
+        trials = (response, names.get(trials[1], trials[1]), trials[2])
+    return ModelFormula(formula.text, response, terms, factors, random, categorical, trials)

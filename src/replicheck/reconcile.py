@@ -72,7 +72,15 @@ def _close(mine: float, theirs: float) -> bool:
 
 def _compared(reported: ReportedResult, a: Analysis) -> tuple[float, float] | None:
     """(computed, reported) statistics on the reported scale, or None when not comparable."""
-    if reported.statistic is None or a.statistic is None or a.test != "F":
+    if reported.statistic is None or a.statistic is None:
+        return None
+    if a.test == "chi2":  # a Wald or likelihood-ratio chi-squared; z is its root on 1 df
+        if reported.test == "chi2":
+            return a.statistic, reported.statistic
+        if reported.test == "z" and a.t_statistic is not None:
+            return abs(a.t_statistic), abs(reported.statistic)
+        return None
+    if a.test != "F":
         return None
     if reported.test == "t":
         t = _t_of(a)
@@ -82,6 +90,23 @@ def _compared(reported: ReportedResult, a: Analysis) -> tuple[float, float] | No
     return None
 
 
+def _ratio(a: Analysis) -> float | None:
+    """The odds or rate ratio of a one-coefficient logistic or Poisson term."""
+    if a.test != "chi2" or a.estimate is None or a.df is None or abs(a.df[0] - 1) > 1e-9:
+        return None
+    return math.exp(a.estimate)
+
+
+def _ratio_matches(reported: ReportedResult, a: Analysis) -> bool:
+    """Whether a reported odds or rate ratio is the term's, either way round (which level
+    is the reference differs between papers), to its printed rounding (common practice:
+    3% or 0.006)."""
+    mine, theirs = _ratio(a), reported.ratio
+    if mine is None or theirs is None:
+        return False
+    return any(abs(r - theirs) <= max(0.006, 0.03 * theirs) for r in (mine, 1 / mine))
+
+
 def reproduces(reported: ReportedResult, a: Analysis) -> bool:
     """Whether an analysis gives the reported statistic on the reported df.
 
@@ -89,8 +114,16 @@ def reproduces(reported: ReportedResult, a: Analysis) -> bool:
     printed rounded), the numerator df exactly, and the statistic within the
     tolerance of a rounded printed value.
     """
+    if reported.statistic is None and reported.ratio is not None:
+        return _ratio_matches(reported, a)
     err = _error_df(reported)
     pair = _compared(reported, a)
+    if pair is not None and a.test == "chi2" and a.df is not None:
+        if reported.test == "z":
+            return abs(a.df[0] - 1) < 1e-9 and _close(*pair)
+        if reported.df is None or abs(reported.df[0] - a.df[0]) > 0.5:
+            return False
+        return _close(*pair)
     if err is None or pair is None or a.df is None or len(a.df) < 2:
         return False
     if abs(a.df[1] - err) >= 0.5 + 1e-9:
@@ -110,6 +143,8 @@ NOT_MATCHED = ("as_claimed", "lack_of_fit")
 
 
 def _short(a: Analysis) -> str:
+    if a.name == "likelihood_ratio":
+        return "the row-level likelihood-ratio test"
     return "the row-level analysis" if a.name == "as_claimed" else f"the {a.label.split(':')[0]}"
 
 
@@ -131,6 +166,10 @@ def _shown(a: Analysis, test: str | None) -> str:
         return f"{_short(a)} ({stat} = {a.statistic:.4g}, {p_phrase(a.p_value)})"
     if a.df is None or a.statistic is None:
         return _short(a)
+    if a.test == "chi2":
+        if test == "z" and a.t_statistic is not None:
+            return f"{_short(a)} (z = {a.t_statistic:.4g}, {p_phrase(a.p_value)})"
+        return f"{_short(a)} (chi2({a.df[0]:g}) = {a.statistic:.4g}, {p_phrase(a.p_value)})"
     den = f"{a.df[1]:.4g}"
     t = _t_of(a)
     if test == "t" and t is not None:
@@ -206,7 +245,7 @@ def reconcile(
             "which allows for the blocks"
             if match.name in {"within_blocks", "signed_rank"}
             else "which counts every row as a replicate"
-            if match.name == "rank_sum"
+            if match.name in {"rank_sum", "likelihood_ratio"}
             else "which takes the units as the replicates"
             if level == "units"
             else "which allows for the design's strata"
@@ -270,18 +309,43 @@ def reconcile(
         and abs(reported.df[0] - num_df) > 0.5
     ):
         mismatches.append(f"numerator df {reported.df[0]:g} differs from {num_df} in the data")
+    if (
+        explanation is None
+        and reproduced_by == "as_claimed"
+        and (reported.test in {"chi2", "z"} or reported.ratio is not None)
+        and as_claimed.level == "rows"
+    ):
+        level = "rows"
+        what = reported.test or "ratio"
+        shown = (
+            _shown(as_claimed, reported.test)
+            if reported.test
+            else f"the row-level analysis (ratio {_ratio(as_claimed) or 0:.4g})"
+        )
+        explanation = (
+            f"the reported {what} is reproduced by {shown}: every row was treated as a replicate"
+        )
     checked = match is not None or level in {"rows", "unknown"}
     if reported.statistic is not None and reference.statistic is not None and checked:
         mine = reference.statistic
         theirs = reported.statistic
         if reported.test == "t" and _t_of(reference) is not None:
             mine, theirs = _t_of(reference) or 0.0, abs(theirs)
+        elif reported.test in {"chi2", "z"} and _compared(reported, reference) is not None:
+            mine, theirs = _compared(reported, reference) or (0.0, 0.0)
         if not _close(mine, theirs):
             tried = [_shown(a, reported.test) for a in others if a.statistic is not None]
             mismatches.append(
                 f"reported {reported.test} = {reported.statistic:g}, but the data give "
                 f"{mine:.3g} for the row-level analysis"
                 + (f" (also tried: {'; '.join(tried)})" if tried else "")
+            )
+    if reported.ratio is not None and checked:
+        mine_ratio = _ratio(reference)
+        if mine_ratio is not None and not _ratio_matches(reported, reference):
+            mismatches.append(
+                f"reported ratio {reported.ratio:g}, but the data give {mine_ratio:.3g} "
+                f"(or {1 / mine_ratio:.3g} the other way round)"
             )
     if (
         reported.p_value is not None

@@ -52,6 +52,7 @@ from replicheck.stats.classic import (
     two_sample_t,
 )
 from replicheck.stats.discrete import ResponseKind, gee_test
+from replicheck.stats.glm import glm_term_tests
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.nested import fit_nested_reml, summarise
 from replicheck.stats.randomisation import (
@@ -163,7 +164,9 @@ LABELS = {
     "gee": "GEE: exchangeable correlation within units, bias-reduced covariance",
     "within_blocks": "analysis within blocks: every row a replicate, blocks as fixed effects",
     "lack_of_fit": "lack of fit: unit means of each value against the straight line",
+    "likelihood_ratio": "as claimed, likelihood-ratio test: every row a replicate",
 }
+FAMILY_NAMES = {"binomial": "logistic regression", "poisson": "Poisson regression"}
 
 BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
 # Monte Carlo cross-checks (randomisation, wild bootstrap) cost draws x units. Beyond a
@@ -196,6 +199,14 @@ FEW_DISCRETE_UNITS = (
     "with a yes/no or count response and fewer than 3 units in a level, no test on the "
     "units holds its error rate (docs/calibration.md): the verdict gives no corrected p-value"
 )
+
+
+def _too_few_discrete(t: TermInput) -> bool:
+    """Too few units for a calibrated yes/no or count test: fewer than 3 in a level, or
+    for a number's slope fewer than 6 in all (about 3 on either side of its mean)."""
+    if t.numeric:
+        return t.unit is not None and int(t.unit.max()) + 1 < 2 * MIN_DISCRETE_UNITS
+    return _fewest_units(t) < MIN_DISCRETE_UNITS
 
 
 def _fewest_units(t: TermInput) -> int:
@@ -786,6 +797,74 @@ def _claimed_mixed(
     return out
 
 
+def _claimed_glm(
+    y: np.ndarray,
+    X: np.ndarray,
+    index: Mapping[str, list[int]],
+    terms: Sequence[TermInput],
+    family: str,
+) -> tuple[list[Analysis], dict[str, Analysis]]:
+    """The claimed logistic or Poisson regression: each term's Wald chi-squared (with its
+    z for one coefficient) and, apart, its likelihood-ratio chi-squared."""
+    what = FAMILY_NAMES[family]
+    label = f"as claimed: {what}, every row a replicate (Wald test)"
+    n = int(y.size)
+    try:
+        tests = glm_term_tests(y, X, index, family)
+    except DesignError as err:
+        why = f"the claimed {what} could not be fitted: {err}"
+        return [
+            Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
+            for t in terms
+        ], {}
+    claimed: list[Analysis] = []
+    ratio: dict[str, Analysis] = {}
+    kind = "odds" if family == "binomial" else "rate"
+    for t in terms:
+        g = tests.get(t.term)
+        if g is None:
+            why = "aliased with other terms of the claimed model: not estimable there"
+            claimed.append(
+                Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
+            )
+            continue
+        notes: tuple[str, ...] = ()
+        if g.ratio_ci is not None and g.coefficient is not None:
+            notes = (
+                f"{kind} ratio {np.exp(g.coefficient):.4g} (95% Wald interval "
+                f"{g.ratio_ci[0]:.4g} to {g.ratio_ci[1]:.4g})",
+            )
+        claimed.append(
+            Analysis(
+                "as_claimed",
+                label,
+                t.term,
+                "rows",
+                n,
+                g.wald_chi2,
+                (float(g.df),),
+                g.wald_p,
+                t_statistic=g.z,
+                estimate=g.coefficient,
+                notes=notes,
+                test="chi2",
+            )
+        )
+        name = "likelihood_ratio"
+        ratio[t.term] = Analysis(
+            name,
+            f"as claimed: {what}, every row a replicate (likelihood-ratio test)",
+            t.term,
+            "rows",
+            n,
+            g.lr_chi2,
+            (float(g.df),),
+            g.lr_p,
+            test="chi2",
+        )
+    return claimed, ratio
+
+
 def known_groupings(
     random: Mapping[str, np.ndarray],
 ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
@@ -970,6 +1049,7 @@ def refit(
     kind: ResponseKind = "continuous",
     row_chi2: bool | None = None,
     claimed_random: Mapping[str, np.ndarray] | None = None,
+    family: str | None = None,
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -989,7 +1069,10 @@ def refit(
     on a yes/no response Pearson's chi-squared (default: for binary responses).
     ``claimed_random`` are the groupings the claimed model holds as random
     intercepts: the analysis as claimed is then that mixed model (REML,
-    Satterthwaite df), fitted as claimed whatever the units are.
+    Satterthwaite df), fitted as claimed whatever the units are. ``family``
+    (binomial or poisson) makes the analysis as claimed a logistic or Poisson
+    regression of the rows (Wald tests; the likelihood-ratio test beside it);
+    a claimed mixed version is judged by its random terms, not fitted.
     """
     n = int(y.size)
     single = len(terms) == 1
@@ -1008,7 +1091,25 @@ def refit(
         claimed = [row or _plain_test("as_claimed", t0.term, "rows", y, t0.codes)]
     else:
         claimed = _ols_term_tests(y, X, index, terms)
-    if claimed_random:
+    ratio_tests: dict[str, Analysis] = {}
+    if family is not None:
+        # main effects alone: treatment coding, so that a two-level term's coefficient is
+        # the log odds (or rate) ratio of its second level to its first, as printed
+        x_glm, index_glm, _ = (
+            design_matrix(terms, "treatment")
+            if all(len(t.factors) == 1 for t in terms)
+            else (X, index, names)
+        )
+        claimed, ratio_tests = _claimed_glm(
+            y, with_blocks(x_glm, fixed_blocks), index_glm, terms, family
+        )
+        if claimed_random:
+            why = (
+                f"the claimed mixed {FAMILY_NAMES[family]} is not fitted here: its "
+                "row-level fit is shown, and where its random effects sit is judged"
+            )
+            claimed = [replace(a, notes=(*a.notes, why)) for a in claimed]
+    elif claimed_random:
         x_claimed = with_blocks(X, fixed_blocks)
         claimed = _claimed_mixed(y, x_claimed, index, terms, claimed_random, claimed, single)
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
@@ -1023,7 +1124,7 @@ def refit(
     table = _strata_table(y, X, index, terms, random)
     out: list[TermRefit] = []
     for t, row_test in zip(terms, claimed, strict=True):
-        analyses = [row_test]
+        analyses = [row_test, *([ratio_tests[t.term]] if t.term in ratio_tests else [])]
         if t.confounded:
             name = "no_test"
             analyses.append(
@@ -1102,7 +1203,7 @@ def refit(
         if exact is not None:
             analyses.append(exact)
             corrected = "strata_anova"
-        if has_unit and kind != "continuous" and _fewest_units(t) < MIN_DISCRETE_UNITS:
+        if has_unit and kind != "continuous" and _too_few_discrete(t):
             corrected = None  # no test on so few units holds its error rate (calibration study)
             analyses = [
                 replace(a, notes=(*a.notes, FEW_DISCRETE_UNITS)) if a.name == "unit_means" else a

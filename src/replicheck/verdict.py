@@ -20,6 +20,7 @@ from replicheck.slopes import SlopeCheck
 from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.numbers import NumberReading
 from replicheck.structure.units import Alternative, Structure, UnitChoice
+from replicheck.trials import FILE_ROW
 
 SEVERITIES = ("error", "warning", "note")
 STATUSES = ("ok", "pseudoreplicated", "confounded", "unclear")
@@ -103,6 +104,7 @@ class Evidence:
     rows_without_unit: int = 0  # rows left out because their experimental unit is not recorded
     unit_columns: tuple[str, ...] = ()  # the unit columns with those missing values
     numbers: tuple[NumberReading, ...] = ()  # how each numeric column of a formula was read
+    trials: int | None = None  # a cbind() response: the yes/no trials the file rows hold
 
 
 @dataclass(frozen=True)
@@ -539,6 +541,26 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
         )
 
 
+@rule("rows-read-as-trials", "a cbind() response: each file row read as its yes/no trials")
+def _trials(ev: Evidence) -> Iterator[Finding]:
+    f = ev.claim.formula
+    if ev.trials is None or f is None or f.trials is None:
+        return
+    successes, other, kind = f.trials
+    failures = f"'{other}' - '{successes}'" if kind == "total" else f"'{other}'"
+    yield Finding(
+        "rows-read-as-trials",
+        "note",
+        f"The response cbind() gives each file row's successes ('{successes}') and failures "
+        f"({failures}): the {ev.n_rows_read} rows were read as {ev.trials} yes/no trials, and "
+        f"the column '{FILE_ROW}' groups the trials of each row, so that a row can be the "
+        "experimental unit of what was applied to it.",
+        "Nothing to do if each row is one herd, pot or plate observed once; the row-level "
+        "(as claimed) fit is the binomial regression of the rows.",
+        (successes, other),
+    )
+
+
 @rule("numbers-in-formula", "how each numeric column of a claimed formula was read")
 def _numbers(ev: Evidence) -> Iterator[Finding]:
     slopes = [r for r in ev.numbers if r.slope]
@@ -723,7 +745,7 @@ def _disagree(ev: Evidence) -> Iterator[Finding]:
 @rule("unit-overdispersion", "yes/no or count outcomes vary between units more than chance allows")
 def _overdispersion(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
-        od = None if t.clustering is None else t.clustering.overdispersion
+        od = None if t.clustering is None or t.numeric else t.clustering.overdispersion
         if od is None or od.p_value >= ev.claim.alpha:
             continue
         what = "proportions" if od.family == "binomial" else "counts"

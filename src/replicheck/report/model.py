@@ -251,6 +251,8 @@ class Report:
                 "p_relation": r.p_relation,
                 "n_per_group": r.n_per_group,
                 "n_total": r.n_total,
+                "ratio": r.ratio,
+                "ratio_ci": list(r.ratio_ci) if r.ratio_ci is not None else None,
             }
         units = [
             {
@@ -360,6 +362,7 @@ class Report:
                 "random_effects": [":".join(g) for g in c.formula.random]
                 if c.formula is not None
                 else [],
+                "family": c.family,
                 "numbers": [
                     {
                         "column": r.column,
