@@ -605,7 +605,7 @@ def test_build_claim_formula_with_agreeing_columns() -> None:
         ({"formula": "y ~ a*b", "response": "z"}, "response 'z' on the command line differs"),
         ({"formula": "y ~ a*b", "treatments": ["a"]}, "treatments a on the command line differ"),
         ({"formula": "y ~ a", "treatments": ["a", "c"]}, "differ"),
-        ({"formula": "y ~ a + (a|tank)"}, "random slopes"),
+        ({"formula": "y ~ a + (log(a)|tank)"}, "in a random term"),
         ({"formula": ""}, "'formula'.*non-empty string"),
         ({"formula": "y ~ a", "claim_texts": ["b: F(1, 8) = 3.1"]}, "'b' is not in the model"),
         (

@@ -33,6 +33,7 @@ from replicheck.formula import rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
 from replicheck.partitions import same_partition, units_per_level
+from replicheck.random_terms import judged_groupings, slope_terms
 from replicheck.ranks import rank_tests
 from replicheck.reconcile import Level, claimed_model_level, reconcile
 from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
@@ -130,7 +131,8 @@ def _resolve(table: Table, claim: Claim) -> Claim:
     statements = []
     for st in claim.roles.statements:
         columns = _resolve_statement(cols, st.text, st.columns, st.role)
-        if response in columns or (len(columns) == 1 and columns[0] in treatments):
+        in_model = len(columns) == 1 and columns[0] in treatments and st.role != "covariate"
+        if response in columns or in_model:
             raise InputError(
                 f"'{st.text}' cannot be a {st.role}: it is the response or a treatment column"
             )
@@ -156,6 +158,10 @@ def _resolve(table: Table, claim: Claim) -> Claim:
                     mapping[col] = resolve_column(cols, col, "random-effect grouping")
         if formula.trials is not None:
             mapping[formula.trials[1]] = resolve_column(cols, formula.trials[1], "cbind() column")
+        for s in formula.slopes:
+            for col in (*s.grouping, *s.effects):
+                if col not in mapping:
+                    mapping[col] = resolve_column(cols, col, "random-effect column")
         formula = rename_columns(formula, mapping)
     return replace(claim, response=response, treatments=treatments, roles=roles, formula=formula)
 
@@ -514,6 +520,7 @@ def audit(
                     for k, r in _reported_by_term(c, terms).items()
                     if r.df and (r.test == "F" or r.test is None)
                 },
+                {col for s in c.formula.slopes for col in s.effects},
             )
         slopes_on = {r.column for r in numbers if r.slope}
         categorical = [f for f in c.treatments if f not in slopes_on]
@@ -599,6 +606,14 @@ def audit(
             ":".join(g): group_codes(frame, g)
             for g in (c.formula.random if c.formula is not None else ())
         }
+        claimed_slopes = (
+            slope_terms(frame, c.formula, slopes_on, c.treatments) if c.formula is not None else []
+        )
+        judged = (
+            judged_groupings(frame, c.formula.slopes, claimed_random)
+            if c.formula is not None
+            else claimed_random
+        )
         fits = refit(
             y,
             inputs,
@@ -610,6 +625,7 @@ def audit(
             row_chi2,
             claimed_random,
             c.family,
+            claimed_slopes,
         )
         alternatives = _refit_alternatives(
             frame, y, structure, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2
@@ -622,7 +638,7 @@ def audit(
         n_params = int(np.linalg.matrix_rank(X))
         evidence_terms: list[TermEvidence] = []
         in_blocks = within_block_tests(y, inputs, blocks) if reported else {}
-        slopes = omitted_slopes(y, inputs, claimed_random, fixed_blocks) if claimed_random else {}
+        slopes = omitted_slopes(y, inputs, judged, fixed_blocks) if judged else {}
         for i, ti in enumerate(inputs):
             tr = fits.term(ti.term)
             clustering = None
@@ -665,8 +681,8 @@ def audit(
                         *(rank_tests(y, ti, blocks) if reported[ti.term].method else []),
                     ],
                 )
-            if claimed_random:
-                completed = {k: complete_codes(v) for k, v in claimed_random.items()}
+            if judged:
+                completed = {k: complete_codes(v) for k, v in judged.items()}
                 rec = claimed_model_level(ti, completed, rec, tr.get("as_claimed"), c.alpha)
             evidence_terms.append(
                 TermEvidence(

@@ -23,7 +23,10 @@ mixed-model software shares, and the ``Error()`` strata of classical ANOVA):
   ``a`` x ``b`` combination; ``(1|a/b)`` = ``(1|a) + (1|a:b)``;
 * ``Error(a/b)``: the error strata ``a`` and ``a:b`` (``aov``'s form).
 
-Random slopes (``(x|g)``, ``(1 + x|g)``) are refused for now with a message.
+* ``(x|g)`` = ``(1 + x|g)``: a random intercept and slope of ``x`` for each
+  level of ``g``, correlated; ``(0 + x|g)`` the slope alone; ``(x||g)`` the
+  intercept and slope independent (``ModelFormula.slopes``).
+
 The random terms are the claim's, judged against the experimental units the
 data show; they are never taken as the design (a random effect for the fish
 does not make the fish the unit of a feed given to tanks).
@@ -63,6 +66,22 @@ _ANSI = re.compile(r"\x1b\[[0-9;]*m")
 
 
 @dataclass(frozen=True)
+class RandomSlope:
+    """A random term with slopes: ``(1 + x|g)``, ``(0 + x|g)``, ``(x||g)``."""
+
+    grouping: tuple[str, ...]
+    effects: tuple[str, ...]  # columns with a random slope
+    intercept: bool  # a random intercept too
+    diagonal: bool  # written ||: independent effects
+
+    @property
+    def text(self) -> str:
+        parts = ["1" if self.intercept else "0", *self.effects]
+        bar = "||" if self.diagonal else "|"
+        return f"({' + '.join(parts)}{bar}{':'.join(self.grouping)})"
+
+
+@dataclass(frozen=True)
 class ModelFormula:
     """A parsed model formula.
 
@@ -82,6 +101,7 @@ class ModelFormula:
     # a binomial response cbind(successes, failures): (successes, failures, "failures"),
     # or cbind(successes, n - successes): (successes, n, "total")
     trials: tuple[str, str, str] | None = None
+    slopes: tuple[RandomSlope, ...] = ()  # random terms with slopes: (x|g), (0 + x||g), ...
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -228,7 +248,7 @@ def parse_formula(text: str) -> ModelFormula:
     text = text.strip()
     text_as_written = text
     text, trials = _split_cbind(text)
-    fixed, random = _split_random(text)
+    fixed, random, slopes = _split_random(text)
     rewritten, names, categorical = _rewrite(fixed)
     from formulaic import Formula
 
@@ -258,7 +278,9 @@ def parse_formula(text: str) -> ModelFormula:
     used = {c for term in ordered for c in term}
     factors = [n for n in dict.fromkeys(names) if n in used]
     factors += [c for term in ordered for c in term if c not in factors]
-    if any(response in g for g in random):
+    if any(response in g for g in random) or any(
+        response in (*s.grouping, *s.effects) for s in slopes
+    ):
         raise _fail(text, f"the response {response!r} also appears in a random-effect term")
     if trials is not None and trials[1] in used:
         raise _fail(text_as_written, f"the column {trials[1]!r} of cbind() is also a term")
@@ -270,6 +292,7 @@ def parse_formula(text: str) -> ModelFormula:
         random,
         tuple(dict.fromkeys(c for c in categorical if c in used)),
         trials,
+        slopes,
     )
 
 
@@ -308,15 +331,40 @@ def _groupings(expr: str, text: str) -> list[tuple[str, ...]]:
     return out
 
 
-def _split_random(text: str) -> tuple[str, tuple[tuple[str, ...], ...]]:
-    """The formula without its random-effect terms, and their groupings in order."""
+def _effects(expr: str, text: str) -> tuple[bool, tuple[str, ...]]:
+    """The intercept and the slope columns of a random term's left of ``|``."""
+    intercept = True
+    names: list[str] = []
+    for raw in re.split(r"\+", expr):
+        part = raw.strip()
+        if part in ("1", ""):
+            continue
+        if part in ("0", "-1"):
+            intercept = False
+            continue
+        if not re.fullmatch(_NAME, part):
+            raise _fail(
+                text,
+                f"cannot read {part!r} in a random term: give 1, 0 and column names, "
+                "e.g. (1 + dose|tank)",
+            )
+        names.append(part.strip("`"))
+    return intercept, tuple(dict.fromkeys(names))
+
+
+def _split_random(
+    text: str,
+) -> tuple[str, tuple[tuple[str, ...], ...], tuple[RandomSlope, ...]]:
+    """The formula without its random-effect terms, their intercept groupings in order,
+    and the random terms with slopes."""
     if "|" not in text and "Error" not in text:
-        return text, ()
+        return text, (), ()
     lhs, sep, rhs = text.partition("~")
     if not sep:
-        return text, ()
+        return text, (), ()
     fixed: list[str] = []
     random: list[tuple[str, ...]] = []
+    slopes: list[RandomSlope] = []
     for piece in _pieces(rhs):
         part = piece.strip()
         while part.startswith("((") and part.endswith("))") and _pieces(part[1:-1]) == [part[1:-1]]:
@@ -324,15 +372,16 @@ def _split_random(text: str) -> tuple[str, tuple[tuple[str, ...], ...]]:
         bar = re.fullmatch(r"\((.*?)(\|\|?)(.*)\)", part, flags=re.S)
         err = re.fullmatch(r"Error\s*\((.*)\)", part, flags=re.S)
         if bar is not None and "|" not in bar.group(3):
-            effects = re.sub(r"\s+", "", bar.group(1))
-            if effects != "1":
-                raise _fail(
-                    text,
-                    f"random slopes such as {part} are not fitted yet: give random "
-                    "intercepts, (1|g), and (1|g:x) for the g-by-x variation of a "
-                    "categorical x",
-                )
-            random += _groupings(bar.group(3), text)
+            intercept, names = _effects(bar.group(1), text)
+            if not names:
+                if not intercept:
+                    raise _fail(text, f"{part} has neither an intercept nor a slope")
+                random += _groupings(bar.group(3), text)
+            else:
+                for g in _groupings(bar.group(3), text):
+                    if any(n in g for n in names):
+                        raise _fail(text, f"in {part} a column is both a slope and the grouping")
+                    slopes.append(RandomSlope(g, names, intercept, bar.group(2) == "||"))
         elif err is not None:
             random += _groupings(err.group(1), text)
         elif "|" in part:
@@ -347,7 +396,11 @@ def _split_random(text: str) -> tuple[str, tuple[tuple[str, ...], ...]]:
             text,
             "no fixed terms on the right of '~': name the treatments, e.g. 'y ~ feed + (1|tank)'",
         )
-    return f"{lhs}~{'+'.join(fixed)}", tuple(dict.fromkeys(random))
+    return (
+        f"{lhs}~{'+'.join(fixed)}",
+        tuple(dict.fromkeys(random)),
+        tuple(dict.fromkeys(slopes)),
+    )
 
 
 _CBIND = re.compile(
@@ -436,4 +489,13 @@ def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelForm
     trials = formula.trials
     if trials is not None:
         trials = (response, names.get(trials[1], trials[1]), trials[2])
-    return ModelFormula(formula.text, response, terms, factors, random, categorical, trials)
+    slopes = tuple(
+        RandomSlope(
+            tuple(names.get(c, c) for c in s.grouping),
+            tuple(names.get(c, c) for c in s.effects),
+            s.intercept,
+            s.diagonal,
+        )
+        for s in formula.slopes
+    )
+    return ModelFormula(formula.text, response, terms, factors, random, categorical, trials, slopes)

@@ -55,6 +55,7 @@ from replicheck.stats.discrete import ResponseKind, gee_test
 from replicheck.stats.glm import glm_term_tests
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.nested import fit_nested_reml, summarise
+from replicheck.stats.random_slopes import RandomTerm, fit_random_slopes
 from replicheck.stats.randomisation import (
     DEFAULT_SEED,
     MONTE_CARLO_DRAWS,
@@ -766,15 +767,24 @@ def _claimed_mixed(
     random: Mapping[str, np.ndarray],
     row_level: Sequence[Analysis],
     two: bool,
+    slopes: Sequence[RandomTerm] = (),
 ) -> list[Analysis]:
     """The claimed mixed model's test of every term (REML, Satterthwaite df).
 
-    When it cannot be fitted, the row-level tests stand, with a note saying why.
+    ``slopes`` are the claimed random terms with slopes (fitted with the random
+    intercepts by :func:`replicheck.stats.random_slopes.fit_random_slopes`).
+    When the model cannot be fitted, the row-level tests stand, with a note
+    saying why.
     """
     names = [f"x{j}" for j in range(X.shape[1])]
-    groupings = ", ".join(random)
-    label = f"as claimed: mixed model, random intercepts for {groupings} (REML, Satterthwaite df)"
-    known, random = known_groupings(random)
+    parts = []
+    if random:
+        parts.append(f"random intercepts for {', '.join(random)}")
+    if slopes:
+        parts.append(f"random {' and '.join(s.name for s in slopes)}")
+    label = f"as claimed: mixed model, {'; '.join(parts)} (REML, Satterthwaite df)"
+    known, random = known_groupings({**random, **{s.name: s.codes for s in slopes}})
+    slopes = [RandomTerm(s.name, random.pop(s.name), s.columns[known], s.diagonal) for s in slopes]
     y, X = y[known], X[known]
     dropped = (
         [
@@ -785,7 +795,14 @@ def _claimed_mixed(
         else []
     )
     try:
-        fit, _ = fit_mixed(y, X, _distinct(random, int(y.size)) or random, names)
+        if slopes:
+            intercepts = [
+                RandomTerm(g, codes, np.ones((y.size, 1)))
+                for g, codes in _distinct(random, int(y.size)).items()
+            ]
+            fit = fit_random_slopes(y, X, [*intercepts, *slopes], names)
+        else:
+            fit, _ = fit_mixed(y, X, _distinct(random, int(y.size)) or random, names)
     except DesignError as err:
         why = f"the claimed mixed model could not be fitted ({err}); the row-level test is shown"
         return [replace(a, notes=(*a.notes, why)) for a in row_level]
@@ -793,6 +810,8 @@ def _claimed_mixed(
     for t in terms:
         a = _mixed_analysis(fit, X, index[t.term], t, None, int(y.size), two)
         notes = [f"the variance of {g} was estimated at zero" for g in random if g in fit.boundary]
+        if slopes and fit.boundary:
+            notes.append("some random-effect variance was estimated at zero (a singular fit)")
         out.append(replace(a, name="as_claimed", label=label, notes=(*a.notes, *notes, *dropped)))
     return out
 
@@ -1050,6 +1069,7 @@ def refit(
     row_chi2: bool | None = None,
     claimed_random: Mapping[str, np.ndarray] | None = None,
     family: str | None = None,
+    claimed_slopes: Sequence[RandomTerm] = (),
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -1103,15 +1123,17 @@ def refit(
         claimed, ratio_tests = _claimed_glm(
             y, with_blocks(x_glm, fixed_blocks), index_glm, terms, family
         )
-        if claimed_random:
+        if claimed_random or claimed_slopes:
             why = (
                 f"the claimed mixed {FAMILY_NAMES[family]} is not fitted here: its "
                 "row-level fit is shown, and where its random effects sit is judged"
             )
             claimed = [replace(a, notes=(*a.notes, why)) for a in claimed]
-    elif claimed_random:
+    elif claimed_random or claimed_slopes:
         x_claimed = with_blocks(X, fixed_blocks)
-        claimed = _claimed_mixed(y, x_claimed, index, terms, claimed_random, claimed, single)
+        claimed = _claimed_mixed(
+            y, x_claimed, index, terms, claimed_random or {}, claimed, single, claimed_slopes
+        )
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
     fit: MixedFit | None = None
     not_fitted = None

@@ -264,7 +264,8 @@ def stated_roles(
         for col in s.columns:
             if response is not None and col == response:
                 raise InputError(f"column {col!r} cannot be both the response and a {s.role}")
-            if col in treatments and len(s.columns) == 1:
+            # a term of the model stated as a covariate: a number with one slope
+            if col in treatments and len(s.columns) == 1 and s.role != "covariate":
                 raise InputError(
                     f"column {col!r} cannot be both a treatment and a {s.role}"
                     + (

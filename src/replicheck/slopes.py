@@ -10,6 +10,9 @@ Scheepers & Tily 2013, J. Mem. Lang. 68:255-278; Schielzeth & Forstmeier
 grouping-by-treatment variation is the random intercept of the grouping x
 treatment cells, ``(1|g) + (1|g:x)`` (the compound-symmetric form of the
 random slope, as in the classical mixed ANOVA of a within-subject factor).
+For a number (a time, a dose varied within subjects) it is the random slope
+itself, uncorrelated with the intercept, ``(1|g) + (0 + x|g)``
+(:mod:`replicheck.stats.random_slopes`).
 
 This module refits the claimed model with that random effect added, when the
 cells hold replicate rows (otherwise the variation cannot be told from the
@@ -37,6 +40,7 @@ from replicheck.refit import (
     with_blocks,
 )
 from replicheck.stats import DesignError, satterthwaite_test
+from replicheck.stats.random_slopes import RandomTerm, fit_random_slopes
 
 SLOPE_ALPHA = 0.05  # the likelihood-ratio test of the omitted variance (common practice)
 MIN_CELL_ROWS = 1.5  # mean rows per grouping x treatment cell needed to see the variation
@@ -69,7 +73,7 @@ def omitted_slopes(
 ) -> dict[str, SlopeCheck]:
     """For each main-effect term varying within a claimed random grouping, the check.
 
-    Only categorical main effects are checked, against the first claimed
+    Main effects are checked (categorical ones and numbers), against the first claimed
     grouping they vary within whose cells with the term hold replicate rows
     and which the claimed model does not already cross with the term.
     """
@@ -78,7 +82,10 @@ def omitted_slopes(
     known, random = known_groupings(random)
     if not known.all():
         y = y[known]
-        terms = [replace(t, codes=t.codes[known]) for t in terms]
+        terms = [
+            replace(t, codes=t.codes[known], values=None if t.values is None else t.values[known])
+            for t in terms
+        ]
         fixed_blocks = [b[known] for b in fixed_blocks]
     X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
     X = with_blocks(X, fixed_blocks)
@@ -96,11 +103,27 @@ def omitted_slopes(
                 continue  # the term is constant within g: no slope to vary
             cells = dense_codes(pair_codes(dense_codes(g), t.codes))
             k = int(cells.max()) + 1
-            if y.size / k < MIN_CELL_ROWS or any(same_partition(cells, r) for r in random.values()):
-                continue
+            if t.values is None and (
+                y.size / k < MIN_CELL_ROWS or any(same_partition(cells, r) for r in random.values())
+            ):
+                continue  # a number's slope is seen with one row per cell
             name = f"{gname}:{t.term}"
+            if name in random:
+                continue
             try:
-                fit, _ = fit_mixed(y, X, {**random, name: cells}, names)
+                if t.values is not None:
+                    ones = np.ones((y.size, 1))
+                    slope = RandomTerm(name, dense_codes(g), t.values.reshape(-1, 1))
+                    fit = fit_random_slopes(
+                        y,
+                        X,
+                        [*(RandomTerm(k, v, ones) for k, v in random.items()), slope],
+                        names,
+                    )
+                    variance = float(fit.components[f"{name}[0]"])
+                else:
+                    fit, _ = fit_mixed(y, X, {**random, name: cells}, names)
+                    variance = float(fit.components[name])
                 L = np.zeros((len(index[t.term]), X.shape[1]))
                 L[np.arange(len(index[t.term])), index[t.term]] = 1.0
                 test = satterthwaite_test(fit, whitened(L, X))
@@ -112,7 +135,7 @@ def omitted_slopes(
                 gname,
                 lr,
                 float(0.5 * sps.chi2.sf(lr, 1)) if lr > 0 else 1.0,
-                float(fit.components[name]),
+                variance,
                 float(fit.components["residual"]),
                 float(test.statistic),
                 (float(test.df_num), float(test.df_den)),

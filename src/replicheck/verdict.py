@@ -334,15 +334,17 @@ def _slope(ev: Evidence) -> Iterator[Finding]:
             and claimed.p_value is not None
             and (claimed.p_value < alpha) != (sc.term_p < alpha)
         )
+        added = f"(0 + {t.term}|{sc.grouping})" if t.numeric else f"(1|{sc.grouping}:{t.term})"
+        slope_kind = "slope variance" if t.numeric else "variance"
         yield Finding(
             "random-slope-omitted",
             "error" if changed else "warning",
             f"'{t.term}' varies within '{sc.grouping}', and the claimed model gives "
             f"'{sc.grouping}' a random intercept only, so '{t.term}' is tested against the "
             f"residual. The {sc.grouping} levels respond differently to '{t.term}' "
-            f"({sc.grouping}:{t.term} variance {sc.var_slope:.3g} against residual "
+            f"({sc.grouping}:{t.term} {slope_kind} {sc.var_slope:.3g} against residual "
             f"{sc.var_residual:.3g}; REML likelihood ratio {sc.lr:.3g}, {_p(sc.p_value)}). "
-            f"With that variation as a random effect, (1|{sc.grouping}:{t.term}): "
+            f"With that variation as a random effect, {added}: "
             f"F({sc.df[0]:g}, {sc.df[1]:.4g}) = {sc.statistic:.3g}, {_p(sc.term_p)}"
             + (f" (as claimed: {_p(claimed.p_value)})." if claimed is not None else "."),
             f"Ask the authors to fit the {sc.grouping}-by-{t.term} variation (a random slope, "
