@@ -150,3 +150,43 @@ def test_a_family_that_does_not_fit_the_response_is_one_line_and_exit_2(tmp_path
     assert out.stderr.count("\n") == 1
     assert "Poisson regression needs counts" in out.stderr
     assert path.read_text().count("\n") == 13  # the input is untouched
+
+
+GLMM = json.loads((ROOT / "fixtures/audit/claimed_glmm.json").read_text())
+
+
+def test_a_claimed_mixed_poisson_model_is_fitted_as_claimed() -> None:
+    # lme4's glmer (Laplace) on MASS::epil with a random intercept per patient.
+    # Estimates agree to about 1e-3; glmer's standard errors come from a plain
+    # finite-difference Hessian of a deviance computed to its iteration tolerance
+    # (its RX-based ones differ from them by 0.1 to 0.7%), so the standard error and z
+    # are compared to 1.5% (docs/method.md)
+    doc = audit(EPIL, formula="y ~ trt + base + age + (1|subject)", family="poisson").to_dict()
+    ref = GLMM["epil"]["trt"]
+    a = _analysis(doc, "trt", "as_claimed")
+    assert "mixed Poisson regression" in a["label"]
+    assert a["estimate"] == pytest.approx(ref["coefficient"], rel=1e-3)
+    se = a["estimate"] / a["t_statistic"]
+    assert se == pytest.approx(ref["se"], rel=0.015)
+    assert a["statistic"] == pytest.approx(ref["wald_chi2"], rel=0.03)
+    trt = _term(doc, "trt")
+    assert trt["status"] == "ok"  # the random intercept sits at the patients, the unit of trt
+    assert trt["reported_check"]["level"] == "units"
+
+
+def test_a_claimed_mixed_logistic_model_with_cbind() -> None:
+    doc = audit(CBPP, formula="cbind(incidence, size - incidence) ~ period + (1|herd)").to_dict()
+    ref = GLMM["cbpp"]["period"]
+    a = _analysis(doc, "period", "as_claimed")
+    assert "mixed logistic regression" in a["label"]
+    assert a["df"] == [3.0]
+    assert a["statistic"] == pytest.approx(ref["wald_chi2"], rel=0.03)
+
+
+def test_a_mixed_model_with_its_random_effect_at_the_wrong_level() -> None:
+    # a random intercept per period when progabide went to patients: the rows of each
+    # patient are still counted as replicates
+    doc = audit(EPIL, formula="y ~ trt + base + age + (1|period)", family="poisson").to_dict()
+    trt = _term(doc, "trt")
+    assert trt["status"] == "pseudoreplicated"
+    assert trt["unit"] == "subject"

@@ -315,16 +315,21 @@ def reconcile(
         and (reported.test in {"chi2", "z"} or reported.ratio is not None)
         and as_claimed.level == "rows"
     ):
-        level = "rows"
         what = reported.test or "ratio"
         shown = (
             _shown(as_claimed, reported.test)
             if reported.test
             else f"the row-level analysis (ratio {_ratio(as_claimed) or 0:.4g})"
         )
-        explanation = (
-            f"the reported {what} is reproduced by {shown}: every row was treated as a replicate"
-        )
+        if as_claimed.label.startswith("as claimed: mixed"):  # judged by its random effects
+            shown = shown.replace("the row-level analysis", "the claimed mixed model")
+            explanation = f"the reported {what} is reproduced by {shown}"
+        else:
+            level = "rows"
+            explanation = (
+                f"the reported {what} is reproduced by {shown}: every row was treated as a "
+                "replicate"
+            )
     checked = match is not None or level in {"rows", "unknown"}
     if reported.statistic is not None and reference.statistic is not None and checked:
         mine = reference.statistic

@@ -30,7 +30,7 @@ from scipy import stats
 
 from replicheck.stats.classic import DesignError
 
-__all__ = ["GlmTerm", "glm_term_tests"]
+__all__ = ["GlmTerm", "glm_start", "glm_term_tests"]
 
 
 @dataclass(frozen=True)
@@ -72,6 +72,11 @@ def _fit(y: np.ndarray, X: np.ndarray, family: str) -> Any:
             raise DesignError("the model fit did not converge") from None
         except (ValueError, np.linalg.LinAlgError) as err:
             raise DesignError(f"the model could not be fitted ({err})") from None
+
+
+def glm_start(y: np.ndarray, X: np.ndarray, family: str) -> np.ndarray:
+    """The GLM's estimates (a start for a mixed model's search)."""
+    return np.asarray(_fit(y, X, family).params, dtype=np.float64)
 
 
 def glm_term_tests(
