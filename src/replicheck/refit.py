@@ -52,7 +52,7 @@ from replicheck.stats.classic import (
     two_sample_t,
 )
 from replicheck.stats.discrete import ResponseKind, gee_test
-from replicheck.stats.glm import glm_start, glm_term_tests
+from replicheck.stats.glm import GlmTerm, glm_start, glm_term_tests
 from replicheck.stats.glmm import fit_glmm, glmm_term_tests
 from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.nested import fit_nested_reml, summarise
@@ -839,7 +839,6 @@ def _claimed_glm(
         ], {}
     claimed: list[Analysis] = []
     ratio: dict[str, Analysis] = {}
-    kind = "odds" if family == "binomial" else "rate"
     for t in terms:
         g = tests.get(t.term)
         if g is None:
@@ -848,28 +847,7 @@ def _claimed_glm(
                 Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
             )
             continue
-        notes: tuple[str, ...] = ()
-        if g.ratio_ci is not None and g.coefficient is not None:
-            notes = (
-                f"{kind} ratio {np.exp(g.coefficient):.4g} (95% Wald interval "
-                f"{g.ratio_ci[0]:.4g} to {g.ratio_ci[1]:.4g})",
-            )
-        claimed.append(
-            Analysis(
-                "as_claimed",
-                label,
-                t.term,
-                "rows",
-                n,
-                g.wald_chi2,
-                (float(g.df),),
-                g.wald_p,
-                t_statistic=g.z,
-                estimate=g.coefficient,
-                notes=notes,
-                test="chi2",
-            )
-        )
+        claimed.append(_wald_analysis(label, t, n, g, family, ()))
         name = "likelihood_ratio"
         ratio[t.term] = Analysis(
             name,
@@ -918,34 +896,35 @@ def _claimed_glmm(
             Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
             for t in terms
         ]
-    kind = "odds" if family == "binomial" else "rate"
-    out = []
-    for t in terms:
-        g = tests[t.term]
-        extra = notes
-        if g.ratio_ci is not None and g.coefficient is not None:
-            extra = (
-                *notes,
-                f"{kind} ratio {np.exp(g.coefficient):.4g} (95% Wald interval "
-                f"{g.ratio_ci[0]:.4g} to {g.ratio_ci[1]:.4g})",
-            )
-        out.append(
-            Analysis(
-                "as_claimed",
-                label,
-                t.term,
-                "rows",
-                n,
-                g.wald_chi2,
-                (float(g.df),),
-                g.wald_p,
-                t_statistic=g.z,
-                estimate=g.coefficient,
-                notes=extra,
-                test="chi2",
-            )
+    return [_wald_analysis(label, t, n, tests[t.term], family, notes) for t in terms]
+
+
+def _wald_analysis(
+    label: str, t: TermInput, n: int, g: GlmTerm, family: str, notes: tuple[str, ...]
+) -> Analysis:
+    """A claimed logistic or Poisson model's Wald test of a term, with its ratio when one
+    coefficient."""
+    if g.ratio_ci is not None and g.coefficient is not None:
+        kind = "odds" if family == "binomial" else "rate"
+        notes = (
+            *notes,
+            f"{kind} ratio {np.exp(g.coefficient):.4g} (95% Wald interval "
+            f"{g.ratio_ci[0]:.4g} to {g.ratio_ci[1]:.4g})",
         )
-    return out
+    return Analysis(
+        "as_claimed",
+        label,
+        t.term,
+        "rows",
+        n,
+        g.wald_chi2,
+        (float(g.df),),
+        g.wald_p,
+        t_statistic=g.z,
+        estimate=g.coefficient,
+        notes=notes,
+        test="chi2",
+    )
 
 
 def known_groupings(

@@ -25,7 +25,7 @@ to about 1% (fixtures/audit/claimed_glmm.R).
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -33,6 +33,7 @@ from scipy import linalg, optimize, special, stats
 
 from replicheck.stats.classic import DesignError
 from replicheck.stats.glm import GlmTerm
+from replicheck.stats.numderiv import hessian
 
 __all__ = ["GlmmFit", "fit_glmm", "glmm_term_tests"]
 
@@ -103,28 +104,6 @@ class _Laplace:
         return -2 * _loglik(self.y, eta, self.family) + float(u @ u) + log_det
 
 
-def _hessian(f: Callable[[np.ndarray], float], x: np.ndarray) -> np.ndarray:
-    """Second derivatives by four-point central differences, Richardson-extrapolated."""
-    k = x.size
-    base = 1e-3 * np.maximum(np.abs(x), 0.1)
-    table: list[np.ndarray] = []
-    for level in range(3):
-        h = base / 2**level
-        out = np.zeros((k, k))
-        for i in range(k):
-            for j in range(i, k):
-                ei = np.zeros(k)
-                ej = np.zeros(k)
-                ei[i], ej[j] = h[i], h[j]
-                num = f(x + ei + ej) - f(x + ei - ej) - f(x - ei + ej) + f(x - ei - ej)
-                out[i, j] = out[j, i] = num / (4 * h[i] * h[j])
-        table.append(out)
-    for step in range(1, len(table)):
-        factor = 4.0**step
-        table = [(factor * table[j + 1] - table[j]) / (factor - 1) for j in range(len(table) - 1)]
-    return table[0]
-
-
 def fit_glmm(
     y: np.ndarray,
     X: np.ndarray,
@@ -172,7 +151,7 @@ def fit_glmm(
         if not np.isfinite(best.fun):
             raise DesignError("the mixed model could not be fitted")
         par = np.asarray(best.x, dtype=float)
-        hess = _hessian(crit, par)
+        hess = hessian(crit, par, 1e-3)
     if not np.all(np.isfinite(hess)):
         raise DesignError("the mixed model's estimates have no finite standard errors")
     cov_beta = (2.0 * np.linalg.pinv(hess))[k:, k:]

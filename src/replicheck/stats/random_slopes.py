@@ -43,6 +43,7 @@ import numpy as np
 from scipy import linalg, optimize
 
 from replicheck.stats.classic import DesignError
+from replicheck.stats.numderiv import hessian
 from replicheck.stats.reml_search import MixedFit
 
 __all__ = ["RandomTerm", "fit_random_slopes"]
@@ -202,31 +203,6 @@ def _richardson(f: Callable[[np.ndarray], np.ndarray], x: np.ndarray, i: int) ->
     return table[0]
 
 
-def _hessian(f: Callable[[np.ndarray], float], x: np.ndarray) -> np.ndarray:
-    """Second derivatives by four-point central differences, Richardson-extrapolated
-    over three halvings of the step (1% of each parameter, at least 0.001)."""
-    k = x.size
-    base = 1e-2 * np.maximum(np.abs(x), 0.1)
-    table: list[np.ndarray] = []
-    for level in range(3):
-        h = base / 2**level
-        out = np.zeros((k, k))
-        for i in range(k):
-            for j in range(i, k):
-                ei = np.zeros(k)
-                ej = np.zeros(k)
-                ei[i], ej[j] = h[i], h[j]
-                val = (f(x + ei + ej) - f(x + ei - ej) - f(x - ei + ej) + f(x - ei - ej)) / (
-                    4 * h[i] * h[j]
-                )
-                out[i, j] = out[j, i] = val
-        table.append(out)
-    for step in range(1, len(table)):
-        factor = 4.0**step
-        table = [(factor * table[j + 1] - table[j]) / (factor - 1) for j in range(len(table) - 1)]
-    return table[0]
-
-
 def fit_random_slopes(
     y: np.ndarray, X: np.ndarray, terms: Sequence[RandomTerm], fixed_names: Sequence[str] = ()
 ) -> MixedFit:
@@ -298,7 +274,7 @@ def fit_random_slopes(
 
     x0 = varpar[active]
     k = x0.size
-    hess = _hessian(lambda v: float(deviance(v)), x0)
+    hess = hessian(lambda v: float(deviance(v)), x0, 1e-2)
     hessian_ok = bool(np.all(np.linalg.eigvalsh(hess) > 0))
     vcov = 2.0 * np.linalg.pinv(hess)
     jac = np.stack([_richardson(covbeta, x0, i) for i in range(k)])
