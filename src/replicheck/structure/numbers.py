@@ -13,9 +13,10 @@ in days or a dose of 0, 5, 10 and 20 mg was a number. The rule, in order:
 4. a reported result for the number whose numerator df is its number of
    values less one (F(3, 55) for four nitrogen rates): categories, as the
    authors analysed it;
-   a number given a random slope in the claimed formula, ``(1 + day|subject)``:
-   one slope (a random slope is written on a number; on a category with k
-   levels it would be a k x k covariance);
+   a number given a random slope in the claimed formula, ``(1 + day|subject)``,
+   or transformed in it, ``day + I(day^2)``: one slope (a random slope is
+   written on a number, on a category with k levels it would be a k x k
+   covariance; a square or a log is taken of a quantity);
 5. integers that run consecutively from 0 or 1 (1, 2, 3, 4): categories, as
    levels are numbered by people who code a factor; a note says how to state
    a slope instead;
@@ -64,6 +65,7 @@ def read_numbers(
     covariates: Collection[str] = (),
     reported_df: Mapping[str, float] | None = None,
     random_slopes: Collection[str] = (),
+    transformed: Collection[str] = (),
 ) -> tuple[NumberReading, ...]:
     """The reading of every numeric column among ``columns`` (see the module's rule).
 
@@ -96,6 +98,9 @@ def read_numbers(
         elif col in random_slopes:
             slope = True
             reason = f"{span}; the claimed model gives it a random slope, as on a number"
+        elif col in transformed:
+            slope = True
+            reason = f"{span}; the formula also transforms it (a square, a log), as a number"
         elif codes and high - low == values.size - 1:
             slope = False
             reason = (
