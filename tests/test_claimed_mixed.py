@@ -201,3 +201,13 @@ def test_a_claimed_model_with_the_variation_is_not_flagged() -> None:
     assert _term(doc, "Machine")["omitted_slope"] is None
     assert "random-slope-omitted" not in {f["rule"] for f in doc["findings"]}
     assert _term(doc, "Machine")["status"] == "ok"
+
+
+def test_a_claimed_random_effect_with_one_row_per_level_is_a_contradicted_statement() -> None:
+    # (1|pup) on RatPupWeight, one row per pup: lme4 refuses such a model (its
+    # variance is the residual's); the audit says so and keeps the row-level test
+    d = PUPS.reset_index().rename(columns={"index": "pup"})
+    doc = audit(d, formula="weight ~ Treatment + (1|pup)").to_dict()
+    rules = {f["rule"] for f in doc["findings"]}
+    assert "claimed-grouping-unreplicated" in rules
+    assert _term(doc, "Treatment")["status"] == "pseudoreplicated"  # the litter is the unit

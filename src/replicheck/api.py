@@ -748,6 +748,10 @@ def audit(
             response_coding=coding,
             hidden=hidden_scan,
             numbers=numbers,
+            claimed_groupings=tuple(
+                (name, int(np.unique(codes[codes >= 0]).size), int((codes >= 0).sum()))
+                for name, codes in claimed_random.items()
+            ),
         )
         clock.lap("clustering")
         verdict = decide(evidence)

@@ -105,6 +105,8 @@ class Evidence:
     unit_columns: tuple[str, ...] = ()  # the unit columns with those missing values
     numbers: tuple[NumberReading, ...] = ()  # how each numeric column of a formula was read
     trials: int | None = None  # a cbind() response: the yes/no trials the file rows hold
+    # the claimed formula's random-intercept groupings: (name, levels, rows with a value)
+    claimed_groupings: tuple[tuple[str, int, int], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -540,6 +542,23 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
             f"as a treatment to test.",
             f"If '{b}' is a treatment of interest, give it with --treatment instead.",
             (b,),
+        )
+
+
+@rule("claimed-grouping-unreplicated", "a claimed random effect has one row per level")
+def _claimed_singletons(ev: Evidence) -> Iterator[Finding]:
+    for name, levels, rows in ev.claimed_groupings:
+        if rows == 0 or levels < rows:
+            continue
+        yield Finding(
+            "claimed-grouping-unreplicated",
+            "warning",
+            f"The claimed model's random effect '{name}' has a level for every one of its "
+            f"{rows} rows: its variance cannot be told apart from the residual, so the data "
+            "cannot be the ones the model was fitted to as stated, or the grouping is "
+            "recorded under another name.",
+            f"Check what '{name}' records; the claimed model's fit here leaves it out.",
+            tuple(name.split(":")),
         )
 
 
