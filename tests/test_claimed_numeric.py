@@ -260,3 +260,19 @@ def test_transformed_numbers_in_a_formula() -> None:
 def test_a_transform_undefined_for_the_data_is_one_clear_error() -> None:
     with pytest.raises(InputError, match=r"log\(nitro\) is undefined for 18 rows"):
         audit(OATS, formula="yield ~ log(nitro) + Variety")
+
+
+def test_a_polynomial_term_is_one_term_with_its_degree_of_df() -> None:
+    # poly(nitro, 2) in the Oats split plot: the row-level F(2, 67) is statsmodels' F
+    # for nitro + nitro^2 beside Variety; the rates vary within whole plots, so the
+    # term is tested in the sub-plot stratum
+    doc = audit(OATS, formula="yield ~ poly(nitro, 2) + Variety").to_dict()
+    full = smf.ols('Q("yield") ~ nitro + I(nitro**2) + C(Variety)', OATS).fit()
+    reduced = smf.ols('Q("yield") ~ C(Variety)', OATS).fit()
+    table = anova_lm(reduced, full)
+    a = _analysis(doc, "poly(nitro, 2)", "as_claimed")
+    assert a["df"] == [2.0, 67.0]
+    assert a["statistic"] == pytest.approx(table["F"].iloc[1], rel=1e-8)
+    term = _term(doc, "poly(nitro, 2)")
+    assert term["status"] == "ok"
+    assert term["df"] == [2.0, 52.0]  # 54 sub-plot df less the two coefficients

@@ -309,8 +309,14 @@ def _levels(
     intercept and the slope); a factor removes one per group.
     """
     k = len(term.labels)
-    used = 2 if term.numeric else k
-    groups = "an intercept and a slope" if term.numeric else f"{k} groups"
+    used = term.degree + 1 if term.numeric else k
+    groups = (
+        "an intercept and a slope"
+        if term.numeric and term.degree == 1
+        else f"an intercept and {term.degree} polynomial coefficients"
+        if term.numeric
+        else f"{k} groups"
+    )
     rows_removed = groups if single else f"{n_params} model parameters"
     levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(term.codes)))]
     if term.unit is not None and choice.unit is not None:
@@ -545,7 +551,7 @@ def audit(
                     if r.df and (r.test == "F" or r.test is None)
                 },
                 {col for s in c.formula.slopes for col in s.effects},
-                {t.column for t in c.formula.transforms},
+                {x for t in c.formula.transforms for x in (t.column, t.name)},
             )
         slopes_on = {r.column for r in numbers if r.slope}
         categorical = [f for f in c.treatments if f not in slopes_on]
@@ -608,8 +614,18 @@ def audit(
                 unit_codes(frame, choice) if choice.unit is not None and not confounded else None
             )
             values = frame[t.name].to_numpy(dtype=float) if t.name in slopes_on else None
+            degree = next(
+                (
+                    int(tr.power)
+                    for tr in (c.formula.transforms if c.formula is not None else ())
+                    if tr.name == t.name and tr.function == "poly"
+                ),
+                1,
+            )
             inputs.append(
-                TermInput(t.name, t.factors, codes, labels, units, choice.unit, confounded, values)
+                TermInput(
+                    t.name, t.factors, codes, labels, units, choice.unit, confounded, values, degree
+                )
             )
         strata = {
             s.name: complete_codes(group_codes(frame, s.columns))

@@ -34,9 +34,10 @@ does not make the fish the unit of a feed given to tanks).
 Parsing and term expansion are done by the formulaic library; this module
 takes out the random terms, unwraps ``C()``/``Q()`` so that removal (``-``)
 and duplicates work on column names, and refuses what replicheck cannot
-use: other expressions (``poly(x, 2)``, ``log(x + 1)``), ``%in%`` and ``.``.
+use: other expressions (``log(x + 1)``, ``I(x * 2)``), ``%in%`` and ``.``.
 Terms that transform one number, ``log(x)``, ``log10(x)``, ``log2(x)``,
-``log1p(x)``, ``sqrt(x)``, ``exp(x)``, ``scale(x)`` and ``I(x^k)``, are kept as
+``log1p(x)``, ``sqrt(x)``, ``exp(x)``, ``scale(x)``, ``I(x^k)`` and
+``poly(x, k)`` (one term with k df), are kept as
 terms named by their normalised text (``ModelFormula.transforms``); the audit
 adds their values as columns.
 """
@@ -71,21 +72,23 @@ _RANDOM = "give Error() as a term of its own, e.g. 'y ~ feed + Error(tank)'"
 _ANSI = re.compile(r"\x1b\[[0-9;]*m")
 
 
-TRANSFORMS = ("log", "log10", "log2", "log1p", "sqrt", "exp", "scale", "I")
+TRANSFORMS = ("log", "log10", "log2", "log1p", "sqrt", "exp", "scale", "I", "poly")
 
 
 @dataclass(frozen=True)
 class Transform:
     """A term that transforms one numeric column: ``log(dose)``, ``I(day^2)``."""
 
-    name: str  # the term as written, normalised: "log(dose)", "I(day^2)"
+    name: str  # the term as written, normalised: "log(dose)", "I(day^2)", "poly(day, 2)"
     function: str  # one of TRANSFORMS
     column: str
-    power: float = 1.0  # I(x^k)
+    power: float = 1.0  # I(x^k); the degree of poly(x, k)
 
     def apply(self, x: np.ndarray) -> np.ndarray:
         """The transformed values (non-finite where the function is undefined)."""
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if self.function == "poly":  # the number itself; its powers enter the design
+                return np.asarray(x, dtype=float)
             if self.function == "I":
                 return np.asarray(np.power(x, self.power), dtype=float)
             if self.function == "scale":
@@ -107,13 +110,26 @@ _TRANSFORM = re.compile(
 )
 
 
+_POLY = re.compile(
+    r"^\s*poly\s*\(\s*(?P<col>[A-Za-z_.][A-Za-z0-9_.]*)\s*,\s*(?:degree\s*=\s*)?(?P<k>\d+)"
+    r"\s*\)\s*$"
+)
+
+
 def transform_of(code: str) -> Transform | None:
     """The transform a term such as ``log(dose)`` or ``I(day^2)`` writes, else None.
 
-    A power is read only inside ``I()``; every other function takes a bare column.
+    A power is read only inside ``I()``; ``poly(x, k)`` takes a degree from 1 to 5;
+    every other function takes a bare column.
     """
+    poly = _POLY.match(code)
+    if poly is not None:
+        degree = int(poly["k"])
+        if not 1 <= degree <= 5:
+            return None
+        return Transform(f"poly({poly['col']}, {degree})", "poly", poly["col"], float(degree))
     m = _TRANSFORM.match(code)
-    if m is None:
+    if m is None or m["f"] == "poly":
         return None
     func, col, k = m["f"], m["col"], m["k"]
     if (func == "I") != (k is not None):

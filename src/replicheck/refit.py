@@ -102,11 +102,22 @@ class TermInput:
     unit_name: str | None
     confounded: bool
     values: np.ndarray | None = None  # a number entering with one slope (a covariate or dose)
+    degree: int = 1  # poly(x, k): a polynomial of degree k in the number
 
     @property
     def numeric(self) -> bool:
         """Whether the term is one slope on a number rather than a set of levels."""
         return self.values is not None
+
+    def number_columns(self) -> np.ndarray:
+        """The term's columns: the number itself, or for a polynomial the centred powers
+        1..k (the same fit and tests as orthogonal polynomials)."""
+        assert self.values is not None
+        x = self.values.astype(float)
+        if self.degree == 1:
+            return x.reshape(-1, 1)
+        c = x - x.mean()
+        return np.column_stack([c**k for k in range(1, self.degree + 1)])
 
 
 @dataclass(frozen=True)
@@ -280,11 +291,7 @@ def unit_covariates(t: TermInput, terms: Sequence[TermInput]) -> dict[str, np.nd
     for o in terms:
         if o is t or len(o.factors) != 1 or (o.values is None and t.values is None):
             continue
-        cols = (
-            o.values.reshape(-1, 1)
-            if o.values is not None
-            else _coded(o.codes, len(o.labels), "sum")
-        )
+        cols = o.number_columns() if o.values is not None else _coded(o.codes, len(o.labels), "sum")
         if cols.shape[1] and all(np.allclose(_per_unit(t.unit, c)[t.unit], c) for c in cols.T):
             out[o.term] = cols
     return out
@@ -392,7 +399,7 @@ def _unit_means(
     assert t.unit is not None
     reduced = _fitted_first(t.unit, unit_blocks, covariates)
     if t.values is not None:
-        tested = _per_unit(t.unit, t.values).reshape(-1, 1)
+        tested = np.column_stack([_per_unit(t.unit, c) for c in t.number_columns().T])
     else:
         tested = _coded(unit_level, int(unit_level.max()) + 1, "sum")
     full = np.hstack([reduced, tested])
@@ -409,7 +416,7 @@ def _unit_means(
     if first:
         label += f", {' and '.join(first)} fitted first"
     slope = t_stat = None
-    if t.values is not None:
+    if t.values is not None and t.degree == 1:
         slope = float(np.linalg.lstsq(full, means, rcond=None)[0][-1])
         t_stat = float(np.sign(slope) * np.sqrt(max(float(r.statistic), 0.0)))
     return _unit_f("unit_means", label, t, n_units, r, t_statistic=t_stat, estimate=slope)
@@ -439,12 +446,15 @@ def _lack_of_fit(
     parameters, on the units' residual. None when the number has fewer than
     three values or the units leave no residual.
     """
-    if t.values is None or t.unit is None or len(t.labels) < 3:
+    if t.values is None or t.unit is None or len(t.labels) < t.degree + 2:
         return None
     means, unit_level, unit_blocks = _unit_table(t, y, blocks)
     n_units = means.size
     line = np.hstack(
-        [_fitted_first(t.unit, unit_blocks, covariates), _per_unit(t.unit, t.values).reshape(-1, 1)]
+        [
+            _fitted_first(t.unit, unit_blocks, covariates),
+            *(_per_unit(t.unit, c).reshape(-1, 1) for c in t.number_columns().T),
+        ]
     )
     full = np.hstack([line, _coded(unit_level, len(t.labels), "sum")])
     try:
@@ -502,7 +512,7 @@ def design_matrix(
 
     def columns_of(t: TermInput) -> np.ndarray:
         if t.values is not None:  # a number: one slope on its values, as written
-            return t.values.astype(float).reshape(-1, 1)
+            return t.number_columns()
         return _coded(t.codes, len(t.labels), coding)
 
     for t in terms:

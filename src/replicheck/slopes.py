@@ -96,7 +96,7 @@ def omitted_slopes(
         return {}
     out: dict[str, SlopeCheck] = {}
     for t in terms:
-        if len(t.factors) != 1:
+        if len(t.factors) != 1 or t.degree > 1:
             continue
         for gname, g in random.items():
             if is_nested(g, t.codes):
