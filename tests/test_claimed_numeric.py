@@ -276,3 +276,25 @@ def test_a_polynomial_term_is_one_term_with_its_degree_of_df() -> None:
     term = _term(doc, "poly(nitro, 2)")
     assert term["status"] == "ok"
     assert term["df"] == [2.0, 52.0]  # 54 sub-plot df less the two coefficients
+
+
+def test_a_number_crossed_with_a_factor_and_its_omitted_slope() -> None:
+    # ChickWeight, weight ~ Time * Diet: the Time x Diet interaction (different growth
+    # rates per diet) is the highest term, so its F is statsmodels' type II F
+    doc = audit(CHICKS, formula="weight ~ Time * Diet").to_dict()
+    ols = smf.ols("weight ~ Time * C(Diet)", CHICKS).fit()
+    table = anova_lm(ols, typ=2)
+    a = _analysis(doc, "Time:Diet", "as_claimed")
+    assert a["df"] == [3.0, ols.df_resid]
+    assert a["statistic"] == pytest.approx(table.loc["Time:C(Diet)", "F"], rel=1e-8)
+    # with (1|Chick) only, the chicks' own growth rates are left out (they differ:
+    # Crowder & Hand 1990 fit a growth curve per chick): the slope check finds them
+    doc = audit(CHICKS, formula="weight ~ Time * Diet + (1|Chick)").to_dict()
+    slope = _term(doc, "Time")["omitted_slope"]
+    assert slope is not None and slope["grouping"] == "Chick"
+    # lme4 and lmerTest, (1|Chick) against (Time||Chick): fixtures/audit/random_slopes.json
+    ref = json.loads((ROOT / "fixtures/audit/random_slopes.json").read_text())["chicks_time"]
+    assert slope["likelihood_ratio"] == pytest.approx(ref["lr"], rel=1e-6)
+    assert slope["statistic"] == pytest.approx(ref["F"], rel=1e-5)
+    assert slope["df"][1] == pytest.approx(ref["den_df"], rel=1e-5)
+    assert "random-slope-omitted" in {f["rule"] for f in doc["findings"]}
