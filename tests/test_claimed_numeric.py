@@ -298,3 +298,41 @@ def test_a_number_crossed_with_a_factor_and_its_omitted_slope() -> None:
     assert slope["statistic"] == pytest.approx(ref["F"], rel=1e-5)
     assert slope["df"][1] == pytest.approx(ref["den_df"], rel=1e-5)
     assert "random-slope-omitted" in {f["rule"] for f in doc["findings"]}
+
+
+def _tanks() -> pd.DataFrame:
+    # invented numbers for logic tests: two feeds on six tanks, ten fish each, a
+    # measurement per fish (x) and text in one column
+    rng = np.random.default_rng(2)
+    return pd.DataFrame(
+        {
+            "y": rng.normal(size=60),
+            "feed": np.repeat(["A", "B"], 30),
+            "tank": np.repeat(np.arange(6), 10),
+            "x": rng.normal(size=60),
+            "s": rng.integers(0, 5, 60),
+            "word": ["a", "b", "c"] * 20,
+        }
+    )
+
+
+def test_a_measurement_per_row_is_replicated_by_the_rows() -> None:
+    doc = audit(_tanks(), formula="y ~ x + feed").to_dict()
+    assert _term(doc, "x")["status"] == "ok"
+    assert _term(doc, "x")["unit"] is None
+    assert _term(doc, "feed")["unit"] == "tank"
+    # a transform named like a process ('exp') is a number, not a block of the design
+    doc = audit(_tanks(), formula="y ~ exp(x) + feed").to_dict()
+    assert {t["term"] for t in doc["terms"]} == {"exp(x)", "feed"}
+
+
+def test_missing_values_of_a_random_slope_leave_the_claimed_model() -> None:
+    d = _tanks()
+    d.loc[3, "x"] = np.nan
+    doc = audit(d, formula="y ~ feed + (x|tank)").to_dict()
+    assert _analysis(doc, "feed", "as_claimed")["statistic"] is not None
+
+
+def test_a_cbind_column_of_text_is_one_clear_error() -> None:
+    with pytest.raises(InputError, match="'word' of cbind\\(\\) must hold whole numbers"):
+        audit(_tanks(), formula="cbind(s, word) ~ feed")

@@ -187,10 +187,18 @@ def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[
         for f in s.columns
         if any(g != f and g in claim.treatments for g in s.columns)
     }
+    # a number the formula fits with a slope (a transform of one, or a quantity) is never
+    # a block by its name
+    quantities = {t.name for t in claim.formula.transforms} | {
+        r.column
+        for r in read_numbers(frame, [f for f in claim.treatments if f in frame.columns])
+        if r.slope
+    }
     named = {
         f
         for f in claim.treatments
         if f not in in_interaction
+        and f not in quantities
         and name_hint(f).suggests_unit
         and name_hint(f).kind != "time"
         and len(claim.treatments) > 1
@@ -286,12 +294,16 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
                 f"treatment column '{t}' has a single level ({only!s}) among rows with a "
                 f"response: nothing to compare"
             )
-    params = 1 + sum(int(frame[t].nunique()) - 1 for t in claim.treatments)
+    return frame
+
+
+def _check_parameters(frame: pd.DataFrame, treatments: Sequence[str], slopes: set[str]) -> None:
+    """A residual must remain: one parameter per level of a factor, one per number."""
+    params = 1 + sum(1 if t in slopes else int(frame[t].nunique()) - 1 for t in treatments)
     if len(frame) - params < 1:
         raise InputError(
             f"too few rows to test the treatments: {len(frame)} rows for {params} parameters"
         )
-    return frame
 
 
 def _levels(
@@ -554,6 +566,7 @@ def audit(
                 {x for t in c.formula.transforms for x in (t.column, t.name)},
             )
         slopes_on = {r.column for r in numbers if r.slope}
+        _check_parameters(frame, c.treatments, slopes_on)
         categorical = [f for f in c.treatments if f not in slopes_on]
         with_numbers = [t for t in terms if any(f in slopes_on for f in t.factors)]
         kept, dropped = drop_unreplicated(

@@ -224,6 +224,11 @@ def _from_python(code: str, text: str) -> str:
         if isinstance(first, ast.Call) and _called(first.func) == "Q":
             return _from_python(ast.unparse(first), text)
         raise _fail(text, f"C() takes a column name as its first argument, not {code!r}")
+    if func == "poly":
+        raise _fail(
+            text,
+            f"poly() takes a column and a degree from 1 to 5, e.g. poly(dose, 2), not {code!r}",
+        )
     if func == "Error":
         raise _fail(text, f"{code} is an error-stratum term: {_RANDOM}")
     raise _fail(

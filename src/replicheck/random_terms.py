@@ -64,7 +64,11 @@ def slope_terms(
                 )
             )
         columns = np.hstack(parts)
-        out.append(RandomTerm(s.text, group_codes(frame, s.grouping), columns, s.diagonal))
+        codes = np.array(group_codes(frame, s.grouping), dtype=np.int64)
+        missing = ~np.isfinite(columns).all(axis=1)  # those rows leave the claimed model
+        codes[missing] = -1
+        columns[missing] = 0.0
+        out.append(RandomTerm(s.text, codes, columns, s.diagonal))
     return out
 
 

@@ -551,6 +551,22 @@ def _ols_term_tests(
     resid = y - X @ beta
     rank = int(np.linalg.matrix_rank(X))
     df_res = y.size - rank
+    if df_res < 1:  # as many parameters as rows: no residual to test against
+        why = "the claimed model has as many parameters as rows: no residual, no test"
+        return [
+            Analysis(
+                "as_claimed",
+                LABELS["as_claimed"],
+                t.term,
+                "rows",
+                int(y.size),
+                None,
+                None,
+                None,
+                notes=(why,),
+            )
+            for t in terms
+        ]
     s2 = float(resid @ resid) / df_res
     out = []
     for t in terms:

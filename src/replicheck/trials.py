@@ -29,7 +29,10 @@ MAX_TRIALS = 5_000_000  # trials read one by one; beyond, the work would not fit
 
 
 def _counts(data: pd.DataFrame, col: str, what: str) -> np.ndarray:
-    values = pd.to_numeric(data[col], errors="coerce").to_numpy(dtype=float)
+    raw = data[col]
+    values = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
+    if bool(np.any(raw.notna().to_numpy() & ~np.isfinite(values))):
+        raise InputError(f"the {what} column '{col}' of cbind() must hold whole numbers >= 0")
     known = values[np.isfinite(values)]
     if known.size and (np.any(known < 0) or np.any(known != np.round(known))):
         raise InputError(f"the {what} column '{col}' of cbind() must hold whole numbers >= 0")

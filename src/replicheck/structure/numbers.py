@@ -37,7 +37,7 @@ import pandas as pd
 
 from replicheck.partitions import dense_codes
 from replicheck.structure.relations import group_codes
-from replicheck.structure.units import Structure
+from replicheck.structure.units import Structure, UnitChoice
 
 __all__ = ["NumberReading", "read_numbers", "slope_units"]
 
@@ -124,7 +124,9 @@ def slope_units(structure: Structure, frame: pd.DataFrame, slopes: Collection[st
     every value sits in a single unit is not confounded with the units when the
     value is constant within each unit and there are at least three of them
     (the slope then has units - 2 degrees of freedom); its unit is "nested",
-    and no level is reported as sitting in a single unit.
+    and no level is reported as sitting in a single unit. A number that varies
+    within the grouping whose levels each hold one of its values (every value
+    met once: a measurement per row) is replicated by the rows.
     """
     units = []
     for choice in structure.units:
@@ -144,5 +146,20 @@ def slope_units(structure: Structure, frame: pd.DataFrame, slopes: Collection[st
             np.maximum.at(high, c, x)
             if n_units >= MIN_SLOPE_UNITS and np.allclose(low, high):
                 fixed = replace(fixed, relation="nested", n_units=n_units)
+            elif not np.allclose(low, high):
+                # the number varies within the grouping: its values are not labels of that
+                # grouping's levels, and its slope is replicated below it (the rows)
+                n = len(frame)
+                fixed = UnitChoice(
+                    choice.treatment,
+                    None,
+                    (),
+                    "none",
+                    n,
+                    n,
+                    "rows",
+                    f"'{choice.treatment}' varies within every recorded grouping; each row is "
+                    "taken as its own replicate",
+                )
         units.append(fixed)
     return replace(structure, units=tuple(units))
