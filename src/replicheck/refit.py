@@ -551,44 +551,23 @@ def _ols_term_tests(
     resid = y - X @ beta
     rank = int(np.linalg.matrix_rank(X))
     df_res = y.size - rank
+
+    def untested(t: TermInput, why: str) -> Analysis:
+        n = int(y.size)
+        return Analysis(
+            "as_claimed", LABELS["as_claimed"], t.term, "rows", n, None, None, None, notes=(why,)
+        )
+
     if df_res < 1:  # as many parameters as rows: no residual to test against
         why = "the claimed model has as many parameters as rows: no residual, no test"
-        return [
-            Analysis(
-                "as_claimed",
-                LABELS["as_claimed"],
-                t.term,
-                "rows",
-                int(y.size),
-                None,
-                None,
-                None,
-                notes=(why,),
-            )
-            for t in terms
-        ]
+        return [untested(t, why) for t in terms]
     s2 = float(resid @ resid) / df_res
     out = []
     for t in terms:
         others = [j for j in range(X.shape[1]) if j not in set(index[t.term])]
         if int(np.linalg.matrix_rank(X[:, others])) == rank:
-            name = "as_claimed"
-            out.append(
-                Analysis(
-                    name,
-                    LABELS[name],
-                    t.term,
-                    "rows",
-                    int(y.size),
-                    None,
-                    None,
-                    None,
-                    notes=(
-                        "aliased with other terms or blocks of the claimed model: not "
-                        "estimable there",
-                    ),
-                )
-            )
+            why = "aliased with other terms or blocks of the claimed model: not estimable there"
+            out.append(untested(t, why))
             continue
         L = _contrast(index[t.term], X.shape[1])
         lb = L @ beta
