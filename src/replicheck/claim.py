@@ -46,6 +46,7 @@ from __future__ import annotations
 import math
 import os
 import re
+import stat
 import tomllib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -629,8 +630,11 @@ class Claim:
 def spec_beside(data_path: str | os.PathLike[str]) -> Path | None:
     """The spec file next to a data file (``trial.csv`` -> ``trial.replicheck.toml``), if any."""
     p = Path(data_path)
-    candidate = p.with_name(p.stem + SPEC_SUFFIX)
-    return candidate if candidate.is_file() else None
+    try:
+        candidate = p.with_name(p.stem + SPEC_SUFFIX)
+        return candidate if candidate.is_file() else None
+    except (OSError, ValueError):  # a name the file system refuses: no spec beside it
+        return None
 
 
 def _kind(value: object) -> str:
@@ -762,10 +766,20 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
     return out
 
 
+MAX_SPEC_BYTES = 1_000_000  # a spec is a few lines; anything this large is not one
+
+
 def load_spec(path: str | os.PathLike[str]) -> dict[str, object]:
     """Read and check a TOML spec file; values are normalised (treatment and na as tuples)."""
     p = Path(path)
     try:
+        mode = p.stat().st_mode
+        if stat.S_ISREG(mode) and p.stat().st_size > MAX_SPEC_BYTES:
+            raise InputError(
+                f"spec file {p} is larger than {MAX_SPEC_BYTES // 1_000_000} MB: not a spec"
+            )
+        if not stat.S_ISREG(mode):
+            raise InputError(f"spec file {p} is not a regular file (a folder, device or pipe)")
         raw = p.read_bytes()
     except FileNotFoundError:
         raise InputError(f"spec file not found: {p}") from None
@@ -777,6 +791,8 @@ def load_spec(path: str | os.PathLike[str]) -> dict[str, object]:
         raise InputError(f"spec file {p} is not UTF-8 text, as TOML requires") from None
     except tomllib.TOMLDecodeError as err:
         raise InputError(f"spec file {p} is not valid TOML: {err}") from None
+    except RecursionError:
+        raise InputError(f"spec file {p} nests its values too deeply to be a spec") from None
     return _check_spec(data, str(p))
 
 

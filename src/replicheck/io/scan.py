@@ -10,6 +10,7 @@ whatever the file size.
 from __future__ import annotations
 
 import hashlib
+import stat
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -77,11 +78,24 @@ def _cannot_read(label: str, exc: OSError) -> InputError:
 
 
 def probe_file(path: Path, label: str) -> FileStart:
-    """Size, head and tail of ``path``; :class:`InputError` when it cannot be a data file."""
-    if not path.exists():
-        raise InputError(f"{label}: file not found")
-    if path.is_dir():
+    """Size, head and tail of ``path``; :class:`InputError` when it cannot be a data file.
+
+    Only regular files are read (after following symlinks): a device such as
+    /dev/zero never ends and a named pipe blocks, so both are refused.
+    """
+    try:
+        mode = path.stat().st_mode
+    except FileNotFoundError:
+        raise InputError(f"{label}: file not found") from None
+    except OSError as exc:  # a name longer than the file system allows, a loop of links
+        raise _cannot_read(label, exc) from None
+    if stat.S_ISDIR(mode):
         raise InputError(f"{label}: is a directory, not a data file")
+    if not stat.S_ISREG(mode):
+        raise InputError(
+            f"{label}: not a regular file (a device, a named pipe or a socket); "
+            "replicheck reads only files"
+        )
     try:
         with path.open("rb") as handle:
             size = handle.seek(0, 2)

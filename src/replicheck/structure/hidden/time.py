@@ -153,7 +153,9 @@ def _parse_with(values: np.ndarray, formats: Sequence[str]) -> tuple[pd.Series, 
             break
         idx = np.flatnonzero(todo)
         got = pd.to_datetime(pd.Series(values[idx]), format=fmt, errors="coerce")
-        ok = got.notna().to_numpy()
+        # dates beyond what a nanosecond clock holds (a year 6026 from a damaged cell)
+        # are not read as dates
+        ok = (got.notna() & got.between(pd.Timestamp.min, pd.Timestamp.max)).to_numpy()
         if ok.any():
             out.iloc[idx[ok]] = got[ok].astype("datetime64[ns]").to_numpy()
             todo[idx[ok]] = False

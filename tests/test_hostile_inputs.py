@@ -1,0 +1,97 @@
+"""Regression corpus of hostile inputs: each ends in a report or one line and exit 2.
+
+Each case once ended in an internal error (exit 3) or a hang: a damaged date
+cell, a spec nested too deeply for the TOML reader, a file name longer than the
+file system allows, a device or a named pipe given as the data file or the
+spec. Invented files (logic tests); the CLI runs in a subprocess with a time
+limit, and the input files are checked unchanged.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+
+def _run(args: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-m", "replicheck", "check", *args],
+        capture_output=True,
+        text=True,
+        check=False,
+        cwd=cwd,
+        timeout=120,
+    )
+
+
+def _table(tmp_path: Path) -> Path:
+    path = tmp_path / "tanks.csv"
+    d = pd.DataFrame({"y": np.arange(12.0), "feed": list("AB") * 6, "tank": np.repeat(range(6), 2)})
+    d.to_csv(path, index=False)
+    return path
+
+
+def _one_line_exit_2(out: subprocess.CompletedProcess[str], text: str) -> None:
+    assert out.returncode == 2, out.stderr
+    assert out.stderr.count("\n") == 1
+    assert "internal error" not in out.stderr
+    assert text in out.stderr
+
+
+def test_a_date_beyond_the_clock_is_not_a_date(tmp_path: Path) -> None:
+    path = tmp_path / "dates.csv"
+    d = pd.DataFrame(
+        {
+            "y": np.arange(12.0),
+            "feed": list("AB") * 6,
+            "date": [f"2026-01-0{i % 9 + 1}" for i in range(12)],
+        }
+    )
+    d.loc[3, "date"] = "6026-01-05"  # a damaged year
+    d.to_csv(path, index=False)
+    before = hashlib.sha256(path.read_bytes()).hexdigest()
+    out = _run([path.name, "-r", "y", "-t", "feed", "--format", "json"], tmp_path)
+    assert out.returncode in (0, 1), out.stderr
+    assert out.stderr == ""
+    assert hashlib.sha256(path.read_bytes()).hexdigest() == before
+
+
+def test_a_spec_nested_too_deeply(tmp_path: Path) -> None:
+    data = _table(tmp_path)
+    spec = tmp_path / "deep.toml"
+    spec.write_text('response = "y"\ntreatment = "feed"\nna = ' + "[" * 600 + "]" * 600 + "\n")
+    out = _run([data.name, "--spec", spec.name], tmp_path)
+    _one_line_exit_2(out, "nests its values too deeply")
+
+
+def test_a_file_name_longer_than_the_file_system_allows(tmp_path: Path) -> None:
+    _table(tmp_path)
+    out = _run(["a" * 300 + ".csv", "-r", "y", "-t", "feed"], tmp_path)
+    _one_line_exit_2(out, "cannot read the file")
+
+
+@pytest.mark.skipif(not Path("/dev/zero").exists(), reason="needs /dev/zero")
+def test_a_device_as_the_data_file_or_the_spec(tmp_path: Path) -> None:
+    data = _table(tmp_path)
+    (tmp_path / "endless.csv").symlink_to("/dev/zero")
+    out = _run(["endless.csv", "-r", "y", "-t", "feed"], tmp_path)
+    _one_line_exit_2(out, "not a regular file")
+    out = _run([data.name, "-r", "y", "-t", "feed", "--spec", "/dev/zero"], tmp_path)
+    _one_line_exit_2(out, "not a regular file")
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="needs named pipes")
+def test_a_named_pipe_as_the_data_file_or_the_spec(tmp_path: Path) -> None:
+    data = _table(tmp_path)
+    os.mkfifo(tmp_path / "pipe.csv")
+    out = _run(["pipe.csv", "-r", "y", "-t", "feed"], tmp_path)
+    _one_line_exit_2(out, "not a regular file")
+    out = _run([data.name, "-r", "y", "-t", "feed", "--spec", "pipe.csv"], tmp_path)
+    _one_line_exit_2(out, "not a regular file")
