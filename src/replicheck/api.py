@@ -297,6 +297,28 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
     return frame
 
 
+EXTREME_EXPONENT = 300  # about 1e90 or 1e-90: squares and sums of squares would overflow
+
+
+def _rescaled(frame: pd.DataFrame, response: str) -> tuple[pd.DataFrame, int]:
+    """The frame with the response multiplied by an exact power of two when its spread is
+    so large or so small that squares would overflow or vanish, and the exponent used.
+
+    Tests, p-values and ICCs do not depend on the response's scale; the report says in
+    which units its means and variances are then shown.
+    """
+    y = frame[response].to_numpy(dtype=float)
+    spread = float(np.max(np.abs(y - np.median(y)))) if y.size else 0.0
+    if spread == 0.0 or not np.isfinite(spread):
+        return frame, 0
+    exponent = int(np.floor(np.log2(spread)))
+    if abs(exponent) < EXTREME_EXPONENT:
+        return frame, 0
+    frame = frame.copy()
+    frame[response] = np.ldexp(y, -exponent)
+    return frame, exponent
+
+
 def _check_parameters(frame: pd.DataFrame, treatments: Sequence[str], slopes: set[str]) -> None:
     """A residual must remain: one parameter per level of a factor, one per number."""
     params = 1 + sum(1 if t in slopes else int(frame[t].nunique()) - 1 for t in treatments)
@@ -545,6 +567,7 @@ def audit(
         adjusted_for = _claimed_covariates(c, table.data) if c.formula is None else []
         c = replace(c, treatments=(*c.treatments, *adjusted_for))
         frame = _analysis_frame(table, c)
+        frame, exponent = _rescaled(frame, c.response)
         allow_for(frame)
         numbers: tuple[NumberReading, ...] = ()
         if c.formula is None:
@@ -777,6 +800,7 @@ def audit(
             response_coding=coding,
             hidden=hidden_scan,
             numbers=numbers,
+            response_exponent=exponent,
             claimed_groupings=tuple(
                 (name, int(np.unique(codes[codes >= 0]).size), int((codes >= 0).sum()))
                 for name, codes in claimed_random.items()

@@ -105,6 +105,7 @@ class Evidence:
     unit_columns: tuple[str, ...] = ()  # the unit columns with those missing values
     numbers: tuple[NumberReading, ...] = ()  # how each numeric column of a formula was read
     trials: int | None = None  # a cbind() response: the yes/no trials the file rows hold
+    response_exponent: int = 0  # the response was multiplied by 2**-exponent (extreme scale)
     # the claimed formula's random-intercept groupings: (name, levels, rows with a value)
     claimed_groupings: tuple[tuple[str, int, int], ...] = ()
 
@@ -543,6 +544,25 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
             f"If '{b}' is a treatment of interest, give it with --treatment instead.",
             (b,),
         )
+
+
+@rule("response-rescaled", "a response of extreme magnitude was rescaled for the arithmetic")
+def _rescaled(ev: Evidence) -> Iterator[Finding]:
+    e = ev.response_exponent
+    if e == 0:
+        return
+    yield Finding(
+        "response-rescaled",
+        "note",
+        f"The response '{ev.claim.response}' spreads over about 2^{e} (10^{e * 0.30103:.0f}): "
+        f"its squares would overflow or vanish, so it was multiplied by 2^{-e}, an exact power "
+        "of two. Tests, p-values, ICCs and the verdict do not depend on the scale; means, "
+        f"differences and variances in this report are in those rescaled units (multiply "
+        f"means and differences by 2^{e}, variances by 2^{2 * e}).",
+        "Check the response's units: values this large or small are usually an error of "
+        "units or of export.",
+        (ev.claim.response,),
+    )
 
 
 @rule("claimed-grouping-unreplicated", "a claimed random effect has one row per level")
