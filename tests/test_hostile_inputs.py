@@ -117,3 +117,13 @@ def test_a_response_of_extreme_magnitude_keeps_its_verdict(factor: float) -> Non
         if b["p_value"] is not None:
             assert a["p_value"] == pytest.approx(b["p_value"], rel=1e-6)
     assert "response-rescaled" in {f["rule"] for f in scaled["findings"]}
+
+
+def test_formula_expansions_are_bounded() -> None:
+    # once ran out of memory (a power of a sum) or ran for minutes (30 columns crossed)
+    from replicheck.errors import InputError
+    from replicheck.formula import parse_formula
+
+    assert len(parse_formula("y ~ (a + b + c + d)**30").terms) == 15  # 2^4 - 1
+    with pytest.raises(InputError, match="at most 10 can be crossed"):
+        parse_formula("y ~ " + "*".join(f"x{i}" for i in range(30)))

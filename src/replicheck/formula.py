@@ -322,6 +322,27 @@ def _rewrite(text: str) -> tuple[str, list[str], list[str], list[Transform]]:
     return "".join(pieces), names, categorical, transforms
 
 
+MAX_CROSSED = 10  # columns crossed in one formula: 2^10 - 1 terms at most
+
+
+def _bounded(rewritten: str, n_names: int, text: str) -> str:
+    """Bound the expansion before it runs: a power above the number of columns adds no
+    term (it is lowered to that number), and crossing more than MAX_CROSSED columns is
+    refused (the terms would number in the thousands)."""
+    rhs = rewritten.partition("~")[2]
+    if n_names > MAX_CROSSED and re.search(r"\*|\^|/", rhs):
+        raise _fail(
+            text,
+            f"it crosses or nests {n_names} columns; at most {MAX_CROSSED} can be crossed "
+            "(their interactions would number in the thousands)",
+        )
+
+    def lower(m: re.Match[str]) -> str:
+        return f"{m.group(1)}{min(int(m.group(2)), max(n_names, 1))}"
+
+    return re.sub(r"(\*\*\s*|\^\s*)(\d+)", lower, rewritten)
+
+
 def parse_formula(text: str) -> ModelFormula:
     """Read a model formula such as ``"yield ~ variety * nitrogen + block"``.
 
@@ -337,6 +358,7 @@ def parse_formula(text: str) -> ModelFormula:
     text, trials = _split_cbind(text)
     fixed, random, slopes = _split_random(text)
     rewritten, names, categorical, transforms = _rewrite(fixed)
+    rewritten = _bounded(rewritten, len(set(names)), text)
     from formulaic import Formula
 
     parsed = _quietly(text, lambda: Formula(rewritten, _ordering="none"))
