@@ -29,11 +29,11 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg, optimize, special, stats
+from scipy import linalg, special, stats
 
 from replicheck.stats.classic import DesignError
 from replicheck.stats.glm import GlmTerm
-from replicheck.stats.numderiv import hessian
+from replicheck.stats.numderiv import hessian, minimise
 
 __all__ = ["GlmmFit", "fit_glmm", "glmm_term_tests"]
 
@@ -139,15 +139,7 @@ def fit_glmm(
     x0 = np.concatenate([np.ones(k), beta0])
     bounds = [(0.0, None)] * k + [(None, None)] * p
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        first = optimize.minimize(crit, x0, method="L-BFGS-B", bounds=bounds)
-        polish = optimize.minimize(
-            crit,
-            first.x,
-            method="Powell",
-            bounds=bounds,
-            options={"xtol": 1e-9, "ftol": 1e-13, "maxfev": 40000},
-        )
-        best = polish if polish.fun <= first.fun else first
+        best = minimise(crit, x0, bounds, 1e-9, 1e-13, 40000)
         if not np.isfinite(best.fun):
             raise DesignError("the mixed model could not be fitted")
         par = np.asarray(best.x, dtype=float)
@@ -162,7 +154,7 @@ def fit_glmm(
         cov_beta=cov_beta,
         sd={name: float(par[i]) for i, name in enumerate(groupings)},
         deviance=float(best.fun),
-        converged=bool(first.success or polish.success),
+        converged=bool(best.success),
     )
 
 

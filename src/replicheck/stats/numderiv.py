@@ -1,12 +1,37 @@
-"""Numerical second derivatives for the fits whose Hessian has no closed form here."""
+"""Numerical helpers for the fits with no closed form here: a bounded search and a Hessian."""
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
+from typing import Any
 
 import numpy as np
+from scipy import optimize
 
-__all__ = ["hessian"]
+__all__ = ["hessian", "minimise"]
+
+
+def minimise(
+    f: Callable[[np.ndarray], float],
+    x0: np.ndarray,
+    bounds: Sequence[tuple[float | None, float | None]],
+    xtol: float,
+    ftol: float,
+    maxfev: int,
+) -> Any:
+    """L-BFGS-B from ``x0``, polished by Powell's method; the better of the two results
+    (a scipy ``OptimizeResult``)."""
+    first = optimize.minimize(f, x0, method="L-BFGS-B", bounds=bounds)
+    polish = optimize.minimize(
+        f,
+        first.x,
+        method="Powell",
+        bounds=bounds,
+        options={"xtol": xtol, "ftol": ftol, "maxfev": maxfev},
+    )
+    best = polish if polish.fun <= first.fun else first
+    best.success = bool(first.success or polish.success)
+    return best
 
 
 def hessian(f: Callable[[np.ndarray], float], x: np.ndarray, relative: float) -> np.ndarray:

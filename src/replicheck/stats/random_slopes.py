@@ -40,10 +40,10 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg, optimize
+from scipy import linalg
 
 from replicheck.stats.classic import DesignError
-from replicheck.stats.numderiv import hessian
+from replicheck.stats.numderiv import hessian, minimise
 from replicheck.stats.reml_search import MixedFit
 
 __all__ = ["RandomTerm", "fit_random_slopes"]
@@ -243,15 +243,7 @@ def fit_random_slopes(
         except DesignError:
             return float("inf")
 
-    first = optimize.minimize(crit, start, method="L-BFGS-B", bounds=bounds)
-    polish = optimize.minimize(
-        crit,
-        first.x,
-        method="Powell",
-        bounds=bounds,
-        options={"xtol": 1e-10, "ftol": 1e-14, "maxfev": 20000},
-    )
-    best = polish if polish.fun <= first.fun else first
+    best = minimise(crit, start, bounds, 1e-10, 1e-14, 20000)
     theta = np.asarray(best.x, dtype=float)
     ev = _evaluate(cross, terms, theta)
     dof = n - p
@@ -297,7 +289,7 @@ def fit_random_slopes(
         reml_deviance=float(best.fun),
         n_obs=n,
         n_fixed=p,
-        converged=bool(best.success) or bool(first.success),
+        converged=bool(best.success),
         boundary=tuple(f"theta[{b}]" for b in boundary),
         theta={f"theta[{j}]": float(v) for j, v in enumerate(theta)},
         n_levels={t.name: int(t.codes.max()) + 1 for t in terms},
