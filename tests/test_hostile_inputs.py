@@ -127,3 +127,42 @@ def test_formula_expansions_are_bounded() -> None:
     assert len(parse_formula("y ~ (a + b + c + d)**30").terms) == 15  # 2^4 - 1
     with pytest.raises(InputError, match="at most 10 can be crossed"):
         parse_formula("y ~ " + "*".join(f"x{i}" for i in range(30)))
+
+
+def test_seeds_and_effects_out_of_range(tmp_path: Path) -> None:
+    # a negative seed reached numpy's generator (exit 3); an effect too large to square
+    # printed an overflow warning
+    data = _table(tmp_path)
+    out = _run([data.name, "-r", "y", "-t", "feed", "--seed", "-1"], tmp_path)
+    _one_line_exit_2(out, "the seed must be a whole number of 0 or more")
+    out = _run([data.name, "-r", "y", "-t", "feed", "--effect", "1e308"], tmp_path)
+    assert out.returncode in (0, 1), out.stderr
+    assert out.stderr == ""
+
+
+def test_a_constant_response_of_extreme_magnitude(tmp_path: Path) -> None:
+    # every response 1e300: the scans squared it (overflow warnings) before the audit
+    # found nothing to test
+    path = tmp_path / "flat.csv"
+    pd.DataFrame(
+        {"y": [1e300] * 12, "feed": list("AB") * 6, "tank": np.repeat(range(6), 2)}
+    ).to_csv(path, index=False)
+    out = _run([path.name, "-r", "y", "-t", "feed"], tmp_path)
+    _one_line_exit_2(out, "response has the same value in every row")
+
+
+def test_labels_the_figure_font_lacks(tmp_path: Path) -> None:
+    # a tab, an emoji and CJK text as treatment levels: matplotlib warned that its font
+    # lacks the glyphs (the SVG keeps the text, the browser draws it)
+    path = tmp_path / "glyphs.csv"
+    pd.DataFrame(
+        {
+            "y": [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 2.5, 3.5],
+            "feed": ["a\tb", "a\tb", "🐟", "🐟", "日本", "日本", "x", "x"],
+            "tank": [1, 1, 2, 2, 3, 3, 4, 4],
+        }
+    ).to_csv(path, index=False)
+    out = _run([path.name, "-r", "y", "-t", "feed", "--format", "html", "-o", "r.html"], tmp_path)
+    assert out.returncode in (0, 1), out.stderr
+    assert out.stderr == "report written to r.html\n"
+    assert "🐟" in (tmp_path / "r.html").read_text(encoding="utf-8")

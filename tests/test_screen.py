@@ -49,6 +49,7 @@ DOCUMENTED_ORDER = [
     "error",
     "timeout",
     "too-large",
+    "unreadable",
     "internal-error",
     "needs-spec",
     "ok",
@@ -488,7 +489,7 @@ def test_runner_survives_crash_and_timeout() -> None:
     results = dict(run_local(tasks, jobs=2, time_limit=60, work="signal:raise_signal"))
     assert results[1] is None and results[3] is None  # the batch went on
     for i in (0, 2):
-        assert results[i].status == "internal-error"  # type: ignore[attr-defined]
+        assert results[i].status == "unreadable"  # type: ignore[attr-defined]
         assert "SIGKILL" in results[i].message  # type: ignore[attr-defined]
     # time.sleep(600) is stopped at the time limit; the others finish
     results = dict(run_local([0, 600, 0], jobs=2, time_limit=2, work="time:sleep"))

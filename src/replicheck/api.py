@@ -74,6 +74,7 @@ def make_claim(
     roles: Mapping[str, object] | None = None,
     unit_labels: str | None = None,
     family: str | None = None,
+    limits: Sequence[str] | Mapping[str, object] | None = None,
 ) -> Claim:
     """Build the claim from options, an explicit spec, or the spec found beside the data file."""
     spec_data: Mapping[str, object] | None = None
@@ -104,6 +105,7 @@ def make_claim(
         roles=roles,
         unit_labels=unit_labels,
         family=family,
+        limits=limits,
     )
 
 
@@ -287,6 +289,8 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
     frame = frame[keep]
     if frame.empty:
         raise InputError("no row has both a response value and every treatment value")
+    if frame[claim.response].nunique() < 2:
+        raise InputError("response has the same value in every row; nothing to test")
     for t in claim.treatments:
         if frame[t].nunique() < 2:
             only = frame[t].iloc[0]
@@ -301,14 +305,16 @@ EXTREME_EXPONENT = 300  # about 1e90 or 1e-90: squares and sums of squares would
 
 
 def _rescaled(frame: pd.DataFrame, response: str) -> tuple[pd.DataFrame, int]:
-    """The frame with the response multiplied by an exact power of two when its spread is
-    so large or so small that squares would overflow or vanish, and the exponent used.
+    """The frame with the response (or another numeric column) multiplied by an exact
+    power of two when its spread is so large or so small that squares would overflow or
+    vanish, and the exponent used.
 
     Tests, p-values and ICCs do not depend on the response's scale; the report says in
     which units its means and variances are then shown.
     """
     y = frame[response].to_numpy(dtype=float)
-    spread = float(np.max(np.abs(y - np.median(y)))) if y.size else 0.0
+    present = y[np.isfinite(y)]
+    spread = float(np.max(np.abs(present - np.median(present)))) if present.size else 0.0
     if spread == 0.0 or not np.isfinite(spread):
         return frame, 0
     exponent = int(np.floor(np.log2(spread)))
@@ -317,6 +323,25 @@ def _rescaled(frame: pd.DataFrame, response: str) -> tuple[pd.DataFrame, int]:
     frame = frame.copy()
     frame[response] = np.ldexp(y, -exponent)
     return frame, exponent
+
+
+def _check_size(frame: pd.DataFrame, claim: Claim, terms: Sequence[Term], slopes: set[str]) -> None:
+    """The claimed model within the limits: levels of each factor, fixed-effect parameters."""
+    limits = claim.limits
+    levels = {t: int(frame[t].nunique()) for t in claim.treatments if t not in slopes}
+    for t, k in levels.items():
+        if k > limits.levels:
+            raise limits.exceeded("levels", f"treatment column '{t}' has {k:,} levels")
+    params = 1
+    for term in terms:
+        size = 1
+        for f in term.factors:
+            size *= 1 if f in slopes else max(1, levels.get(f, 2) - 1)
+        params += size
+    if params > limits.parameters:
+        raise limits.exceeded(
+            "parameters", f"the claimed model has {params:,} fixed-effect parameters"
+        )
 
 
 def _check_parameters(frame: pd.DataFrame, treatments: Sequence[str], slopes: set[str]) -> None:
@@ -413,6 +438,7 @@ def audit(
     stage: Callable[[str], None] | None = None,
     name: str | None = None,
     family: str | None = None,
+    limits: Sequence[str] | Mapping[str, object] | None = None,
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -485,6 +511,10 @@ def audit(
         Poisson regression (by default the spec's; a formula response
         ``cbind(successes, failures)`` implies binomial, and its rows are read
         as that many yes/no trials, the file row becoming a grouping).
+    limits:
+        Limits on the work of the audit, as ``KEY=N`` texts or a mapping
+        (``{"columns": 20000}``): see :class:`replicheck.limits.Limits`. They
+        replace the spec's limits of the same keys.
 
     Returns
     -------
@@ -505,6 +535,8 @@ def audit(
     >>> audit(df, response="y", treatment="feed").status
     'pseudoreplicated'
     """
+    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
+        raise InputError(f"the seed must be a whole number of 0 or more, got {seed!r}")
     if isinstance(power, bool) or not 0 < power < 1:
         raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
     if effect is not None and not (np.isfinite(effect) and effect > 0):
@@ -535,6 +567,7 @@ def audit(
             roles=given,
             unit_labels=unit_labels,
             family=family,
+            limits=limits,
         )
         clock.lap("claim")
         table = read_table(
@@ -542,6 +575,7 @@ def audit(
             sheet=c.sheet,
             na_values=c.na_values,
             progress=progress,
+            limits=c.limits,
         )
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))
@@ -568,6 +602,12 @@ def audit(
         c = replace(c, treatments=(*c.treatments, *adjusted_for))
         frame = _analysis_frame(table, c)
         frame, exponent = _rescaled(frame, c.response)
+        rescaled_columns = []
+        for col in dict.fromkeys([*c.treatments, *c.roles.columns("covariate")]):
+            if col in frame.columns and pd.api.types.is_numeric_dtype(frame[col]):
+                frame, e = _rescaled(frame, col)
+                if e:
+                    rescaled_columns.append((col, e))
         allow_for(frame)
         numbers: tuple[NumberReading, ...] = ()
         if c.formula is None:
@@ -590,6 +630,7 @@ def audit(
             )
         slopes_on = {r.column for r in numbers if r.slope}
         _check_parameters(frame, c.treatments, slopes_on)
+        _check_size(frame, c, terms, slopes_on)
         categorical = [f for f in c.treatments if f not in slopes_on]
         with_numbers = [t for t in terms if any(f in slopes_on for f in t.factors)]
         kept, dropped = drop_unreplicated(
@@ -801,6 +842,7 @@ def audit(
             hidden=hidden_scan,
             numbers=numbers,
             response_exponent=exponent,
+            rescaled_columns=tuple(rescaled_columns),
             claimed_groupings=tuple(
                 (name, int(np.unique(codes[codes >= 0]).size), int((codes >= 0).sum()))
                 for name, codes in claimed_random.items()

@@ -55,6 +55,7 @@ from typing import NamedTuple, cast
 
 from replicheck.errors import InputError
 from replicheck.formula import ModelFormula, factor_name, parse_formula, replace_response
+from replicheck.limits import Limits, make_limits
 from replicheck.roles import ROLE_FIELDS, Roles, stated_roles
 
 __all__ = [
@@ -80,6 +81,7 @@ SPEC_KEYS = tuple(
             "claim",
             "family",
             "formula",
+            "limits",
             "na",
             "response",
             "sheet",
@@ -90,7 +92,7 @@ SPEC_KEYS = tuple(
     )
 )
 # keys whose value may be a list (in an index cell, values separated by ';')
-LIST_KEYS = ("treatment", "claim", "na", *(f.key for f in ROLE_FIELDS))
+LIST_KEYS = ("treatment", "claim", "na", "limits", *(f.key for f in ROLE_FIELDS))
 UNIT_LABEL_MODES = ("auto", "local", "global")
 FAMILIES = ("binomial", "poisson")  # claimed logistic and Poisson regressions
 _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
@@ -619,6 +621,7 @@ class Claim:
     formula: ModelFormula | None = None
     unit_labels: str | None = None  # auto | local | global, from the spec
     family: str | None = None  # binomial | poisson: a claimed logistic or Poisson regression
+    limits: Limits = field(default_factory=Limits)
 
     @property
     def unit(self) -> str | None:
@@ -763,6 +766,19 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
         ):
             raise InputError(f"'sheet' in {source} must be a sheet name or a number >= 0")
         out["sheet"] = value
+    if "limits" in spec:
+        value = spec["limits"]
+        if isinstance(value, str):
+            value = [value]
+        if isinstance(value, Limits):  # already checked (a spec read by load_spec)
+            out["limits"] = value
+        elif not isinstance(value, Mapping | list | tuple):
+            raise InputError(
+                f"'limits' in {source} must be a table such as {{ columns = 20000 }}, "
+                f"not {_kind(value)}"
+            )
+        else:
+            out["limits"] = make_limits(value, f"in {source}")
     return out
 
 
@@ -870,6 +886,7 @@ def build_claim(
     roles: Mapping[str, object] | None = None,
     unit_labels: str | None = None,
     family: str | None = None,
+    limits: Sequence[str] | Mapping[str, object] | None = None,
 ) -> Claim:
     """Merge command-line values with a spec; command-line values win.
 
@@ -904,6 +921,8 @@ def build_claim(
     Treatments given on the command line replace the spec's list; na values
     are the union (spec first); alpha defaults to 0.05. An integer sheet from
     the spec becomes its string form (the reader decides name or position).
+    ``limits`` (``KEY=N`` texts or a mapping, see :mod:`replicheck.limits`)
+    replace the spec's limits of the same keys.
     """
     s = _check_spec(spec or {}, spec_path or "the spec")
     if isinstance(treatments, str):
@@ -978,4 +997,5 @@ def build_claim(
         formula=model,
         unit_labels=labels,
         family=fam,
+        limits=make_limits(limits, "in the options", cast("Limits", s.get("limits", Limits()))),
     )

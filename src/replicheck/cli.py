@@ -260,6 +260,15 @@ def _role_options(command: Any) -> Any:
     help="Column giving the order in which samples were processed (default: a "
     "sequence column if one is found, else the file order).",
 )
+@click.option(
+    "--limit",
+    "limits",
+    metavar="KEY=N",
+    multiple=True,
+    help="Raise (or lower) a limit on the work of one audit (repeatable): file-mb "
+    "(default 4000), columns (20000), cell-chars (10000), workbook-mb (1000), sheet-cells "
+    "(50000000), levels of a treatment (1000), parameters of the claimed model (2000).",
+)
 def check(
     data: str,
     response: str | None,
@@ -281,6 +290,7 @@ def check(
     hidden: bool,
     dates: str,
     order_col: str | None,
+    limits: Sequence[str],
     **role_values: Sequence[str],
 ) -> None:
     """Audit DATA against its claimed analysis.
@@ -316,6 +326,7 @@ def check(
         order=order_col,
         progress=bar.update,
         stage=line.begin,
+        limits=limits or None,
     )
     bar.close()
     line.close()

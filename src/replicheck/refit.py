@@ -190,6 +190,14 @@ BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
 MC_WORK = 40_000_000
 MIN_MC_DRAWS = 1_999
 MAX_MC_UNITS = MC_WORK // MIN_MC_DRAWS
+# The small-sample corrected cluster-robust test (CR2 with the HTZ degrees of freedom)
+# for q contrasts among p coefficients over G clusters forms q x q x p x p arrays and
+# costs about G q^2 p^2; the wild bootstrap solves a q x q system per draw (B q^3).
+# Beyond these bounds (a term with scores of levels) the check is not run and the
+# unit-level F, mixed-model and randomisation tests stand (chosen budgets: a few seconds
+# and at most about 200 MB per array on a 2-core machine; docs/reliability.md).
+ROBUST_WORK = 2_000_000_000
+ROBUST_CELLS = 25_000_000
 
 
 def mc_draws(default: int, n_units: int) -> int:
@@ -542,6 +550,33 @@ def _contrast(index: list[int], p: int) -> np.ndarray:
     return L
 
 
+def _rss_rank(y: np.ndarray, X: np.ndarray) -> tuple[float, int]:
+    coef = np.linalg.lstsq(X, y, rcond=None)[0]
+    resid = y - X @ coef
+    return float(resid @ resid), int(np.linalg.matrix_rank(X))
+
+
+def _type2_extra(
+    y: np.ndarray,
+    X: np.ndarray,
+    index: Mapping[str, list[int]],
+    factor_sets: Mapping[str, frozenset[str]],
+    t: TermInput,
+) -> tuple[float, int]:
+    """Type II extra sum of squares of term ``t`` and its df (the rank it adds).
+
+    The base model holds every column except those of the terms whose factors
+    include all of ``t``'s (``t`` and the interactions containing it).
+    """
+    mine = factor_sets[t.term]
+    dropped = {j for key, cols in index.items() if mine <= factor_sets[key] for j in cols}
+    base = [j for j in range(X.shape[1]) if j not in dropped]
+    with_t = sorted([*base, *index[t.term]])
+    rss_base, rank_base = _rss_rank(y, X[:, base])
+    rss_t, rank_t = _rss_rank(y, X[:, with_t])
+    return max(rss_base - rss_t, 0.0), rank_t - rank_base
+
+
 def _ols_term_tests(
     y: np.ndarray, X: np.ndarray, index: dict[str, list[int]], terms: Sequence[TermInput]
 ) -> list[Analysis]:
@@ -562,6 +597,8 @@ def _ols_term_tests(
         why = "the claimed model has as many parameters as rows: no residual, no test"
         return [untested(t, why) for t in terms]
     s2 = float(resid @ resid) / df_res
+    factor_sets = {key: frozenset(key.split(":")) for key in index}
+    factor_sets.update({t.term: frozenset(t.factors) for t in terms})
     out = []
     for t in terms:
         others = [j for j in range(X.shape[1]) if j not in set(index[t.term])]
@@ -572,7 +609,29 @@ def _ols_term_tests(
         L = _contrast(index[t.term], X.shape[1])
         lb = L @ beta
         q = L.shape[0]
-        f = float(lb @ np.linalg.solve(L @ xtx_inv @ L.T, lb)) / q / s2
+        notes: tuple[str, ...] = ()
+        if rank == X.shape[1]:
+            f = float(lb @ np.linalg.solve(L @ xtx_inv @ L.T, lb)) / q / s2
+        else:
+            # A design matrix short of full rank (an empty cell of a factorial, a level
+            # met only with one level of another factor): not every coefficient is
+            # estimable, so each term is tested as the type II ANOVA does (marginality):
+            # the extra sum of squares of adding it to every term that does not contain
+            # it, on the df it adds to the rank, over the full model's residual.
+            ss, estimable = _type2_extra(y, X, index, factor_sets, t)
+            f = ss / estimable / s2
+            if estimable < q:
+                notes = (
+                    f"partly aliased with other terms of the claimed model: tested on the "
+                    f"{estimable} df the data can estimate, not {q} (type II extra sum of "
+                    "squares)",
+                )
+            else:
+                notes = (
+                    "the claimed model's design is rank-deficient: tested by the type "
+                    "II extra sum of squares",
+                )
+            q = estimable
         p = float(sps.f.sf(f, q, df_res))
         name = "as_claimed"
         slope = q == 1 and t.numeric
@@ -588,6 +647,7 @@ def _ols_term_tests(
                 p,
                 t_statistic=float(np.sign(lb[0]) * np.sqrt(f)) if slope else None,
                 estimate=float(lb[0]) if slope else None,
+                notes=notes,
             )
         )
     return out
@@ -998,6 +1058,10 @@ class _SkipBootstrap(Exception):
     """The wild bootstrap is over the Monte Carlo budget."""
 
 
+class _SkipRobust(Exception):
+    """A cluster-robust check is over its work bound (already recorded as untested)."""
+
+
 def _untested(name: str, t: TermInput, why: str) -> Analysis:
     n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
     return Analysis(name, LABELS[name], t.term, "units", n_rep, None, None, None, notes=(why,))
@@ -1018,6 +1082,14 @@ def _cross_checks(
     L = _contrast(index, Xc.shape[1])
     n_units = int(t.unit.max()) + 1
     out: list[Analysis] = []
+    q, p = int(L.shape[0]), int(L.shape[1])
+    if n_units * q * q * p * p > ROBUST_WORK or max(q * q * p * p, n_units * q * q) > ROBUST_CELLS:
+        why = (
+            f"not run: {q} contrasts among {p} coefficients over {n_units} units pass the "
+            "work bound of the small-sample cluster-robust test (its cost grows as units x "
+            "contrasts^2 x coefficients^2); the unit-level tests stand"
+        )
+        out.append(_untested("cluster_robust", t, why))
 
     def unit_level(
         name: str,
@@ -1047,6 +1119,8 @@ def _cross_checks(
         )
 
     try:
+        if out:
+            raise _SkipRobust
         r = cr2_test(y, Xc, t.unit, L)
         unit_level(
             "cluster_robust",
@@ -1056,9 +1130,22 @@ def _cross_checks(
             t_statistic=r.t_statistic,
             estimate=r.estimate,
         )
+    except _SkipRobust:
+        pass
     except DesignError as err:
         out.append(_untested("cluster_robust", t, f"not computed: {err}"))
+    draws = mc_draws(BOOTSTRAP_DRAWS, n_units)
     try:
+        if draws * q**3 > ROBUST_WORK:
+            out.append(
+                _untested(
+                    "wild_bootstrap",
+                    t,
+                    f"not run: {q} contrasts pass the work bound of the bootstrap (its cost "
+                    "grows as draws x contrasts^3); the unit-level tests stand",
+                )
+            )
+            raise _SkipRobust
         if n_units > MAX_MC_UNITS:
             raise _SkipBootstrap
         b = wild_cluster_bootstrap(
@@ -1066,7 +1153,7 @@ def _cross_checks(
             Xc,
             _canonical_units(t.unit, y),
             L,
-            draws=mc_draws(BOOTSTRAP_DRAWS, n_units),
+            draws=draws,
             seed=seed,
         )
         how = (
@@ -1080,6 +1167,8 @@ def _cross_checks(
                 "variance (the statistic is 0/0)"
             )
         unit_level("wild_bootstrap", float(b.statistic), None, float(b.p_value), notes=(how,))
+    except _SkipRobust:
+        pass
     except _SkipBootstrap:
         out.append(_too_many_units("wild_bootstrap", t))
     except DesignError as err:

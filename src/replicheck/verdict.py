@@ -106,6 +106,8 @@ class Evidence:
     numbers: tuple[NumberReading, ...] = ()  # how each numeric column of a formula was read
     trials: int | None = None  # a cbind() response: the yes/no trials the file rows hold
     response_exponent: int = 0  # the response was multiplied by 2**-exponent (extreme scale)
+    # numeric model columns multiplied by 2**-exponent for the same reason
+    rescaled_columns: tuple[tuple[str, int], ...] = ()
     # the claimed formula's random-intercept groupings: (name, levels, rows with a value)
     claimed_groupings: tuple[tuple[str, int, int], ...] = ()
 
@@ -546,8 +548,23 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("response-rescaled", "a response of extreme magnitude was rescaled for the arithmetic")
+@rule(
+    "response-rescaled",
+    "a response (or a number in the model) of extreme magnitude was rescaled for the arithmetic",
+)
 def _rescaled(ev: Evidence) -> Iterator[Finding]:
+    for col, e in ev.rescaled_columns:
+        yield Finding(
+            "response-rescaled",
+            "note",
+            f"The column '{col}' of the model spreads over about 2^{e} (10^{e * 0.30103:.0f}): "
+            f"its squares would overflow or vanish, so it was multiplied by 2^{-e}, an exact "
+            "power of two. Tests and p-values do not depend on its scale; a slope on it in "
+            f"this report is per 2^{e} of its units.",
+            "Check the column's units: values this large or small are usually an error of "
+            "units or of export.",
+            (col,),
+        )
     e = ev.response_exponent
     if e == 0:
         return

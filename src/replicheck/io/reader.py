@@ -35,6 +35,8 @@ from pandas.api.types import (
     is_bool_dtype,
     is_datetime64_any_dtype,
     is_numeric_dtype,
+    is_object_dtype,
+    is_string_dtype,
     is_timedelta64_dtype,
 )
 
@@ -67,6 +69,7 @@ from replicheck.io.text import (
     sniff_decimal,
     sniff_delimiter,
 )
+from replicheck.limits import Limits
 
 if TYPE_CHECKING:
     import pyarrow as pa
@@ -110,6 +113,7 @@ def read_table(
     na_values: Sequence[str] = (),
     columns: Sequence[str] | None = None,
     progress: ProgressCallback | None = None,
+    limits: Limits | None = None,
 ) -> Table:
     """Read ``source`` into a :class:`Table`.
 
@@ -135,12 +139,15 @@ def read_table(
         Called as ``progress(done, total)`` while a file is read; ``total`` is
         twice the file size (one pass to hash, one to parse) and the last call
         has ``done == total``. Not called for a DataFrame.
+    limits:
+        The file size, column count, text cell length and workbook size that
+        end in :class:`InputError` when passed (default :class:`Limits`).
 
     Raises
     ------
     InputError
         The file is missing, empty, binary, corrupt, has no data rows or has
-        duplicate column names; the sheet does not exist; a requested column
+        duplicate column names; it passes a limit; the sheet does not exist; a requested column
         does not exist (the message names the closest columns).
 
     Examples
@@ -152,6 +159,7 @@ def read_table(
     """
     codes = _missing_codes(na_values)
     wanted = _wanted_columns(columns)
+    limits = limits or Limits()
     if isinstance(source, pd.DataFrame):
         label = "<dataframe>"
         if sheet is not None:
@@ -165,15 +173,20 @@ def read_table(
         digest = None
     elif isinstance(source, str | os.PathLike):
         label = os.fspath(source)
-        digest, parsed = _read_file(Path(label), label, sheet, codes, wanted, progress)
+        digest, parsed = _read_file(Path(label), label, sheet, codes, wanted, progress, limits)
     else:
         raise InputError(f"expected a file path or a DataFrame, got {type(source).__name__}")
+    if parsed.frame.shape[1] > limits.columns:
+        raise limits.exceeded(
+            "columns", f"{label}: the table has {parsed.frame.shape[1]:,} columns"
+        )
     data = _apply_missing(
         parsed.frame, parsed.blank, codes, parsed.decimal, consume=digest is not None
     )
     if len(data) == 0:
         where = "the DataFrame" if digest is None else f"{label}:"
         raise InputError(f"{where} has no data rows")
+    _check_cells(data, label, limits)
     is_text = parsed.format in ("csv", "tsv")
     return Table(
         data=data,
@@ -282,9 +295,12 @@ def _read_file(
     codes: _MissingCodes,
     wanted: tuple[str, ...] | None,
     progress: ProgressCallback | None,
+    limits: Limits,
 ) -> tuple[str, _Parsed]:
     """The file's SHA-256 and its parsed frame (only the ``wanted`` columns)."""
     start = probe_file(path, label)
+    if start.size > limits.file_mb * 1e6:
+        raise limits.exceeded("file_mb", f"{label}: the file holds {start.size / 1e6:,.0f} MB")
     meter = Meter(progress, 2 * start.size)
     kind = _file_kind(start, path, label, sheet)
     parsed: _Parsed | None = None
@@ -303,7 +319,7 @@ def _read_file(
         meter.to(len(raw))
         digest = hashlib.sha256(raw).hexdigest()
         if kind == "excel":
-            parsed = _select(_parse_excel(raw, label, sheet), wanted, label)
+            parsed = _select(_parse_excel(raw, label, sheet, limits), wanted, label)
         else:
             parsed = _parse_text(raw, label, _hint(path), codes, wanted)
         del raw
@@ -396,6 +412,8 @@ def _parse_large_text(
         return None
     if start.size > len(start.head) and len(head_text) <= _SNIFF_CHARS:
         return None  # the sniffers would not see what they see in the whole text
+    if start.size > len(start.head) and not re.search(r"[\r\n]", head_text):
+        return None  # the header line runs past the head (a very wide table)
     delimiter = sniff_delimiter(head_text, _hint(path))
     decimal = sniff_decimal(head_text, delimiter)
     names, blank, pandas_agrees = _text_header(head_text, delimiter, label)
@@ -486,13 +504,69 @@ def _pick_sheet(available: list[str], sheet: str | int | None, label: str) -> st
     raise InputError(f"{label}: no sheet '{sheet}'; {listing}")
 
 
-def _parse_excel(raw: bytes, label: str, sheet: str | int | None) -> _Parsed:
+def _check_cells(frame: pd.DataFrame, label: str, limits: Limits) -> None:
+    """Every text cell within the length limit."""
+    for col, dtype in frame.dtypes.items():
+        if not (is_object_dtype(dtype) or is_string_dtype(dtype)):
+            continue
+        distinct = pd.unique(frame[col].to_numpy(dtype=object))
+        longest = max((len(v) for v in distinct if isinstance(v, str)), default=0)
+        if longest > limits.cell_chars:
+            raise limits.exceeded(
+                "cell_chars",
+                f"{label}: a text cell of column '{col}' holds {longest:,} characters",
+            )
+
+
+def _excel_extent(raw: bytes, name: str, label: str, limits: Limits) -> None:
+    """Refuse a workbook that unpacks to too much, or a sheet whose grid is too large.
+
+    A sheet's grid runs to its farthest cell, so one cell in the last column or
+    row of a sheet makes a grid of millions of empty cells; the extent is found
+    by streaming the rows (openpyxl's read-only mode, declared dimensions
+    ignored) before the sheet is read.
+    """
+    import zipfile
+
+    import openpyxl
+
+    with zipfile.ZipFile(io.BytesIO(raw)) as archive:
+        unpacked = sum(item.file_size for item in archive.infolist())
+    if unpacked > limits.workbook_mb * 1e6:
+        raise limits.exceeded(
+            "workbook_mb", f"{label}: the workbook unpacks to {unpacked / 1e6:,.0f} MB"
+        )
+    book = openpyxl.load_workbook(io.BytesIO(raw), read_only=True, data_only=True)
+    try:
+        ws = book[name]
+        ws.reset_dimensions()
+        width = 0
+        for rows, row in enumerate(ws.iter_rows(values_only=True), start=1):
+            used = len(row)
+            while used and row[used - 1] is None:
+                used -= 1
+            width = max(width, used)
+            if width > limits.columns:
+                raise limits.exceeded(
+                    "columns", f"{label}: sheet '{name}' runs to column {width:,}"
+                )
+            if rows * max(width, 1) > limits.sheet_cells:
+                raise limits.exceeded(
+                    "sheet_cells",
+                    f"{label}: sheet '{name}' spans more than {rows:,} rows by {width:,} columns",
+                )
+    finally:
+        book.close()
+
+
+def _parse_excel(raw: bytes, label: str, sheet: str | int | None, limits: Limits) -> _Parsed:
     # openpyxl and zipfile raise many exception types on damaged files
     # (BadZipFile, KeyError, ValueError, XML errors): any failure here means corrupt input.
     try:
         with pd.ExcelFile(io.BytesIO(raw), engine="openpyxl") as book:
             available = [str(name) for name in book.sheet_names]
             name = _pick_sheet(available, sheet, label)
+            _excel_extent(raw, name, label, limits)
             grid = pd.read_excel(book, sheet_name=name, header=None, keep_default_na=False)
     except InputError:
         raise
@@ -648,20 +722,27 @@ def _apply_missing(
 ) -> pd.DataFrame:
     """Apply missing codes; drop all-missing rows and unnamed all-missing columns.
 
-    With ``consume``, each column is taken out of ``frame`` before the next is
-    converted, so a frame with one block per column (as pyarrow gives) is never
-    held twice. A frame whose columns share blocks (a DataFrame given by the
-    caller and copied) is read column by column instead (``consume=False``):
-    taking a column out of a shared block copies the rest of the block, which
-    costs columns x table.
+    With ``consume``, ``frame`` is emptied (its columns are taken as views
+    first), so a frame with one block per column (as pyarrow gives) is never
+    held twice; without it (a DataFrame given by the caller), ``frame`` is
+    left as it is.
     """
     names = [str(c) for c in frame.columns]
+    # Columns are taken as views, then the frame lets go of all its blocks at once, so each
+    # column's memory is freed once it is converted (a frame with a block per column, as
+    # pyarrow gives, is never held twice). Popping columns one by one instead costs
+    # columns x blocks: minutes for a few thousand columns.
+    n_rows = len(frame)
+    taken: list[pd.Series | None] = [frame.iloc[:, i] for i in range(len(names))]
     if consume:
         frame.columns = pd.Index([str(i) for i in range(len(names))])  # names may repeat
-    filled = np.zeros(len(frame), dtype=bool)
+        frame.drop(columns=list(frame.columns), inplace=True)
+    filled = np.zeros(n_rows, dtype=bool)
     converted: dict[str, pd.Series] = {}
     for i, name in enumerate(names):
-        raw = frame.pop(str(i)) if consume else frame.iloc[:, i]
+        raw = taken[i]
+        taken[i] = None
+        assert raw is not None
         column = _missing_in_column(raw, codes, decimal)
         present = column.notna().to_numpy(dtype=bool)
         if i in blank and not present.any():

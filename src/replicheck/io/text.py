@@ -247,8 +247,12 @@ def sniff_decimal(text: str, delimiter: str) -> str:
 
 def first_record(text: str, delimiter: str) -> list[str]:
     """The header: the first non-empty record, split as the parser will split it."""
+    # the sample reaches at least to the end of the first line with content, however wide
+    start = len(text) - len(text.lstrip())
+    newline = re.search(r"[\r\n]", text[start:])
+    limit = max(_SAMPLE_CHARS, start + (newline.end() if newline else len(text)) + 1)
     try:
-        for row in csv.reader(io.StringIO(text[:_SAMPLE_CHARS]), delimiter=delimiter):
+        for row in csv.reader(io.StringIO(text[:limit]), delimiter=delimiter):
             if len(row) > 1 or (row and row[0].strip()):
                 return row
     except csv.Error:

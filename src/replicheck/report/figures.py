@@ -13,6 +13,8 @@ from __future__ import annotations
 
 import io
 import math
+import unicodedata
+import warnings
 from typing import Any
 
 import matplotlib
@@ -39,7 +41,9 @@ _RC: Any = {  # matplotlib rc settings for every figure
 
 def safe_label(text: object, limit: int = 28) -> str:
     """A label matplotlib draws literally: '$' escaped (no mathtext), long text cut."""
-    s = str(text)
+    s = "".join(
+        " " if unicodedata.category(c) in ("Cc", "Cf", "Zl", "Zp") else c for c in str(text)
+    )
     if len(s) > limit:
         s = s[: limit - 1] + "…"
     return s.replace("\\", "\\\\").replace("$", r"\$")
@@ -47,7 +51,11 @@ def safe_label(text: object, limit: int = 28) -> str:
 
 def _svg(fig: Figure) -> str:
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
+    with warnings.catch_warnings():
+        # the SVG keeps text as text (svg.fonttype none): the browser draws any glyph,
+        # so matplotlib's note that its own font lacks one is not a finding
+        warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from", category=UserWarning)
+        fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
     return buf.getvalue()
 
 

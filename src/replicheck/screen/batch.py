@@ -212,6 +212,7 @@ def screen(
     alpha: float | None = None,
     fresh: bool = False,
     progress: Callable[[Row, int], None] | None = None,
+    follow_links: bool = False,
 ) -> ScreenResult:
     """Screen every data file in ``paths`` (files or folders, searched recursively).
 
@@ -239,6 +240,9 @@ def screen(
         Passed to every audit alike.
     fresh:
         Ignore the results stored by an earlier run in ``out``.
+    follow_links:
+        Screen files that symbolic links in a screened folder lead to outside it
+        (by default they are left out with a warning).
     progress:
         Called with each file's row as soon as it is known, and the number of files.
 
@@ -272,7 +276,7 @@ def screen(
     from replicheck.screen.specs import load_index
 
     index = load_index(specs) if specs is not None else None
-    found = find_data_files(roots, skip=[out_dir, summary_path])
+    found = find_data_files(roots, skip=[out_dir, summary_path], follow_links=follow_links)
     if not found.files:
         raise InputError(
             "no data file found in "

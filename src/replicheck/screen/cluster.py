@@ -151,9 +151,7 @@ def cluster_work(task: object, time_limit: float | None) -> object:
         return Failure("timeout", f"no answer within the time limit of {time_limit:g} s")
     except Exception as err:
         warden.close()
-        return Failure(
-            "internal-error", f"the warden process on the worker failed: {one_line(err)}"
-        )
+        return Failure("unreadable", f"the warden process on the worker failed: {one_line(err)}")
     with _LOCK:
         _IDLE.append(warden)
     return result
@@ -180,7 +178,7 @@ def run_cluster(
             try:
                 result = future.result()
             except Exception as err:  # a lost worker, a failed task
-                result = Failure("internal-error", f"the cluster task failed: {one_line(err)}")
+                result = Failure("unreadable", f"the cluster task failed: {one_line(err)}")
             yield where[future.key], result
     finally:
         client.cancel(futures)

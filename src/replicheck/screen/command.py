@@ -79,6 +79,12 @@ from replicheck.screen.summary import SEVERITY, Row
     help="Significance level for every file (default: each spec's, else 0.05).",
 )
 @click.option("--fresh", is_flag=True, help="Redo every file, ignoring results of earlier runs.")
+@click.option(
+    "--follow-links",
+    is_flag=True,
+    help="Also screen files that symbolic links in a screened folder lead to outside it "
+    "(left out by default).",
+)
 def screen_command(
     paths: Sequence[str],
     out_dir: str,
@@ -92,6 +98,7 @@ def screen_command(
     seed: int,
     alpha: float | None,
     fresh: bool,
+    follow_links: bool,
 ) -> None:
     """Screen every data file in PATH... (folders searched recursively).
 
@@ -132,6 +139,7 @@ def screen_command(
             seed=seed,
             alpha=alpha,
             fresh=fresh,
+            follow_links=follow_links,
             progress=progress,
         )
     finally:

@@ -7,7 +7,10 @@ with ``.``), ``__MACOSX`` folders left by unzipping, Office lock files
 (``~$book.xlsx``), spec files (``NAME.replicheck.toml``), output folders of
 earlier screenings (they hold ``.screen-state.json``) and the paths given in
 ``skip`` (the output folder, the summary file) are left out. Symbolic links to
-folders are not followed (no loops); a file reached twice is listed once.
+folders are not followed (no loops); a symbolic link to a file outside the
+screened folder is left out with a warning unless ``follow_links`` is given
+(a supplement must not make the screener read other files of the machine); a
+file reached twice is listed once.
 """
 
 from __future__ import annotations
@@ -97,8 +100,16 @@ def _walk(root: Path, skip: Sequence[Path], warnings: list[str]) -> Iterable[Pat
                 yield p
 
 
+def _outside(path: Path, root: Path) -> bool:
+    """Whether a symbolic link under ``root`` leads outside it."""
+    real, real_root = os.path.realpath(path), os.path.realpath(root)
+    return os.path.commonpath([real, real_root]) != real_root
+
+
 def find_data_files(
-    paths: Sequence[str | os.PathLike[str]], skip: Sequence[Path] = ()
+    paths: Sequence[str | os.PathLike[str]],
+    skip: Sequence[Path] = (),
+    follow_links: bool = False,
 ) -> Discovery:
     """The data files in ``paths`` (files or folders), each once, ordered by name.
 
@@ -119,7 +130,15 @@ def find_data_files(
     found: list[DataFile] = []
     for root in roots:
         if root.is_dir():
-            candidates = [(p, p.relative_to(root)) for p in _walk(root, skip, warnings)]
+            candidates = []
+            for p in _walk(root, skip, warnings):
+                if not follow_links and p.is_symlink() and _outside(p, root):
+                    warnings.append(
+                        f"skipped {p}: a symbolic link to a file outside the screened folder "
+                        "(--follow-links reads it)"
+                    )
+                    continue
+                candidates.append((p, p.relative_to(root)))
         else:
             candidates = [(root, Path(root.name))]
         for p, rel in candidates:

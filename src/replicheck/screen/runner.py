@@ -4,8 +4,8 @@ Every file is screened in a fresh child process. That keeps files apart (no
 state, memory or random-number stream shared between files, so results do
 not depend on ``--jobs`` or on the order), lets a stuck file be killed when
 it passes the time limit, and turns a crash of the child (killed, out of
-memory, a fault in a compiled library) into an ``internal-error`` row for that
-file alone while the batch goes on.
+memory, a fault in a compiled library) into an ``unreadable`` row for that
+file alone, with the reason, while the batch goes on.
 
 On POSIX systems children are forked from a "forkserver" process that has
 imported the statistics stack once (:mod:`multiprocessing`'s ``forkserver``
@@ -103,7 +103,7 @@ def _collect(run: _Running) -> object:
         result = run.conn.recv()
     except (EOFError, OSError):
         run.process.join(_JOIN_SECONDS)
-        result = Failure("internal-error", _died(run.process.exitcode))
+        result = Failure("unreadable", _died(run.process.exitcode))
     except Exception as err:  # a result that cannot be unpickled
         result = Failure("internal-error", f"the result could not be received: {one_line(err)}")
     run.process.join(_JOIN_SECONDS)
@@ -123,7 +123,7 @@ def run_local(
 
     At most ``jobs`` children run at once. A child still running ``time_limit``
     seconds after it started is killed and gives ``Failure("timeout")``; a
-    child that dies without a result gives ``Failure("internal-error")``.
+    child that dies without a result gives ``Failure("unreadable")`` with the reason.
     Stopping the iteration (or an interruption) kills the children still running.
     """
     if jobs < 1:

@@ -8,11 +8,14 @@ entry, or the bytes of the spec file beside it), ``--guess``, ``--seed``,
 whose reports are still in ``DIR/reports``, is not redone.
 
 Only results that the same input always gives are stored: audit verdicts,
-``needs-spec`` and ``error``. ``timeout`` and ``internal-error`` depend on the
-machine and are retried; ``too-large`` is decided without reading the file.
-The state is written after every finished file (at most once a second) and
-at the end, by replacing the file whole, so an interrupted run resumes where
-it stopped.
+``needs-spec`` and ``error``. ``timeout``, ``unreadable`` and ``internal-error``
+depend on the machine and are retried; ``too-large`` is decided without reading the file.
+Every finished file is appended at once to a journal beside the state
+(``.screen-state.journal``, one JSON line per file); the state itself is
+rewritten at most once a second and at the end, by replacing the file whole,
+after which the journal is emptied. A run killed at any moment (even SIGKILL)
+therefore loses no finished file: the next run reads the state, then the
+journal (a line cut short by the kill is skipped).
 """
 
 from __future__ import annotations
@@ -28,6 +31,7 @@ from typing import Any
 from replicheck import __version__
 
 STATE_NAME = ".screen-state.json"
+JOURNAL_NAME = ".screen-state.journal"
 STATE_VERSION = 1
 CACHED_STATUSES = frozenset(
     {"ok", "pseudoreplicated", "confounded", "unclear", "needs-spec", "error"}
@@ -68,20 +72,46 @@ def task_key(
 
 
 def load_state(out_dir: Path) -> tuple[dict[str, dict[str, Any]], str | None]:
-    """The stored entries, and a warning when a state file exists but cannot be used."""
+    """The stored entries (state, then journal), and a warning when a state file exists
+    but cannot be used."""
     path = out_dir / STATE_NAME
-    if not path.exists():
-        return {}, None
+    entries: dict[str, dict[str, Any]] = {}
+    warning = None
+    if path.exists():
+        try:
+            doc = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+            doc = None
+            warning = f"ignoring unreadable state file {path}; every file is screened afresh"
+        if isinstance(doc, dict) and doc.get("version") == STATE_VERSION:
+            stored = doc.get("entries")
+            if isinstance(stored, dict):
+                entries = {k: v for k, v in stored.items() if isinstance(v, dict)}
+    if warning is None:
+        entries.update(_journal(out_dir / JOURNAL_NAME))
+    return entries, warning
+
+
+def _journal(path: Path) -> dict[str, dict[str, Any]]:
+    """The entries appended to the journal; lines that are not whole entries are skipped."""
+    out: dict[str, dict[str, Any]] = {}
     try:
-        doc = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
-        return {}, f"ignoring unreadable state file {path}; every file is screened afresh"
-    if not isinstance(doc, dict) or doc.get("version") != STATE_VERSION:
-        return {}, None
-    entries = doc.get("entries")
-    if not isinstance(entries, dict):
-        return {}, None
-    return {k: v for k, v in entries.items() if isinstance(v, dict)}, None
+        lines = path.read_bytes().splitlines()
+    except OSError:
+        return out
+    for line in lines:
+        try:
+            item = json.loads(line.decode("utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError):
+            continue
+        if (
+            isinstance(item, dict)
+            and item.get("version") == STATE_VERSION
+            and isinstance(item.get("key"), str)
+            and isinstance(item.get("entry"), dict)
+        ):
+            out[item["key"]] = item["entry"]
+    return out
 
 
 class StateWriter:
@@ -89,12 +119,16 @@ class StateWriter:
 
     def __init__(self, out_dir: Path, entries: Mapping[str, dict[str, Any]], interval: float = 1.0):
         self.path = out_dir / STATE_NAME
+        self.journal = out_dir / JOURNAL_NAME
         self.entries: dict[str, dict[str, Any]] = dict(entries)
         self.interval = interval
         self._last = 0.0
 
     def add(self, key: str, entry: dict[str, Any]) -> None:
         self.entries[key] = entry
+        line = json.dumps({"version": STATE_VERSION, "key": key, "entry": entry}, sort_keys=True)
+        with open(self.journal, "a", encoding="utf-8") as f:
+            f.write("\n" + line + "\n")  # a line cut short by a kill stays on its own line
         if time.monotonic() - self._last >= self.interval:
             self.flush()
 
@@ -106,4 +140,6 @@ class StateWriter:
         tmp = self.path.with_name(self.path.name + ".tmp")
         tmp.write_text(json.dumps(doc, indent=1, sort_keys=True), encoding="utf-8")
         os.replace(tmp, self.path)
+        with open(self.journal, "w", encoding="utf-8"):
+            pass  # everything in it is now in the state
         self._last = time.monotonic()

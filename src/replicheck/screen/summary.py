@@ -6,7 +6,7 @@ Rows are sorted by :data:`SEVERITY`, worst first, then by file name:
    ``pseudoreplicated``, ``unclear``): the claimed inference is, or may be,
    invalid, which is what an editor acts on first;
 2. files that could not be screened (``error``, ``timeout``, ``too-large``,
-   ``internal-error``): a person has to look at them;
+   ``unreadable``, ``internal-error``): a person has to look at them;
 3. ``needs-spec``: the authors have to say which analysis they claim;
 4. ``ok``: nothing was found.
 """
@@ -26,7 +26,7 @@ from replicheck.numbers import format_p
 
 # The audit's verdicts, worst first (as replicheck.verdict.STATUS_ORDER; checked by the tests).
 VERDICTS = ("confounded", "pseudoreplicated", "unclear", "ok")
-NOT_SCREENED = ("error", "timeout", "too-large", "internal-error")
+NOT_SCREENED = ("error", "timeout", "too-large", "unreadable", "internal-error")
 SEVERITY: tuple[str, ...] = (*VERDICTS[:-1], *NOT_SCREENED, "needs-spec", "ok")
 
 STATUS_MEANING: dict[str, str] = {
@@ -38,6 +38,8 @@ STATUS_MEANING: dict[str, str] = {
     "error": "the file could not be read, or its spec does not fit it",
     "timeout": "the audit took longer than the time limit and was stopped",
     "too-large": "the file is larger than the size limit and was not read",
+    "unreadable": "the process screening this file died before finishing (out of memory, or "
+    "a crash in a compiled library reading it); the reason is given",
     "internal-error": "replicheck failed on this file (a bug: please report it)",
     "needs-spec": "no claimed analysis is given for this file; candidates are proposed",
     "ok": "no problem was found with the claimed analysis",
@@ -143,7 +145,7 @@ td.num{text-align:right;white-space:nowrap}
 td.msg{min-width:22em;max-width:40em;font-size:.92em}
 .status{font-weight:bold;white-space:nowrap;padding:.1em .4em;border-radius:3px}
 .s-confounded{background:#f8d0d0}.s-pseudoreplicated{background:#fde0c8}
-.s-unclear{background:#fff1b8}.s-error,.s-timeout,.s-too-large,.s-internal-error{background:#e4e4e4}
+.s-unclear{background:#fff1b8}.s-error,.s-timeout,.s-too-large,.s-unreadable,.s-internal-error{background:#e4e4e4}
 .s-needs-spec{background:#dde8f6}.s-ok{background:#d6f0d6}
 .guessed{display:block;font-size:.85em;color:#7a3b00;font-weight:bold}
 .small{font-size:.85em;color:#555}

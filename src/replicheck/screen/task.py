@@ -66,7 +66,8 @@ class Outcome:
 
 @dataclass(frozen=True)
 class Failure:
-    """The work on one file did not finish: ``timeout`` or ``internal-error``."""
+    """The work on one file did not finish: ``timeout``, ``unreadable`` (the process died)
+    or ``internal-error``."""
 
     status: str
     message: str

@@ -85,7 +85,8 @@ def design_needs(
     """Units per level needed to detect the given level means (the observed effect)."""
     mu = np.asarray(level_means, dtype=float)
     t = mu.size
-    spread = float(np.mean((mu - mu.mean()) ** 2))
+    with np.errstate(over="ignore"):  # an effect too large to square: detected by any design
+        spread = float(np.mean((mu - mu.mean()) ** 2))
 
     def f2_at(m: float) -> float:
         var_mean = var_unit + var_residual / m
