@@ -532,6 +532,7 @@ def test_spec_keys() -> None:
         "family",
         "formula",
         "ignore",
+        "limits",
         "na",
         "response",
         "sheet",

@@ -166,3 +166,28 @@ def test_labels_the_figure_font_lacks(tmp_path: Path) -> None:
     assert out.returncode in (0, 1), out.stderr
     assert out.stderr == "report written to r.html\n"
     assert "🐟" in (tmp_path / "r.html").read_text(encoding="utf-8")
+
+
+def test_an_internal_error_names_the_stage(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # the last resort for a bug: one line naming the stage, exit 3 (a stand-in bug in
+    # the refit stage, raised in-process)
+    import replicheck.api
+    from replicheck.cli import main
+
+    def broken(*args: object, **kwargs: object) -> None:
+        raise RuntimeError("a stand-in bug\nover two lines")
+
+    monkeypatch.setattr(replicheck.api, "refit", broken)
+    monkeypatch.delenv("REPLICHECK_DEBUG", raising=False)
+    data = _table(tmp_path)
+    with pytest.raises(SystemExit) as stop:
+        main(["check", str(data), "-r", "y", "-t", "feed", "--no-spec"])
+    assert stop.value.code == 3
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert err.startswith(
+        "replicheck: internal error while refitting with the unit as the replicate: "
+        "RuntimeError: a stand-in bug over two lines"
+    )

@@ -166,7 +166,12 @@ def build_corpus(folder: Path, d: dict[str, pd.DataFrame]) -> dict[str, str]:
             "batch": batch,
         }
     )
-    write(folder / "slow_crossed.csv", slow, 'response = "y"\ntreatment = "arm"\n')
+    # its spec raises the bound on crossed levels (3,500 here) that keeps audits short
+    write(
+        folder / "slow_crossed.csv",
+        slow,
+        'response = "y"\ntreatment = "arm"\n[limits]\ncrossed-levels = 4000\n',
+    )
     expected["slow_crossed.csv"] = "timeout"
     # without a spec: needs-spec, whatever the format and name
     nospec = {

@@ -291,6 +291,16 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
         raise InputError("no row has both a response value and every treatment value")
     if frame[claim.response].nunique() < 2:
         raise InputError("response has the same value in every row; nothing to test")
+    for col in dict.fromkeys([*claim.treatments, *claim.roles.columns("covariate")]):
+        if col in frame.columns and pd.api.types.is_numeric_dtype(frame[col]):
+            values = frame[col].to_numpy(dtype=float)
+            bad = int(np.sum(np.isinf(values)))
+            if bad:
+                rows = "1 row" if bad == 1 else f"{bad} rows"
+                raise InputError(
+                    f"column '{col}' of the model has infinite values in {rows}: "
+                    "correct them or mark them missing (--na)"
+                )
     for t in claim.treatments:
         if frame[t].nunique() < 2:
             only = frame[t].iloc[0]
@@ -744,6 +754,7 @@ def audit(
             claimed_random,
             c.family,
             claimed_slopes,
+            c.limits.crossed_levels,
         )
         alternatives = _refit_alternatives(
             frame, y, structure, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2

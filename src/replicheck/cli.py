@@ -91,6 +91,10 @@ _STAGE_WORDS = {
 }
 
 
+#: The stage of the audit running now, named in an internal error's line.
+_CURRENT_STAGE: list[str | None] = [None]
+
+
 class _StageLine:
     """One line on standard error saying which stage of the audit is running (terminals
     only); the line is cleared when the audit ends, so nothing is left in the output."""
@@ -101,6 +105,7 @@ class _StageLine:
         self._on = sys.stderr.isatty()
 
     def begin(self, stage: str) -> None:
+        _CURRENT_STAGE[0] = stage
         if not self._on:
             return
         if stage != "read":
@@ -267,7 +272,9 @@ def _role_options(command: Any) -> Any:
     multiple=True,
     help="Raise (or lower) a limit on the work of one audit (repeatable): file-mb "
     "(default 4000), columns (20000), cell-chars (10000), workbook-mb (1000), sheet-cells "
-    "(50000000), levels of a treatment (1000), parameters of the claimed model (2000).",
+    "(50000000), levels of a treatment (1000), parameters of the claimed model (2000), "
+    "crossed-levels: levels of crossed groupings a mixed model is fitted with (2000; past "
+    "it the report rests on the unit means).",
 )
 def check(
     data: str,
@@ -418,8 +425,11 @@ def main(argv: Sequence[str] | None = None) -> None:
     except Exception as err:  # a bug: one line, and the traceback only on request
         if os.environ.get("REPLICHECK_DEBUG"):
             traceback.print_exc()
+        stage = _CURRENT_STAGE[0]
+        where = f" while {_STAGE_WORDS.get(stage, stage)}" if stage else ""
+        text = " ".join(str(err).split())
         click.echo(
-            f"replicheck: internal error: {type(err).__name__}: {err} "
+            f"replicheck: internal error{where}: {type(err).__name__}: {text} "
             f"(set REPLICHECK_DEBUG=1 for details; please report it)",
             err=True,
         )

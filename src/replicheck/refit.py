@@ -54,7 +54,7 @@ from replicheck.stats.classic import (
 from replicheck.stats.discrete import ResponseKind, gee_test
 from replicheck.stats.glm import GlmTerm, glm_start, glm_term_tests
 from replicheck.stats.glmm import fit_glmm, glmm_term_tests
-from replicheck.stats.mixed import MixedFit, fit_reml, satterthwaite_test
+from replicheck.stats.mixed import MAX_CROSSED_LEVELS, MixedFit, fit_reml, satterthwaite_test
 from replicheck.stats.nested import fit_nested_reml, summarise
 from replicheck.stats.random_slopes import RandomTerm, fit_random_slopes
 from replicheck.stats.randomisation import (
@@ -768,7 +768,11 @@ def nested_chain(random: Mapping[str, np.ndarray]) -> list[str] | None:
 
 
 def fit_mixed(
-    y: np.ndarray, X: np.ndarray, random: Mapping[str, np.ndarray], names: Sequence[str]
+    y: np.ndarray,
+    X: np.ndarray,
+    random: Mapping[str, np.ndarray],
+    names: Sequence[str],
+    max_levels: int = MAX_CROSSED_LEVELS,
 ) -> tuple[MixedFit, str]:
     """REML fit of the random intercepts, and which engine fitted it.
 
@@ -780,7 +784,7 @@ def fit_mixed(
     """
     chain = nested_chain(random)
     if chain is None:
-        return fit_reml(y, X, random, names), "general"
+        return fit_reml(y, X, random, names, max_levels), "general"
     levels = [dense_codes(random[k]) for k in chain]
     summaries = summarise(y, X, levels, chain, names)
     return fit_nested_reml(summaries), "summaries"
@@ -834,6 +838,7 @@ def _claimed_mixed(
     row_level: Sequence[Analysis],
     two: bool,
     slopes: Sequence[RandomTerm] = (),
+    max_levels: int = MAX_CROSSED_LEVELS,
 ) -> list[Analysis]:
     """The claimed mixed model's test of every term (REML, Satterthwaite df).
 
@@ -868,7 +873,7 @@ def _claimed_mixed(
             ]
             fit = fit_random_slopes(y, X, [*intercepts, *slopes], names)
         else:
-            fit, _ = fit_mixed(y, X, _distinct(random, int(y.size)) or random, names)
+            fit, _ = fit_mixed(y, X, _distinct(random, int(y.size)) or random, names, max_levels)
     except DesignError as err:
         why = f"the claimed mixed model could not be fitted ({err}); the row-level test is shown"
         return [replace(a, notes=(*a.notes, why)) for a in row_level]
@@ -1207,6 +1212,7 @@ def refit(
     claimed_random: Mapping[str, np.ndarray] | None = None,
     family: str | None = None,
     claimed_slopes: Sequence[RandomTerm] = (),
+    crossed_levels: int = MAX_CROSSED_LEVELS,
 ) -> Refit:
     """Run every analysis of every term.
 
@@ -1276,7 +1282,15 @@ def refit(
     elif claimed_random or claimed_slopes:
         x_claimed = with_blocks(X, fixed_blocks)
         claimed = _claimed_mixed(
-            y, x_claimed, index, terms, claimed_random or {}, claimed, single, claimed_slopes
+            y,
+            x_claimed,
+            index,
+            terms,
+            claimed_random or {},
+            claimed,
+            single,
+            claimed_slopes,
+            crossed_levels,
         )
     random = _random_units(terms, n) if strata is None else _distinct(strata, n)
     fit: MixedFit | None = None
@@ -1284,7 +1298,7 @@ def refit(
     engine = None
     if random:
         try:
-            fit, engine = fit_mixed(y, X, random, names)
+            fit, engine = fit_mixed(y, X, random, names, crossed_levels)
         except DesignError as err:
             not_fitted = f"the mixed model could not be fitted ({err}); the unit means are used"
     table = _strata_table(y, X, index, terms, random)

@@ -180,9 +180,9 @@ def read_table(
         raise limits.exceeded(
             "columns", f"{label}: the table has {parsed.frame.shape[1]:,} columns"
         )
-    data = _apply_missing(
-        parsed.frame, parsed.blank, codes, parsed.decimal, consume=digest is not None
-    )
+    holder = [parsed.frame]
+    parsed = replace(parsed, frame=pd.DataFrame())  # the holder keeps the only reference
+    data = _apply_missing(holder, parsed.blank, codes, parsed.decimal, consume=digest is not None)
     if len(data) == 0:
         where = "the DataFrame" if digest is None else f"{label}:"
         raise InputError(f"{where} has no data rows")
@@ -603,8 +603,20 @@ def _parquet_frame(arrow: pa.Table, label: str) -> tuple[pd.DataFrame, set[int]]
     """A Parquet table as a frame with cleaned names; consumes ``arrow``.
 
     A pandas index stored in the file comes back as the index: named levels
-    are kept as (leading) columns, an unnamed index is dropped.
+    are kept as (leading) columns, an unnamed index is dropped. A text column
+    whose bytes are not UTF-8 (as Parquet requires) is an input error.
     """
+    import pyarrow as pa
+
+    for name, column in zip(arrow.column_names, arrow.columns, strict=True):
+        if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
+            try:
+                column.validate(full=True)
+            except pa.ArrowInvalid:
+                raise InputError(
+                    f"{label}: text column '{name}' holds bytes that are not UTF-8, as "
+                    "Parquet requires: the file is damaged or was written wrongly"
+                ) from None
     frame = arrow.to_pandas(split_blocks=True, self_destruct=True)
     named_index = any(level is not None for level in frame.index.names)
     frame = frame.reset_index(drop=not named_index)
@@ -714,7 +726,7 @@ def _distinct_cells(series: pd.Series) -> tuple[np.ndarray | None, pd.Series]:
 
 
 def _apply_missing(
-    frame: pd.DataFrame,
+    holder: list[pd.DataFrame],
     blank: set[int],
     codes: _MissingCodes,
     decimal: str,
@@ -722,21 +734,19 @@ def _apply_missing(
 ) -> pd.DataFrame:
     """Apply missing codes; drop all-missing rows and unnamed all-missing columns.
 
-    With ``consume``, ``frame`` is emptied (its columns are taken as views
-    first), so a frame with one block per column (as pyarrow gives) is never
-    held twice; without it (a DataFrame given by the caller), ``frame`` is
-    left as it is.
+    ``holder`` holds the frame. With ``consume``, the frame is taken out of it
+    and let go once its columns are taken as views, so each column's memory
+    is freed once it is converted and a frame with one block per column (as
+    pyarrow gives) is never held twice; without it (a DataFrame given by the
+    caller), the holder keeps the frame.
     """
+    frame = holder.pop() if consume else holder[0]
     names = [str(c) for c in frame.columns]
-    # Columns are taken as views, then the frame lets go of all its blocks at once, so each
-    # column's memory is freed once it is converted (a frame with a block per column, as
-    # pyarrow gives, is never held twice). Popping columns one by one instead costs
-    # columns x blocks: minutes for a few thousand columns.
+    # Popping columns one by one instead costs columns x blocks: minutes for a few
+    # thousand columns.
     n_rows = len(frame)
     taken: list[pd.Series | None] = [frame.iloc[:, i] for i in range(len(names))]
-    if consume:
-        frame.columns = pd.Index([str(i) for i in range(len(names))])  # names may repeat
-        frame.drop(columns=list(frame.columns), inplace=True)
+    del frame
     filled = np.zeros(n_rows, dtype=bool)
     converted: dict[str, pd.Series] = {}
     for i, name in enumerate(names):
