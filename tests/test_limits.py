@@ -238,3 +238,27 @@ def test_a_term_with_many_levels_skips_only_the_costly_cross_checks() -> None:
     assert "work bound" in " ".join(by["cluster_robust"]["notes"])
     assert by["unit_means"]["p_value"] is not None
     assert by["unit_means"]["df"] == [79.0, 80.0]
+
+
+def test_blank_columns_before_a_stray_cell_are_dropped(tmp_path: Path) -> None:
+    # a value at XFD1 of a small sheet: 16,381 blank unnamed columns between (they once
+    # took a minute to convert one by one); the table keeps the named ones
+    from replicheck.io.reader import read_table
+
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    assert ws is not None
+    ws.append(["y", "feed"])
+    for i in range(6):
+        ws.append([float(i), "ab"[i % 2]])
+    ws["XFD1"] = "stray"
+    wb.save(tmp_path / "stray.xlsx")
+    table = read_table(tmp_path / "stray.xlsx")
+    assert table.columns == ["y", "feed", "stray"]
+    assert table.data["y"].tolist() == [0.0, 1.0, 2.0, 3.0, 4.0, 5.0]
+
+
+def test_an_invisible_character_is_shown_in_the_message(tmp_path: Path) -> None:
+    (tmp_path / "tab.csv").write_bytes(b"y,feed\n1.5,a\n2\x0b5,b\n3,a\n4,b\n")
+    out = _run(["tab.csv", "-r", "y", "-t", "feed"], tmp_path)
+    _one_line(out, "is not numeric (examples: '2\\x0b5')")

@@ -274,7 +274,9 @@ def numeric_column(table: Table, column: str, role: str = "response") -> pd.Seri
             values = parse_numbers(series, column_decimal(series))
         bad = series[series.notna() & values.isna()]
         if len(bad):
-            examples = quote_list(pd.unique(bad.astype(str).str.strip())[:3])
+            shown = pd.unique(bad.astype(str).str.strip())[:3]
+            # an invisible character is what makes a cell that looks like a number text
+            examples = quote_list(s if s.isprintable() else repr(s)[1:-1] for s in shown)
             raise InputError(f"{what} is not numeric (examples: {examples})")
     if values.notna().sum() == 0:
         raise InputError(f"{what} has no non-missing values")

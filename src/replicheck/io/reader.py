@@ -685,6 +685,8 @@ def _missing_in_column(series: pd.Series, codes: _MissingCodes, decimal: str) ->
         return series
     if is_numeric_dtype(series) and not isinstance(series.dtype, pd.CategoricalDtype):
         return series.mask(series.isin(codes.numbers)) if codes.numbers else series
+    if _blank(series):  # e.g. the empty columns before a stray cell far out in a sheet
+        return pd.Series(np.nan, index=series.index, dtype=float)
     keys, cells = _distinct_cells(series)
     text = cells.astype("string").str.strip()
     numbers = parse_numbers(text, decimal)
@@ -705,6 +707,17 @@ def _missing_in_column(series: pd.Series, codes: _MissingCodes, decimal: str) ->
     ):
         return series  # a text column with nothing to change: kept as it is, not rebuilt
     return pd.Series(labels.array.take(keys, allow_fill=True), index=series.index)
+
+
+def _blank(series: pd.Series) -> bool:
+    """Whether every cell is missing or white space (stops at the first that is not)."""
+    for v in series.to_numpy(dtype=object):
+        if v is None or (isinstance(v, float) and v != v) or v is pd.NA or v is pd.NaT:
+            continue
+        if isinstance(v, str) and not v.strip():
+            continue
+        return False
+    return True
 
 
 # a column is judged by distinct value when its first cells repeat this much
