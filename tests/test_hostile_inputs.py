@@ -191,3 +191,22 @@ def test_an_internal_error_names_the_stage(
         "replicheck: internal error while refitting with the unit as the replicate: "
         "RuntimeError: a stand-in bug over two lines"
     )
+
+
+def test_a_claimed_grouping_missing_in_every_row(tmp_path: Path) -> None:
+    # every value of the claimed random effect's grouping a missing code: the claimed
+    # mixed model has no rows (once an internal error); the row-level test stands, with
+    # the reason
+    path = tmp_path / "lost.csv"
+    d = pd.DataFrame({"y": np.arange(12.0) % 5, "feed": list("AB") * 6, "tank": ["-99"] * 12})
+    d.to_csv(path, index=False)
+    out = _run(
+        [path.name, "--formula", "y ~ feed + (1|tank)", "--na", "-99", "--format", "json"],
+        tmp_path,
+    )
+    assert out.returncode in (0, 1), out.stderr
+    assert out.stderr == ""
+    import json
+
+    notes = [n for a in json.loads(out.stdout)["analyses"] for n in a["notes"]]
+    assert any("could not be fitted (only 0 rows" in n for n in notes)

@@ -866,6 +866,11 @@ def _claimed_mixed(
         else []
     )
     try:
+        if y.size <= X.shape[1]:
+            raise DesignError(
+                f"only {y.size} rows have a value of every claimed grouping, not more than "
+                f"the {X.shape[1]} fixed-effect parameters"
+            )
         if slopes:
             intercepts = [
                 RandomTerm(g, codes, np.ones((y.size, 1)))

@@ -87,6 +87,8 @@ def omitted_slopes(
             for t in terms
         ]
         fixed_blocks = [b[known] for b in fixed_blocks]
+    if y.size < 3:  # no row (or almost none) has a value of every claimed grouping
+        return {}
     X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
     X = with_blocks(X, fixed_blocks)
     names = [f"x{j}" for j in range(X.shape[1])]
