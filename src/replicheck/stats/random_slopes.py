@@ -48,7 +48,9 @@ from replicheck.stats.reml_search import MixedFit
 
 __all__ = ["RandomTerm", "fit_random_slopes"]
 
-MAX_RANDOM_EFFECTS = 4000  # dense factorisations of this order stay within a few seconds
+# each evaluation factorises a dense matrix of this order, and the search needs hundreds: 1,000
+# random effects (500 subjects x intercept and slope) took 92 s on a busy 2-core machine
+MAX_RANDOM_EFFECTS = 1000
 # covariance parameters searched numerically (a 4 x 4 unstructured covariance has 10;
 # beyond about 15 the search and the numerical Hessian take minutes)
 MAX_THETA = 15

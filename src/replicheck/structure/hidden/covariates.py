@@ -139,14 +139,17 @@ def lack_of_fit(
         counts = np.bincount(groups, minlength=size)
         return np.asarray(x - (sums / counts)[groups], dtype=float)
 
-    v_c = centred(value.astype(float), cells, c)
-    y_c = centred(y.astype(float), cells, c)
-    sxx = float(v_c @ v_c)
-    if sxx <= 0:
+    with np.errstate(over="ignore", invalid="ignore"):  # values too large to square
+        v_c = centred(value.astype(float), cells, c)
+        y_c = centred(y.astype(float), cells, c)
+        sxx = float(v_c @ v_c)
+        if not (np.isfinite(sxx) and sxx > 0):
+            return None
+        slope = float(v_c @ y_c) / sxx
+        rss_line = float(((y_c - slope * v_c) ** 2).sum())
+        rss_pure = float((centred(y.astype(float), classes, k) ** 2).sum())
+    if not (np.isfinite(rss_line) and np.isfinite(rss_pure)):
         return None
-    slope = float(v_c @ y_c) / sxx
-    rss_line = float(((y_c - slope * v_c) ** 2).sum())
-    rss_pure = float((centred(y.astype(float), classes, k) ** 2).sum())
     df1, df2 = k - c - 1, n - k
     if df1 < 1 or df2 < 1 or rss_pure <= 0:
         return None
