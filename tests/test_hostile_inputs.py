@@ -224,3 +224,23 @@ def test_an_extreme_value_in_a_column_outside_the_model(tmp_path: Path) -> None:
     out = _run(["pups.csv", "-r", "weight", "-t", "Treatment", "--format", "json"], tmp_path)
     assert out.returncode in (0, 1), out.stderr
     assert out.stderr == ""
+
+
+def test_a_rank_deficient_claimed_poisson_model(tmp_path: Path) -> None:
+    # a 3 x 3 factorial with an empty cell claimed as a Poisson regression with the
+    # interaction: statsmodels warned that the design is singular (a warning on stderr)
+    rng = np.random.default_rng(8)
+    rows = [
+        (a, b, int(rng.poisson(4)))
+        for a in "pqr"
+        for b in "uvw"
+        if (a, b) != ("r", "w")
+        for _ in range(4)
+    ]
+    pd.DataFrame(rows, columns=["A", "B", "n"]).to_csv(tmp_path / "counts.csv", index=False)
+    out = _run(
+        ["counts.csv", "--formula", "n ~ A * B", "--family", "poisson", "--format", "json"],
+        tmp_path,
+    )
+    assert out.returncode in (0, 1), out.stderr
+    assert out.stderr == ""

@@ -53,6 +53,7 @@ def _fit(y: np.ndarray, X: np.ndarray, family: str) -> Any:
         ConvergenceWarning,
         DomainWarning,
         PerfectSeparationWarning,
+        SingularMatrixWarning,
     )
 
     fam = sm.families.Binomial() if family == "binomial" else sm.families.Poisson()
@@ -61,8 +62,14 @@ def _fit(y: np.ndarray, X: np.ndarray, family: str) -> Any:
         warnings.simplefilter("ignore", DomainWarning)
         warnings.simplefilter("error", ConvergenceWarning)
         warnings.simplefilter("ignore", RuntimeWarning)
+        warnings.simplefilter("error", SingularMatrixWarning)
         try:
             return sm.GLM(y, X, family=fam).fit(maxiter=100, tol=1e-12)
+        except SingularMatrixWarning:
+            raise DesignError(
+                "the model's design is rank-deficient (some terms are aliased): its "
+                "coefficients are not all estimable"
+            ) from None
         except PerfectSeparationWarning:
             raise DesignError(
                 "the levels separate the outcomes perfectly (a level with all 0s or all 1s): "
