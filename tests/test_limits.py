@@ -24,9 +24,9 @@ from replicheck.errors import InputError
 from replicheck.limits import Limits, make_limits
 
 
-def _run(args: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
+def _run(args: list[str], cwd: Path, spec: bool = False) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        [sys.executable, "-m", "replicheck", "check", *args, "--no-spec"],
+        [sys.executable, "-m", "replicheck", "check", *args, *([] if spec else ["--no-spec"])],
         capture_output=True,
         text=True,
         check=False,
@@ -86,24 +86,10 @@ def test_a_spec_raises_or_lowers_a_limit(tmp_path: Path) -> None:
     _tanks(n_extra=30).to_csv(tmp_path / "wide.csv", index=False)
     spec = tmp_path / "wide.replicheck.toml"
     spec.write_text('response = "y"\ntreatment = "feed"\n[limits]\ncolumns = 20\n')
-    out = subprocess.run(
-        [sys.executable, "-m", "replicheck", "check", "wide.csv"],
-        capture_output=True,
-        text=True,
-        check=False,
-        cwd=tmp_path,
-        timeout=120,
-    )
+    out = _run(["wide.csv"], tmp_path, spec=True)
     _one_line(out, "limit of 20 columns")
     spec.write_text('response = "y"\ntreatment = "feed"\nlimits = "columns"\n')
-    out = subprocess.run(
-        [sys.executable, "-m", "replicheck", "check", "wide.csv"],
-        capture_output=True,
-        text=True,
-        check=False,
-        cwd=tmp_path,
-        timeout=120,
-    )
+    out = _run(["wide.csv"], tmp_path, spec=True)
     _one_line(out, "--limit takes KEY=N")
 
 
