@@ -30,8 +30,16 @@ from replicheck.defaults import DEFAULT_SEED
 from replicheck.display import display_data
 from replicheck.errors import InputError
 from replicheck.formula import Transform, rename_columns
-from replicheck.io import Table, numeric_column, read_table, resolve_column
+from replicheck.io import (
+    ReadOptions,
+    Table,
+    fill_down,
+    numeric_column,
+    read_table,
+    resolve_column,
+)
 from replicheck.io.columns import yes_no_coding
+from replicheck.io.reshape import find_families, reshape_long
 from replicheck.partitions import same_partition, units_per_level
 from replicheck.random_terms import judged_groupings, slope_terms
 from replicheck.ranks import rank_tests
@@ -75,6 +83,7 @@ def make_claim(
     unit_labels: str | None = None,
     family: str | None = None,
     limits: Sequence[str] | Mapping[str, object] | None = None,
+    reading: ReadOptions | None = None,
 ) -> Claim:
     """Build the claim from options, an explicit spec, or the spec found beside the data file."""
     spec_data: Mapping[str, object] | None = None
@@ -106,7 +115,42 @@ def make_claim(
         unit_labels=unit_labels,
         family=family,
         limits=limits,
+        reading=reading,
     )
+
+
+def _filled(table: Table, c: Claim) -> Table:
+    """The table with groupings written once per block filled down (never the response)."""
+    reading = c.reading
+    if not reading.fill_down and not reading.find_fill:
+        return table
+    columns = table.columns
+    protect = {
+        col
+        for col in columns
+        if col == c.response or re.search(rf"(?<![\w.]){re.escape(col)}(?![\w.])", c.response)
+    }
+    protect |= {col for f in find_families(table.data) for col in f.columns}
+    stated = tuple(resolve_column(columns, name, "fill-down") for name in reading.fill_down)
+    data, filled = fill_down(table.data, protect=protect, stated=stated, detect=reading.find_fill)
+    if not filled:
+        return table
+    return replace(table, data=data, layout=replace(table.layout, filled=filled))
+
+
+def _long(table: Table, c: Claim) -> Table:
+    """The table in long form when a wide family of columns holds the response."""
+    reading = c.reading
+    ids = tuple(resolve_column(table.columns, name, "identifier") for name in reading.ids)
+    if ids and not reading.long and c.response in table.columns:
+        raise InputError(
+            "an identifier column is given (--id) but no wide columns to reshape: "
+            "name them with --long PATTERN"
+        )
+    data, done = reshape_long(table.data, response=c.response, patterns=reading.long, ids=ids)
+    if not done:
+        return table
+    return replace(table, data=data, layout=replace(table.layout, reshaped=done))
 
 
 def _resolve_statement(
@@ -449,6 +493,12 @@ def audit(
     name: str | None = None,
     family: str | None = None,
     limits: Sequence[str] | Mapping[str, object] | None = None,
+    header_row: int | None = None,
+    cell_range: str | None = None,
+    fill_down: str | Sequence[str] | bool | None = None,
+    find_fill: bool = True,
+    long: str | Sequence[str] = (),
+    ids: str | Sequence[str] = (),
 ) -> Report:
     """Audit one dataset against its claimed analysis.
 
@@ -525,6 +575,25 @@ def audit(
         Limits on the work of the audit, as ``KEY=N`` texts or a mapping
         (``{"columns": 20000}``): see :class:`replicheck.limits.Limits`. They
         replace the spec's limits of the same keys.
+    header_row, cell_range:
+        Where the table is in a text file or sheet: the row of its column names
+        (counting from 1) or its cells (``"A3:F130"``). By default the reader
+        finds it, skipping titles and notes above the header, a units row under
+        it and footnotes below the data; the report's "what was read" section
+        says what it did.
+    fill_down:
+        Columns to fill down (each empty cell takes the value above it), as a
+        name or a list; ``False`` turns off the search for grouping columns
+        written once per block, ``None`` (default) leaves it on. The response
+        is never filled.
+    find_fill:
+        ``False`` turns off the search while filling the columns ``fill_down`` names.
+    long, ids:
+        Patterns (``"day*"``) of wide columns holding one measurement repeated
+        over replicates, times or units, to turn into long form, and the
+        columns that identify a wide row. By default a wide family is reshaped
+        when the response is not a column of the table (see
+        :mod:`replicheck.io.reshape`).
 
     Returns
     -------
@@ -563,8 +632,21 @@ def audit(
         ):
             if value is not None:
                 given[key] = value
+        fill_names: tuple[str, ...] = ()
+        if isinstance(fill_down, str):
+            fill_names = (fill_down,)
+        elif fill_down is not None and not isinstance(fill_down, bool):
+            fill_names = tuple(str(v) for v in fill_down)
         c = make_claim(
             data,
+            reading=ReadOptions(
+                header_row,
+                cell_range,
+                fill_names,
+                find_fill and fill_down is not False,
+                (long,) if isinstance(long, str) else tuple(long),
+                (ids,) if isinstance(ids, str) else tuple(ids),
+            ),
             response=response,
             treatment=treatment,
             claim=claim,
@@ -586,9 +668,12 @@ def audit(
             na_values=c.na_values,
             progress=progress,
             limits=c.limits,
+            header_row=c.reading.header_row,
+            cell_range=c.reading.cell_range,
         )
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))
+        table = _long(_filled(table, c), c)
         if c.formula is not None and c.formula.transforms:
             table = _transformed(table, c.formula.transforms)
         c = _resolve(table, c)

@@ -55,6 +55,7 @@ from typing import NamedTuple, cast
 
 from replicheck.errors import InputError
 from replicheck.formula import ModelFormula, factor_name, parse_formula, replace_response
+from replicheck.io.table import ReadOptions
 from replicheck.limits import Limits, make_limits
 from replicheck.roles import ROLE_FIELDS, Roles, stated_roles
 
@@ -80,9 +81,14 @@ SPEC_KEYS = tuple(
             "alpha",
             "claim",
             "family",
+            "fill_down",
             "formula",
+            "header_row",
+            "id",
             "limits",
+            "long",
             "na",
+            "range",
             "response",
             "sheet",
             "treatment",
@@ -92,7 +98,16 @@ SPEC_KEYS = tuple(
     )
 )
 # keys whose value may be a list (in an index cell, values separated by ';')
-LIST_KEYS = ("treatment", "claim", "na", "limits", *(f.key for f in ROLE_FIELDS))
+LIST_KEYS = (
+    "treatment",
+    "claim",
+    "na",
+    "limits",
+    "fill_down",
+    "long",
+    "id",
+    *(f.key for f in ROLE_FIELDS),
+)
 UNIT_LABEL_MODES = ("auto", "local", "global")
 FAMILIES = ("binomial", "poisson")  # claimed logistic and Poisson regressions
 _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
@@ -622,6 +637,7 @@ class Claim:
     unit_labels: str | None = None  # auto | local | global, from the spec
     family: str | None = None  # binomial | poisson: a claimed logistic or Poisson regression
     limits: Limits = field(default_factory=Limits)
+    reading: ReadOptions = field(default_factory=ReadOptions)
 
     @property
     def unit(self) -> str | None:
@@ -766,6 +782,33 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
         ):
             raise InputError(f"'sheet' in {source} must be a sheet name or a number >= 0")
         out["sheet"] = value
+    if "header_row" in spec:
+        value = spec["header_row"]
+        if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+            raise InputError(f"'header_row' in {source} must be a row number (1 or more)")
+        out["header_row"] = value
+    if "range" in spec:
+        out["range"] = _text(spec["range"], "range", source)
+    if "fill_down" in spec:
+        value = spec["fill_down"]
+        if isinstance(value, str) and value.strip().casefold() in ("false", "no", "off"):
+            value = False  # as written in a cell of a screening index
+        if isinstance(value, bool):
+            out["fill_down"] = value
+        else:
+            columns: object = [value] if isinstance(value, str) else value
+            if not isinstance(columns, list | tuple) or not columns:
+                raise InputError(
+                    f"'fill_down' in {source} must be false, true, or a list of columns"
+                )
+            out["fill_down"] = tuple(_text(v, "fill_down", source) for v in columns)
+    for key in ("long", "id"):
+        if key in spec:
+            value = spec[key]
+            given: object = [value] if isinstance(value, str) else value
+            if not isinstance(given, list | tuple) or not given:
+                raise InputError(f"'{key}' in {source} must be a column pattern or a list")
+            out[key] = tuple(_text(v, key, source) for v in given)
     if "limits" in spec:
         value = spec["limits"]
         if isinstance(value, str):
@@ -887,6 +930,7 @@ def build_claim(
     unit_labels: str | None = None,
     family: str | None = None,
     limits: Sequence[str] | Mapping[str, object] | None = None,
+    reading: ReadOptions | None = None,
 ) -> Claim:
     """Merge command-line values with a spec; command-line values win.
 
@@ -922,7 +966,10 @@ def build_claim(
     are the union (spec first); alpha defaults to 0.05. An integer sheet from
     the spec becomes its string form (the reader decides name or position).
     ``limits`` (``KEY=N`` texts or a mapping, see :mod:`replicheck.limits`)
-    replace the spec's limits of the same keys.
+    replace the spec's limits of the same keys. ``reading`` (header row, range,
+    columns to fill down, whether to look for them) replaces the spec's
+    ``header_row``, ``range`` and ``fill_down`` where it states them; a header
+    row on one side and a range on the other: the command line's is used.
     """
     s = _check_spec(spec or {}, spec_path or "the spec")
     if isinstance(treatments, str):
@@ -998,4 +1045,21 @@ def build_claim(
         unit_labels=labels,
         family=fam,
         limits=make_limits(limits, "in the options", cast("Limits", s.get("limits", Limits()))),
+        reading=_reading(reading or ReadOptions(), s),
     )
+
+
+def _reading(given: ReadOptions, spec: Mapping[str, object]) -> ReadOptions:
+    """The command line's reading options, completed from the spec's."""
+    header_row, cell_range = given.header_row, given.cell_range
+    if header_row is None and cell_range is None:
+        header_row = cast("int | None", spec.get("header_row"))
+        cell_range = cast("str | None", spec.get("range"))
+    spec_fill = spec.get("fill_down", True)
+    fill = given.fill_down
+    if not fill and isinstance(spec_fill, tuple):
+        fill = cast("tuple[str, ...]", spec_fill)
+    find = given.find_fill and spec_fill is not False
+    long = given.long or cast("tuple[str, ...]", spec.get("long", ()))
+    ids = given.ids or cast("tuple[str, ...]", spec.get("id", ()))
+    return ReadOptions(header_row, cell_range, fill, find, long, ids)

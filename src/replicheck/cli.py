@@ -184,7 +184,8 @@ def _role_options(command: Any) -> Any:
     type=click.Path(dir_okay=False, path_type=str),
     help="TOML file with response, treatment (or formula), claim (one or a list), the "
     "stated roles unit, block, within, covariate, ignore (one or a list each), unit_labels, "
-    "alpha, na, sheet. Default: NAME.replicheck.toml beside the data file, if present.",
+    "alpha, na, sheet, header_row, range, fill_down, long, id. Default: "
+    "NAME.replicheck.toml beside the data file, if present.",
 )
 @click.option("--no-spec", is_flag=True, help="Ignore a spec file found beside the data.")
 @click.option("--alpha", type=float, metavar="A", help="Significance level (default 0.05).")
@@ -196,6 +197,48 @@ def _role_options(command: Any) -> Any:
     help="Extra missing-value code (repeatable); empty, NA, N/A and '.' always count.",
 )
 @click.option("--sheet", metavar="NAME", help="Sheet of an .xlsx workbook (name or 0-based index).")
+@click.option(
+    "--header-row",
+    type=click.IntRange(min=1),
+    metavar="N",
+    help="Row (line) of the column names, counting from 1; default: found, skipping "
+    "titles and notes above it.",
+)
+@click.option(
+    "--range",
+    "cell_range",
+    metavar="CELLS",
+    help="Cells holding the table, such as A3:F130 (its first row is the header); default: found.",
+)
+@click.option(
+    "--fill-down",
+    "fill_columns",
+    metavar="COL",
+    multiple=True,
+    help="Fill down this column: each empty cell takes the value above it (repeatable). "
+    "By default a grouping written once per block of rows is found and filled.",
+)
+@click.option(
+    "--long",
+    "long_patterns",
+    metavar="PATTERN",
+    multiple=True,
+    help="Wide columns holding one measurement over replicates, times or units, such as "
+    "'day*' or 'rep?' (repeatable): turned into long form. By default a wide family is "
+    "reshaped when the response is not a column.",
+)
+@click.option(
+    "--id",
+    "id_columns",
+    metavar="COL",
+    multiple=True,
+    help="Column identifying a wide row (a subject measured at each time), with --long.",
+)
+@click.option(
+    "--no-fill-down",
+    is_flag=True,
+    help="Do not look for grouping columns written once per block (see --fill-down).",
+)
 @click.option(
     "--family",
     type=click.Choice(["binomial", "poisson"]),
@@ -287,6 +330,12 @@ def check(
     alpha: float | None,
     na_codes: Sequence[str],
     sheet: str | None,
+    header_row: int | None,
+    cell_range: str | None,
+    fill_columns: Sequence[str],
+    long_patterns: Sequence[str],
+    id_columns: Sequence[str],
+    no_fill_down: bool,
     family: str | None,
     unit_labels: str | None,
     fmt: str,
@@ -321,6 +370,12 @@ def check(
         alpha=alpha,
         na=na_codes,
         sheet=sheet,
+        header_row=header_row,
+        cell_range=cell_range,
+        fill_down=tuple(fill_columns) or None,
+        find_fill=not no_fill_down,
+        long=tuple(long_patterns),
+        ids=tuple(id_columns),
         spec=spec,
         find_spec=not no_spec,
         unit_labels=unit_labels,

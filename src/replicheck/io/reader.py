@@ -25,7 +25,7 @@ import os
 import re
 import warnings
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -50,6 +50,8 @@ from replicheck.io.columns import (
     pick_columns,
     quote_list,
 )
+from replicheck.io.layout import HEAD_ROWS, TAIL_ROWS, find_box
+from replicheck.io.locate import CellRange, cut_grid, cut_text, parse_range, split_line
 from replicheck.io.scan import (
     FileStart,
     Meter,
@@ -58,7 +60,7 @@ from replicheck.io.scan import (
     scan_encodings,
     scan_file,
 )
-from replicheck.io.table import DEFAULT_NA, Table
+from replicheck.io.table import DEFAULT_NA, Layout, Table
 from replicheck.io.text import _SAMPLE_CHARS as _SNIFF_CHARS
 from replicheck.io.text import (
     EncodingScan,
@@ -69,6 +71,7 @@ from replicheck.io.text import (
     sniff_decimal,
     sniff_delimiter,
 )
+from replicheck.io.workbook import workbook_grid, workbook_sheets
 from replicheck.limits import Limits
 
 if TYPE_CHECKING:
@@ -83,6 +86,7 @@ _PARQUET_EXTENSIONS = frozenset({".parquet", ".pq"})
 _ZIP_MAGIC = b"PK\x03\x04"
 _PARQUET_MAGIC = b"PAR1"
 _OLE2_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"  # legacy .xls
+_ODS_MIMETYPE = b"mimetypeapplication/vnd.oasis.opendocument.spreadsheet"
 
 
 @dataclass(frozen=True)
@@ -104,6 +108,24 @@ class _Parsed:
     delimiter: str | None = None
     decimal: str = "."
     sheet: str | None = None
+    layout: Layout = field(default_factory=Layout)
+    units: tuple[tuple[str, str], ...] = ()
+
+
+@dataclass(frozen=True)
+class _Where:
+    """Where the user says the table is (``None``: found by the reader)."""
+
+    header_row: int | None = None
+    cell_range: CellRange | None = None
+
+    @property
+    def stated(self) -> bool:
+        return self.header_row is not None or self.cell_range is not None
+
+
+#: The layout of a table that has no rows in a file (Parquet, a DataFrame).
+_NO_LAYOUT = Layout(header_row=None, first_row=None)
 
 
 def read_table(
@@ -114,6 +136,8 @@ def read_table(
     columns: Sequence[str] | None = None,
     progress: ProgressCallback | None = None,
     limits: Limits | None = None,
+    header_row: int | None = None,
+    cell_range: str | None = None,
 ) -> Table:
     """Read ``source`` into a :class:`Table`.
 
@@ -142,6 +166,13 @@ def read_table(
     limits:
         The file size, column count, text cell length and workbook size that
         end in :class:`InputError` when passed (default :class:`Limits`).
+    header_row, cell_range:
+        The row of the column names (counting from 1, as a spreadsheet or an
+        editor shows it), or the cells that hold the table in spreadsheet
+        notation (``"A3:F130"``; its first row is the header); by default the
+        table is found (:mod:`replicheck.io.layout`): title and note rows above
+        the header, a units row under it and footnotes below the data are
+        skipped, and the table's :attr:`~Table.layout` says what was read.
 
     Raises
     ------
@@ -160,20 +191,29 @@ def read_table(
     codes = _missing_codes(na_values)
     wanted = _wanted_columns(columns)
     limits = limits or Limits()
+    where = _Where(header_row, None if cell_range is None else parse_range(cell_range))
+    if header_row is not None and cell_range is not None:
+        raise InputError("state either the header row or the range of cells, not both")
+    if header_row is not None and (isinstance(header_row, bool) or header_row < 1):
+        raise InputError(f"the header row counts from 1, got {header_row!r}")
     if isinstance(source, pd.DataFrame):
         label = "<dataframe>"
         if sheet is not None:
             raise InputError("a sheet can be chosen only when reading an Excel workbook")
+        if header_row is not None or cell_range is not None:
+            raise InputError("a header row or a range can be stated only when reading a file")
         names, blank = clean_names(list(source.columns))
         check_names(names, blank, "the DataFrame")
         keep = pick_columns(names, wanted, "the DataFrame")
         frame = source.copy() if len(keep) == len(names) else source.iloc[:, keep].copy()
         frame.columns = pd.Index([names[i] for i in keep])
-        parsed = _Parsed(frame, _remap(blank, keep), "dataframe")
+        parsed = _Parsed(frame, _remap(blank, keep), "dataframe", layout=_NO_LAYOUT)
         digest = None
     elif isinstance(source, str | os.PathLike):
         label = os.fspath(source)
-        digest, parsed = _read_file(Path(label), label, sheet, codes, wanted, progress, limits)
+        digest, parsed = _read_file(
+            Path(label), label, sheet, codes, wanted, progress, limits, where
+        )
     else:
         raise InputError(f"expected a file path or a DataFrame, got {type(source).__name__}")
     if parsed.frame.shape[1] > limits.columns:
@@ -181,11 +221,17 @@ def read_table(
             "columns", f"{label}: the table has {parsed.frame.shape[1]:,} columns"
         )
     holder = [parsed.frame]
+    n_read = len(parsed.frame)
     parsed = replace(parsed, frame=pd.DataFrame())  # the holder keeps the only reference
     data = _apply_missing(holder, parsed.blank, codes, parsed.decimal, consume=digest is not None)
+    layout = replace(
+        parsed.layout,
+        empty_rows=n_read - len(data),
+        units=tuple((name, unit) for name, unit in parsed.units if name in data.columns),
+    )
     if len(data) == 0:
-        where = "the DataFrame" if digest is None else f"{label}:"
-        raise InputError(f"{where} has no data rows")
+        place = "the DataFrame" if digest is None else f"{label}:"
+        raise InputError(f"{place} has no data rows")
     _check_cells(data, label, limits)
     is_text = parsed.format in ("csv", "tsv")
     return Table(
@@ -197,6 +243,7 @@ def read_table(
         delimiter=parsed.delimiter,
         decimal=parsed.decimal if is_text else None,
         sheet=parsed.sheet,
+        layout=layout,
     )
 
 
@@ -233,11 +280,16 @@ def read_header(
     kind = _file_kind(start, path, label, sheet)
     if kind == "parquet":
         return _parquet_header(path, label)
-    if kind == "excel":
-        return _excel_header(path, label, sheet)
+    if kind in ("xlsx", "xls", "ods"):
+        raw = _read_bytes(path, label)
+        parsed = _parse_workbook(raw, kind, label, sheet, Limits(), header_only=True)
+        return [str(c) for c in parsed.frame.columns]
     head_text = _header_text(path, start, label)
     delimiter = sniff_delimiter(head_text, _hint(path))
-    return _text_header(head_text, delimiter, label)[0]
+    cut = cut_text(head_text, delimiter, frozenset(DEFAULT_NA), label=label)
+    if cut.names is not None:
+        return clean_names(list(cut.names))[0]
+    return _text_header(cut.text, delimiter, label)[0]
 
 
 def _wanted_columns(columns: Sequence[str] | None) -> tuple[str, ...] | None:
@@ -263,14 +315,19 @@ def _missing_codes(user: Sequence[str]) -> _MissingCodes:
 
 
 def _file_kind(start: FileStart, path: Path, label: str, sheet: str | int | None) -> str:
-    """``"excel"``, ``"parquet"`` or ``"text"``: unmistakable content first, then the extension."""
+    """``"xlsx"``, ``"xls"``, ``"ods"``, ``"parquet"`` or ``"text"``: unmistakable
+    content first, then the extension."""
     suffix = path.suffix.lower()
     if start.head.startswith(_OLE2_MAGIC) or suffix == ".xls":
-        raise InputError(f"{label}: legacy .xls workbooks are not supported; save as .xlsx or .csv")
+        return "xls"
+    if _ODS_MIMETYPE in start.head[:120] or (
+        suffix == ".ods" and not start.head.startswith(_PARQUET_MAGIC)
+    ):
+        return "ods"
     if start.head.startswith(_ZIP_MAGIC) or suffix in _EXCEL_EXTENSIONS:
-        return "excel"
+        return "xlsx"
     if sheet is not None:
-        raise InputError(f"{label}: a sheet can be chosen only for an Excel workbook")
+        raise InputError(f"{label}: a sheet can be chosen only for a workbook (.xlsx, .xls, .ods)")
     if (start.head.startswith(_PARQUET_MAGIC) and start.tail.endswith(_PARQUET_MAGIC)) or (
         suffix in _PARQUET_EXTENSIONS
     ):
@@ -296,6 +353,7 @@ def _read_file(
     wanted: tuple[str, ...] | None,
     progress: ProgressCallback | None,
     limits: Limits,
+    where: _Where,
 ) -> tuple[str, _Parsed]:
     """The file's SHA-256 and its parsed frame (only the ``wanted`` columns)."""
     start = probe_file(path, label)
@@ -305,23 +363,32 @@ def _read_file(
     kind = _file_kind(start, path, label, sheet)
     parsed: _Parsed | None = None
     if kind == "parquet":
+        if where.stated:
+            raise InputError(
+                f"{label}: a header row or a range can be stated only for text files and "
+                "workbooks (a Parquet file names its columns)"
+            )
         digest = scan_file(path, start, label, meter, text=False).sha256
         parsed = _parse_parquet(path, label, wanted)
     elif kind == "text" and start.size >= LARGE_TEXT_BYTES:
         scan = scan_file(path, start, label, meter, text=True)
         digest = scan.sha256
         assert scan.encodings is not None
-        parsed = _parse_large_text(path, start, scan.encodings, label, codes, wanted, meter)
+        parsed = None
+        if not where.stated:
+            parsed = _parse_large_text(path, start, scan.encodings, label, codes, wanted, meter)
         if parsed is None:  # pyarrow cannot read it as pandas would: parse in memory
-            parsed = _parse_text(_read_bytes(path, label), label, _hint(path), codes, wanted)
+            parsed = _parse_text(_read_bytes(path, label), label, _hint(path), codes, wanted, where)
     else:
         raw = _read_bytes(path, label)
         meter.to(len(raw))
         digest = hashlib.sha256(raw).hexdigest()
-        if kind == "excel":
-            parsed = _select(_parse_excel(raw, label, sheet, limits), wanted, label)
+        if kind in ("xlsx", "xls", "ods"):
+            parsed = _select(
+                _parse_workbook(raw, kind, label, sheet, limits, codes, where), wanted, label
+            )
         else:
-            parsed = _parse_text(raw, label, _hint(path), codes, wanted)
+            parsed = _parse_text(raw, label, _hint(path), codes, wanted, where)
         del raw
     meter.finish()
     return digest, parsed
@@ -422,6 +489,8 @@ def _parse_large_text(
         first_record(head_text, delimiter)
     ):
         return None  # the header is not simply the first line
+    if not _plain_edges(path, start, head_text, encoding, delimiter, codes):
+        return None  # titles, a units row or notes: cut in memory
     positions = pick_columns(names, wanted, label)
     frame = read_delimited(
         str(path),
@@ -439,20 +508,64 @@ def _parse_large_text(
     return _Parsed(frame, _remap(blank, positions), kind, encoding, delimiter, decimal)
 
 
+def _plain_edges(
+    path: Path,
+    start: FileStart,
+    head_text: str,
+    encoding: str,
+    delimiter: str,
+    codes: _MissingCodes,
+) -> bool:
+    """Whether a large text file starts with its header and ends with data rows."""
+    try:
+        with path.open("rb") as handle:
+            handle.seek(max(0, start.size - 65536))
+            tail_raw = handle.read()
+    except OSError:
+        return False
+    tail_text = tail_raw.decode(encoding, errors="replace")
+    tail = tail_text.splitlines(keepends=True)[1:][-TAIL_ROWS:]
+    head = head_text.splitlines(keepends=True)[:HEAD_ROWS]
+    if len(head) < HEAD_ROWS:
+        return False
+    box = find_box(
+        [split_line(line, delimiter) for line in head],
+        [split_line(line, delimiter) for line in tail],
+        10**12,
+        missing=codes.texts,
+    )
+    return box.tidy
+
+
 def _parse_text(
     raw: bytes,
     label: str,
     hint: str | None,
     codes: _MissingCodes,
     wanted: tuple[str, ...] | None = None,
+    where: _Where | None = None,
 ) -> _Parsed:
     text, encoding = decode_text(raw, label)
     if not text.strip():
         raise InputError(f"{label}: the file is empty (only whitespace)")
+    where = where or _Where()
     delimiter = sniff_delimiter(text, hint)
     decimal = sniff_decimal(text, delimiter)
+    cut = cut_text(
+        text,
+        delimiter,
+        codes.texts,
+        header_row=where.header_row,
+        cell_range=where.cell_range,
+        label=label,
+    )
+    if cut.text is not text:
+        del text
+        text = cut.text
+        decimal = sniff_decimal(text, delimiter)
     names, blank = clean_names(first_record(text, delimiter))
-    check_names(names, blank, label)
+    if cut.names is None:
+        check_names(names, blank, label)
     try:
         with warnings.catch_warnings():
             # rows longer than the header would be cut silently: make it an error
@@ -477,13 +590,34 @@ def _parse_text(
             f"than the header or quotes are unbalanced ({_brief(exc)})"
         ) from exc
     del text
-    if len(frame.columns) == len(names):
+    if cut.names is not None and len(frame.columns) == len(cut.names):
+        names, blank = clean_names(list(cut.names))
+        check_names(names, blank, label)
+        frame.columns = pd.Index(names)
+    elif len(frame.columns) == len(names):
         frame.columns = pd.Index(names)
     else:  # the header split differently from pandas' view (odd quoting): trust pandas
         names, blank = clean_names(list(frame.columns))
         frame.columns = pd.Index(names)
+    if cut.columns is not None:
+        positions = list(range(len(names)))[cut.columns]
+        if not positions:
+            raise InputError(f"{label}: the range holds no columns of the table")
+        frame = frame.iloc[:, positions]
+        names = [names[i] for i in positions]
+        blank = _remap(blank, positions)
+        if cut.units is not None:
+            shift = cut.columns.start or 0
+            cut = replace(cut, units={j - shift: u for j, u in cut.units.items()})
+        check_names(names, blank, label)
+    units = tuple(
+        (names[j], unit) for j, unit in sorted((cut.units or {}).items()) if j < len(names)
+    )
     kind = "tsv" if delimiter == "\t" else "csv"
-    return _select(_Parsed(frame, blank, kind, encoding, delimiter, decimal), wanted, label)
+    parsed = _Parsed(
+        frame, blank, kind, encoding, delimiter, decimal, layout=cut.layout, units=units
+    )
+    return _select(parsed, wanted, label)
 
 
 def _pick_sheet(available: list[str], sheet: str | int | None, label: str) -> str:
@@ -559,7 +693,36 @@ def _excel_extent(raw: bytes, name: str, label: str, limits: Limits) -> None:
         book.close()
 
 
-def _parse_excel(raw: bytes, label: str, sheet: str | int | None, limits: Limits) -> _Parsed:
+def _parse_workbook(
+    raw: bytes,
+    kind: str,
+    label: str,
+    sheet: str | int | None,
+    limits: Limits,
+    codes: _MissingCodes | None = None,
+    where: _Where | None = None,
+    header_only: bool = False,
+) -> _Parsed:
+    """A sheet of a workbook (``kind``: xlsx, xls or ods) read as a grid, cut to its table."""
+    if kind == "xlsx":
+        name, grid = _xlsx_grid(raw, label, sheet, limits)
+    else:
+        available = workbook_sheets(raw, kind, label, limits)
+        if not available:
+            raise InputError(f"{label}: the workbook has no sheets")
+        name = _pick_sheet(available, sheet, label)
+        grid = workbook_grid(raw, kind, name, label, limits)
+    if grid.empty:
+        raise InputError(f"{label}: sheet '{name}' has no data rows")
+    return _sheet_table(
+        grid, label, name, kind, codes or _missing_codes(()), where or _Where(), header_only
+    )
+
+
+def _xlsx_grid(
+    raw: bytes, label: str, sheet: str | int | None, limits: Limits
+) -> tuple[str, pd.DataFrame]:
+    """The chosen sheet of an .xlsx workbook as a grid from cell A1."""
     # openpyxl and zipfile raise many exception types on damaged files
     # (BadZipFile, KeyError, ValueError, XML errors): any failure here means corrupt input.
     try:
@@ -572,31 +735,36 @@ def _parse_excel(raw: bytes, label: str, sheet: str | int | None, limits: Limits
         raise
     except Exception as exc:
         raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
-    if grid.empty:
-        raise InputError(f"{label}: sheet '{name}' has no data rows")
-    names, blank = clean_names(grid.iloc[0].tolist())
-    check_names(names, blank, f"{label} (sheet '{name}')")
-    frame = grid.iloc[1:].reset_index(drop=True).infer_objects()
-    frame.columns = pd.Index(names)
-    return _Parsed(frame, blank, "xlsx", sheet=name)
+    return name, grid
 
 
-def _excel_header(path: Path, label: str, sheet: str | int | None) -> list[str]:
-    """The cleaned names in the first row of the chosen sheet."""
-    try:
-        with pd.ExcelFile(path, engine="openpyxl") as book:
-            available = [str(name) for name in book.sheet_names]
-            name = _pick_sheet(available, sheet, label)
-            grid = pd.read_excel(book, sheet_name=name, header=None, nrows=1, keep_default_na=False)
-    except InputError:
-        raise
-    except Exception as exc:
-        raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
-    if grid.empty:
-        raise InputError(f"{label}: sheet '{name}' has no data rows")
-    names, blank = clean_names(grid.iloc[0].tolist())
-    check_names(names, blank, f"{label} (sheet '{name}')")
-    return names
+def _sheet_table(
+    grid: pd.DataFrame,
+    label: str,
+    name: str,
+    fmt: str,
+    codes: _MissingCodes,
+    where: _Where,
+    header_only: bool = False,
+) -> _Parsed:
+    """The table in a sheet's grid, found or as stated."""
+    where_label = f"{label} (sheet '{name}')"
+    cut = cut_grid(
+        grid,
+        codes.texts,
+        header_row=where.header_row,
+        cell_range=where.cell_range,
+        label=where_label,
+    )
+    names, blank = clean_names(cut.header)
+    check_names(names, blank, where_label)
+    if header_only:
+        return _Parsed(pd.DataFrame(columns=pd.Index(names)), blank, fmt, sheet=name)
+    frame = cut.frame.infer_objects()
+    frame = frame.iloc[:, : len(names)] if frame.shape[1] > len(names) else frame
+    frame.columns = pd.Index(names[: frame.shape[1]])
+    units = tuple((names[j], u) for j, u in sorted(cut.units.items()) if j < len(names))
+    return _Parsed(frame, blank, fmt, sheet=name, layout=cut.layout, units=units)
 
 
 def _parquet_frame(arrow: pa.Table, label: str) -> tuple[pd.DataFrame, set[int]]:
@@ -658,7 +826,7 @@ def _parse_parquet(path: Path, label: str, wanted: tuple[str, ...] | None) -> _P
         check_names(*clean_names(schema.names), label)
         if wanted is None:
             frame, blank = read(None)
-            return _Parsed(frame, blank, "parquet")
+            return _Parsed(frame, blank, "parquet", layout=_NO_LAYOUT)
         header = list(_parquet_frame(schema.empty_table(), label)[0].columns)
         chosen = [header[i] for i in pick_columns(header, wanted, label)]
         frame, blank = read([f for f in schema.names if clean_names([f])[0][0] in chosen])
@@ -671,7 +839,7 @@ def _parse_parquet(path: Path, label: str, wanted: tuple[str, ...] | None) -> _P
         raise _unreadable_parquet(label, exc) from exc
     names = list(frame.columns)
     positions = [names.index(name) for name in chosen]
-    return _Parsed(frame.iloc[:, positions], _remap(blank, positions), "parquet")
+    return _Parsed(frame.iloc[:, positions], _remap(blank, positions), "parquet", layout=_NO_LAYOUT)
 
 
 def _missing_in_column(series: pd.Series, codes: _MissingCodes, decimal: str) -> pd.Series:

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import pandas as pd
 
@@ -26,6 +26,103 @@ DEFAULT_NA: tuple[str, ...] = (
 )
 
 
+@dataclass(frozen=True)
+class ReadOptions:
+    """What the user states about where the table is and how to read it.
+
+    ``header_row`` (counting from 1) or ``cell_range`` (``"A3:F130"``) place
+    the table instead of the reader's search; ``fill_down`` names columns to
+    fill down whatever their pattern; ``find_fill`` turns the search for
+    columns to fill down on or off; ``long`` holds patterns (``"day*"``) of
+    wide columns to turn into long form and ``ids`` the columns that identify
+    a wide row.
+    """
+
+    header_row: int | None = None
+    cell_range: str | None = None
+    fill_down: tuple[str, ...] = ()
+    find_fill: bool = True
+    long: tuple[str, ...] = ()
+    ids: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class FilledColumn:
+    """A grouping column written once per block and filled down by the reader."""
+
+    column: str
+    cells: int
+    blocks: int
+    stated: bool = False
+
+
+@dataclass(frozen=True)
+class Reshaped:
+    """One wide-to-long reshape (see :mod:`replicheck.io.reshape`), for the report."""
+
+    columns: tuple[str, ...]  # the wide columns, in file order
+    key: str  # the new column holding the varying part
+    values: tuple[str, ...]  # the new column(s) holding the measurements
+    levels: int  # distinct varying parts
+    rows_before: int
+    rows_after: int
+    row_column: str | None  # the column numbering the wide rows, if added
+    stated: bool
+
+
+@dataclass(frozen=True)
+class Layout:
+    """How the table was found in the file: what a reviewer checks before the verdict.
+
+    Row numbers count from 1 as a spreadsheet or text editor shows them
+    (lines of a text file, rows of a sheet); ``None`` where they do not apply
+    (Parquet, a DataFrame).
+
+    Attributes
+    ----------
+    header_row:
+        Row of the column names (the lower one of two header rows).
+    header_rows:
+        1, or 2 when a row of group headings above the names was joined to them.
+    units_row:
+        Row of units under the header, if one was found (skipped as data).
+    first_row, last_row:
+        First and last row read as data (``last_row`` is ``None`` when the
+        data run to the end of the file).
+    cell_range:
+        The cells read, in spreadsheet notation, when they were stated or the
+        table does not start in cell A1 of a sheet.
+    skipped_above, skipped_below:
+        Text of the non-empty rows skipped above the header (titles, notes)
+        and below the data (footnotes).
+    units:
+        ``(column, unit)`` pairs from the units row.
+    stated:
+        What the user stated instead of leaving it to the reader
+        (``"header row"``, ``"range"``).
+    empty_rows:
+        Rows dropped because every cell read is missing.
+    filled:
+        Columns filled down (see :mod:`replicheck.io.filldown`).
+    reshaped:
+        Wide families of columns turned into long form.
+    """
+
+    header_row: int | None = 1
+    header_rows: int = 1
+    units_row: int | None = None
+    first_row: int | None = 2
+    last_row: int | None = None
+    cell_range: str | None = None
+    skipped_above: tuple[str, ...] = ()
+    skipped_below: tuple[str, ...] = ()
+    units: tuple[tuple[str, str], ...] = ()
+    stated: tuple[str, ...] = ()
+    empty_rows: int = 0
+    filled: tuple[FilledColumn, ...] = ()
+    reshaped: tuple[Reshaped, ...] = ()
+
+
 @dataclass(frozen=True, eq=False)
 class Table:
     """A data table as read, with where it came from and how it was parsed.
@@ -46,6 +143,8 @@ class Table:
         What was detected for a text file (``None`` otherwise).
     sheet:
         The sheet read from a workbook (``None`` otherwise).
+    layout:
+        Where the table was found in the file and what was changed in reading it.
     """
 
     data: pd.DataFrame
@@ -56,6 +155,7 @@ class Table:
     delimiter: str | None = None
     decimal: str | None = None
     sheet: str | None = None
+    layout: Layout = field(default_factory=Layout)
 
     @property
     def n_rows(self) -> int:

@@ -212,19 +212,36 @@ def sniff_delimiter(text: str, hint: str | None = None) -> str:
     Each candidate splits the first records; a candidate counts only when the
     header splits into at least two fields. Candidates are ranked by the share
     of records with as many fields as the header, then by agreement with the
-    file extension (``hint``), then by the number of fields. A file with a
-    single column gets ``hint`` or ``","``.
+    file extension (``hint``), then by the number of fields. When no candidate
+    splits half the records like the first (a title line above the header),
+    the candidate that splits the most records into the same number (two or
+    more) of fields is taken. A file with a single column gets ``hint`` or
+    ``","``.
     """
     best: tuple[float, bool, int, int] | None = None
     chosen = hint or ","
+    modal: tuple[float, bool, int, int] | None = None
+    modal_choice = chosen
     for rank, delimiter in enumerate(DELIMITERS):
         counts = [len(row) for row in _sample_rows(text, delimiter)]
-        if not counts or counts[0] < 2:
+        if not counts:
+            continue
+        common = max(set(counts), key=lambda c: (counts.count(c), c))
+        if common >= 2:
+            share = counts.count(common) / len(counts)
+            score = (share, delimiter == hint, common, -rank)
+            if modal is None or score > modal:
+                modal, modal_choice = score, delimiter
+        if counts[0] < 2:
             continue
         consistency = sum(c == counts[0] for c in counts) / len(counts)
         score = (consistency, delimiter == hint, counts[0], -rank)
         if best is None or score > best:
             best, chosen = score, delimiter
+    if (best is None or best[0] < 0.5) and modal is not None and modal[0] >= 0.5:
+        # the first record is not the header (a title line above it): the
+        # delimiter that splits most records alike decides
+        return modal_choice
     return chosen
 
 

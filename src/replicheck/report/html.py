@@ -16,6 +16,7 @@ from typing import Any
 
 from replicheck.report.figures import effects_figure, units_figure, variance_figure
 from replicheck.report.markdown import suggested_wording
+from replicheck.report.reading import reading_lines
 from replicheck.report.text import (
     STATUS_WORDS,
     TERMS_HEADER,
@@ -134,7 +135,7 @@ def _verdict(doc: dict[str, Any]) -> str:
 
 
 def _key_figures(doc: dict[str, Any]) -> str:
-    c, inp = doc["claim"], doc["input"]
+    c = doc["claim"]
     rows: list[list[str]] = [
         ["response", c["response"]],
         ["treatment", ", ".join(c["treatments"])],
@@ -164,9 +165,16 @@ def _key_figures(doc: dict[str, Any]) -> str:
     rc = doc["reported_check"]
     if rc["explanation"]:
         rows.append(["reported df", rc["explanation"]])
-    rows.append(["rows", f"{inp['n_rows']} read, {inp['n_rows_used']} analysed"])
     body = "".join(f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>' for k, v in rows)
     return f"<h2>Key figures</h2>\n<table>{body}</table>"
+
+
+def _reading_section(doc: dict[str, Any]) -> str:
+    body = "".join(
+        f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>'
+        for k, v in reading_lines(doc["input"])
+    )
+    return f"<h2>What was read</h2>\n<table>{body}</table>"
 
 
 def _units_section(doc: dict[str, Any]) -> str:
@@ -387,6 +395,7 @@ def render_html(doc: dict[str, Any]) -> str:
     sections = [
         _verdict(doc),
         _key_figures(doc),
+        _reading_section(doc),
         _units_section(doc),
         _effects_section(doc),
         _variance_section(doc),

