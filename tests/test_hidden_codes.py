@@ -354,3 +354,28 @@ def test_scan_covariates_rejects_a_text_response() -> None:
         scan_covariates(d, "growth", ["feed", "feed2"])
     with pytest.raises(InputError, match="not numeric"):
         scan_covariates(d.assign(note="fin damage"), "note", ["feed"])
+
+
+def test_repeat_check_dismisses_measurements_and_still_finds_repeats() -> None:
+    """The cheap count bound never hides a repeat, with missing cells on either side.
+
+    Invented 12-row table; the expected answers follow from the definition (two
+    codings repeat each other when they split the rows both know alike).
+    """
+    from replicheck.structure.hidden.codes import _Recorded
+
+    frame = pd.DataFrame(
+        {
+            "tank": ["a", "a", "b", "b", None, "c", "c", "d", "d", "e", "e", "f"],
+            "mass": np.linspace(1.0, 2.1, 12),  # a measurement: 12 values
+            "feed": ["x"] * 6 + ["y"] * 6,
+        }
+    )
+    trt = np.array([0] * 6 + [1] * 6)
+    rec = _Recorded(frame, ["tank", "mass"], ["feed"], {"feed": trt})
+    same_as_tank = np.array([0, 0, 1, 1, 2, 2, 2, 3, 3, -1, 4, 5])  # row 4 known here only
+    assert rec.repeats(same_as_tank)
+    other = np.array([0, 1, 0, 1, 0, 1, 0, 1, 0, 1, 0, 1])
+    assert not rec.repeats(other)
+    per_row = np.arange(12)  # one group per row: the measurement's partition
+    assert rec.repeats(per_row)

@@ -196,12 +196,14 @@ def test_xlsx_sheet_selection(tmp_path: Path, sheet: str | int) -> None:
     _assert_table_values(table)
 
 
-def test_xlsx_first_sheet_by_default(tmp_path: Path) -> None:
+def test_xlsx_first_sheet_holding_a_table_by_default(tmp_path: Path) -> None:
     path = tmp_path / "tanks.xlsx"
     _two_sheet_workbook(path)
-    table = read_table(path)
-    assert table.sheet == "notes"
-    assert table.data["comment"].tolist() == ["invented", "data"]
+    table = read_table(path)  # 'notes' holds one column: a readme, not a table
+    assert table.sheet == "data" and table.layout.skipped_sheets == ("notes",)
+    _assert_table_values(table)
+    notes = read_table(path, sheet="notes")  # still read when chosen
+    assert notes.data["comment"].tolist() == ["invented", "data"]
 
 
 @pytest.mark.parametrize("sheet", ["results", 5])
@@ -714,8 +716,8 @@ def test_read_header_of_each_format(tmp_path: Path) -> None:
     assert read_header(parquet) == read_table(parquet).columns == HEADER
     workbook = tmp_path / "tanks.xlsx"
     _two_sheet_workbook(workbook)
-    assert read_header(workbook) == ["comment"]
-    assert read_header(workbook, sheet="data") == HEADER
+    assert read_header(workbook) == HEADER  # as read_table: the first sheet holding a table
+    assert read_header(workbook, sheet="notes") == ["comment"]
     assert read_header(_frame()) == HEADER
 
 

@@ -428,3 +428,228 @@ def test_messy_ods_gives_the_tidy_report(tank_reports: dict[str, dict], tmp_path
     lay = doc["input"]["layout"]
     assert doc["input"]["format"] == "ods" and lay["header_row"] == header_row
     assert {f["column"] for f in lay["filled_down"]} == {"diet", "tank"}
+
+
+# --- one sheet per treatment -------------------------------------------------------------
+
+
+def _sheet_per_diet(path: Path, frame: pd.DataFrame, *, odd: bool = False) -> None:
+    """Invented: a readme sheet, then one sheet per diet with the same columns."""
+    with pd.ExcelWriter(path, engine="openpyxl") as writer:
+        pd.DataFrame({"about": ["Invented fork lengths; one sheet per diet"]}).to_excel(
+            writer, sheet_name="readme", index=False
+        )
+        for diet, part in frame.groupby("diet", sort=False):
+            part = part.drop(columns="diet")
+            if odd and diet == "enriched":
+                part = part.rename(columns={"length": "mass"})
+            part.to_excel(writer, sheet_name=str(diet), index=False)
+
+
+def test_sheets_stacked_give_the_tidy_report(tmp_path: Path) -> None:
+    frame = _tanks()
+    tidy = tmp_path / "tidy.csv"
+    frame.to_csv(tidy, index=False)
+    path = tmp_path / "by_diet.xlsx"
+    _sheet_per_diet(path, frame)
+    a = audit(tidy, response="length", treatment="diet").to_dict()
+    b = audit(path, response="length", treatment="sheet", sheet="all").to_dict()
+    assert _key(a) == _key(b)
+    lay = b["input"]["layout"]
+    assert lay["sheets"] == ["control", "enriched"] and lay["sheet_column"] == "sheet"
+    assert lay["skipped_sheets"] == ["readme"]
+    t = read_table(path, sheet=["enriched", "control"])
+    assert t.data["sheet"].tolist() == ["enriched"] * 12 + ["control"] * 12
+    first = read_table(path)  # by default: the first sheet holding a table
+    assert first.sheet == "control" and first.layout.skipped_sheets == ("readme",)
+
+
+def test_sheets_with_other_columns_ask_for_a_choice(tmp_path: Path) -> None:
+    path = tmp_path / "odd.xlsx"
+    _sheet_per_diet(path, _tanks(), odd=True)
+    with pytest.raises(InputError, match=r"different columns.*choose one with --sheet"):
+        read_table(path, sheet="all")
+
+
+# --- screening a folder of such supplements -------------------------------------------
+
+
+def test_screen_reads_messy_supplements_without_a_needs_spec_from_layout(tmp_path: Path) -> None:
+    """Invented supplements in four layouts, each with its spec: every one is screened
+    (none stops at the layout) and all give the tidy table's verdict and unit."""
+    frame = _tanks()
+    folder = tmp_path / "supplement"
+    folder.mkdir()
+    spec = 'response = "length"\ntreatment = "diet"\n'
+    frame.to_csv(folder / "tidy.csv", index=False)
+    _messy_csv(folder / "titled.csv", frame, fill=["diet", "tank"])
+    _messy_xlsx(folder / "merged.xlsx", frame, fill=["diet", "tank"])
+    wide = frame.pivot(index=["diet", "tank"], columns="fish", values="length")
+    wide.columns = [f"fish{c}" for c in wide.columns]
+    wide.reset_index().to_csv(folder / "wide.csv", index=False)
+    for name in ("tidy", "titled", "merged", "wide"):
+        (folder / f"{name}.replicheck.toml").write_text(spec, encoding="utf-8")
+    # and one without a spec, wide: the guess names the reshaped columns
+    wide.reset_index().to_csv(folder / "nospec.csv", index=False)
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "replicheck", "screen", str(folder), "--out", str(out)]
+    subprocess.run([*cmd, "--jobs", "1"], capture_output=True, text=True, timeout=600)
+    import csv
+
+    with open(out / "summary.csv", encoding="utf-8", newline="") as f:
+        rows = {r["file"]: r for r in csv.DictReader(f)}
+    for name in ("tidy.csv", "titled.csv", "merged.xlsx", "wide.csv"):
+        assert rows[name]["status"] == rows["tidy.csv"]["status"] == "pseudoreplicated", name
+        assert rows[name]["unit"] == "tank", name
+    assert rows["nospec.csv"]["status"] == "needs-spec"
+    assert "response 'value'" in rows["nospec.csv"]["message"]
+    assert "treatment 'diet'" in rows["nospec.csv"]["message"]
+
+
+def test_units_row_labels_the_figure_axis(tmp_path: Path) -> None:
+    import base64
+    import re
+
+    path = tmp_path / "messy.csv"
+    _messy_csv(path, _tanks(), fill=["diet", "tank"])
+    html = audit(path, response="length", treatment="diet").to_html()
+    svgs = [
+        base64.b64decode(m).decode("utf-8")
+        for m in re.findall(r'src="data:image/svg\+xml;base64,([^"]+)"', html)
+    ]
+    assert any(">length (mm)<" in svg for svg in svgs)
+    assert '<th scope="row">units</th><td>row 5 (length (mm)), not read as data</td>' in html
+
+
+# --- tables side by side ------------------------------------------------------------------
+
+
+def _side_by_side_csv(path: Path, frame: pd.DataFrame, *, other: bool = False) -> None:
+    """Invented: the control tanks' table beside the enriched tanks' table, titled."""
+    left = frame[frame["diet"] == "control"].drop(columns="diet").reset_index(drop=True)
+    right = frame[frame["diet"] == "enriched"].drop(columns="diet").reset_index(drop=True)
+    if other:
+        right = right.rename(columns={"length": "mass"})
+    width = left.shape[1]
+    lines = [
+        "Invented data: fork length by diet",
+        ",".join(["control"] + [""] * (width - 1) + [""] + ["enriched"] + [""] * (width - 1)),
+        ",".join([*left.columns, "", *right.columns]),
+    ]
+    for i in range(max(len(left), len(right))):
+        a = [str(v) for v in left.iloc[i]] if i < len(left) else [""] * width
+        b = [str(v) for v in right.iloc[i]] if i < len(right) else [""] * width
+        lines.append(",".join([*a, "", *b]))
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def test_tables_side_by_side_are_stacked_by_title(
+    tank_reports: dict[str, dict], tmp_path: Path
+) -> None:
+    path = tmp_path / "side.csv"
+    _side_by_side_csv(path, _tanks())
+    doc = audit(path, response="length", treatment="table").to_dict()
+    assert _key(doc) == _key(tank_reports["tidy.csv"])
+    lay = doc["input"]["layout"]
+    assert lay["tables"] == ["control", "enriched"] and lay["table_column"] == "table"
+    assert lay["header_row"] == 3
+
+
+def test_tables_side_by_side_with_other_columns_read_the_first(tmp_path: Path) -> None:
+    path = tmp_path / "side.csv"
+    _side_by_side_csv(path, _tanks(), other=True)
+    t = read_table(path)
+    assert t.columns == ["tank", "fish", "length"] and t.n_rows == 12
+    assert t.layout.skipped_tables == ("enriched ('tank', 'fish', 'mass')",)
+
+
+def test_two_header_rows_become_two_columns(tmp_path: Path) -> None:
+    """Invented: fork lengths of three fish in each of two tanks, measured in two
+    rounds; tank headings merged over their fish columns (openpyxl)."""
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.append(["round", "tank A", None, None, "tank B", None, None])
+    ws.append([None, "fish 1", "fish 2", "fish 3", "fish 1", "fish 2", "fish 3"])
+    ws.append([1, 51.0, 50.2, 49.7, 53.1, 52.4, 54.0])
+    ws.append([2, 55.3, 54.1, 53.0, 57.2, 56.6, 58.1])
+    ws.merge_cells("B1:D1")
+    ws.merge_cells("E1:G1")
+    ws.merge_cells("A1:A2")
+    path = tmp_path / "two_rows.xlsx"
+    wb.save(path)
+    t = read_table(path)
+    assert t.layout.header_rows == 2 and t.layout.header_row == 2
+    assert t.columns[:3] == ["round", "tank A fish 1", "tank A fish 2"]
+    long, done = reshape_long(t.data, response="length")
+    assert sorted(long.columns) == ["fish", "length", "round", "tank"]
+    assert {d.key for d in done} == {"tank", "fish"} and len(long) == 12
+    first = long[(long["round"] == 2) & (long["tank"] == "B") & (long["fish"] == 3)]
+    assert first["length"].tolist() == [58.1]
+
+
+# --- hostile sheets: a clear error or a bounded run -------------------------------------
+
+
+def _small_workbook(path: Path, edit: object = None) -> None:
+    """Invented: 8 rows of tank, diet, y; ``edit(ws)`` adds the hostile part."""
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.append(["tank", "diet", "y"])
+    for i in range(8):
+        ws.append([f"T{i // 2}", "a" if i < 4 else "b", 1.5 + i])
+    if callable(edit):
+        edit(ws)
+    wb.save(path)
+
+
+def _patch_sheet(path: Path, pattern: str, replacement: str) -> None:
+    """Edit the first sheet's XML (what openpyxl cannot write without expanding it)."""
+    import re
+    import zipfile
+
+    with zipfile.ZipFile(path) as z:
+        items = {n: z.read(n) for n in z.namelist()}
+    xml = items["xl/worksheets/sheet1.xml"].decode("utf-8")
+    patched = re.sub(pattern, replacement, xml, count=1)
+    assert patched != xml
+    items["xl/worksheets/sheet1.xml"] = patched.encode("utf-8")
+    with zipfile.ZipFile(path, "w") as z:
+        for name, data in items.items():
+            z.writestr(name, data)
+
+
+def test_a_stray_cell_in_the_last_row_is_a_note(tmp_path: Path) -> None:
+    path = tmp_path / "last_row.xlsx"
+    _small_workbook(path, lambda ws: ws.cell(row=1_048_576, column=1, value="checked"))
+    t = read_table(path)
+    assert t.n_rows == 8 and t.layout.last_row == 9
+    assert t.layout.skipped_below == ("checked",) and t.layout.cell_range == "A1:C9"
+
+
+def test_a_stray_cell_in_the_last_column_is_bounded(tmp_path: Path) -> None:
+    path = tmp_path / "last_col.xlsx"
+    _small_workbook(path, lambda ws: ws.cell(row=1, column=16_384, value="x"))
+    t = read_table(path)
+    assert t.n_rows == 8 and t.columns[:3] == ["tank", "diet", "y"]
+    assert t.data["y"].tolist() == [1.5 + i for i in range(8)]
+
+
+def test_cells_merged_over_the_whole_sheet(tmp_path: Path) -> None:
+    path = tmp_path / "merged.xlsx"
+    _small_workbook(path)
+    _patch_sheet(
+        path,
+        "</sheetData>",
+        '</sheetData><mergeCells count="1"><mergeCell ref="A1:XFD1048576"/></mergeCells>',
+    )
+    t = read_table(path)  # the merge is drawing, not data: the values stay
+    assert t.n_rows == 8 and t.data["y"].tolist() == [1.5 + i for i in range(8)]
+
+
+def test_a_formula_error_cell_is_missing(tmp_path: Path) -> None:
+    path = tmp_path / "error.xlsx"
+    _small_workbook(path)
+    # cell C5 as a spreadsheet program saves a failed formula: an error value
+    _patch_sheet(path, r'<c r="C5"[^>]*>.*?</c>', '<c r="C5" t="e"><f>1/0</f><v>#DIV/0!</v></c>')
+    t = read_table(path)
+    assert pd.api.types.is_numeric_dtype(t.data["y"]) and t.data["y"].isna().sum() == 1

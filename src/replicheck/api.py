@@ -75,7 +75,7 @@ def make_claim(
     claim: str | Sequence[str] | None = None,
     alpha: float | None = None,
     na: Sequence[str] = (),
-    sheet: str | None = None,
+    sheet: str | Sequence[str] | None = None,
     spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
     find_spec: bool = True,
     formula: str | None = None,
@@ -472,7 +472,7 @@ def audit(
     claim: str | Sequence[str] | None = None,
     alpha: float | None = None,
     na: Sequence[str] = (),
-    sheet: str | None = None,
+    sheet: str | Sequence[str] | None = None,
     spec: str | os.PathLike[str] | Mapping[str, object] | None = None,
     find_spec: bool = True,
     unit_labels: str | None = None,
@@ -564,7 +564,10 @@ def audit(
         each treatment level) or ``global`` (labels name the same unit
         everywhere); by default the spec's ``unit_labels``, else ``auto``.
     sheet, find_spec:
-        The sheet of an ``.xlsx`` workbook; whether to use a spec file found
+        The sheet of a workbook (.xlsx, .xls, .ods) by name or number; ``"all"``
+        or a list of names to stack the sheets with the same columns, each
+        row's sheet in a new column ``sheet`` (by default the first sheet that
+        holds a table); whether to use a spec file found
         beside the data file.
     family:
         ``binomial`` or ``poisson`` when the claimed analysis is a logistic or

@@ -630,7 +630,7 @@ class Claim:
     reported: ReportedResult | None = None
     alpha: float = 0.05
     na_values: tuple[str, ...] = ()
-    sheet: str | None = None
+    sheet: str | tuple[str, ...] | None = None  # a name or number, "all", or several names
     spec_path: str | None = None
     reported_terms: tuple[tuple[str, ReportedResult], ...] = ()
     formula: ModelFormula | None = None
@@ -775,12 +775,17 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
         out["na"] = tuple(str(v) for v in items)
     if "sheet" in spec:
         value = spec["sheet"]
-        if (
+        if isinstance(value, list | tuple) and value and all(isinstance(v, str) for v in value):
+            value = tuple(value)
+        elif (
             isinstance(value, bool)
             or not isinstance(value, str | int)
             or (isinstance(value, int) and value < 0)
         ):
-            raise InputError(f"'sheet' in {source} must be a sheet name or a number >= 0")
+            raise InputError(
+                f"'sheet' in {source} must be a sheet name, a number >= 0, \"all\", "
+                "or a list of sheet names"
+            )
         out["sheet"] = value
     if "header_row" in spec:
         value = spec["header_row"]
@@ -921,7 +926,7 @@ def build_claim(
     claim_text: str | None,
     alpha: float | None,
     na_values: Sequence[str],
-    sheet: str | None,
+    sheet: str | Sequence[str] | None,
     spec: Mapping[str, object] | None,
     spec_path: str | None = None,
     formula: str | None = None,
@@ -1030,7 +1035,9 @@ def build_claim(
     a = _check_alpha(alpha) if alpha is not None else cast(float, s.get("alpha", 0.05))
     spec_na = cast("tuple[str, ...]", s.get("na", ()))
     na = tuple(dict.fromkeys([*spec_na, *(str(v) for v in na_values)]))
-    sh = sheet if sheet is not None else cast("str | int | None", s.get("sheet"))
+    sh = sheet if sheet is not None else cast("str | int | tuple[str, ...] | None", s.get("sheet"))
+    if isinstance(sh, list | tuple):
+        sh = sh[0] if len(sh) == 1 else tuple(str(v) for v in sh)
     return Claim(
         response=resp,
         treatments=treats,
@@ -1038,7 +1045,7 @@ def build_claim(
         reported=reported,
         alpha=a,
         na_values=na,
-        sheet=None if sh is None else str(sh),
+        sheet=None if sh is None else sh if isinstance(sh, tuple) else str(sh),
         spec_path=spec_path,
         reported_terms=per_term,
         formula=model,

@@ -196,7 +196,15 @@ def _role_options(command: Any) -> Any:
     multiple=True,
     help="Extra missing-value code (repeatable); empty, NA, N/A and '.' always count.",
 )
-@click.option("--sheet", metavar="NAME", help="Sheet of an .xlsx workbook (name or 0-based index).")
+@click.option(
+    "--sheet",
+    "sheets",
+    metavar="NAME",
+    multiple=True,
+    help="Sheet of a workbook (.xlsx, .xls, .ods), by name or 0-based index; 'all', or "
+    "the option repeated, stacks the sheets with the same columns, each row's sheet in a "
+    "column 'sheet' (default: the first sheet holding a table).",
+)
 @click.option(
     "--header-row",
     type=click.IntRange(min=1),
@@ -329,7 +337,7 @@ def check(
     no_spec: bool,
     alpha: float | None,
     na_codes: Sequence[str],
-    sheet: str | None,
+    sheets: Sequence[str],
     header_row: int | None,
     cell_range: str | None,
     fill_columns: Sequence[str],
@@ -369,7 +377,7 @@ def check(
         formula=formula,
         alpha=alpha,
         na=na_codes,
-        sheet=sheet,
+        sheet=None if not sheets else sheets[0] if len(sheets) == 1 else tuple(sheets),
         header_row=header_row,
         cell_range=cell_range,
         fill_down=tuple(fill_columns) or None,

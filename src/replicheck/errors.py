@@ -18,3 +18,7 @@ class InputError(Exception):
 
     def __str__(self) -> str:
         return self.message
+
+
+class LimitExceeded(InputError):
+    """An input past a limit on the work of one audit (see :mod:`replicheck.limits`)."""

@@ -15,7 +15,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, fields, replace
 
-from replicheck.errors import InputError
+from replicheck.errors import InputError, LimitExceeded
 
 
 @dataclass(frozen=True)
@@ -45,12 +45,12 @@ class Limits:
         """The keys as written on the command line (``file-mb``, ``columns``, ...)."""
         return tuple(f.name.replace("_", "-") for f in fields(Limits))
 
-    def exceeded(self, key: str, what: str) -> InputError:
+    def exceeded(self, key: str, what: str) -> LimitExceeded:
         """The one-line error for ``what`` (a clause giving the size) exceeding limit ``key``."""
         limit = getattr(self, key)
         shown = f"{limit:g}" if isinstance(limit, float) else f"{limit:,}"
         flag = key.replace("_", "-")
-        return InputError(
+        return LimitExceeded(
             f"{what}, more than the limit of {shown} {_UNITS[key]}: "
             f"raise it with --limit {flag}=N (or [limits] in the spec) if the file is what "
             "it should be"

@@ -22,6 +22,9 @@ reasons, are in docs/method.md ("Reading the layout"):
 * **Units row.** The row under the header is a units row when its cells are
   unit-like words, such as ``(mm)``, ``g``, ``°C``, ``mg/L``, standing only
   over columns of numbers or dates.
+* **Tables side by side.** Columns empty from the header down that split the
+  named columns into runs of two or more are the gaps between tables set side
+  by side; each table is titled by the one cell above it, if there is one.
 * **Notes below.** The candidates are the last rows that fill fewer cells than
   the typical (median) data row. They are notes when one of them puts words in
   a column of numbers or dates or holds a note-like cell (several words, ``=``,
@@ -96,7 +99,9 @@ class Box:
     including, ``end`` (``None``: to the end of the grid). ``names`` are
     the joined names of a two-row header (``None``: the header row's cells).
     ``above`` and ``below`` hold the text of the skipped rows that are not
-    empty; ``unit_labels`` maps a column position to its unit.
+    empty; ``unit_labels`` maps a column position to its unit. ``blocks`` are
+    tables side by side (``(first column, end column, title)``), two or more,
+    when empty columns split the header and the data into them.
     """
 
     header: int = 0
@@ -107,6 +112,7 @@ class Box:
     above: tuple[str, ...] = ()
     below: tuple[str, ...] = ()
     unit_labels: dict[int, str] = field(default_factory=dict)
+    blocks: tuple[tuple[int, int, str], ...] = ()
 
     @property
     def start(self) -> int:
@@ -166,7 +172,8 @@ def find_box(
     header = _find_header(rows, kinds) if header_row is None else header_row
     if header >= len(rows):
         return Box(header=header)
-    names, header_rows = _two_rows(rows, kinds, header)
+    blocks = _side_by_side(rows, kinds, header)
+    names, header_rows = (None, 1) if blocks else _two_rows(rows, kinds, header)
     units = header + 1 if _is_units_row(kinds, rows, header + 1) else None
     start = header + 1 + (units is not None)
     above = tuple(t for t in (_row_text(rows[i]) for i in range(header + 1 - header_rows)) if t)
@@ -197,7 +204,44 @@ def find_box(
         above=above,
         below=below,
         unit_labels=unit_labels,
+        blocks=blocks,
     )
+
+
+def _side_by_side(
+    rows: list[list[Cell]], kinds: list[list[str]], header: int
+) -> tuple[tuple[int, int, str], ...]:
+    """Tables side by side: runs of named columns split by columns empty from the
+    header down, each run naming two or more columns; titled by the row above."""
+    width = max((len(r) for r in rows[header:]), default=0)
+    filled = [False] * width
+    for row_kinds in kinds[header:]:
+        for j, kind in enumerate(row_kinds):
+            if kind != "empty":
+                filled[j] = True
+    spans: list[tuple[int, int]] = []
+    j = 0
+    while j < width:
+        if not filled[j]:
+            j += 1
+            continue
+        first = j
+        while j < width and filled[j]:
+            j += 1
+        spans.append((first, j))
+    named = [
+        (a, b)
+        for a, b in spans
+        if sum(kinds[header][c] != "empty" for c in range(a, min(b, len(kinds[header])))) >= 2
+    ]
+    if len(named) < 2 or len(named) != len(spans):
+        return ()
+    above = rows[header - 1] if header > 0 else []
+    out = []
+    for k, (a, b) in enumerate(named, start=1):
+        titles = [cell_text(above[c]) for c in range(a, min(b, len(above))) if cell_text(above[c])]
+        out.append((a, b, titles[0] if len(titles) == 1 else f"table {k}"))
+    return tuple(out)
 
 
 def _row_text(row: Sequence[Cell]) -> str:

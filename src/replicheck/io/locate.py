@@ -12,12 +12,12 @@ from __future__ import annotations
 import csv
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import pandas as pd
 
 from replicheck.errors import InputError
-from replicheck.io.layout import HEAD_ROWS, TAIL_ROWS, Box, Cell, cell_text, find_box
+from replicheck.io.layout import HEAD_ROWS, TAIL_ROWS, Box, Cell, cell_kind, cell_text, find_box
 from replicheck.io.table import Layout
 
 _RANGE = re.compile(
@@ -88,6 +88,7 @@ class TextCut:
     names: tuple[str, ...] | None = None
     units: dict[int, str] | None = None
     columns: slice | None = None
+    blocks: tuple[tuple[int, int, str], ...] = ()
 
 
 def split_line(line: str, delimiter: str) -> list[Cell]:
@@ -171,14 +172,13 @@ def cut_text(
     if cell_range is not None:
         columns = slice(cell_range.left, cell_range.right)
         layout = _text_layout(box, stated, cell_range)
-        return TextCut(cut, layout, box.names, box.unit_labels, columns)
-    return TextCut(cut, _text_layout(box, stated, None), box.names, box.unit_labels)
+        return TextCut(cut, layout, box.names, box.unit_labels, columns, box.blocks)
+    layout = _text_layout(box, stated, None)
+    return TextCut(cut, layout, box.names, box.unit_labels, None, box.blocks)
 
 
 def _shift(box: Box, top: int, end: int | None) -> Box:
     """A box found in rows starting at ``top``, renumbered in the whole file."""
-    from dataclasses import replace
-
     return replace(
         box,
         header=box.header + top,
@@ -253,8 +253,6 @@ def cut_grid(
     if cell_range is not None:
         box = find_box(head, header_row=0, missing=missing)
         if cell_range.bottom is not None:
-            from dataclasses import replace
-
             box = replace(box, end=None, below=())
     else:
         box = find_box(
@@ -266,8 +264,20 @@ def cut_grid(
         )
     header = list(grid.iloc[box.header]) if box.names is None else list(box.names)
     frame = grid.iloc[box.start : box.end].reset_index(drop=True)
-    end = n if box.end is None else box.end
+    units = dict(box.unit_labels)
     width = _named_width(header)
+    side: Layout | None = None
+    if box.blocks:
+        frame.columns = pd.RangeIndex(frame.shape[1])
+        width = box.blocks[-1][1]
+        header, frame, units, side = stack_blocks(header, frame, box.blocks, units)
+        if side.skipped_tables:
+            width = box.blocks[0][1]
+    end = n if box.end is None else box.end
+    if box.end is not None:  # the last row that holds a value, not the empty rows before a note
+        body = grid.iloc[box.start : box.end]
+        held = (body.notna().to_numpy() & (body != "").to_numpy()).any(axis=1)
+        end = box.start + (int(held.nonzero()[0][-1]) + 1 if held.any() else 0)
     right_edge = left + width
     layout = Layout(
         header_row=top + box.header + 1,
@@ -276,13 +286,61 @@ def cut_grid(
         first_row=top + box.start + 1,
         last_row=top + end if box.end is not None or cell_range is not None else None,
         cell_range=_range_text(top + box.header + 1 - box.header_rows, left, top + end, right_edge)
-        if (cell_range is not None or not box.tidy or left)
+        if (cell_range is not None or not box.tidy or left or box.blocks)
         else None,
         skipped_above=box.above,
         skipped_below=box.below,
         stated=stated,
     )
-    return GridCut(header, frame, layout, box.unit_labels)
+    if side is not None:
+        layout = replace(
+            layout,
+            tables=side.tables,
+            table_column=side.table_column,
+            skipped_tables=side.skipped_tables,
+        )
+    return GridCut(header, frame, layout, units)
+
+
+def _shown(cells: Sequence[Cell]) -> str:
+    return ", ".join(f"'{cell_text(v)}'" for v in cells if cell_text(v))
+
+
+def stack_blocks(
+    header: list[Cell],
+    frame: pd.DataFrame,
+    blocks: tuple[tuple[int, int, str], ...],
+    units: dict[int, str],
+) -> tuple[list[Cell], pd.DataFrame, dict[int, str], Layout]:
+    """Tables set side by side as one table.
+
+    ``frame`` has positional columns (as the grid). When every table names the
+    same columns, they are stacked, each row's table title in a new first column
+    ``table``; otherwise the first table is read and the others are named in
+    the layout. Returns the header, the frame, the units by new position and a
+    layout holding only the side-by-side fields.
+    """
+    names = [tuple(cell_text(header[c]) for c in range(a, b)) for a, b, _ in blocks]
+    a0, b0, _ = blocks[0]
+    if any(n != names[0] for n in names):
+        skipped = tuple(f"{title} ({_shown(header[a:b])})" for a, b, title in blocks[1:])
+        kept = {j - a0: u for j, u in units.items() if a0 <= j < b0}
+        part = frame.iloc[:, a0:b0]
+        part.columns = pd.RangeIndex(b0 - a0)
+        return list(header[a0:b0]), part, kept, Layout(skipped_tables=skipped)
+    key = "table" if "table" not in names[0] else "table (side by side)"
+    parts = []
+    for a, b, title in blocks:
+        part = frame.iloc[:, a:b].copy()
+        part.columns = pd.RangeIndex(1, b - a + 1)
+        filled = part.apply(lambda col: col.map(lambda v: cell_kind(v) != "empty")).any(axis=1)
+        part = part[filled.to_numpy(dtype=bool)]
+        part.insert(0, 0, title)
+        parts.append(part)
+    stacked = pd.concat(parts, ignore_index=True)
+    shifted = {j - a0 + 1: u for j, u in units.items() if a0 <= j < b0}
+    titles = tuple(title for _, _, title in blocks)
+    return [key, *header[a0:b0]], stacked, shifted, Layout(tables=titles, table_column=key)
 
 
 def _named_width(header: Sequence[Cell]) -> int:

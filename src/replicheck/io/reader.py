@@ -24,10 +24,10 @@ import io
 import os
 import re
 import warnings
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, cast
 
 import numpy as np
 import pandas as pd
@@ -41,7 +41,7 @@ from pandas.api.types import (
 )
 
 from replicheck.codebook import column_codes
-from replicheck.errors import InputError
+from replicheck.errors import InputError, LimitExceeded
 from replicheck.io.arrow_csv import Dialect, read_delimited
 from replicheck.io.columns import (
     check_names,
@@ -51,7 +51,14 @@ from replicheck.io.columns import (
     quote_list,
 )
 from replicheck.io.layout import HEAD_ROWS, TAIL_ROWS, find_box
-from replicheck.io.locate import CellRange, cut_grid, cut_text, parse_range, split_line
+from replicheck.io.locate import (
+    CellRange,
+    cut_grid,
+    cut_text,
+    parse_range,
+    split_line,
+    stack_blocks,
+)
 from replicheck.io.scan import (
     FileStart,
     Meter,
@@ -131,7 +138,7 @@ _NO_LAYOUT = Layout(header_row=None, first_row=None)
 def read_table(
     source: str | os.PathLike[str] | pd.DataFrame,
     *,
-    sheet: str | int | None = None,
+    sheet: str | int | Sequence[str] | None = None,
     na_values: Sequence[str] = (),
     columns: Sequence[str] | None = None,
     progress: ProgressCallback | None = None,
@@ -148,7 +155,11 @@ def read_table(
         ``.parquet``/``.pq`` file (other extensions: the content decides), or a
         DataFrame.
     sheet:
-        Workbook sheet, by name or 0-based index; the first sheet by default.
+        Workbook sheet, by name or 0-based index; by default the first sheet
+        that holds a table (two or more named columns and a data row). ``"all"``
+        or a list of names stacks the sheets that hold tables with the same
+        columns, each row marked with its sheet in a new column ``sheet``; the
+        other sheets are skipped and named in the layout.
     na_values:
         Missing-value codes in addition to :data:`DEFAULT_NA`. Codes that are
         numbers (e.g. ``"-99"``) also match numeric cells (-99, -99.0).
@@ -282,7 +293,7 @@ def read_header(
         return _parquet_header(path, label)
     if kind in ("xlsx", "xls", "ods"):
         raw = _read_bytes(path, label)
-        parsed = _parse_workbook(raw, kind, label, sheet, Limits(), header_only=True)
+        parsed = _read_sheets(raw, kind, label, sheet, Limits(), _missing_codes(()), _Where())
         return [str(c) for c in parsed.frame.columns]
     head_text = _header_text(path, start, label)
     delimiter = sniff_delimiter(head_text, _hint(path))
@@ -314,7 +325,9 @@ def _missing_codes(user: Sequence[str]) -> _MissingCodes:
     return _MissingCodes(frozenset(DEFAULT_NA) | frozenset(extra), tuple(numbers))
 
 
-def _file_kind(start: FileStart, path: Path, label: str, sheet: str | int | None) -> str:
+def _file_kind(
+    start: FileStart, path: Path, label: str, sheet: str | int | Sequence[str] | None
+) -> str:
     """``"xlsx"``, ``"xls"``, ``"ods"``, ``"parquet"`` or ``"text"``: unmistakable
     content first, then the extension."""
     suffix = path.suffix.lower()
@@ -348,7 +361,7 @@ def _read_bytes(path: Path, label: str) -> bytes:
 def _read_file(
     path: Path,
     label: str,
-    sheet: str | int | None,
+    sheet: str | int | Sequence[str] | None,
     codes: _MissingCodes,
     wanted: tuple[str, ...] | None,
     progress: ProgressCallback | None,
@@ -385,7 +398,7 @@ def _read_file(
         digest = hashlib.sha256(raw).hexdigest()
         if kind in ("xlsx", "xls", "ods"):
             parsed = _select(
-                _parse_workbook(raw, kind, label, sheet, limits, codes, where), wanted, label
+                _read_sheets(raw, kind, label, sheet, limits, codes, where), wanted, label
             )
         else:
             parsed = _parse_text(raw, label, _hint(path), codes, wanted, where)
@@ -564,7 +577,7 @@ def _parse_text(
         text = cut.text
         decimal = sniff_decimal(text, delimiter)
     names, blank = clean_names(first_record(text, delimiter))
-    if cut.names is None:
+    if cut.names is None and not cut.blocks:
         check_names(names, blank, label)
     try:
         with warnings.catch_warnings():
@@ -589,8 +602,24 @@ def _parse_text(
             f"{label}: cannot be read as {shown}-delimited text; some rows have more fields "
             f"than the header or quotes are unbalanced ({_brief(exc)})"
         ) from exc
+    header_cells: list[object] = list(first_record(text, delimiter)) if cut.blocks else []
     del text
-    if cut.names is not None and len(frame.columns) == len(cut.names):
+    if cut.blocks and len(frame.columns) == len(header_cells):
+        frame.columns = pd.RangeIndex(frame.shape[1])
+        cells, frame, units_at, side = stack_blocks(
+            header_cells, frame, cut.blocks, dict(cut.units or {})
+        )
+        names, blank = clean_names(cells)
+        check_names(names, blank, label)
+        frame.columns = pd.Index(names)
+        layout = replace(
+            cut.layout,
+            tables=side.tables,
+            table_column=side.table_column,
+            skipped_tables=side.skipped_tables,
+        )
+        cut = replace(cut, layout=layout, units=units_at, names=None)
+    elif cut.names is not None and len(frame.columns) == len(cut.names):
         names, blank = clean_names(list(cut.names))
         check_names(names, blank, label)
         frame.columns = pd.Index(names)
@@ -693,6 +722,120 @@ def _excel_extent(raw: bytes, name: str, label: str, limits: Limits) -> None:
         book.close()
 
 
+#: A sheet holds a table when it has at least this many named columns.
+_TABLE_COLUMNS = 2
+
+
+def _sheet_names(raw: bytes, kind: str, label: str, limits: Limits) -> list[str]:
+    if kind != "xlsx":
+        return workbook_sheets(raw, kind, label, limits)
+    try:
+        with pd.ExcelFile(io.BytesIO(raw), engine="openpyxl") as book:
+            return [str(name) for name in book.sheet_names]
+    except Exception as exc:
+        raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
+
+
+def _holds_table(parsed: _Parsed) -> bool:
+    named = [i for i in range(parsed.frame.shape[1]) if i not in parsed.blank]
+    return len(named) >= _TABLE_COLUMNS and len(parsed.frame) > 0
+
+
+def _read_sheets(
+    raw: bytes,
+    kind: str,
+    label: str,
+    sheet: str | int | Sequence[str] | None,
+    limits: Limits,
+    codes: _MissingCodes,
+    where: _Where,
+) -> _Parsed:
+    """The chosen sheet, the first that holds a table, or several stacked."""
+    if sheet is not None and not _several(sheet):
+        return _parse_workbook(raw, kind, label, cast("str | int", sheet), limits, codes, where)
+    available = _sheet_names(raw, kind, label, limits)
+    if not available:
+        raise InputError(f"{label}: the workbook has no sheets")
+    if sheet is None and len(available) == 1:
+        return _parse_workbook(raw, kind, label, available[0], limits, codes, where)
+    listed = [] if isinstance(sheet, str | int | None) else [str(s) for s in sheet]
+    names = [_pick_sheet(available, s, label) for s in listed] if listed else available
+    tables: list[_Parsed] = []
+    skipped: list[str] = []
+    for name, parsed in _tables(raw, kind, label, names, limits, codes, where):
+        if parsed is None:
+            skipped.append(name)
+        elif sheet is None:  # the first sheet that holds a table
+            return replace(parsed, layout=replace(parsed.layout, skipped_sheets=tuple(skipped)))
+        else:
+            tables.append(parsed)
+    if sheet is None:
+        raise InputError(
+            f"{label}: no sheet holds a table of two or more named columns; "
+            f"sheets: {quote_list(available)}"
+        )
+    return _stacked(tables, skipped, label)
+
+
+def _tables(
+    raw: bytes,
+    kind: str,
+    label: str,
+    names: Sequence[str],
+    limits: Limits,
+    codes: _MissingCodes,
+    where: _Where,
+) -> Iterator[tuple[str, _Parsed | None]]:
+    """Each sheet with its table, or ``None`` when it holds none (a limit still stops)."""
+    for name in names:
+        try:
+            parsed = _parse_workbook(raw, kind, label, name, limits, codes, where)
+        except LimitExceeded:
+            raise
+        except InputError:
+            yield name, None
+            continue
+        yield name, parsed if _holds_table(parsed) else None
+
+
+def _several(sheet: str | int | Sequence[str]) -> bool:
+    if isinstance(sheet, str):
+        return sheet.strip().casefold() == "all"
+    return not isinstance(sheet, int)
+
+
+def _stacked(tables: list[_Parsed], skipped: list[str], label: str) -> _Parsed:
+    """Sheets with the same columns, one under the other, with a ``sheet`` column."""
+    if not tables:
+        raise InputError(f"{label}: none of the sheets holds a table of two or more named columns")
+    groups: dict[tuple[str, ...], list[_Parsed]] = {}
+    for t in tables:
+        groups.setdefault(tuple(str(c) for c in t.frame.columns), []).append(t)
+    columns, chosen = max(groups.items(), key=lambda kv: len(kv[1]))
+    others = [t.sheet for t in tables if all(t is not c for c in chosen)]
+    if len(chosen) == 1 and len(tables) > 1:
+        raise InputError(
+            f"{label}: the sheets hold tables with different columns "
+            f"({quote_list(str(t.sheet) for t in tables)}): choose one with --sheet"
+        )
+    key = "sheet" if "sheet" not in columns else "sheet (workbook)"
+    frames = []
+    for t in chosen:
+        frame = t.frame.copy()
+        frame.insert(0, key, str(t.sheet))
+        frames.append(frame)
+    frame = pd.concat(frames, ignore_index=True)
+    first = chosen[0]
+    blank = {i + 1 for i in first.blank}
+    layout = replace(
+        first.layout,
+        sheets=tuple(str(t.sheet) for t in chosen),
+        sheet_column=key,
+        skipped_sheets=tuple(str(s) for s in [*skipped, *others]),
+    )
+    return _Parsed(frame, blank, first.format, layout=layout, units=first.units)
+
+
 def _parse_workbook(
     raw: bytes,
     kind: str,
@@ -701,7 +844,6 @@ def _parse_workbook(
     limits: Limits,
     codes: _MissingCodes | None = None,
     where: _Where | None = None,
-    header_only: bool = False,
 ) -> _Parsed:
     """A sheet of a workbook (``kind``: xlsx, xls or ods) read as a grid, cut to its table."""
     if kind == "xlsx":
@@ -714,9 +856,7 @@ def _parse_workbook(
         grid = workbook_grid(raw, kind, name, label, limits)
     if grid.empty:
         raise InputError(f"{label}: sheet '{name}' has no data rows")
-    return _sheet_table(
-        grid, label, name, kind, codes or _missing_codes(()), where or _Where(), header_only
-    )
+    return _sheet_table(grid, label, name, kind, codes or _missing_codes(()), where or _Where())
 
 
 def _xlsx_grid(
@@ -745,7 +885,6 @@ def _sheet_table(
     fmt: str,
     codes: _MissingCodes,
     where: _Where,
-    header_only: bool = False,
 ) -> _Parsed:
     """The table in a sheet's grid, found or as stated."""
     where_label = f"{label} (sheet '{name}')"
@@ -758,8 +897,6 @@ def _sheet_table(
     )
     names, blank = clean_names(cut.header)
     check_names(names, blank, where_label)
-    if header_only:
-        return _Parsed(pd.DataFrame(columns=pd.Index(names)), blank, fmt, sheet=name)
     frame = cut.frame.infer_objects()
     frame = frame.iloc[:, : len(names)] if frame.shape[1] > len(names) else frame
     frame.columns = pd.Index(names[: frame.shape[1]])

@@ -16,7 +16,12 @@ judged like any other grouping. The rules (docs/method.md, "Wide tables"):
   table: then the family named like the response (``length_1 length_2`` for
   ``length``) or, failing that, the only family in the table. Families with the
   same varying tokens are reshaped alongside it (``length_d0 mass_d0
-  length_d7 mass_d7``), each into a column named by its stem.
+  length_d7 mass_d7``), each into a column named by its stem. Names with two
+  varying parts (``tank A fish 1`` ... ``tank B fish 3``, as two header rows
+  join) are reshaped twice, the last part first: when no family is named like
+  the response, several families alike but for the other part (same varying
+  tokens) are reshaped together, and the columns they give (``tank A``,
+  ``tank B``) form the family of the second pass.
 * **New columns.** The varying token goes to a column named by the word before
   it in the names (``day``, ``rep``, ``tank``; ``part`` when there is none),
   as numbers when every token is one (as a tidy table would hold them);
@@ -210,6 +215,12 @@ def reshape_long(
             family = named[0]
         elif len(families) == 1:
             family = families[0]
+        elif _alike(families):
+            # two varying parts (``tank A fish 1`` ... ``tank B fish 2``): the last
+            # one first, then the family its value columns make
+            first, done = _melt(data, families, response, ids, stated)
+            second, more = reshape_long(first, response=response, ids=ids)
+            return (second, done + more) if more else (data, ())
         else:
             return data, ()
         group = [family] + [
@@ -218,6 +229,13 @@ def reshape_long(
             if f is not family and sorted(f.parts) == sorted(family.parts) and f.rest
         ]
     return _melt(data, group, response, ids, stated)
+
+
+def _alike(families: Sequence[_Family]) -> bool:
+    """Families that differ only in another varying part: the same parts, distinct rests."""
+    rests = [f.rest for f in families]
+    parts = {tuple(sorted(f.parts)) for f in families}
+    return len(families) > 1 and len(parts) == 1 and all(rests) and len(set(rests)) == len(rests)
 
 
 def _normal(name: str) -> str:

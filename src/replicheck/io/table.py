@@ -10,6 +10,8 @@ import pandas as pd
 #: user passes. "." is the missing value of SAS and Stata exports, "-" a common
 #: spreadsheet placeholder, "#N/A" the Excel error value for "not available".
 #: Words that can be real labels (e.g. "None" for an untreated control) are left out.
+#: A spreadsheet formula that fails stores an error value (#DIV/0!, #VALUE!, ...):
+#: the cell holds no value, and is read as missing as R's readxl reads error cells.
 DEFAULT_NA: tuple[str, ...] = (
     "",
     ".",
@@ -23,6 +25,12 @@ DEFAULT_NA: tuple[str, ...] = (
     "#N/A",
     "NULL",
     "null",
+    "#DIV/0!",
+    "#VALUE!",
+    "#REF!",
+    "#NAME?",
+    "#NUM!",
+    "#NULL!",
 )
 
 
@@ -106,6 +114,16 @@ class Layout:
         Columns filled down (see :mod:`replicheck.io.filldown`).
     reshaped:
         Wide families of columns turned into long form.
+    sheets, sheet_column:
+        The sheets stacked into one table, and the column naming each row's
+        sheet (empty and ``None`` when one sheet was read).
+    skipped_sheets:
+        Sheets of the workbook not read: they hold no table, or a table with
+        other columns than the ones stacked.
+    tables, table_column, skipped_tables:
+        Tables set side by side with the same columns, stacked (their titles)
+        with each row's title in ``table_column``; tables beside the one read
+        that have other columns, not read (title and columns).
     """
 
     header_row: int | None = 1
@@ -121,6 +139,12 @@ class Layout:
     empty_rows: int = 0
     filled: tuple[FilledColumn, ...] = ()
     reshaped: tuple[Reshaped, ...] = ()
+    sheets: tuple[str, ...] = ()
+    sheet_column: str | None = None
+    skipped_sheets: tuple[str, ...] = ()
+    tables: tuple[str, ...] = ()
+    table_column: str | None = None
+    skipped_tables: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)

@@ -169,6 +169,14 @@ def _key_figures(doc: dict[str, Any]) -> str:
     return f"<h2>Key figures</h2>\n<table>{body}</table>"
 
 
+def _labelled(doc: dict[str, Any], column: str) -> str:
+    """A column's name with its unit from the file's units row, if one was given."""
+    unit = ((doc["input"].get("layout") or {}).get("units") or {}).get(column)
+    if not unit:
+        return column
+    return f"{column} {unit}" if unit.startswith(("(", "[")) else f"{column} ({unit})"
+
+
 def _reading_section(doc: dict[str, Any]) -> str:
     body = "".join(
         f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>'
@@ -219,7 +227,7 @@ def _units_section(doc: dict[str, Any]) -> str:
     )
     return (
         f"<h2>Observations grouped by experimental unit</h2>\n<figure>"
-        f"{_img(units_figure(d, doc['claim']['response']), alt)}"
+        f"{_img(units_figure(d, _labelled(doc, doc['claim']['response'])), alt)}"
         f"<figcaption>{_e(caption)}</figcaption></figure>\n{table}"
     )
 

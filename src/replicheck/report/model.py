@@ -71,6 +71,12 @@ def _layout(lay: Layout) -> dict[str, Any]:
             }
             for r in lay.reshaped
         ],
+        "sheets": list(lay.sheets),
+        "sheet_column": lay.sheet_column,
+        "skipped_sheets": list(lay.skipped_sheets),
+        "tables": list(lay.tables),
+        "table_column": lay.table_column,
+        "skipped_tables": list(lay.skipped_tables),
     }
 
 

@@ -45,6 +45,15 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
     where = f"{inp['source']} ({', '.join(parts)})" if parts else str(inp["source"])
     if inp.get("sheet") is not None:
         where += f", sheet '{inp['sheet']}'"
+    stacked = lay.get("sheets") or []
+    if stacked:
+        where += (
+            f", sheets {', '.join(repr(str(x)) for x in stacked)} stacked (each row's sheet in "
+            f"column '{lay.get('sheet_column')}')"
+        )
+    skipped_sheets = lay.get("skipped_sheets") or []
+    if skipped_sheets:
+        where += f"; sheets not read: {', '.join(repr(str(x)) for x in skipped_sheets)}"
     if lay.get("range"):
         stated = " (stated)" if "range" in lay.get("stated", []) else ""
         where += f", cells {lay['range']}{stated}"
@@ -71,6 +80,26 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
         if below:
             data += f"; notes below skipped: {_rows(len(below))} ({_quoted(below)})"
         lines.append(("data", data))
+    tables = lay.get("tables") or []
+    if tables:
+        lines.append(
+            (
+                "side by side",
+                f"{len(tables)} tables with the same columns ("
+                + ", ".join(repr(str(t)) for t in tables)
+                + f") stacked, each row's table in column '{lay.get('table_column')}'",
+            )
+        )
+    beside = lay.get("skipped_tables") or []
+    if beside:
+        lines.append(
+            (
+                "side by side",
+                "the first table was read; not read: "
+                + "; ".join(str(t) for t in beside)
+                + " (state --range to read another)",
+            )
+        )
     filled = lay.get("filled_down") or []
     if filled:
         items = ", ".join(

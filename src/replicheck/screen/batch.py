@@ -281,7 +281,7 @@ def screen(
         raise InputError(
             "no data file found in "
             + ", ".join(str(r) for r in roots)
-            + " (looked for .csv, .tsv, .txt, .xlsx, .parquet and similar)"
+            + " (looked for .csv, .tsv, .txt, .xlsx, .xls, .ods, .parquet and similar)"
         )
 
     client = None

@@ -24,7 +24,7 @@ from replicheck.errors import InputError
 from replicheck.screen.state import STATE_NAME
 
 DATA_EXTENSIONS: frozenset[str] = frozenset(
-    {".csv", ".tsv", ".tab", ".txt", ".xlsx", ".xlsm", ".xls", ".parquet", ".pq"}
+    {".csv", ".tsv", ".tab", ".txt", ".xlsx", ".xlsm", ".xls", ".ods", ".parquet", ".pq"}
 )
 _SKIP_FOLDERS = frozenset({"__MACOSX", "__pycache__"})
 

@@ -10,9 +10,12 @@ import time
 from dataclasses import replace
 from typing import Any
 
+import pandas as pd
+
 from replicheck.api import audit
 from replicheck.errors import InputError
-from replicheck.io import read_table
+from replicheck.io import Table, fill_down, read_table
+from replicheck.io.reshape import find_families, reshape_long
 from replicheck.report.model import Report
 from replicheck.screen.guess import propose
 from replicheck.screen.task import Outcome, Task, one_line
@@ -52,9 +55,26 @@ def outcome_of(report: Report, spec_source: str) -> Outcome:
     )
 
 
+#: The name a guessed response gets when it is held by a family of wide columns.
+WIDE_VALUES = "value"
+
+
+def _as_audited(table: Table) -> pd.DataFrame:
+    """The table as an audit would see it before the roles are known: groupings
+    written once per block filled down, and a lone family of wide columns in long
+    form (its values named :data:`WIDE_VALUES`), so that the guesses name the
+    columns the audit will read."""
+    families = find_families(table.data)
+    wide = {col for f in families for col in f.columns}
+    data, _ = fill_down(table.data, protect=wide)
+    if len(families) == 1 and WIDE_VALUES not in data.columns:
+        data, _ = reshape_long(data, response=WIDE_VALUES)
+    return data
+
+
 def _without_spec(task: Task) -> Outcome:
     table = read_table(task.path)
-    proposal = propose(table.data)
+    proposal = propose(_as_audited(table))
     candidates = proposal.describe()
     best = proposal.best
     if best is None:

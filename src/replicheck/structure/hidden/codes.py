@@ -224,6 +224,21 @@ class _Recorded:
         self.complete = {
             c: bool(codes.size and codes.min() >= 0) for c, codes in self.columns.items()
         }
+        # For the cheap dismissal in repeats(): each column's known rows, known
+        # count and number of distinct values.
+        names = list(self.columns)
+        self.names = names
+        n = len(frame)
+        self.known = (
+            np.vstack([self.columns[c] >= 0 for c in names]).astype(np.float32)
+            if names
+            else np.zeros((0, n), dtype=np.float32)
+        )
+        self.n_known = self.known.sum(axis=1)
+        self.n_distinct = np.array(
+            [int(self.columns[c].max()) + 1 if self.columns[c].size else 0 for c in names],
+            dtype=float,
+        )
         self.treatments = list(treatments)
         self.trt_codes = trt_codes
         self.extra: list[np.ndarray] = list(trt_codes.values())
@@ -244,9 +259,29 @@ class _Recorded:
             return mine == theirs and same_partition(codes, other)
         return _same(codes, other)
 
+    def _possible(self, codes: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        """Which columns (or their crossings with a finer coding) could repeat ``codes``
+        on ``rows``: on the rows where both are known a column keeps at least its
+        number of values less the rows it loses there, and a repeat needs as many
+        values as ``codes`` holds (at most). The test costs one matrix product for
+        all columns, so a table of thousands of measured columns is dismissed at once.
+        """
+        if not self.names:
+            return np.zeros(0, dtype=bool)
+        known = codes[rows]
+        groups = float(np.unique(known[known >= 0]).size)
+        both = self.known @ ((codes >= 0) & rows).astype(np.float32)
+        fewest = self.n_distinct - (self.n_known - both)
+        return (both > 0) & (fewest <= groups + 0.5)
+
     def repeats(self, codes: np.ndarray) -> bool:
         mine = _profile(codes) if codes.size and codes.min() >= 0 else None
-        for other in [*self.columns.values(), *self.extra]:
+        every = np.ones(codes.shape, dtype=bool)
+        possible = dict(zip(self.names, self._possible(codes, every), strict=True))
+        for c, other in self.columns.items():
+            if possible[c] and self._same_as(codes, mine, other):
+                return True
+        for other in self.extra:
             if self._same_as(codes, mine, other):
                 return True
         for t in self.treatments:
@@ -255,8 +290,9 @@ class _Recorded:
             # on rows where everything is known, a repeat of a treatment x column
             # coding is nested in the treatment and in the column
             in_trt = complete and is_nested(codes, trt)
+            crossed = dict(zip(self.names, self._possible(codes, trt >= 0), strict=True))
             for c, col in self.columns.items():
-                if c == t:
+                if c == t or not crossed[c]:
                     continue
                 if complete and self.complete[c] and not (in_trt and is_nested(codes, col)):
                     continue
