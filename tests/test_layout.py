@@ -460,8 +460,25 @@ def test_sheets_stacked_give_the_tidy_report(tmp_path: Path) -> None:
     assert lay["skipped_sheets"] == ["readme"]
     t = read_table(path, sheet=["enriched", "control"])
     assert t.data["sheet"].tolist() == ["enriched"] * 12 + ["control"] * 12
-    first = read_table(path)  # by default: the first sheet holding a table
-    assert first.sheet == "control" and first.layout.skipped_sheets == ("readme",)
+    with pytest.raises(InputError, match="'control', 'enriched' each hold a table"):
+        read_table(path)  # two tables and nothing to choose by: not guessed
+
+
+def test_the_sheet_holding_the_claimed_columns_is_read(tmp_path: Path) -> None:
+    # invented: a readme, the data, and a small table of tank positions
+    path = tmp_path / "book.xlsx"
+    with pd.ExcelWriter(path, engine="openpyxl") as writer:
+        pd.DataFrame({"about": ["invented"]}).to_excel(writer, sheet_name="readme", index=False)
+        _tanks().to_excel(writer, sheet_name="fish", index=False)
+        pd.DataFrame({"tank": ["T1", "T2"], "row": [1, 2]}).to_excel(
+            writer, sheet_name="positions", index=False
+        )
+    t = read_table(path, needed=["diet"])
+    assert t.sheet == "fish" and t.layout.skipped_sheets == ("readme", "positions")
+    doc = audit(path, response="length", treatment="diet").to_dict()
+    assert doc["input"]["sheet"] == "fish"
+    with pytest.raises(InputError, match="each hold a table"):
+        read_table(path)
 
 
 def test_sheets_with_other_columns_ask_for_a_choice(tmp_path: Path) -> None:

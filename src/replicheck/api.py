@@ -566,8 +566,9 @@ def audit(
     sheet, find_spec:
         The sheet of a workbook (.xlsx, .xls, .ods) by name or number; ``"all"``
         or a list of names to stack the sheets with the same columns, each
-        row's sheet in a new column ``sheet`` (by default the first sheet that
-        holds a table); whether to use a spec file found
+        row's sheet in a new column ``sheet`` (by default the one sheet that
+        holds a table, or the one with the treatment columns); whether to use a
+        spec file found
         beside the data file.
     family:
         ``binomial`` or ``poisson`` when the claimed analysis is a logistic or
@@ -673,6 +674,7 @@ def audit(
             limits=c.limits,
             header_row=c.reading.header_row,
             cell_range=c.reading.cell_range,
+            needed=c.treatments,
         )
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))

@@ -203,7 +203,8 @@ def _role_options(command: Any) -> Any:
     multiple=True,
     help="Sheet of a workbook (.xlsx, .xls, .ods), by name or 0-based index; 'all', or "
     "the option repeated, stacks the sheets with the same columns, each row's sheet in a "
-    "column 'sheet' (default: the first sheet holding a table).",
+    "column 'sheet' (default: the one sheet holding a table, or the one with the "
+    "treatment columns).",
 )
 @click.option(
     "--header-row",

@@ -49,6 +49,7 @@ from replicheck.io.columns import (
     parse_numbers,
     pick_columns,
     quote_list,
+    resolve_column,
 )
 from replicheck.io.layout import HEAD_ROWS, TAIL_ROWS, find_box
 from replicheck.io.locate import (
@@ -145,6 +146,7 @@ def read_table(
     limits: Limits | None = None,
     header_row: int | None = None,
     cell_range: str | None = None,
+    needed: Sequence[str] = (),
 ) -> Table:
     """Read ``source`` into a :class:`Table`.
 
@@ -155,8 +157,10 @@ def read_table(
         ``.parquet``/``.pq`` file (other extensions: the content decides), or a
         DataFrame.
     sheet:
-        Workbook sheet, by name or 0-based index; by default the first sheet
-        that holds a table (two or more named columns and a data row). ``"all"``
+        Workbook sheet, by name or 0-based index; by default the one sheet
+        that holds a table (two or more named columns and a data row), or,
+        when several do, the one whose table has the ``needed`` columns (an
+        input error asks for a choice when that does not settle it). ``"all"``
         or a list of names stacks the sheets that hold tables with the same
         columns, each row marked with its sheet in a new column ``sheet``; the
         other sheets are skipped and named in the layout.
@@ -184,6 +188,9 @@ def read_table(
         table is found (:mod:`replicheck.io.layout`): title and note rows above
         the header, a units row under it and footnotes below the data are
         skipped, and the table's :attr:`~Table.layout` says what was read.
+    needed:
+        Columns the caller needs (the claimed treatments), used only to choose
+        the sheet of a workbook whose sheets hold several tables.
 
     Raises
     ------
@@ -223,7 +230,7 @@ def read_table(
     elif isinstance(source, str | os.PathLike):
         label = os.fspath(source)
         digest, parsed = _read_file(
-            Path(label), label, sheet, codes, wanted, progress, limits, where
+            Path(label), label, sheet, codes, wanted, progress, limits, where, needed
         )
     else:
         raise InputError(f"expected a file path or a DataFrame, got {type(source).__name__}")
@@ -367,6 +374,7 @@ def _read_file(
     progress: ProgressCallback | None,
     limits: Limits,
     where: _Where,
+    needed: Sequence[str] = (),
 ) -> tuple[str, _Parsed]:
     """The file's SHA-256 and its parsed frame (only the ``wanted`` columns)."""
     start = probe_file(path, label)
@@ -398,7 +406,7 @@ def _read_file(
         digest = hashlib.sha256(raw).hexdigest()
         if kind in ("xlsx", "xls", "ods"):
             parsed = _select(
-                _read_sheets(raw, kind, label, sheet, limits, codes, where), wanted, label
+                _read_sheets(raw, kind, label, sheet, limits, codes, where, needed), wanted, label
             )
         else:
             parsed = _parse_text(raw, label, _hint(path), codes, wanted, where)
@@ -749,6 +757,7 @@ def _read_sheets(
     limits: Limits,
     codes: _MissingCodes,
     where: _Where,
+    needed: Sequence[str] = (),
 ) -> _Parsed:
     """The chosen sheet, the first that holds a table, or several stacked."""
     if sheet is not None and not _several(sheet):
@@ -765,16 +774,50 @@ def _read_sheets(
     for name, parsed in _tables(raw, kind, label, names, limits, codes, where):
         if parsed is None:
             skipped.append(name)
-        elif sheet is None:  # the first sheet that holds a table
-            return replace(parsed, layout=replace(parsed.layout, skipped_sheets=tuple(skipped)))
         else:
             tables.append(parsed)
     if sheet is None:
+        return _default_sheet(tables, skipped, needed, label, available)
+    return _stacked(tables, skipped, label)
+
+
+def _default_sheet(
+    tables: list[_Parsed],
+    skipped: list[str],
+    needed: Sequence[str],
+    label: str,
+    available: list[str],
+) -> _Parsed:
+    """The one sheet that holds a table, or the one whose table has the ``needed``
+    columns; several candidates are not guessed between."""
+    if not tables:
         raise InputError(
             f"{label}: no sheet holds a table of two or more named columns; "
             f"sheets: {quote_list(available)}"
         )
-    return _stacked(tables, skipped, label)
+    chosen = tables
+    if len(tables) > 1 and needed:
+        chosen = [t for t in tables if _has_columns(t, needed)]
+    if len(chosen) != 1:
+        sheets = quote_list(str(t.sheet) for t in (chosen or tables))
+        raise InputError(
+            f"{label}: sheets {sheets} each hold a table: choose one with --sheet NAME, "
+            "or stack those with the same columns with --sheet all"
+        )
+    pick = chosen[0]
+    others = [str(t.sheet) for t in tables if t is not pick]
+    layout = replace(pick.layout, skipped_sheets=tuple([*skipped, *others]))
+    return replace(pick, layout=layout)
+
+
+def _has_columns(parsed: _Parsed, needed: Sequence[str]) -> bool:
+    columns = [str(c) for c in parsed.frame.columns]
+    for name in needed:
+        try:
+            resolve_column(columns, name)
+        except InputError:
+            return False
+    return True
 
 
 def _tables(
