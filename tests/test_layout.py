@@ -670,3 +670,39 @@ def test_a_formula_error_cell_is_missing(tmp_path: Path) -> None:
     _patch_sheet(path, r'<c r="C5"[^>]*>.*?</c>', '<c r="C5" t="e"><f>1/0</f><v>#DIV/0!</v></c>')
     t = read_table(path)
     assert pd.api.types.is_numeric_dtype(t.data["y"]) and t.data["y"].isna().sum() == 1
+
+
+def test_screen_audits_a_workbook_sheet_by_sheet(tmp_path: Path) -> None:
+    """readxl's datasets.xls (four unrelated tables, no spec) gives a row per sheet;
+    an invented workbook with a spec gives a verdict per sheet."""
+    import csv
+    import shutil
+
+    folder = tmp_path / "supplement"
+    folder.mkdir()
+    shutil.copy(FIXTURES / "datasets.xls", folder / "datasets.xls")
+    frame = _tanks()
+    with pd.ExcelWriter(folder / "two_trials.xlsx", engine="openpyxl") as writer:
+        frame.to_excel(writer, sheet_name="trial 1", index=False)
+        other = frame.copy()
+        other["tank"] = other["tank"] + "b"
+        other.to_excel(writer, sheet_name="trial 2", index=False)
+        pd.DataFrame({"tank": ["T1"], "position": ["left"]}).to_excel(
+            writer, sheet_name="tanks", index=False
+        )
+    (folder / "two_trials.replicheck.toml").write_text(
+        'response = "length"\ntreatment = "diet"\n', encoding="utf-8"
+    )
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "replicheck", "screen", str(folder), "--out", str(out)]
+    subprocess.run([*cmd, "--jobs", "1"], capture_output=True, text=True, timeout=600)
+    with open(out / "summary.csv", encoding="utf-8", newline="") as f:
+        rows = {r["file"]: r for r in csv.DictReader(f)}
+    sheets = {name for name in rows if name.startswith("datasets.xls [")}
+    assert sheets == {f"datasets.xls [{s}]" for s in ("iris", "mtcars", "chickwts", "quakes")}
+    assert all(rows[name]["status"] == "needs-spec" for name in sheets)
+    # both trial sheets hold the claimed columns: each gets its own verdict
+    for name in ("two_trials.xlsx [trial 1]", "two_trials.xlsx [trial 2]"):
+        assert rows[name]["status"] == "pseudoreplicated" and rows[name]["unit"] == "tank"
+        assert (out / rows[name]["report"]).is_file()
+    assert "two_trials.xlsx [tanks]" not in rows  # no claimed columns there

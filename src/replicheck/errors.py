@@ -22,3 +22,14 @@ class InputError(Exception):
 
 class LimitExceeded(InputError):
     """An input past a limit on the work of one audit (see :mod:`replicheck.limits`)."""
+
+
+class SheetChoice(InputError):
+    """A workbook holds tables on several sheets and nothing says which to read.
+
+    ``sheets`` names them; ``screen`` audits each, ``check`` asks for ``--sheet``.
+    """
+
+    def __init__(self, message: str, sheets: tuple[str, ...]) -> None:
+        super().__init__(message)
+        self.sheets = sheets

@@ -41,7 +41,7 @@ from pandas.api.types import (
 )
 
 from replicheck.codebook import column_codes
-from replicheck.errors import InputError, LimitExceeded
+from replicheck.errors import InputError, LimitExceeded, SheetChoice
 from replicheck.io.arrow_csv import Dialect, read_delimited
 from replicheck.io.columns import (
     check_names,
@@ -799,10 +799,11 @@ def _default_sheet(
     if len(tables) > 1 and needed:
         chosen = [t for t in tables if _has_columns(t, needed)]
     if len(chosen) != 1:
-        sheets = quote_list(str(t.sheet) for t in (chosen or tables))
-        raise InputError(
-            f"{label}: sheets {sheets} each hold a table: choose one with --sheet NAME, "
-            "or stack those with the same columns with --sheet all"
+        names = tuple(str(t.sheet) for t in (chosen or tables))
+        raise SheetChoice(
+            f"{label}: sheets {quote_list(names)} each hold a table: choose one with "
+            "--sheet NAME, or stack those with the same columns with --sheet all",
+            names,
         )
     pick = chosen[0]
     others = [str(t.sheet) for t in tables if t is not pick]

@@ -355,6 +355,7 @@ def _screen(
     state = StateWriter(out_dir, old)
     keep: set[str] = set()  # the state entries of this run's files
     rows: dict[int, Row] = {}
+    extra: list[Row] = []  # the further sheets of workbooks audited sheet by sheet
 
     def done(i: int, row: Row) -> None:
         rows[i] = row
@@ -434,6 +435,18 @@ def _screen(
             p = planned[k]
             if not isinstance(result, Outcome | Failure):
                 result = Failure("internal-error", f"unexpected result {type(result).__name__}")
+            if isinstance(result, Outcome) and result.sheets:
+                # a workbook audited sheet by sheet: a row per sheet, not kept in the state
+                for n, part in enumerate(result.sheets):
+                    named = replace(p.file, name=f"{p.file.name} [{part.sheet}]")
+                    row = _row_from(named, part, p.digest, p.size)
+                    html_rel, json_rel = _write_reports(out_dir, named, part)
+                    row = replace(row, report=html_rel, report_json=json_rel)
+                    if n == 0:
+                        done(p.index, row)
+                    else:
+                        extra.append(row)
+                continue
             row = _row_from(p.file, result, p.digest, p.size)
             if isinstance(result, Outcome):
                 html_rel, json_rel = _write_reports(out_dir, p.file, result)
@@ -448,7 +461,7 @@ def _screen(
     for i, f in enumerate(found.files):
         if i not in rows:  # cannot happen unless a runner loses a task
             rows[i] = Row(f.name, "internal-error", message="no result came back for this file")
-    final = sort_rows(rows[i] for i in range(len(found.files)))
+    final = sort_rows([*(rows[i] for i in range(len(found.files))), *extra])
     _prune_reports(out_dir, stored, final)
     index_path = out_dir / "index.html"
     options = [

@@ -42,7 +42,12 @@ class Task:
 
 @dataclass(frozen=True)
 class Outcome:
-    """What the work on one file gave: a status, the summary fields and the rendered report."""
+    """What the work on one file gave: a status, the summary fields and the rendered report.
+
+    A workbook whose sheets hold several tables, with nothing to choose between
+    them, is audited sheet by sheet: ``sheets`` then holds one outcome per sheet
+    (each with its ``sheet``), and each becomes a row of the summary.
+    """
 
     status: str
     message: str
@@ -62,6 +67,8 @@ class Outcome:
     seconds: float = 0.0
     report_html: str | None = None
     report_json: str | None = None
+    sheet: str = ""
+    sheets: tuple[Outcome, ...] = ()
 
 
 @dataclass(frozen=True)

@@ -13,11 +13,12 @@ from typing import Any
 import pandas as pd
 
 from replicheck.api import audit
-from replicheck.errors import InputError
+from replicheck.errors import InputError, SheetChoice
 from replicheck.io import Table, fill_down, read_table
 from replicheck.io.reshape import find_families, reshape_long
 from replicheck.report.model import Report
 from replicheck.screen.guess import propose
+from replicheck.screen.summary import severity
 from replicheck.screen.task import Outcome, Task, one_line
 
 
@@ -72,8 +73,8 @@ def _as_audited(table: Table) -> pd.DataFrame:
     return data
 
 
-def _without_spec(task: Task) -> Outcome:
-    table = read_table(task.path)
+def _without_spec(task: Task, sheet: str | None = None) -> Outcome:
+    table = read_table(task.path, sheet=sheet)
     proposal = propose(_as_audited(table))
     candidates = proposal.describe()
     best = proposal.best
@@ -100,6 +101,7 @@ def _without_spec(task: Task) -> Outcome:
         )
     report = audit(
         task.path,
+        sheet=sheet,
         spec={"response": response.column, "treatment": [treatment.column]},
         find_spec=False,
         seed=task.seed,
@@ -114,12 +116,38 @@ def _without_spec(task: Task) -> Outcome:
     return replace(out, guessed=True, message=note + out.message, candidates=candidates)
 
 
-def _work(task: Task) -> Outcome:
-    if task.spec_source == "none":
-        return _without_spec(task)
-    spec = task.spec_path if task.spec_source == "beside" else task.spec
-    report = audit(task.path, spec=spec, find_spec=False, seed=task.seed, alpha=task.alpha)
-    return outcome_of(report, task.spec_source)
+def _work(task: Task, sheet: str | None = None) -> Outcome:
+    try:
+        if task.spec_source == "none":
+            return _without_spec(task, sheet)
+        spec = task.spec_path if task.spec_source == "beside" else task.spec
+        report = audit(
+            task.path, spec=spec, find_spec=False, seed=task.seed, alpha=task.alpha, sheet=sheet
+        )
+        return outcome_of(report, task.spec_source)
+    except SheetChoice as choice:
+        if sheet is not None:
+            raise
+        return _sheet_by_sheet(task, choice.sheets)
+
+
+def _sheet_by_sheet(task: Task, sheets: tuple[str, ...]) -> Outcome:
+    """Each sheet of a workbook audited on its own, one outcome each."""
+    source = "" if task.spec_source == "none" else task.spec_source
+    parts = []
+    for name in sheets:
+        try:
+            part = _work(task, name)
+        except InputError as err:
+            part = Outcome("error", str(err).replace(task.path, task.name), spec_source=source)
+        parts.append(replace(part, sheet=name))
+    worst = min(parts, key=lambda o: severity(o.status))
+    return Outcome(
+        worst.status,
+        f"audited sheet by sheet: {len(parts)} sheets hold tables",
+        spec_source=source,
+        sheets=tuple(parts),
+    )
 
 
 def run_task(task: Task) -> Outcome:
