@@ -706,3 +706,38 @@ def test_screen_audits_a_workbook_sheet_by_sheet(tmp_path: Path) -> None:
         assert rows[name]["status"] == "pseudoreplicated" and rows[name]["unit"] == "tank"
         assert (out / rows[name]["report"]).is_file()
     assert "two_trials.xlsx [tanks]" not in rows  # no claimed columns there
+    # a second run reuses every sheet's row while the workbook is unchanged
+    subprocess.run([*cmd, "--jobs", "1"], capture_output=True, text=True, timeout=600)
+    with open(out / "summary.csv", encoding="utf-8", newline="") as f:
+        again = {r["file"]: r for r in csv.DictReader(f)}
+    assert set(again) == set(rows)
+    assert all(again[name]["reused"] == "yes" for name in again if "[" in name)
+    assert again["two_trials.xlsx [trial 2]"]["status"] == "pseudoreplicated"
+
+
+def test_group_headings_over_tanks_become_the_treatment(
+    tank_reports: dict[str, dict], tmp_path: Path
+) -> None:
+    """Invented: one column per tank under a merged heading per diet, a row per fish."""
+    frame = _tanks()
+    wide = frame.pivot(index="fish", columns="tank", values="length")
+    diets = frame.drop_duplicates("tank").set_index("tank")["diet"]
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.append([None, "control", None, None, "enriched", None, None])
+    ws.append(["fish", *wide.columns])
+    for fish, row in wide.iterrows():
+        ws.append([int(fish), *row.tolist()])
+    ws.merge_cells("B1:D1")
+    ws.merge_cells("E1:G1")
+    assert [diets[t] for t in wide.columns] == ["control"] * 3 + ["enriched"] * 3
+    path = tmp_path / "by_tank.xlsx"
+    wb.save(path)
+    doc = audit(path, response="length", treatment="group").to_dict()
+    tidy = tank_reports["tidy.csv"]
+    same = ("status", "method")
+    assert all(doc["verdict"][k] == tidy["verdict"][k] for k in same)
+    assert [u["n_units"] for u in doc["experimental_units"]] == [6]
+    assert _key(doc)[4] == _key(tidy)[4]  # the corrected test: same F, df and p
+    (r,) = doc["input"]["layout"]["reshaped"]
+    assert r["group"] == "group" and r["key"] == "T" and r["rows_after"] == 24

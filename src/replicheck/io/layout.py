@@ -16,9 +16,12 @@ reasons, are in docs/method.md ("Reading the layout"):
   When no row qualifies, or a row above the one found is itself a complete row
   (the file may have no title at all), row 1 stays the header.
 * **Two header rows.** When the header's names repeat (``fish 1 .. fish 3``
-  under each of ``tank A``, ``tank B``) and the row directly above holds two or
-  more words, that row's headings are carried to the right over the columns
-  they span (as merged cells are) and joined to the names: ``tank A fish 1``.
+  under each of ``tank A``, ``tank B``), or the row directly above heads groups
+  of measured columns (two or more words, each over two or more columns of
+  numbers or dates: ``control`` over ``T1 T2 T3``, ``enriched`` over ``T4 T5
+  T6``), and that row holds two or more words, its headings are carried to the
+  right over the columns they span (as merged cells are) and joined to the
+  names: ``tank A fish 1``, ``control T1``.
 * **Units row.** The row under the header is a units row when its cells are
   unit-like words, such as ``(mm)``, ``g``, ``°C``, ``mg/L``, standing only
   over columns of numbers or dates.
@@ -310,13 +313,14 @@ def _header_like(rows: list[list[Cell]], kinds: list[list[str]], h: int, used: s
 def _two_rows(
     rows: list[list[Cell]], kinds: list[list[str]], header: int
 ) -> tuple[tuple[str, ...] | None, int]:
-    """Joined names when the header's names repeat and the row above heads groups of them."""
+    """Joined names when the header's names repeat, or the row above heads groups of
+    measured columns, and that row heads groups of them."""
     names = [cell_text(v) for v in rows[header]]
     present = [n for n in names if n]
-    if header == 0 or len(set(present)) == len(present):
+    if header == 0 or sum(k == "text" for k in kinds[header - 1]) < 2:
         return None, 1
     above = rows[header - 1]
-    if sum(k == "text" for k in kinds[header - 1]) < 2:
+    if len(set(present)) == len(present) and not _group_headings(rows, kinds, header):
         return None, 1
     joined: list[str] = []
     group = ""
@@ -329,6 +333,28 @@ def _two_rows(
         else:
             joined.append(f"{group} {name}".strip() if group else name)
     return tuple(joined), 2
+
+
+def _group_headings(rows: list[list[Cell]], kinds: list[list[str]], header: int) -> bool:
+    """Whether the row above the header heads groups of measured columns: two or
+    more words, each followed by empty cells over two or more named columns of
+    numbers or dates, and nothing over the columns left of the first."""
+    above = kinds[header - 1]
+    named = kinds[header]
+    width = len(named)
+    starts = [j for j in range(min(len(above), width)) if above[j] != "empty"]
+    if len(starts) < 2 or any(above[j] != "text" for j in starts):
+        return False
+    below = kinds[header + 1 : header + 1 + _LOOK_BELOW]
+    for a, b in zip(starts, [*starts[1:], width], strict=True):
+        span = [j for j in range(a, b) if named[j] != "empty"]
+        if len(span) < 2:
+            return False
+        for j in span:
+            ks = [k[j] for k in below if j < len(k) and k[j] != "empty"]
+            if not ks or sum(k in ("number", "date") for k in ks) < 0.9 * len(ks):
+                return False
+    return True
 
 
 def _is_units_row(kinds: list[list[str]], rows: list[list[Cell]], u: int) -> bool:

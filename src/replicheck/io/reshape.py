@@ -21,7 +21,10 @@ judged like any other grouping. The rules (docs/method.md, "Wide tables"):
   join) are reshaped twice, the last part first: when no family is named like
   the response, several families alike but for the other part (same varying
   tokens) are reshaped together, and the columns they give (``tank A``,
-  ``tank B``) form the family of the second pass.
+  ``tank B``) form the family of the second pass. Families that differ only in
+  a heading in front of the same name (``control T1 T2 T3`` and ``enriched T4
+  T5 T6``, joined from a row of group headings) are reshaped into a column
+  ``group`` holding the heading and one holding the varying part.
 * **New columns.** The varying token goes to a column named by the word before
   it in the names (``day``, ``rep``, ``tank``; ``part`` when there is none),
   as numbers when every token is one (as a tidy table would hold them);
@@ -221,6 +224,8 @@ def reshape_long(
             first, done = _melt(data, families, response, ids, stated)
             second, more = reshape_long(first, response=response, ids=ids)
             return (second, done + more) if more else (data, ())
+        elif _grouped(families):
+            return _melt_grouped(data, families, response, ids)
         else:
             return data, ()
         group = [family] + [
@@ -229,6 +234,95 @@ def reshape_long(
             if f is not family and sorted(f.parts) == sorted(family.parts) and f.rest
         ]
     return _melt(data, group, response, ids, stated)
+
+
+def _with_rows(
+    data: pd.DataFrame, kept: list[str], ids: Sequence[str], time_like: bool, key: str
+) -> tuple[pd.DataFrame, list[str], str | None]:
+    """The table, its identifying columns, and the column numbering the wide rows
+    when one is added (a time: each wide row is one subject measured again)."""
+    if time_like and not ids and (not kept or data[kept].duplicated().any()):
+        row_column = "row" if "row" not in kept and key != "row" else "wide row"
+        frame = data.assign(**{row_column: [f"row {i + 1}" for i in range(len(data))]})
+        return frame, [*kept, row_column], row_column
+    return data, list(ids) or kept, None
+
+
+def _labels(parts: Sequence[str]) -> list[object]:
+    """The varying parts as a tidy table holds them: numbers when all are numbers."""
+    if not all(re.fullmatch(r"\d+(?:\.\d+)?", p) for p in parts):
+        return list(parts)
+    numbers = [float(p) for p in parts]
+    whole = [int(v) for v in numbers if v.is_integer()]
+    return list(whole) if len(whole) == len(numbers) else list(numbers)
+
+
+def _heading(f: _Family) -> tuple[str, str]:
+    """A family's name split at its word: ``("control", "T#")`` for ``control T1 ..``."""
+    tokens = list(f.stem)
+    word = f.word
+    cut = f.position
+    if word:
+        cut = max(j for j in range(f.position) if tokens[j].strip(_SEPARATORS) == word)
+    head = re.sub(r"[\s_.\-/]+", " ", "".join(tokens[:cut])).strip()
+    return head, "".join(tokens[cut:])
+
+
+def _grouped(families: Sequence[_Family]) -> bool:
+    """Families under group headings: the same name but for a heading in front
+    (``control T1 T2 T3``, ``enriched T4 T5 T6``), as two header rows join."""
+    if len(families) < 2 or any(f.dated for f in families):
+        return False
+    split = [_heading(f) for f in families]
+    heads = [h for h, _ in split]
+    return all(heads) and len(set(heads)) == len(heads) and len({c for _, c in split}) == 1
+
+
+def _melt_grouped(
+    data: pd.DataFrame, families: Sequence[_Family], response: str | None, ids: Sequence[str]
+) -> tuple[pd.DataFrame, tuple[Reshaped, ...]]:
+    """Columns under group headings in long form: a ``group`` column for the
+    heading and one for the varying part."""
+    wide = [c for f in families for c in f.columns]
+    kept = [str(c) for c in data.columns if str(c) not in wide]
+    for col in ids:
+        if col not in kept:
+            raise InputError(f"the identifier column '{col}' is not a kept column of the table")
+    word = families[0].word
+    key = word or "part"
+    group_key = "group"
+    key, group_key = (f"{k} (wide)" if k in kept else k for k in (key, group_key))
+    value = response if response and response not in kept else "value"
+    frame, id_columns, row_column = _with_rows(
+        data, kept, ids, word.casefold() in _TIME_WORDS, key
+    )
+    labels = _labels([p for f in families for p in f.parts])
+    pieces = []
+    i = 0
+    for f in families:
+        head = _heading(f)[0]
+        for col in f.columns:
+            piece = frame[id_columns].copy()
+            piece[group_key] = head
+            piece[key] = pd.Series([labels[i]] * len(piece), index=piece.index)
+            piece[value] = frame[col].to_numpy()
+            piece["__order"] = np.arange(len(frame)) * len(wide) + i
+            pieces.append(piece)
+            i += 1
+    long = pd.concat(pieces, ignore_index=True).sort_values("__order", kind="stable")
+    long = long.drop(columns="__order").dropna(subset=[value]).reset_index(drop=True)
+    done = Reshaped(
+        columns=tuple(wide),
+        key=key,
+        values=(value,),
+        levels=len(wide),
+        rows_before=len(data),
+        rows_after=len(long),
+        row_column=row_column,
+        stated=False,
+        group=group_key,
+    )
+    return long, (done,)
 
 
 def _alike(families: Sequence[_Family]) -> bool:
@@ -267,19 +361,8 @@ def _melt(
             name = f"{name} (wide)"
         names.append(name)
     time_like = dated or word.casefold() in _TIME_WORDS
-    row_column = None
-    frame = data
-    id_columns = list(ids) or kept
-    if time_like and not ids and (not kept or data[kept].duplicated().any()):
-        row_column = "row" if "row" not in kept and key != "row" else "wide row"
-        frame = data.assign(**{row_column: [f"row {i + 1}" for i in range(len(data))]})
-        id_columns = [*kept, row_column]
-    labels: list[object] = list(main.parts)
-    if all(re.fullmatch(r"\d+(?:\.\d+)?", p) for p in main.parts):  # as a tidy table holds them
-        numbers = [float(p) for p in main.parts]
-        labels = [int(v) if v.is_integer() else v for v in numbers]
-        if not all(isinstance(v, int) for v in labels):
-            labels = list(numbers)
+    frame, id_columns, row_column = _with_rows(data, kept, ids, time_like, key)
+    labels = _labels(main.parts)
     pieces = []
     for i, part in enumerate(main.parts):
         piece = frame[id_columns].copy()

@@ -76,6 +76,7 @@ class Reshaped:
     rows_after: int
     row_column: str | None  # the column numbering the wide rows, if added
     stated: bool
+    group: str | None = None  # the column holding group headings, if any
 
 
 @dataclass(frozen=True)

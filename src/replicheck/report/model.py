@@ -68,6 +68,7 @@ def _layout(lay: Layout) -> dict[str, Any]:
                 "rows_after": r.rows_after,
                 "row_column": r.row_column,
                 "stated": r.stated,
+                "group": r.group,
             }
             for r in lay.reshaped
         ],

@@ -120,10 +120,12 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
         if len(r["columns"]) > 4:
             shown += f", ... ({len(r['columns'])} columns)"
         values = " and ".join(f"'{v}'" for v in r["values"])
+        holder = f"'{r['key']}' holds the {r['levels']} column labels"
+        if r.get("group"):
+            holder = f"'{r['group']}' holds the group headings and {holder}"
         text = (
-            f"wide columns {shown} turned into long form: '{r['key']}' holds the "
-            f"{r['levels']} column labels, {values} the values; {_rows(r['rows_before'])} "
-            f"became {r['rows_after']:,}"
+            f"wide columns {shown} turned into long form: {holder}, {values} the values; "
+            f"{_rows(r['rows_before'])} became {r['rows_after']:,}"
         )
         if r["row_column"]:
             text += (

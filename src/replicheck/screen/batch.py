@@ -9,7 +9,7 @@ import hashlib
 import os
 import re
 import stat
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, fields, replace
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -177,6 +177,15 @@ def _write_text(target: Path, text: str) -> None:
 
 def _reports_exist(out_dir: Path, row: Row) -> bool:
     return all((out_dir / rel).is_file() for rel in (row.report, row.report_json) if rel)
+
+
+def _sheet_keys(key: str, stored: Mapping[str, object]) -> list[str]:
+    """The state keys of one file: its own, then one per further sheet of a
+    workbook audited sheet by sheet (``KEY/sheet1``, ``KEY/sheet2``, ...)."""
+    keys = [key]
+    while f"{key}/sheet{len(keys)}" in stored:
+        keys.append(f"{key}/sheet{len(keys)}")
+    return keys
 
 
 def _default_jobs(n_tasks: int) -> int:
@@ -403,10 +412,13 @@ def _screen(
                 alpha=alpha,
             )
         if key is not None and key in old:
-            previous = Row.from_dict(dict(old[key]))
-            if _reports_exist(out_dir, previous):
-                keep.add(key)
-                done(i, replace(previous, file=f.name, reused=True))
+            stored_rows = [Row.from_dict(dict(old[k])) for k in _sheet_keys(key, old)]
+            if all(_reports_exist(out_dir, r) for r in stored_rows):
+                keep.update(_sheet_keys(key, old))
+                first, *more = stored_rows
+                name = first.file if first.file.startswith(f"{f.name} [") else f.name
+                done(i, replace(first, file=name, reused=True))
+                extra.extend(replace(r, reused=True) for r in more)
                 continue
         task = Task(
             path=str(f.path),
@@ -436,16 +448,20 @@ def _screen(
             if not isinstance(result, Outcome | Failure):
                 result = Failure("internal-error", f"unexpected result {type(result).__name__}")
             if isinstance(result, Outcome) and result.sheets:
-                # a workbook audited sheet by sheet: a row per sheet, not kept in the state
-                for n, part in enumerate(result.sheets):
+                # a workbook audited sheet by sheet: a row per sheet
+                sheet_rows = []
+                for part in result.sheets:
                     named = replace(p.file, name=f"{p.file.name} [{part.sheet}]")
                     row = _row_from(named, part, p.digest, p.size)
                     html_rel, json_rel = _write_reports(out_dir, named, part)
-                    row = replace(row, report=html_rel, report_json=json_rel)
-                    if n == 0:
-                        done(p.index, row)
-                    else:
-                        extra.append(row)
+                    sheet_rows.append(replace(row, report=html_rel, report_json=json_rel))
+                if p.key is not None and all(r.status in CACHED_STATUSES for r in sheet_rows):
+                    for n, row in enumerate(sheet_rows):
+                        sheet_key = p.key if n == 0 else f"{p.key}/sheet{n}"
+                        keep.add(sheet_key)
+                        state.add(sheet_key, row.to_dict())
+                done(p.index, sheet_rows[0])
+                extra.extend(sheet_rows[1:])
                 continue
             row = _row_from(p.file, result, p.digest, p.size)
             if isinstance(result, Outcome):
