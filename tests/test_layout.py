@@ -194,7 +194,10 @@ def test_what_was_read_describes_the_layout(tank_reports: dict[str, dict]) -> No
     assert filled == {"diet": (22, 2), "tank": (18, 6)}
     xl = tank_reports["messy.xlsx"]["input"]["layout"]
     assert xl["range"] == "A3:D28" and xl["units_row"] == 4
-    assert {f["column"] for f in xl["filled_down"]} == {"diet", "tank"}
+    assert {(f["column"], f["cells"], f["merged"]) for f in xl["filled_down"]} == {
+        ("diet", 22, True),
+        ("tank", 18, True),
+    }
     tidy = tank_reports["tidy.csv"]["input"]["layout"]
     assert tidy["header_row"] == 1 and tidy["filled_down"] == [] and tidy["skipped_above"] == []
 
@@ -337,8 +340,8 @@ def test_cli_reads_the_messy_file_and_says_how(tmp_path: Path) -> None:
     doc = json.loads(js.stdout)
     filled = doc["input"]["layout"]["filled_down"]
     assert filled == [
-        {"column": "diet", "cells": 22, "blocks": 2, "stated": True},
-        {"column": "tank", "cells": 18, "blocks": 6, "stated": True},
+        {"column": "diet", "cells": 22, "blocks": 2, "stated": True, "merged": False},
+        {"column": "tank", "cells": 18, "blocks": 6, "stated": True, "merged": False},
     ]
     bad = subprocess.run([*cmd, "--range", "Z9"], capture_output=True, text=True, timeout=300)
     assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1
@@ -741,3 +744,25 @@ def test_group_headings_over_tanks_become_the_treatment(
     assert _key(doc)[4] == _key(tidy)[4]  # the corrected test: same F, df and p
     (r,) = doc["input"]["layout"]["reshaped"]
     assert r["group"] == "group" and r["key"] == "T" and r["rows_after"] == 24
+
+
+def test_merged_cells_are_filled_whatever_their_sizes(tmp_path: Path) -> None:
+    """Invented: the diet merged over 20 rows and 4 rows, a block ratio the
+    typed-once pattern rule refuses; the merge itself says what it covers."""
+    rows = [("control", f"T{1 + i // 4}", 50.0 + i % 4) for i in range(20)]
+    rows += [("enriched", f"T{6 + i // 2}", 54.0 + i % 2) for i in range(4)]
+    frame = pd.DataFrame(rows, columns=["diet", "tank", "length"])
+    path = tmp_path / "uneven.xlsx"
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.append(list(frame.columns))
+    for row in frame.itertuples(index=False):
+        ws.append(list(row))
+    ws.merge_cells("A2:A21")
+    ws.merge_cells("A22:A25")
+    wb.save(path)
+    t = read_table(path)
+    assert t.data["diet"].tolist() == frame["diet"].tolist()
+    (f,) = t.layout.filled
+    assert (f.column, f.cells, f.blocks, f.merged) == ("diet", 22, 2, True)
+    assert not fill_pattern(_blank_repeats(frame, ["diet"])["diet"])  # the rule alone would not

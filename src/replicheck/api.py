@@ -123,7 +123,7 @@ def _filled(table: Table, c: Claim) -> Table:
     """The table with groupings written once per block filled down (never the response)."""
     reading = c.reading
     if not reading.fill_down and not reading.find_fill:
-        return table
+        return table  # (merged cells are filled while reading: a sheet shows them so)
     columns = table.columns
     protect = {
         col
@@ -135,7 +135,8 @@ def _filled(table: Table, c: Claim) -> Table:
     data, filled = fill_down(table.data, protect=protect, stated=stated, detect=reading.find_fill)
     if not filled:
         return table
-    return replace(table, data=data, layout=replace(table.layout, filled=filled))
+    merged = table.layout.filled  # filled from a sheet's merged cells while reading
+    return replace(table, data=data, layout=replace(table.layout, filled=(*merged, *filled)))
 
 
 def _long(table: Table, c: Claim) -> Table:

@@ -13,12 +13,13 @@ import csv
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
+from typing import Any
 
 import pandas as pd
 
 from replicheck.errors import InputError
 from replicheck.io.layout import HEAD_ROWS, TAIL_ROWS, Box, Cell, cell_kind, cell_text, find_box
-from replicheck.io.table import Layout
+from replicheck.io.table import FilledColumn, Layout
 
 _RANGE = re.compile(
     r"^\s*([A-Za-z]{1,3})([1-9]\d{0,6})\s*(?::\s*([A-Za-z]{1,3})([1-9]\d{0,6})?)?\s*$"
@@ -229,8 +230,15 @@ def cut_grid(
     header_row: int | None = None,
     cell_range: CellRange | None = None,
     label: str = "the sheet",
+    merges: Sequence[tuple[int, int, int, int]] = (),
 ) -> GridCut:
-    """The table in a sheet read as a grid (``header=None``, starting at cell A1)."""
+    """The table in a sheet read as a grid (``header=None``, starting at cell A1).
+
+    ``merges`` are the sheet's merged ranges (0-based first row, first column,
+    last row, last column): a range whose first cell lies in the data and that
+    spans rows gives its value to the empty cells below it in its first column,
+    as a spreadsheet shows it.
+    """
     top = left = 0
     right: int | None = None
     stated: tuple[str, ...] = ()
@@ -264,6 +272,7 @@ def cut_grid(
         )
     header = list(grid.iloc[box.header]) if box.names is None else list(box.names)
     frame = grid.iloc[box.start : box.end].reset_index(drop=True)
+    merged = _fill_merged(frame, merges, top + box.start, left)
     units = dict(box.unit_labels)
     width = _named_width(header)
     side: Layout | None = None
@@ -292,6 +301,14 @@ def cut_grid(
         skipped_below=box.below,
         stated=stated,
     )
+    if merged:
+        names = [cell_text(v) for v in grid.iloc[box.header]]
+        filled = tuple(
+            FilledColumn(names[j] or f"Unnamed: {j}", cells, blocks, merged=True)
+            for j, (cells, blocks) in sorted(merged.items())
+            if j < len(names)
+        )
+        layout = replace(layout, filled=filled)
     if side is not None:
         layout = replace(
             layout,
@@ -300,6 +317,34 @@ def cut_grid(
             skipped_tables=side.skipped_tables,
         )
     return GridCut(header, frame, layout, units)
+
+
+def _fill_merged(
+    frame: pd.DataFrame,
+    merges: Sequence[tuple[int, int, int, int]],
+    first_row: int,
+    first_col: int,
+) -> dict[int, tuple[int, int]]:
+    """Fill ``frame`` (the data rows, from sheet row ``first_row`` and column
+    ``first_col``) from merged ranges; cells and ranges filled by frame column."""
+    done: dict[int, tuple[int, int]] = {}
+    n_rows, n_cols = frame.shape
+    for r0, c0, r1, _ in merges:
+        i0, j = r0 - first_row, c0 - first_col
+        if r1 <= r0 or not (0 <= i0 < n_rows and 0 <= j < n_cols):
+            continue
+        value: Any = frame.iat[i0, j]
+        if cell_kind(value) == "empty":
+            continue
+        cells = 0
+        for i in range(i0 + 1, min(r1 - first_row, n_rows - 1) + 1):
+            if cell_kind(frame.iat[i, j]) == "empty":
+                frame.iat[i, j] = value
+                cells += 1
+        if cells:
+            before = done.get(j, (0, 0))
+            done[j] = (before[0] + cells, before[1] + 1)
+    return done
 
 
 def _shown(cells: Sequence[Cell]) -> str:

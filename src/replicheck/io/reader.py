@@ -27,7 +27,7 @@ import warnings
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, cast
+from typing import IO, TYPE_CHECKING, cast
 
 import numpy as np
 import pandas as pd
@@ -689,13 +689,17 @@ def _check_cells(frame: pd.DataFrame, label: str, limits: Limits) -> None:
             )
 
 
-def _excel_extent(raw: bytes, name: str, label: str, limits: Limits) -> None:
-    """Refuse a workbook that unpacks to too much, or a sheet whose grid is too large.
+def _excel_extent(
+    raw: bytes, name: str, label: str, limits: Limits
+) -> list[tuple[int, int, int, int]]:
+    """Refuse a workbook that unpacks to too much, or a sheet whose grid is too large;
+    return the sheet's merged cell ranges.
 
     A sheet's grid runs to its farthest cell, so one cell in the last column or
     row of a sheet makes a grid of millions of empty cells; the extent is found
     by streaming the rows (openpyxl's read-only mode, declared dimensions
-    ignored) before the sheet is read.
+    ignored) before the sheet is read. The merged ranges (0-based first row,
+    first column, last row, last column) are streamed from the sheet's XML.
     """
     import zipfile
 
@@ -726,8 +730,39 @@ def _excel_extent(raw: bytes, name: str, label: str, limits: Limits) -> None:
                     "sheet_cells",
                     f"{label}: sheet '{name}' spans more than {rows:,} rows by {width:,} columns",
                 )
+        member = getattr(ws, "_worksheet_path", None)
     finally:
         book.close()
+    if not isinstance(member, str):
+        return []
+    with zipfile.ZipFile(io.BytesIO(raw)) as archive, archive.open(member) as xml:
+        return _merged_ranges(xml)
+
+
+_MERGE = re.compile(rb'<(?:\w+:)?mergeCell\s+ref="([A-Z]{1,3})(\d{1,7}):([A-Z]{1,3})(\d{1,7})"')
+#: Merged ranges read from one sheet at most (a sheet of notes may merge many).
+_MAX_MERGES = 100_000
+
+
+def _merged_ranges(xml: IO[bytes]) -> list[tuple[int, int, int, int]]:
+    """The merged ranges declared in a sheet's XML, streamed in blocks."""
+    from replicheck.io.locate import column_number
+
+    found: list[tuple[int, int, int, int]] = []
+    carry = b""
+    while block := xml.read(1 << 20):
+        text = carry + block
+        last_end = 0
+        for m in _MERGE.finditer(text):
+            c0, r0, c1, r1 = m.groups()
+            first = (int(r0) - 1, column_number(c0.decode()))
+            last = (int(r1) - 1, column_number(c1.decode()))
+            found.append((*first, *last))
+            last_end = m.end()
+            if len(found) >= _MAX_MERGES:
+                return found
+        carry = text[max(last_end, len(text) - 64) :]  # a tag cut by the block's end
+    return found
 
 
 #: A sheet holds a table when it has at least this many named columns.
@@ -890,8 +925,9 @@ def _parse_workbook(
     where: _Where | None = None,
 ) -> _Parsed:
     """A sheet of a workbook (``kind``: xlsx, xls or ods) read as a grid, cut to its table."""
+    merges: list[tuple[int, int, int, int]] = []
     if kind == "xlsx":
-        name, grid = _xlsx_grid(raw, label, sheet, limits)
+        name, grid, merges = _xlsx_grid(raw, label, sheet, limits)
     else:
         available = workbook_sheets(raw, kind, label, limits)
         if not available:
@@ -900,12 +936,14 @@ def _parse_workbook(
         grid = workbook_grid(raw, kind, name, label, limits)
     if grid.empty:
         raise InputError(f"{label}: sheet '{name}' has no data rows")
-    return _sheet_table(grid, label, name, kind, codes or _missing_codes(()), where or _Where())
+    return _sheet_table(
+        grid, label, name, kind, codes or _missing_codes(()), where or _Where(), merges
+    )
 
 
 def _xlsx_grid(
     raw: bytes, label: str, sheet: str | int | None, limits: Limits
-) -> tuple[str, pd.DataFrame]:
+) -> tuple[str, pd.DataFrame, list[tuple[int, int, int, int]]]:
     """The chosen sheet of an .xlsx workbook as a grid from cell A1."""
     # openpyxl and zipfile raise many exception types on damaged files
     # (BadZipFile, KeyError, ValueError, XML errors): any failure here means corrupt input.
@@ -913,13 +951,13 @@ def _xlsx_grid(
         with pd.ExcelFile(io.BytesIO(raw), engine="openpyxl") as book:
             available = [str(name) for name in book.sheet_names]
             name = _pick_sheet(available, sheet, label)
-            _excel_extent(raw, name, label, limits)
+            merges = _excel_extent(raw, name, label, limits)
             grid = pd.read_excel(book, sheet_name=name, header=None, keep_default_na=False)
     except InputError:
         raise
     except Exception as exc:
         raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
-    return name, grid
+    return name, grid, merges
 
 
 def _sheet_table(
@@ -929,6 +967,7 @@ def _sheet_table(
     fmt: str,
     codes: _MissingCodes,
     where: _Where,
+    merges: Sequence[tuple[int, int, int, int]] = (),
 ) -> _Parsed:
     """The table in a sheet's grid, found or as stated."""
     where_label = f"{label} (sheet '{name}')"
@@ -938,6 +977,7 @@ def _sheet_table(
         header_row=where.header_row,
         cell_range=where.cell_range,
         label=where_label,
+        merges=merges,
     )
     names, blank = clean_names(cut.header)
     check_names(names, blank, where_label)

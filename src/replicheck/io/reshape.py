@@ -293,9 +293,7 @@ def _melt_grouped(
     group_key = "group"
     key, group_key = (f"{k} (wide)" if k in kept else k for k in (key, group_key))
     value = response if response and response not in kept else "value"
-    frame, id_columns, row_column = _with_rows(
-        data, kept, ids, word.casefold() in _TIME_WORDS, key
-    )
+    frame, id_columns, row_column = _with_rows(data, kept, ids, word.casefold() in _TIME_WORDS, key)
     labels = _labels([p for f in families for p in f.parts])
     pieces = []
     i = 0

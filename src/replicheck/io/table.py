@@ -62,6 +62,7 @@ class FilledColumn:
     cells: int
     blocks: int
     stated: bool = False
+    merged: bool = False  # filled from the sheet's merged cells
 
 
 @dataclass(frozen=True)

@@ -55,7 +55,13 @@ def _layout(lay: Layout) -> dict[str, Any]:
         "stated": list(lay.stated),
         "empty_rows": lay.empty_rows,
         "filled_down": [
-            {"column": f.column, "cells": f.cells, "blocks": f.blocks, "stated": f.stated}
+            {
+                "column": f.column,
+                "cells": f.cells,
+                "blocks": f.blocks,
+                "stated": f.stated,
+                "merged": f.merged,
+            }
             for f in lay.filled
         ],
         "reshaped": [

@@ -105,6 +105,7 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
         items = ", ".join(
             f"'{f['column']}' ({f['cells']:,} cells, {f['blocks']:,} blocks"
             + (", stated" if f["stated"] else "")
+            + (", from merged cells" if f.get("merged") else "")
             + ")"
             for f in filled
         )
