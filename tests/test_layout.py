@@ -766,3 +766,43 @@ def test_merged_cells_are_filled_whatever_their_sizes(tmp_path: Path) -> None:
     (f,) = t.layout.filled
     assert (f.column, f.cells, f.blocks, f.merged) == ("diet", 22, 2, True)
     assert not fill_pattern(_blank_repeats(frame, ["diet"])["diet"])  # the rule alone would not
+
+
+def test_a_formula_cell_gives_its_saved_value(tmp_path: Path) -> None:
+    path = tmp_path / "formula.xlsx"
+    _small_workbook(path)
+    # cell C5 as a spreadsheet program saves a formula: the formula and its value
+    _patch_sheet(path, r'<c r="C5"[^>]*>.*?</c>', '<c r="C5"><f>B1*0+4.25</f><v>4.25</v></c>')
+    t = read_table(path)
+    assert t.data["y"].tolist()[3] == 4.25 and t.data["y"].notna().all()
+
+
+def test_cli_states_the_header_row_and_the_wide_columns(tmp_path: Path) -> None:
+    # invented: two notes above, then one row per mouse with weights on days 0, 7, 14
+    path = tmp_path / "mice.csv"
+    path.write_text(
+        "weights of mice (invented)\nrecorded by hand\n"
+        "mouse,diet,w0,w7,w14\n"
+        + "\n".join(
+            f"m{i},{'a' if i < 4 else 'b'},{20 + i / 10},{21 + i / 5},{22 + i / 3}"
+            for i in range(8)
+        )
+        + "\n",
+        encoding="utf-8",
+    )
+    cmd = [sys.executable, "-m", "replicheck", "check", str(path), "-r", "weight", "-t", "diet"]
+    run = subprocess.run(
+        [*cmd, "--header-row", "3", "--long", "w*", "--id", "mouse", "-f", "json"],
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert run.returncode in (0, 1), run.stderr
+    doc = json.loads(run.stdout)
+    lay = doc["input"]["layout"]
+    assert lay["stated"] == ["header row"] and lay["header_row"] == 3
+    (r,) = lay["reshaped"]
+    assert r["stated"] and r["key"] == "w" and r["rows_after"] == 24 and r["row_column"] is None
+    assert doc["input"]["n_rows"] == 24
+    units = {u["unit"] for u in doc["experimental_units"]}
+    assert units == {"mouse"}  # each mouse weighed three times: the mouse is the unit

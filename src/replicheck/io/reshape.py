@@ -175,8 +175,9 @@ def reshape_long(
         Shell-style patterns (``"day*"``) naming the wide columns to reshape,
         as the user states them; they decide instead of the search.
     ids:
-        Columns that identify a wide row (kept on every long row; they replace
-        the numbering column).
+        Columns that identify a wide row (a subject measured at each time): no
+        numbering column is added. Every column outside the family is kept on
+        each long row, named or not.
 
     Examples
     --------
@@ -245,7 +246,7 @@ def _with_rows(
         row_column = "row" if "row" not in kept and key != "row" else "wide row"
         frame = data.assign(**{row_column: [f"row {i + 1}" for i in range(len(data))]})
         return frame, [*kept, row_column], row_column
-    return data, list(ids) or kept, None
+    return data, kept, None
 
 
 def _labels(parts: Sequence[str]) -> list[object]:
