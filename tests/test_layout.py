@@ -744,6 +744,9 @@ def test_group_headings_over_tanks_become_the_treatment(
     assert _key(doc)[4] == _key(tidy)[4]  # the corrected test: same F, df and p
     (r,) = doc["input"]["layout"]["reshaped"]
     assert r["group"] == "group" and r["key"] == "T" and r["rows_after"] == 24
+    t = read_table(path)
+    long, _ = reshape_long(t.data, response="length")
+    assert sorted(long["T"].unique()) == ["T1", "T2", "T3", "T4", "T5", "T6"]
 
 
 def test_merged_cells_are_filled_whatever_their_sizes(tmp_path: Path) -> None:

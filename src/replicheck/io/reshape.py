@@ -27,7 +27,8 @@ judged like any other grouping. The rules (docs/method.md, "Wide tables"):
   ``group`` holding the heading and one holding the varying part.
 * **New columns.** The varying token goes to a column named by the word before
   it in the names (``day``, ``rep``, ``tank``; ``part`` when there is none),
-  as numbers when every token is one (as a tidy table would hold them);
+  as numbers when every token is one (as a tidy table would hold them), but
+  whole after a one-letter word (``T1``, ``P3``, ``d7``: a label as written);
   the values to a column named by the rest of the name, else the claimed
   response, else ``value``.
 * **Rows.** The other columns are kept on every new row. When the varying
@@ -249,8 +250,12 @@ def _with_rows(
     return data, kept, None
 
 
-def _labels(parts: Sequence[str]) -> list[object]:
-    """The varying parts as a tidy table holds them: numbers when all are numbers."""
+def _labels(parts: Sequence[str], word: str = "") -> list[object]:
+    """The varying parts as a tidy table holds them: numbers when all are numbers,
+    except after a one-letter word (``T1``, ``P3``, ``d7``: a letter and a number
+    written together are a label, kept whole as the file writes it)."""
+    if len(word) == 1:
+        return [f"{word}{p}" for p in parts]
     if not all(re.fullmatch(r"\d+(?:\.\d+)?", p) for p in parts):
         return list(parts)
     numbers = [float(p) for p in parts]
@@ -295,7 +300,7 @@ def _melt_grouped(
     key, group_key = (f"{k} (wide)" if k in kept else k for k in (key, group_key))
     value = response if response and response not in kept else "value"
     frame, id_columns, row_column = _with_rows(data, kept, ids, word.casefold() in _TIME_WORDS, key)
-    labels = _labels([p for f in families for p in f.parts])
+    labels = _labels([p for f in families for p in f.parts], word)
     pieces = []
     i = 0
     for f in families:
@@ -361,7 +366,7 @@ def _melt(
         names.append(name)
     time_like = dated or word.casefold() in _TIME_WORDS
     frame, id_columns, row_column = _with_rows(data, kept, ids, time_like, key)
-    labels = _labels(main.parts)
+    labels = _labels(main.parts, word)
     pieces = []
     for i, part in enumerate(main.parts):
         piece = frame[id_columns].copy()
