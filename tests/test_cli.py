@@ -179,6 +179,13 @@ def test_demo_with_a_claimed_mixed_model_writes_its_formula(tmp_path: Path) -> N
 def test_demo_write_then_check(tmp_path: Path) -> None:
     r = run("demo", "kilns", "--write", str(tmp_path))
     assert r.returncode == 0
+    # the paths on standard output; the command to run next on standard error, runnable
+    assert r.stdout.splitlines() == [
+        str(tmp_path / "kilns.csv"),
+        str(tmp_path / "kilns.replicheck.toml"),
+    ]
+    (hint,) = r.stderr.splitlines()
+    assert hint.startswith(f"next: replicheck check {tmp_path / 'kilns.csv'}")
     r = run("check", str(tmp_path / "kilns.csv"), "-f", "json")
     assert r.returncode == 1
     doc = json.loads(r.stdout)
@@ -192,6 +199,22 @@ def test_help_is_exit_0() -> None:
     assert "check" in r.stdout and "demo" in r.stdout
     r = run("check", "--help")
     assert r.returncode == 0 and "--unit-labels" in r.stdout
+
+
+def test_check_help_gives_the_statuses_and_exit_codes() -> None:
+    from replicheck.report.model import Report
+    from replicheck.verdict import STATUS_ORDER
+
+    text = run("check", "--help").stdout
+    statuses = text[text.index("Statuses") : text.index("Exit codes")]
+    listed = [line.split()[0] for line in statuses.splitlines()[1:] if line.strip()]
+    assert sorted(listed) == sorted(STATUS_ORDER)
+    codes = text[text.index("Exit codes") :]
+    for code in ("0", "1", "2", "3"):
+        assert f"\n    {code}  " in codes
+    # the documented 0/1 split is the one the report computes
+    assert "0 when no problem was found, 1 otherwise" in (Report.exit_code.__doc__ or "")
+    assert text.endswith("\n")
 
 
 def test_european_spreadsheet_export_gives_the_same_report(

@@ -7,6 +7,7 @@ Exit codes: 0 no problem found, 1 problem found, 2 usage or input error,
 from __future__ import annotations
 
 import os
+import shlex
 import sys
 import traceback
 from collections.abc import Sequence
@@ -149,7 +150,25 @@ def _role_options(command: Any) -> Any:
     return command
 
 
-@cli.command()
+#: ``check --help`` ends with the statuses and exit codes a script needs
+#: (the statuses are those of replicheck.verdict; tests/test_cli.py checks them).
+CHECK_EPILOG = """\b
+Statuses (the verdict, in every report format):
+  ok                no pseudo-replication found
+  pseudoreplicated  rows were counted as replicates of a larger unit
+  confounded        treatment cannot be separated from the unit
+  unclear           the data alone cannot settle the unit
+
+\b
+Exit codes:
+  0  the status is ok
+  1  the status is pseudoreplicated, confounded or unclear
+  2  bad usage or input: one line on standard error, no report
+  3  internal error (a bug): one line on standard error
+"""
+
+
+@cli.command(epilog=CHECK_EPILOG)
 @click.argument("data", type=click.Path(dir_okay=True, path_type=str))
 @click.option("-r", "--response", metavar="COL", help="Column holding the measured response.")
 @click.option(
@@ -439,8 +458,14 @@ def demo(name: str | None, list_: bool, write_dir: str | None, fmt: str) -> None
         return
     scenario = get_scenario(name)
     if write_dir is not None:
-        for path in scenario.write(Path(write_dir)):
+        written = scenario.write(Path(write_dir))
+        for path in written:
             click.echo(str(path))
+        data = shlex.quote(str(written[0]))
+        click.echo(
+            f"next: replicheck check {data}  (the spec beside it gives the claimed analysis)",
+            err=True,
+        )
         return
     click.echo(f"demo scenario '{scenario.name}' (INVENTED DATA): {scenario.title}", err=True)
     click.echo(scenario.story, err=True)

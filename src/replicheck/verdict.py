@@ -21,6 +21,7 @@ from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.numbers import NumberReading
 from replicheck.structure.units import Alternative, Structure, UnitChoice
 from replicheck.trials import FILE_ROW
+from replicheck.words import with_article
 
 SEVERITIES = ("error", "warning", "note")
 STATUSES = ("ok", "pseudoreplicated", "confounded", "unclear")
@@ -1037,12 +1038,23 @@ def _term_summary(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> str:
     parts = [first]
     if cl is not None:
         anova = f"; one-way ANOVA estimate {cl.icc_anova:.2f}" if cl.icc_method == "REML" else ""
-        parts.append(
-            f"Observations within a {u.unit} are alike (ICC {cl.icc:.2f} by {cl.icc_method}"
-            f"{anova}, 95% CI {cl.icc_ci[0]:.2f} to {cl.icc_ci[1]:.2f}; design effect "
-            f"{cl.design_effect:.1f}), so the effective sample size is about "
-            f"{cl.effective_n:.0f}, not {cl.n_observations}."
+        figures = (
+            f"ICC {cl.icc:.2f} by {cl.icc_method}{anova}, 95% CI {cl.icc_ci[0]:.2f} to "
+            f"{cl.icc_ci[1]:.2f}; design effect {cl.design_effect:.1f}"
         )
+        within = with_article(u.unit or "unit")
+        if round(cl.effective_n) >= cl.n_observations:
+            parts.append(
+                f"Here observations within {within} are hardly more alike than "
+                f"observations in different ones ({figures}): the rows are effectively "
+                f"independent, but the treatment was applied to whole units, so only "
+                f"{u.n_units} of them replicate it."
+            )
+        else:
+            parts.append(
+                f"Observations within {within} are alike ({figures}), so the "
+                f"effective sample size is about {cl.effective_n:.0f}, not {cl.n_observations}."
+            )
     if corrected is not None and corrected.p_value is not None:
         sig = "significant" if corrected.p_value < alpha else "not significant"
         ending = (

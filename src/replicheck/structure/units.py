@@ -84,6 +84,7 @@ from replicheck.structure.strata import (
     build_strata,
     crossed_cells,
 )
+from replicheck.words import article
 
 __all__ = [
     "Alternative",
@@ -217,7 +218,7 @@ def _candidate(
         support = "stated"
     if hint.suggests_unit:
         score += 2
-        reasons.append(f"the name suggests {_article(hint.kind)} {hint.kind} ('{hint.word}')")
+        reasons.append(f"the name suggests {article(hint.kind)} {hint.kind} ('{hint.word}')")
     elif hint.kind == "label":
         reasons.append(f"the name suggests a label ('{hint.word}')")
     n_units = relation.n_levels
@@ -283,10 +284,6 @@ def _covers_levels(codes: np.ndarray, trt: np.ndarray) -> bool:
     k = int(trt[ok].max()) + 1
     present = np.bincount(trt[ok], weights=(codes[ok] >= 0).astype(float), minlength=k)
     return bool(np.all(present >= 0.5 * np.bincount(trt[ok], minlength=k)))
-
-
-def _article(word: str) -> str:
-    return "an" if word[:1] in "aeiou" else "a"
 
 
 def _whole_units(cand_codes: np.ndarray, recorded_units: Sequence[np.ndarray]) -> bool:
