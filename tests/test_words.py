@@ -28,6 +28,9 @@ from replicheck.words import article, counted, with_article
         ("tank", "a"),
         ("plot", "a"),
         ("'orchard'", "an"),
+        ("F", "an"),
+        ("t", "a"),
+        ("S-shaped", "an"),
     ],
 )
 def test_article(word: str, expected: str) -> None:

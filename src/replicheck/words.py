@@ -17,10 +17,13 @@ _VOWEL_SOUND = re.compile(r"^(hour|honest|honou?r|heir)", re.IGNORECASE)
 
 def article(word: str) -> str:
     """``"an"`` before a vowel sound, else ``"a"`` (by spelling, with the common
-    exceptions: a unit, a user, a one-way; an hour, an honest)."""
+    exceptions: a unit, a user, a one-way; an hour, an honest; a letter by the
+    sound of its name: an F test, a t test)."""
     text = word.strip().lstrip("'\"(")
     if not text:
         return "a"
+    if len(text) == 1 or (len(text) > 1 and not text[1].isalpha()):  # a letter said by name
+        return "an" if text[0].upper() in "AEFHILMNORSX" else "a"
     if _VOWEL_SOUND.match(text):
         return "an"
     if _CONSONANT_SOUND.match(text):
