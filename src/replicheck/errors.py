@@ -20,6 +20,12 @@ class InputError(Exception):
         return self.message
 
 
+def brief(exc: BaseException, limit: int = 160) -> str:
+    """A library's exception as one short line, for the reason part of an InputError."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 class LimitExceeded(InputError):
     """An input past a limit on the work of one audit (see :mod:`replicheck.limits`)."""
 

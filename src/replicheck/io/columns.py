@@ -71,7 +71,8 @@ def check_names(names: Sequence[str], blank: set[int], label: str) -> None:
         )
 
 
-def _normalise(name: str) -> str:
+def normalise_name(name: str) -> str:
+    """A name without case and the separators space, underscore, dot and hyphen."""
     return _SEPARATORS.sub("", name).casefold()
 
 
@@ -92,7 +93,7 @@ def resolve_column(columns: Sequence[str], name: str, role: str = "column") -> s
         return name
     wanted = name.strip()
     what = _column_label(role)
-    for key in (str.casefold, _normalise):
+    for key in (str.casefold, normalise_name):
         hits = [c for c in columns if key(c) == key(wanted)]
         if len(hits) == 1:
             return hits[0]
@@ -102,8 +103,8 @@ def resolve_column(columns: Sequence[str], name: str, role: str = "column") -> s
         raise InputError(f"unknown {what} '{name}'; the table has no columns")
     by_key: dict[str, list[str]] = {}
     for c in columns:
-        by_key.setdefault(_normalise(c), []).append(c)
-    close = difflib.get_close_matches(_normalise(wanted), list(by_key), n=3, cutoff=0.6)
+        by_key.setdefault(normalise_name(c), []).append(c)
+    close = difflib.get_close_matches(normalise_name(wanted), list(by_key), n=3, cutoff=0.6)
     if close:
         suggestions = [c for key in close for c in by_key[key]]
         raise InputError(f"unknown {what} '{name}'; closest: {quote_list(suggestions)}")

@@ -41,7 +41,7 @@ from pandas.api.types import (
 )
 
 from replicheck.codebook import column_codes
-from replicheck.errors import InputError, LimitExceeded, SheetChoice
+from replicheck.errors import InputError, LimitExceeded, SheetChoice, brief
 from replicheck.io.arrow_csv import Dialect, read_delimited
 from replicheck.io.columns import (
     check_names,
@@ -431,11 +431,6 @@ def _select(parsed: _Parsed, wanted: tuple[str, ...] | None, label: str) -> _Par
     return replace(parsed, frame=frame, blank=_remap(parsed.blank, positions))
 
 
-def _brief(exc: BaseException) -> str:
-    text = " ".join(str(exc).split()) or type(exc).__name__
-    return text if len(text) <= 160 else text[:157] + "..."
-
-
 def _text_header(head_text: str, delimiter: str, label: str) -> tuple[list[str], set[int], bool]:
     """Cleaned header names, blank positions, and whether pandas splits the header alike.
 
@@ -608,7 +603,7 @@ def _parse_text(
         shown = "tab" if delimiter == "\t" else repr(delimiter)
         raise InputError(
             f"{label}: cannot be read as {shown}-delimited text; some rows have more fields "
-            f"than the header or quotes are unbalanced ({_brief(exc)})"
+            f"than the header or quotes are unbalanced ({brief(exc)})"
         ) from exc
     header_cells: list[object] = list(first_record(text, delimiter)) if cut.blocks else []
     del text
@@ -776,7 +771,7 @@ def _sheet_names(raw: bytes, kind: str, label: str, limits: Limits) -> list[str]
         with pd.ExcelFile(io.BytesIO(raw), engine="openpyxl") as book:
             return [str(name) for name in book.sheet_names]
     except Exception as exc:
-        raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
+        raise InputError(f"{label}: not a readable Excel workbook ({brief(exc)})") from exc
 
 
 def _holds_table(parsed: _Parsed) -> bool:
@@ -956,7 +951,7 @@ def _xlsx_grid(
     except InputError:
         raise
     except Exception as exc:
-        raise InputError(f"{label}: not a readable Excel workbook ({_brief(exc)})") from exc
+        raise InputError(f"{label}: not a readable Excel workbook ({brief(exc)})") from exc
     return name, grid, merges
 
 
@@ -1016,7 +1011,7 @@ def _parquet_frame(arrow: pa.Table, label: str) -> tuple[pd.DataFrame, set[int]]
 
 
 def _unreadable_parquet(label: str, exc: Exception) -> InputError:
-    return InputError(f"{label}: not a readable Parquet file ({_brief(exc)})")
+    return InputError(f"{label}: not a readable Parquet file ({brief(exc)})")
 
 
 def _parquet_header(path: Path, label: str) -> list[str]:

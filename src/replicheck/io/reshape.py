@@ -53,6 +53,7 @@ import pandas as pd
 from pandas.api.types import is_bool_dtype, is_numeric_dtype
 
 from replicheck.errors import InputError
+from replicheck.io.columns import normalise_name
 from replicheck.io.table import Reshaped
 
 _TOKEN = re.compile(r"\d+(?:\.\d+)?|[A-Za-z]+|[^A-Za-z\d]+")
@@ -214,8 +215,8 @@ def reshape_long(
             families.append(dated)
         if not families:
             return data, ()
-        target = _normal(response)
-        named = [f for f in families if _normal(f.rest) == target]
+        target = normalise_name(response)
+        named = [f for f in families if normalise_name(f.rest) == target]
         if named:
             family = named[0]
         elif len(families) == 1:
@@ -334,10 +335,6 @@ def _alike(families: Sequence[_Family]) -> bool:
     rests = [f.rest for f in families]
     parts = {tuple(sorted(f.parts)) for f in families}
     return len(families) > 1 and len(parts) == 1 and all(rests) and len(set(rests)) == len(rests)
-
-
-def _normal(name: str) -> str:
-    return re.sub(r"[\s_.\-]+", "", name).casefold()
 
 
 def _melt(

@@ -40,7 +40,7 @@ from typing import Any, TypeVar
 
 import pandas as pd
 
-from replicheck.errors import InputError
+from replicheck.errors import InputError, brief
 from replicheck.limits import Limits
 
 __all__ = ["workbook_grid", "workbook_sheets"]
@@ -133,11 +133,6 @@ def _check_kind(kind: str) -> None:
         raise ValueError(f"kind must be 'xls' or 'ods', not {kind!r}")
 
 
-def _brief(exc: BaseException) -> str:
-    text = " ".join(str(exc).split()) or type(exc).__name__
-    return text if len(text) <= 160 else text[:157] + "..."
-
-
 def _guarded(kind: str, label: str, work: Callable[[], _T]) -> _T:
     """Run ``work``; any failure of the readers on a damaged file becomes one InputError.
 
@@ -154,7 +149,7 @@ def _guarded(kind: str, label: str, work: Callable[[], _T]) -> _T:
     except BaseException as exc:
         if not isinstance(exc, Exception) and type(exc).__name__ != "PanicException":
             raise
-        raise InputError(f"{label}: not a readable .{kind} workbook ({_brief(exc)})") from exc
+        raise InputError(f"{label}: not a readable .{kind} workbook ({brief(exc)})") from exc
 
 
 def _check_extent(label: str, name: str, rows: int, width: int, limits: Limits) -> None:
