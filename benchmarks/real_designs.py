@@ -19,7 +19,9 @@ would run it (no unit stated, unless the case states roles), and compared:
 
 The table of cases, expected and found, and the agreement rate are written
 between the markers of ``docs/real-designs.md``. Cases marked ``fast`` also run
-in the test suite (tests/test_real_designs.py).
+in the test suite (tests/test_real_designs.py). Every report is also rendered in
+text, Markdown and HTML and proofread (:mod:`replicheck.report.proofread`); the
+number of faults found is written under the table.
 """
 
 from __future__ import annotations
@@ -149,6 +151,7 @@ class Outcome:
     within_ok: bool
     seconds: float
     error: str | None = None
+    prose: tuple[str, ...] = ()  # faults the proofreader finds in the rendered reports
 
     @property
     def status_ok(self) -> bool:
@@ -203,6 +206,7 @@ def run_case(case: Case) -> Outcome:
     """Audit one case as a reviewer would and compare with the documentation."""
     from replicheck import audit
     from replicheck.errors import InputError
+    from replicheck.report.proofread import proofread
 
     data = case_data(case)
     start = time.perf_counter()
@@ -221,6 +225,7 @@ def run_case(case: Case) -> Outcome:
         )
     seconds = time.perf_counter() - start
     doc = report.to_dict()
+    prose = tuple(str(p) for p in proofread(doc))
     used = data.loc[data[case.response].notna()].copy()
     for t in case.treatments:
         used = used.loc[used[t].notna()]
@@ -292,6 +297,7 @@ def run_case(case: Case) -> Outcome:
         blocks_ok,
         within_ok,
         seconds,
+        prose=prose,
     )
 
 
@@ -342,7 +348,14 @@ def summary(outcomes: Sequence[Outcome]) -> str:
             f"{name}: {agree} of {len(group)} cases agree in every respect (status "
             f"{status}, the unit of every term {units})"
         )
-    return "Agreement, " + "; ".join(parts) + "."
+    reports = [o for o in outcomes if o.error is None]
+    faults = sum(len(o.prose) for o in reports)
+    return (
+        "Agreement, "
+        + "; ".join(parts)
+        + f". Report prose (replicheck.report.proofread, text, Markdown and HTML): {faults} "
+        f"fault{'' if faults == 1 else 's'} in {len(reports)} reports."
+    )
 
 
 def write_doc(text: str, path: Path = DOC) -> None:
@@ -369,6 +382,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     for c in cases:
         o = run_case(c)
         outcomes.append(o)
+        for fault in o.prose:
+            print(f"prose {c.id}: {fault}", file=sys.stderr)
         if args.verbose or not o.agrees:
             mark = "ok " if o.agrees else "NO "
             print(

@@ -10,3 +10,28 @@ from hypothesis import settings
 
 settings.register_profile("replicheck", derandomize=True, deadline=None)
 settings.load_profile("replicheck")
+
+
+# Every report the suite produces is proofread in every format (issue: reports a
+# reviewer can paste without editing). ``audit`` is wrapped once here, so a test whose
+# audit renders a faulty sentence fails with the faults listed; see
+# replicheck.report.proofread for what counts as a fault.
+import functools  # noqa: E402
+
+import replicheck.api  # noqa: E402
+from replicheck.report.proofread import proofread  # noqa: E402
+
+_audit = replicheck.api.audit
+
+
+@functools.wraps(_audit)
+def _proofread_audit(*args, **kwargs):  # type: ignore[no-untyped-def]
+    report = _audit(*args, **kwargs)
+    problems = proofread(report.to_dict())
+    if problems:
+        shown = "\n  ".join(str(p) for p in problems[:8])
+        raise AssertionError(f"the report's prose has {len(problems)} fault(s):\n  {shown}")
+    return report
+
+
+replicheck.api.audit = _proofread_audit

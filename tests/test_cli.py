@@ -91,7 +91,7 @@ def test_markdown_and_text_and_output_file(ratpup_csv: Path, tmp_path: Path) -> 
     assert r.returncode == 1
     md = out.read_text()
     assert md.startswith("## replicheck audit")
-    assert "| experimental unit of `Treatment` | `Litter`" in md
+    assert "- 'Treatment': 'Litter' (nested; 27 units" in md
     assert "Caution" in md
     r = run("check", str(ratpup_csv), "-r", "weight", "-t", "Treatment")
     assert "VERDICT: PSEUDO-REPLICATED" in r.stdout

@@ -28,7 +28,7 @@ ALLOWED_TAGS = {
     "html", "head", "meta", "title", "style", "body", "header", "h1", "h2", "p", "main",
     "section", "span", "table", "thead", "tbody", "tr", "th", "td", "figure", "img",
     "figcaption", "ul", "li", "div", "strong", "small", "blockquote", "code", "footer", "h3",
-    "em",
+    "dl", "dt", "dd", "em",
 }  # fmt: skip
 XSS = "<script>alert(1)</script>"
 

@@ -312,15 +312,15 @@ def test_reports_show_the_roles_and_the_other_reading_with_its_refit(tmp_path: P
     assert alt["p_value"] == pytest.approx(ref["p"], rel=1e-4)
     text = " ".join(_cli(*args).stdout.split())  # the text report wraps lines
     assert "other readings of the unit" in text
-    assert "Treatment: Litter (the unit found in the data; nested, 27 units;" in text
-    assert "F(2, 21.68) = 1.83, p = 0.184" in text
+    assert "'Treatment': 'Litter' (the unit found in the data; nested, 27 units;" in text
+    assert "F(2, 21.7) = 1.83, p = 0.184" in text  # df to 3 significant digits
     roles = text[text.index("ROLES OF THE COLUMNS") :]
     assert "Litter:sex: experimental unit (stated in the options)" in roles
     assert "Lsize: covariate (inferred)" in roles
     md = _cli(*args, "--format", "markdown").stdout
     assert "| `Litter:sex` | experimental unit | stated in the options |" in md
-    assert "### Other readings of the unit" in md
+    assert "Other readings of the unit (each refitted):" in md
     html_path = tmp_path / "r.html"
     _cli(*args, "--format", "html", "-o", str(html_path))
     page = html_path.read_text()
-    assert "<h3>Roles of the columns</h3>" in page and "<td>Lsize</td><td>covariate</td>" in page
+    assert "<h2>Roles of the columns</h2>" in page and "<td>Lsize</td><td>covariate</td>" in page

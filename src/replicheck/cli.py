@@ -9,6 +9,7 @@ from __future__ import annotations
 import os
 import shlex
 import sys
+import textwrap
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
@@ -480,12 +481,38 @@ def demo(name: str | None, list_: bool, write_dir: str | None, fmt: str) -> None
 
 
 @cli.command()
-def rules() -> None:
-    """List the rules behind the findings."""
+@click.option("--terms", is_flag=True, help="List the glossary of technical terms instead.")
+def rules(terms: bool) -> None:
+    """List the rules behind the findings (or, with --terms, the glossary)."""
+    if terms:
+        from replicheck.glossary import GLOSSARY
+
+        for e in GLOSSARY:
+            click.echo(f"{e.term:34} {e.source}")
+        click.echo("\n'replicheck explain TERM' defines a term.")
+        return
     from replicheck.verdict import RULES
 
     for name, (_, doc) in RULES.items():
         click.echo(f"{name:34} {doc}")
+
+
+@cli.command()
+@click.argument("term", nargs=-1, required=True)
+def explain(term: tuple[str, ...]) -> None:
+    """Define a technical term the reports use (e.g. ICC, REML, 'design effect', CR2).
+
+    Each definition names its published source, or says "common practice".
+    """
+    from replicheck.glossary import GLOSSARY, lookup
+
+    wanted = " ".join(term)
+    entry = lookup(wanted)
+    if entry is None:
+        known = ", ".join(e.term for e in GLOSSARY)
+        raise InputError(f"no glossary entry for {wanted!r}; terms: {known}")
+    body = textwrap.fill(entry.definition, 80)
+    click.echo(f"{entry.term}\n{body}\nsource: {entry.source}")
 
 
 cli.add_command(screen_command)

@@ -1,4 +1,18 @@
-"""How numbers are written in findings and reports (one style everywhere)."""
+"""How numbers are written in findings and reports (one style everywhere).
+
+The rule, in every format (stated in docs/report-schema.md, "How numbers are
+written"):
+
+* estimates and statistics (F, t, chi-squared, ICC, variances, design effects,
+  effective sample sizes, differences and their interval bounds): three significant
+  digits, keeping every digit of the whole-number part (2287, not 2.29e+03); below
+  0.0001 in scientific notation (3.41e-06);
+* p-values: three decimals from 0.01 up, two significant digits below, and
+  "< 0.0001" below that;
+* degrees of freedom: whole numbers, or three significant digits when fractional
+  (Satterthwaite and similar approximations);
+* counts: whole numbers.
+"""
 
 from __future__ import annotations
 
@@ -12,6 +26,37 @@ def format_p(p: float | None) -> str:
     if p < 1e-4:
         return "<0.0001"
     return f"{p:.2g}" if p < 0.01 else f"{p:.3f}"
+
+
+def format_number(x: float | None, digits: int = 3) -> str:
+    """An estimate or statistic to ``digits`` significant digits, keeping the whole part.
+
+    >>> [format_number(v) for v in (2287.4, 15.0, 11.514, 0.03236, 0.4339, 0.0, -1.2345)]
+    ['2287', '15.0', '11.5', '0.0324', '0.434', '0', '-1.23']
+    >>> format_number(3.4e-06), format_number(9.9996), format_number(None)
+    ('3.40e-06', '10.0', '-')
+    """
+    if x is None or not math.isfinite(x):
+        return "-"
+    if x == 0:
+        return "0"
+    a = abs(x)
+    if a < 1e-4:
+        return f"{x:.{digits - 1}e}"
+    if a >= 10 ** (digits - 1):
+        return f"{x:.0f}"
+    decimals = digits - 1 - math.floor(math.log10(a))
+    text = f"{x:.{decimals}f}"
+    if len(text.lstrip("-").replace(".", "").lstrip("0")) > digits:  # 9.9996 -> 10.000
+        text = f"{x:.{max(decimals - 1, 0)}f}"
+    return text
+
+
+def format_df(df: float) -> str:
+    """Degrees of freedom: whole, or three significant digits when fractional."""
+    if abs(df - round(df)) < 1e-9:
+        return f"{round(df)}"
+    return format_number(df)
 
 
 def p_phrase(p: float | None) -> str:

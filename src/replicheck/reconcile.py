@@ -16,6 +16,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from replicheck.claim import ReportedResult
+from replicheck.glossary import short_title
 from replicheck.numbers import p_phrase
 from replicheck.partitions import is_nested, units_per_level
 from replicheck.refit import Analysis, TermInput
@@ -191,8 +192,8 @@ class Level:
 
 def _meaning(lv: Level, verb: str) -> str:
     if lv.kind == "rows":
-        return f"every row was {verb} as a replicate"
-    return f"each level of '{lv.name}' was {verb} as a replicate"
+        return f"the analysis {verb} each row as a replicate"
+    return f"the analysis {verb} each level of '{lv.name}' as a replicate"
 
 
 def reconcile(
@@ -269,7 +270,7 @@ def reconcile(
                 what = "rows" if lv.kind == "rows" else f"levels of '{lv.name}'"
                 explanation = (
                     f"error df {err:g} = {lv.replicates} {what} - {lv.removed}: "
-                    + _meaning(lv, "treated")
+                    + _meaning(lv, "took")
                 )
                 break
         if explanation is None:
@@ -297,7 +298,7 @@ def reconcile(
                     unit = next((lv for lv in levels if lv.kind == "units"), None)
                     level, grouping = "units", (unit.name if unit else None)
                     explanation = (
-                        f"reported p = {q:g} matches the {a.name.replace('_', ' ')} analysis "
+                        f"reported p = {q:g} matches the {short_title(a.name)} "
                         f"(p = {a.p_value:.3g}), not the row-level one: the units were "
                         f"probably the replicates"
                     )
@@ -327,7 +328,7 @@ def reconcile(
         else:
             level = "rows"
             explanation = (
-                f"the reported {what} is reproduced by {shown}: every row was treated as a "
+                f"the reported {what} is reproduced by {shown}: the analysis took each row as a "
                 "replicate"
             )
     checked = match is not None or level in {"rows", "unknown"}

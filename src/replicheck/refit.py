@@ -179,6 +179,7 @@ LABELS = {
     "lack_of_fit": "lack of fit: unit means of each value against the straight line",
     "likelihood_ratio": "as claimed, likelihood-ratio test: every row a replicate",
 }
+WEIGHT_NAMES = {"webb": "Webb's six-point weights", "rademacher": "Rademacher (+1/-1) weights"}
 FAMILY_NAMES = {"binomial": "logistic regression", "poisson": "Poisson regression"}
 
 BOOTSTRAP_DRAWS = 9_999  # wild cluster bootstrap draws (when not enumerated)
@@ -1172,9 +1173,9 @@ def _cross_checks(
             seed=seed,
         )
         how = (
-            f"all {b.draws} sign patterns"
+            f"all {b.draws:,} sign patterns"
             if b.enumerated
-            else f"{b.draws} draws, {b.weights} weights (seed {b.seed})"
+            else f"{b.draws:,} draws, {WEIGHT_NAMES.get(b.weights, b.weights)} (seed {b.seed})"
         )
         if b.undefined:
             how += (

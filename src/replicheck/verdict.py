@@ -13,7 +13,8 @@ from dataclasses import dataclass, field
 
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
-from replicheck.numbers import count_text, p_phrase
+from replicheck.glossary import short_title, unit_noun
+from replicheck.numbers import count_text, format_df, format_number, p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
 from replicheck.slopes import SlopeCheck
@@ -154,14 +155,15 @@ def rule(name: str, doc: str) -> Callable[[Rule], Rule]:
 
 
 _p = p_phrase
+_u = unit_noun  # a unit's name in a sentence: tank, 'Block:Contour'
 
 
 def _f(a: Analysis) -> str:
-    """The analysis's statistic as printed in a paper: F(a, b) = x or chi2(a) = x."""
+    """The analysis's statistic as printed in a paper: F(a, b) = x or chi-squared(a) = x."""
     assert a.df is not None and a.statistic is not None
-    if a.test == "chi2":
-        return f"chi2({a.df[0]:.3g}) = {a.statistic:.3g}, {_p(a.p_value)}"
-    return f"F({a.df[0]:.3g}, {a.df[1]:.3g}) = {a.statistic:.3g}, {_p(a.p_value)}"
+    df = ", ".join(format_df(d) for d in a.df)
+    name = "chi-squared" if a.test == "chi2" else "F"
+    return f"{name}({df}) = {format_number(a.statistic)}, {_p(a.p_value)}"
 
 
 def _cap(text: str) -> str:
@@ -264,10 +266,10 @@ def _confounded(ev: Evidence) -> Iterator[Finding]:
             "error",
             f"Every level of '{t.term}' sits in a single level of '{u.unit}', so differences "
             f"between the levels of '{t.term}' cannot be told apart from differences between "
-            f"{u.unit} levels; no valid test of '{t.term}' exists in these data.",
+            f"{_u(u.unit)} levels; no valid test of '{t.term}' exists in these data.",
             f"Ask the authors whether each level of '{t.term}' really was applied to one "
-            f"{u.unit}. If so, the comparison needs independent replicate units per level; "
-            f"the observations within one {u.unit} cannot replace them.",
+            f"{_u(u.unit)}. If so, the comparison needs independent replicate units per level; "
+            f"the observations within one {_u(u.unit)} cannot replace them.",
             (*t.factors, *u.columns),
         )
 
@@ -296,22 +298,21 @@ def _pseudo(ev: Evidence) -> Iterator[Finding]:
                 f"{rec.explanation}."
             )
         corrected = t.corrected
+        noun = unit_noun(u.unit)
         if corrected is not None and corrected.p_value is not None:
             where = (
                 "as claimed"
                 if ev.claim.formula is not None and ev.claim.formula.random
                 else ("row level")
             )
-            msg += (
-                f" With {u.unit} as the replicate: {_f(corrected)} "
-                f"({where}: {_p(claimed.p_value)})."
-            )
+            test = _f(corrected) if corrected.df else _p(corrected.p_value)
+            msg += f" With {noun} as the replicate: {test} ({where}: {_p(claimed.p_value)})."
         yield Finding(
             "rows-counted-as-replicates",
             "error" if _changed(t, ev) else "warning",
             msg,
-            f"Analyse '{t.term}' with {u.unit} as the experimental unit (unit means, or a mixed "
-            f"model with a random effect for {u.unit}) and report n as the number of {u.unit} "
+            f"Analyse '{t.term}' with {noun} as the experimental unit (unit means, or a mixed "
+            f"model with a random effect for {noun}) and report n as the number of {noun} "
             f"units per level.",
             (*t.factors, *u.columns),
         )
@@ -687,7 +688,8 @@ def _single(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "single-unit-levels",
             "warning",
-            f"The level(s) {levels} of '{t.term}' sit in a single {u.unit}: their effect cannot "
+            f"The level(s) {levels} of '{t.term}' sit in a single {_u(u.unit)}: their effect "
+            f"cannot "
             f"be separated from that {u.unit}'s own effect.",
             "Treat comparisons involving these levels as unreplicated.",
             (*t.factors, *u.columns),
@@ -706,7 +708,7 @@ def _few(ev: Evidence) -> Iterator[Finding]:
                 yield Finding(
                     "few-units",
                     "warning",
-                    f"The slope of '{t.term}' rests on only {n_units} {u.unit} units "
+                    f"The slope of '{t.term}' rests on only {n_units} {_u(u.unit)} units "
                     f"({n_units - 2} degrees of freedom after the intercept and the slope): the "
                     "corrected test has little power.",
                     "Read a non-significant corrected result as 'not shown', not as 'no effect'.",
@@ -718,7 +720,8 @@ def _few(ev: Evidence) -> Iterator[Finding]:
             yield Finding(
                 "few-units",
                 "warning",
-                f"Some levels of '{t.term}' have only {least} {u.unit} units: the corrected test "
+                f"Some levels of '{t.term}' have only {least} {_u(u.unit)} units: the corrected "
+                f"test "
                 f"rests on very few error degrees of freedom and has little power.",
                 "Read a non-significant corrected result as 'not shown', not as 'no effect'.",
                 tuple(u.columns),
@@ -735,7 +738,7 @@ def _floor(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "randomisation-floor",
             "warning",
-            f"With {n_units} {t.unit.unit} units the design allows only "
+            f"With {n_units} {_u(t.unit.unit)} units the design allows only "
             f"{count_text(r.n_assignments)} "
             f"assignments of '{t.term}', so the smallest p-value any test on these units can "
             f"reach is {r.min_attainable_p:.3g}, above alpha = {ev.claim.alpha:g}: no "
@@ -811,9 +814,9 @@ def _overdispersion(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "unit-overdispersion",
             "warning",
-            f"The {what} differ between {t.unit.unit} units of the same level far more than "
+            f"The {what} differ between {_u(t.unit.unit)} units of the same level far more than "
             f"{od.family} chance allows (dispersion {od.dispersion:.2f}, chi2({od.df}) = "
-            f"{od.chi2:.3g}, {_p(od.p_value)}): the {t.unit.unit} units are clustered, so "
+            f"{od.chi2:.3g}, {_p(od.p_value)}): the {_u(t.unit.unit)} units are clustered, so "
             f"rows are not independent trials.",
             "Analyse one value per unit, or a model that allows for the clustering.",
             (*t.factors, *t.unit.columns),
@@ -900,7 +903,7 @@ def _boundary(ev: Evidence) -> Iterator[Finding]:
         yield Finding(
             "unit-variance-zero",
             "note",
-            f"The REML estimate of the variance between {v.unit} units is zero, so the mixed "
+            f"The REML estimate of the variance between {_u(v.unit)} units is zero, so the mixed "
             f"model treats their rows as independent; the verdict on '{t.term}' rests on the "
             f"unit-means test, which stays valid.",
             "A zero estimate does not prove units are alike; with few units it is often chance.",
@@ -984,27 +987,58 @@ def decide(ev: Evidence) -> Verdict:
     return Verdict(status, changed, worst.method, summarise(ev, terms), tuple(findings), terms)
 
 
-def _term_summary(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> str:
+def _within(unit: str) -> str:
+    """``within a tank``; ``within one level of 'Block:Contour'`` for a name that is not a word."""
+    noun = unit_noun(unit)
+    return f"within {with_article(noun)}" if noun == unit else f"within one level of {noun}"
+
+
+def _clustering_sentence(cl: Clustering, unit: str, n_units: int) -> str:
+    """How alike observations within a unit are, with the ICC the verdict uses."""
+    figures = (
+        f"ICC {format_number(cl.icc)} by {cl.icc_method}; design effect "
+        f"{format_number(cl.design_effect)}"
+    )
+    if round(cl.effective_n) >= cl.n_observations:
+        return (
+            f"Here observations {_within(unit)} are hardly more alike than observations in "
+            f"different ones ({figures}): the rows are effectively independent, but the "
+            f"treatment was applied to whole units, so only {n_units} of them replicate it."
+        )
+    return (
+        f"Observations {_within(unit)} are alike ({figures}), so the {cl.n_observations} rows "
+        f"carry the information of about {format_number(cl.effective_n)} independent ones."
+    )
+
+
+def _term_parts(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> tuple[str, str, str]:
+    """The summary of one term in three parts: what the claim did, how alike observations
+    within the unit are (empty when not measured), and what the corrected analysis says."""
     u = t.unit
     alpha = ev.claim.alpha
     claimed = t.analysis("as_claimed")
     assert claimed is not None
+    unit = u.unit or block_of(t, ev)
     if tv.status == "confounded":
+        where = f"a single {_u(unit)}" if unit else "a single unit"
+        between = f"differences between {_u(unit)} units" if unit else "the units"
         return (
-            f"Each level of '{t.term}' was applied to a single {u.unit}, so the effect of "
-            f"'{t.term}' cannot be separated from differences between {u.unit} levels. The "
-            f"{u.n_observations} observations are repeated measurements of {u.n_units} units, "
-            f"not independent replicates, and no valid test of '{t.term}' is possible with these "
-            f"data (the row-level {_p(claimed.p_value)} does not support the claim)."
+            f"Each level of '{t.term}' was applied to {where}, so the effect of '{t.term}' "
+            f"cannot be separated from {between}. The {u.n_observations} observations are "
+            f"repeated measurements of {u.n_units} units, not independent replicates, and no "
+            f"valid test of '{t.term}' is possible with these data (the row-level "
+            f"{_p(claimed.p_value)} does not support the claim).",
+            "",
+            "",
         )
     corrected = t.corrected
-    if tv.status in {"ok", "unclear"} and (u.unit is None or u.n_units >= u.n_observations):
+    if tv.status in {"ok", "unclear"} and (unit is None or u.n_units >= u.n_observations):
         text = (
             f"No grouping was found within which '{t.term}' is constant, so its "
-            f"{u.n_observations} rows are taken as independent replicates"
+            f"{u.n_observations} rows are its replicates"
         )
-        if corrected is not None and corrected.name == "mixed_model":
-            text += f"; tested in the mixed model: {_f(corrected)}."
+        if corrected is not None and corrected.name != "as_claimed" and corrected.df:
+            text += f"; tested in the {short_title(corrected.name)}: {_f(corrected)}."
         else:
             text += f"; the row-level test gives {_p(claimed.p_value)}."
         if tv.status == "unclear":
@@ -1013,48 +1047,39 @@ def _term_summary(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> str:
                 f" However, '{t.term}' coincides with {cols}; if that marks a unit, the design "
                 f"is confounded. The data alone cannot tell."
             )
-        return text
+        return text, "", ""
     mixed_claim = ev.claim.formula is not None and bool(ev.claim.formula.random)
+    noun = unit_noun(unit)
     if tv.status == "ok":
         source = "claimed model" if mixed_claim else "reported result"
         return (
-            f"'{t.term}' was applied to {u.unit} units ({u.n_units} in all) and the {source} "
+            f"'{t.term}' was applied to {noun} units ({u.n_units} in all) and the {source} "
             f"shows the analysis used them as replicates."
-            + (f" Reanalysed that way: {_p(corrected.p_value)}." if corrected is not None else "")
+            + (f" Reanalysed that way: {_p(corrected.p_value)}." if corrected is not None else ""),
+            "",
+            "",
         )
-    cl = t.clustering
     rec = t.reconciliation
-    if mixed_claim and rec is not None and rec.explanation:
+    if unit is None:  # no named unit: the term is tested in a coarser stratum of the design
         first = (
-            f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but "
+            f"'{t.term}' is tested against a coarser stratum of the design than the rows, but "
+            f"the row-level analysis treats all {u.n_observations} rows as independent "
+            f"replicates ({_p(claimed.p_value)})."
+        )
+    elif mixed_claim and rec is not None and rec.explanation:
+        first = (
+            f"'{t.term}' varies only between levels of '{unit}' ({u.n_units} units), but "
             f"{rec.explanation.split('; ')[0]} ({_p(claimed.p_value)})."
         )
     else:
         first = (
-            f"'{t.term}' varies only between levels of '{u.unit}' ({u.n_units} units), but the "
+            f"'{t.term}' varies only between levels of '{unit}' ({u.n_units} units), but the "
             f"row-level analysis treats all {u.n_observations} rows as independent replicates "
             f"({_p(claimed.p_value)})."
         )
-    parts = [first]
-    if cl is not None:
-        anova = f"; one-way ANOVA estimate {cl.icc_anova:.2f}" if cl.icc_method == "REML" else ""
-        figures = (
-            f"ICC {cl.icc:.2f} by {cl.icc_method}{anova}, 95% CI {cl.icc_ci[0]:.2f} to "
-            f"{cl.icc_ci[1]:.2f}; design effect {cl.design_effect:.1f}"
-        )
-        within = with_article(u.unit or "unit")
-        if round(cl.effective_n) >= cl.n_observations:
-            parts.append(
-                f"Here observations within {within} are hardly more alike than "
-                f"observations in different ones ({figures}): the rows are effectively "
-                f"independent, but the treatment was applied to whole units, so only "
-                f"{u.n_units} of them replicate it."
-            )
-        else:
-            parts.append(
-                f"Observations within {within} are alike ({figures}), so the "
-                f"effective sample size is about {cl.effective_n:.0f}, not {cl.n_observations}."
-            )
+    cl = t.clustering
+    middle = "" if cl is None or unit is None else _clustering_sentence(cl, unit, u.n_units)
+    last = ""
     if corrected is not None and corrected.p_value is not None:
         sig = "significant" if corrected.p_value < alpha else "not significant"
         ending = (
@@ -1064,16 +1089,32 @@ def _term_summary(t: TermEvidence, tv: TermVerdict, ev: Evidence) -> str:
             if tv.conclusion_changed is False
             else "."
         )
-        parts.append(
-            f"With {u.unit} as the replicate ({corrected.label.split(':')[0]}, {_f(corrected)}), "
+        test = f"{_f(corrected)}" if corrected.df else _p(corrected.p_value)
+        replicate = f"{noun} as the replicate" if unit else "the units of its stratum"
+        last = (
+            f"With {replicate} ({short_title(corrected.name)}, {test}), "
             f"the effect of '{t.term}' is {sig} at alpha = {alpha:g}{ending}"
         )
-    return " ".join(parts)
+    return first, middle, last
 
 
 def summarise(ev: Evidence, terms: tuple[TermVerdict, ...]) -> str:
-    """A plain-language paragraph a reviewer can paste into a report (worst terms first)."""
+    """A plain-language paragraph a reviewer can paste into a report (worst terms first).
+
+    With several terms, only the terms whose status is not ``ok`` are described, and how
+    alike observations within a unit are is said once per unit.
+    """
     pairs = sorted(zip(ev.terms, terms, strict=True), key=lambda p: STATUS_ORDER.index(p[1].status))
     if len(pairs) > 1:
         pairs = [p for p in pairs if p[1].status != "ok"] or pairs[:1]
-    return " ".join(_term_summary(t, tv, ev) for t, tv in pairs)
+    said: set[str] = set()
+    out = []
+    for t, tv in pairs:
+        first, middle, last = _term_parts(t, tv, ev)
+        out.append(first)
+        if middle and middle not in said:
+            said.add(middle)
+            out.append(middle)
+        if last:
+            out.append(last)
+    return " ".join(out)

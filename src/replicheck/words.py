@@ -39,3 +39,10 @@ def with_article(word: str) -> str:
 def counted(n: int, word: str, plural: str | None = None) -> str:
     """``"1 unit"``, ``"3 units"`` (``plural`` for irregular words)."""
     return f"{n:,} {word if n == 1 else (plural or word + 's')}"
+
+
+def joined(items: list[str], last: str = "and") -> str:
+    """``"a"``, ``"a and b"``, ``"a, b and c"``."""
+    if len(items) <= 1:
+        return "".join(items)
+    return f"{', '.join(items[:-1])} {last} {items[-1]}"

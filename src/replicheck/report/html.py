@@ -12,24 +12,12 @@ from __future__ import annotations
 
 import base64
 import html
+import re
 from typing import Any
 
+from replicheck.report import content as C
 from replicheck.report.figures import effects_figure, units_figure, variance_figure
-from replicheck.report.markdown import suggested_wording
 from replicheck.report.reading import reading_lines
-from replicheck.report.text import (
-    STATUS_WORDS,
-    TERMS_HEADER,
-    alternative_items,
-    analyses_header,
-    analyses_rows,
-    fmt_df,
-    fmt_num,
-    fmt_p,
-    needs_sentence,
-    roles_rows,
-    terms_rows,
-)
 
 STATUS_TITLES = {
     "ok": "No pseudo-replication found",
@@ -76,6 +64,9 @@ blockquote { margin: .5rem 0; padding: .5rem 1rem; border-left: .3rem solid var(
 code { font-family: ui-monospace, monospace; font-size: .9em; }
 ul.tree, ul.tree ul { list-style: none; padding-left: 1.2rem; margin: .2rem 0; }
 ul.tree li::before { content: "└ "; color: var(--muted); }
+dl.glossary dt { font-weight: 600; margin-top: .4rem; }
+dl.glossary dd { margin: 0 0 0 1.2rem; }
+dl.glossary .source { color: var(--muted); font-size: .85rem; }
 .caution { border: 1px solid var(--rule); padding: .6rem 1rem; background: #fffbeb; }
 footer { margin-top: 2.5rem; color: var(--muted); font-size: .8rem; }
 @media print {
@@ -93,7 +84,9 @@ def _e(x: object) -> str:
     return html.escape(str(x), quote=True)
 
 
-def _img(svg: str, alt: str) -> str:
+def _img(svg: str | None, alt: str) -> str:
+    if svg is None:  # figures left out (the proofreader reads the words only)
+        return f'<img alt="{_e(alt)}">'
     data = base64.b64encode(svg.encode("utf-8")).decode("ascii")
     return f'<img src="data:image/svg+xml;base64,{data}" alt="{_e(alt)}">'
 
@@ -111,62 +104,29 @@ def _table(header: list[str], rows: list[list[str]], numeric: set[int] | None = 
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def _yes_no(flag: bool | None) -> str:
-    return "unknown" if flag is None else ("yes" if flag else "no")
+def _rows_table(rows: list[tuple[str, str]]) -> str:
+    body = "".join(f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>' for k, v in rows)
+    return f"<table>{body}</table>"
+
+
+def _h2(key: str) -> str:
+    return f"<h2>{_e(C.TITLES[key])}</h2>"
 
 
 def _verdict(doc: dict[str, Any]) -> str:
-    v, c = doc["verdict"], doc["claim"]
+    v = doc["verdict"]
     status = v["status"]
     parts = [
         f'<section class="verdict tone-{_e(status)}" aria-label="verdict">',
         f'<p class="status">Verdict: <span>{_e(STATUS_TITLES.get(status, status))}</span></p>',
-        f"<p>{_e(STATUS_WORDS.get(status, status))}.</p>",
+        f"<p>{_e(C.STATUS_WORDS.get(status, status))}.</p>",
+        "<p>" + " ".join(_e(x) for x in C.verdict_lines(doc)) + "</p>",
         f"<p>{_e(v['summary'])}</p>",
-        f"<p><strong>Conclusion changed at alpha = {_e(c['alpha'])}:</strong> "
-        f"{_e(_yes_no(v['conclusion_changed']))}."
-        + (f" The corrected verdict rests on: {_e(v['method'])}." if v["method"] else "")
-        + "</p>",
         '<p class="caution-short">A screening aid, not a judgement: how the experiment was run '
         "decides the unit. See the caution at the end of this report.</p>",
         "</section>",
     ]
     return "\n".join(parts)
-
-
-def _key_figures(doc: dict[str, Any]) -> str:
-    c = doc["claim"]
-    rows: list[list[str]] = [
-        ["response", c["response"]],
-        ["treatment", ", ".join(c["treatments"])],
-    ]
-    for u in doc["experimental_units"]:
-        rows.append(
-            [
-                f"experimental unit of {u['treatment']}",
-                f"{u['unit'] or 'each row'} ({u['relation']}; {u['n_units']} units, "
-                f"{u['n_observations']} observations)",
-            ]
-        )
-    cl = doc["clustering"]
-    if cl.get("icc") is not None:
-        lo, hi = cl["icc_ci"]
-        rows += [
-            [
-                "ICC",
-                f"{cl['icc']:.3f} (one-way ANOVA {cl['icc_anova']:.3f}, "
-                f"95% CI {lo:.3f} to {hi:.3f})",
-            ],
-            ["design effect", f"{cl['design_effect']:.2f}"],
-            ["effective n", f"{cl['effective_n']:.1f} of {cl['n_observations']} observations"],
-        ]
-    if c["reported"]:
-        rows.append(["reported", c["reported"]["text"]])
-    rc = doc["reported_check"]
-    if rc["explanation"]:
-        rows.append(["reported df", rc["explanation"]])
-    body = "".join(f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>' for k, v in rows)
-    return f"<h2>Key figures</h2>\n<table>{body}</table>"
 
 
 def _labelled(doc: dict[str, Any], column: str) -> str:
@@ -177,15 +137,7 @@ def _labelled(doc: dict[str, Any], column: str) -> str:
     return f"{column} {unit}" if unit.startswith(("(", "[")) else f"{column} ({unit})"
 
 
-def _reading_section(doc: dict[str, Any]) -> str:
-    body = "".join(
-        f'<tr><th scope="row">{_e(k)}</th><td>{_e(v)}</td></tr>'
-        for k, v in reading_lines(doc["input"])
-    )
-    return f"<h2>What was read</h2>\n<table>{body}</table>"
-
-
-def _units_section(doc: dict[str, Any]) -> str:
+def _units_figure(doc: dict[str, Any], figures: bool = True) -> str:
     d = doc.get("display")
     if not d:
         return ""
@@ -200,10 +152,10 @@ def _units_section(doc: dict[str, Any]) -> str:
         f"level of {d['term']}. {per_level}."
     )
     caption = (
-        f"Each column of points is one {unit} unit, with its mean as a dark bar; the dashed line "
-        f"is the mean of the unit means in each level. The analysis has "
-        f"{d['n_units']} independent units, not {d['n_observations']} observations."
-        if unit
+        f"Each column of points is one unit ({C.unit_noun(unit)}), with its mean as a dark "
+        f"bar; the dashed line is the mean of the unit means in each level. The analysis has "
+        f"{d['n_units']:,} independent units, not {d['n_observations']:,} observations."
+        if unit and d["n_units"] != d["n_observations"]
         else "Each point is one observation and its own unit."
     )
     if d["thinned"]:
@@ -216,35 +168,32 @@ def _units_section(doc: dict[str, Any]) -> str:
     rows = [
         [
             lv["label"],
-            str(lv["n_units"]),
-            str(lv["n_observations"]),
-            fmt_num(lv["mean_of_unit_means"], 4),
+            f"{lv['n_units']:,}",
+            f"{lv['n_observations']:,}",
+            C.fmt_num(lv["mean_of_unit_means"]),
         ]
         for lv in levels
     ]
     table = _table(
         ["level", "units", "observations", "mean of unit means"], rows, numeric={1, 2, 3}
     )
-    return (
-        f"<h2>Observations grouped by experimental unit</h2>\n<figure>"
-        f"{_img(units_figure(d, _labelled(doc, doc['claim']['response'])), alt)}"
-        f"<figcaption>{_e(caption)}</figcaption></figure>\n{table}"
-    )
+    svg = units_figure(d, _labelled(doc, doc["claim"]["response"])) if figures else None
+    return f"<figure>{_img(svg, alt)}<figcaption>{_e(caption)}</figcaption></figure>\n{table}"
 
 
 def _ci(iv: dict[str, Any] | None) -> list[str]:
     if iv is None:
         return ["-", "no interval", "-"]
     if iv["low"] is None:
-        return [fmt_num(iv["estimate"], 4), "no interval (no error df)", fmt_df([iv["df"]])]
+        return [C.fmt_num(iv["estimate"]), "no interval (no error df)", C.fmt_df([iv["df"]])]
     return [
-        fmt_num(iv["estimate"], 4),
-        f"{fmt_num(iv['low'], 4)} to {fmt_num(iv['high'], 4)}",
-        fmt_df([iv["df"]]),
+        C.fmt_num(iv["estimate"]),
+        f"{C.fmt_num(iv['low'])} to {C.fmt_num(iv['high'])}",
+        C.fmt_df([iv["df"]]),
     ]
 
 
-def _effects_section(doc: dict[str, Any]) -> str:
+def _effects_section(doc: dict[str, Any], figures: bool = True) -> str:
     d = doc.get("display")
     if not d or not d["effects"]["rows"]:
         return ""
@@ -269,13 +218,13 @@ def _effects_section(doc: dict[str, Any]) -> str:
     )
     return (
         "<h2>Claimed and corrected effects</h2>\n<figure>"
-        f"{_img(effects_figure(e, d['term']), alt)}"
+        f"{_img(effects_figure(e, d['term']) if figures else None, alt)}"
         f"<figcaption>{_e(caption)}"
         "</figcaption></figure>\n" + _table(header, rows, numeric={1, 3, 4, 6})
     )
 
 
-def _variance_section(doc: dict[str, Any]) -> str:
+def _variance_figure(doc: dict[str, Any], figures: bool = True) -> str:
     cl = doc["clustering"]
     vc = cl.get("variance_components") if cl.get("icc") is not None else None
     if not vc or vc["unit"] is None or vc["residual"] is None:
@@ -284,139 +233,132 @@ def _variance_section(doc: dict[str, Any]) -> str:
     share = vc["unit"] / total if total > 0 else 0.0
     unit = cl["unit"]
     alt = f"Variance between {unit} units {share:.0%}, within units {1 - share:.0%}."
-    text = (
-        f"Between {unit} units: {fmt_num(vc['unit'], 4)}; within units: "
-        f"{fmt_num(vc['residual'], 4)} (ICC {cl['icc']:.3f}, {cl['icc_method']}). "
-        f"With a mean of {cl['mean_unit_size']:.1f} observations per unit the design effect is "
-        f"{cl['design_effect']:.2f}, so the {cl['n_observations']} observations carry the "
-        f"information of about {cl['effective_n']:.1f} independent ones."
-    )
-    od = cl.get("overdispersion")
-    if od:
-        text += (
-            f" Spread between units against {od['family']} chance: dispersion "
-            f"{od['dispersion']:.2f}, chi-squared({od['df']}) = {fmt_num(od['chi2'], 4)}, "
-            f"p = {fmt_p(od['p_value'])}."
-        )
-    return (
-        "<h2>Variance partition</h2>\n<figure>"
-        f"{_img(variance_figure(share, unit), alt)}</figure>\n<p>{_e(text)}</p>"
-    )
+    svg = variance_figure(share, unit) if figures else None
+    return f"<figure>{_img(svg, alt)}</figure>"
 
 
-def _analyses_section(doc: dict[str, Any]) -> str:
-    out = []
-    if len(doc["terms"]) > 1:
-        out += ["<h2>Terms: claimed and corrected</h2>", _table(TERMS_HEADER, terms_rows(doc))]
-    header = analyses_header(doc)
-    rows = analyses_rows(doc)
-    out += ["<h2>Analyses</h2>", _table(header, rows)]
-    out.append("<p><small>* marks the analysis the corrected verdict rests on.</small></p>")
-    notes = [f"{a['name']} ({a['term']}): {n}" for a in doc["analyses"] for n in a["notes"]]
-    if notes:
-        out.append("<ul>" + "".join(f"<li>{_e(n)}</li>" for n in notes) + "</ul>")
-    return "\n".join(out)
+def _list(items: list[str]) -> str:
+    return "<ul>" + "".join(f"<li>{_e(i)}</li>" for i in items) + "</ul>"
 
 
-def _design_section(doc: dict[str, Any]) -> str:
-    strata = doc.get("design", {}).get("strata", [])
-    if not strata:
-        return ""
-    children: dict[str | None, list[dict[str, Any]]] = {}
-    for s in strata:
-        children.setdefault(s["parent"], []).append(s)
-    what = {"unit": "unit", "block": "block", "subunit": "sub-unit", "rows": "rows"}
+def _tree(lines: list[tuple[int, str]]) -> str:
+    """Nested lists from (depth, text) pairs in depth-first order."""
+    out, depth = ['<ul class="tree">'], 0
+    for i, (d, text) in enumerate(lines):
+        if i > 0:
+            if d > depth:
+                out.append('<ul class="tree">')
+            else:
+                out.append("</li>" + "</ul></li>" * (depth - d))
+        out.append(f"<li>{_e(text)}")
+        depth = d
+    out.append("</li>" + "</ul></li>" * depth + "</ul>")
+    return "".join(out)
 
-    def walk(parent: str | None) -> str:
-        items = []
-        for s in children.get(parent, []):
-            tests = f"; tests {', '.join(s['terms'])}" if s["terms"] else ""
-            label = f"{s['name']} ({what.get(s['kind'], s['kind'])}, {s['n_levels']} levels{tests})"
-            items.append(f"<li>{_e(label)}{walk(s['name'])}</li>")
-        return f'<ul class="tree">{"".join(items)}</ul>' if items else ""
 
-    out = [
-        "<h2>Design structure</h2>",
-        "<p>Each grouping is listed under the one it is nested in; a term is tested "
-        "against the variation between the units of its stratum.</p>",
-        walk(None),
-    ]
-    blocks = doc["design"].get("blocks", [])
-    if blocks:
-        out.append(
-            "<p>Blocks: "
-            + _e("; ".join(f"{b['name']} ({b['n_levels']}): {b['reason']}" for b in blocks))
-            + "</p>"
-        )
-    alts = alternative_items(doc)
-    if alts:
-        out.append("<h3>Other readings of the unit (each refitted)</h3>")
-        out.append(
-            "<ul>"
-            + "".join(
+def _section(doc: dict[str, Any], key: str, figures: bool = True) -> str:
+    if key == "verdict":
+        return _verdict(doc)
+    out = [_h2(key)]
+    if key == "terms":
+        out.append(_table(C.TERMS_HEADER, C.terms_rows(doc)))
+    elif key == "claim":
+        out.append(_rows_table(C.claim_rows(doc)))
+    elif key == "read":
+        out.append(_rows_table(reading_lines(doc["input"])))
+    elif key == "unit":
+        out.append(_list(C.unit_lines(doc)))
+        out.append(_units_figure(doc, figures))
+        tree = C.design_tree(doc)
+        if tree:
+            out.append(
+                "<h3>Design structure</h3><p>Each grouping is listed under the one it is "
+                "nested in; a term is tested against the variation between the units of its "
+                "stratum.</p>" + _tree(tree)
+            )
+        items = C.candidate_items(doc)
+        if items:
+            out.append("<h3>Candidate units (coarsest credible first)</h3><ul>")
+            out += [f"<li>{_e(head)}{_list(reasons)}</li>" for head, reasons in items]
+            out.append("</ul>")
+        alts = C.alternative_items(doc)
+        if alts:
+            out.append("<h3>Other readings of the unit (each refitted)</h3><ul>")
+            out += [
                 f"<li><strong>{_e(term)}</strong>: {_e(head)}. {_e(why)}. "
                 f"<em>Settled by:</em> {_e(settle)}.</li>"
                 for term, head, why, settle in alts
+            ]
+            out.append("</ul>")
+    elif key == "roles":
+        out.append(_table(["column", "role", "source", "why"], C.roles_rows(doc)))
+    elif key == "clustering":
+        out.append(_variance_figure(doc, figures))
+        several = len(doc["terms"]) > 1
+        for unit, sentences in C.clustering_blocks(doc):
+            lead = f"<strong>Unit {_e(unit)}:</strong> " if several else ""
+            out.append(f"<p>{lead}{_e(' '.join(sentences))}</p>")
+    elif key == "analyses":
+        out.append(_table(C.analyses_header(doc), C.analyses_rows(doc)))
+        out.append(f"<p><small>{_e(C.ANALYSES_KEY)}</small></p>")
+        notes = C.analysis_notes(doc)
+        if notes:
+            out.append(_list(notes))
+    elif key == "findings":
+        for f in doc["findings"]:
+            sev = f["severity"]
+            out.append(
+                f'<div class="finding {_e(sev)}"><p><span class="sev">'
+                f"{_e(SEVERITY_WORDS.get(sev, sev))}:</span> {_e(f['message'])} "
+                f'<span class="rule">[{_e(f["rule"])}]</span></p>'
+                f"<p><strong>What to do:</strong> {_e(f['advice'])}</p></div>"
             )
-            + "</ul>"
-        )
-    roles = roles_rows(doc)
-    if roles:
-        out.append("<h3>Roles of the columns</h3>")
-        out.append(_table(["column", "role", "source", "why"], roles))
-    return "\n".join(out)
+    elif key == "hidden":
+        out.append("<p>No column names these groupings.</p>" + _list(C.hidden_items(doc)))
+    elif key == "needs":
+        out.append(f"<p>{_e(C.needs_sentence(doc))}</p>")
+    elif key == "wording":
+        out.append(f"<blockquote>{_e(C.suggested_wording(doc))}</blockquote>")
+    elif key == "caution":
+        out.append(f'<p class="caution">{_e(doc["caution"])}</p>')
+    return "\n".join(x for x in out if x)
 
 
-def _findings_section(doc: dict[str, Any]) -> str:
-    if not doc["findings"]:
-        return ""
-    out = ["<h2>Findings and what to do</h2>"]
-    for f in doc["findings"]:
-        sev = f["severity"]
-        out.append(
-            f'<div class="finding {_e(sev)}"><p><span class="sev">'
-            f"{_e(SEVERITY_WORDS.get(sev, sev))}:</span> {_e(f['message'])} "
-            f'<span class="rule">[{_e(f["rule"])}]</span></p>'
-            f"<p><strong>What to do:</strong> {_e(f['advice'])}</p></div>"
-        )
-    return "\n".join(out)
+_TAG = re.compile(r"<[^>]+>")
+_HIDDEN = re.compile(r"<(style|script)\b.*?</\1>", re.DOTALL | re.IGNORECASE)
+_BREAK = re.compile(r"<(br|/p|/li|/h\d|/tr|/td|/th|/div|/figcaption|/blockquote|/dd|/dt)\b[^>]*>")
 
 
-def _hidden_section(doc: dict[str, Any]) -> str:
-    derived = (doc.get("hidden") or {}).get("derived", [])
-    if not derived:
-        return ""
-    items = []
-    for g in derived:
-        use = f"unit of {', '.join(g['unit_of'])}" if g["unit_of"] else "candidate"
-        items.append(
-            f"<li><code>{_e(g['name'])}</code> ({g['n_groups']} groups; {_e(use)}): "
-            f"{_e(g['how'])}</li>"
-        )
-    return "<h2>Groupings found in the data</h2>\n<ul>" + "".join(items) + "</ul>"
+def visible_text(page: str) -> str:
+    """The words a reader sees on a page: no tags, attributes, styles or scripts."""
+    text = _BREAK.sub("\n", _HIDDEN.sub(" ", page))
+    return html.unescape(_TAG.sub(" ", text))
 
 
-def render_html(doc: dict[str, Any]) -> str:
-    """Render the report dictionary as one self-contained HTML page."""
+def _glossary(body: str) -> str:
+    entries = C.glossary_entries(visible_text(body))
+    items = "".join(
+        f"<dt>{_e(e.term)}</dt><dd>{_e(e.definition)} "
+        f'<span class="source">({_e(e.source)})</span></dd>'
+        for e in entries
+    )
+    return f'{_h2("glossary")}\n<dl class="glossary">{items}</dl>'
+
+
+def render_html(doc: dict[str, Any], figures: bool = True) -> str:
+    """Render the report dictionary as one self-contained HTML page (``figures=False``
+    leaves the images out, keeping their descriptions: for the proofreader)."""
     inp = doc["input"]
-    needs = needs_sentence(doc)
-    sections = [
-        _verdict(doc),
-        _key_figures(doc),
-        _reading_section(doc),
-        _units_section(doc),
-        _effects_section(doc),
-        _variance_section(doc),
-        _findings_section(doc),
-        _analyses_section(doc),
-        _design_section(doc),
-        _hidden_section(doc),
-        f"<h2>What a valid design would need</h2>\n<p>{_e(needs)}</p>" if needs else "",
-        f"<h2>Suggested wording</h2>\n<blockquote>{_e(suggested_wording(doc))}</blockquote>",
-        f'<h2>Caution</h2>\n<p class="caution">{_e(doc["caution"])}</p>',
-    ]
+    parts = []
+    for key in C.sections(doc):
+        if key in ("glossary", "caution"):
+            continue
+        parts.append(_section(doc, key, figures))
+        if (key == "verdict" and "terms" not in C.sections(doc)) or key == "terms":
+            parts.append(_effects_section(doc, figures))
+    body = "\n".join(s for s in parts if s)
+    body += "\n" + _glossary(body) + "\n" + _section(doc, "caution")
     sha = inp.get("sha256") or ""
-    body = "\n".join(s for s in sections if s)
     return (
         '<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n'
         f'<meta http-equiv="Content-Security-Policy" content="{CSP}">\n'

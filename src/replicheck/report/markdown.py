@@ -1,24 +1,15 @@
-"""Markdown rendering of a report dictionary, for pasting into a review letter."""
+"""Markdown rendering of a report dictionary, for pasting into a review letter.
+
+The content comes from :mod:`replicheck.report.content`, as for the other formats.
+"""
 
 from __future__ import annotations
 
 import re
 from typing import Any
 
+from replicheck.report import content as C
 from replicheck.report.reading import reading_lines
-from replicheck.report.text import (
-    STATUS_WORDS,
-    TERMS_HEADER,
-    alternative_items,
-    analyses_header,
-    analyses_rows,
-    fmt_df,
-    fmt_num,
-    fmt_p,
-    needs_sentence,
-    roles_rows,
-    terms_rows,
-)
 
 
 def _esc(text: object) -> str:
@@ -26,114 +17,81 @@ def _esc(text: object) -> str:
     return re.sub(r"<(?=[A-Za-z/!?])", "&lt;", str(text).replace("|", "\\|"))
 
 
-def _yes_no(flag: bool | None) -> str:
-    return "unknown" if flag is None else ("yes" if flag else "no")
+def _table(header: list[str], rows: list[list[str]]) -> list[str]:
+    return [
+        "| " + " | ".join(_esc(h) for h in header) + " |",
+        "|" + "---|" * len(header),
+        *("| " + " | ".join(_esc(x) for x in r) + " |" for r in rows),
+    ]
 
 
-def render_markdown(doc: dict[str, Any]) -> str:
-    """Render the report dictionary as Markdown."""
-    v, c, inp = doc["verdict"], doc["claim"], doc["input"]
-    changed = v["conclusion_changed"]
-    lines = [
-        f"## replicheck audit: `{_esc(inp['source'])}`",
-        "",
-        f"**Verdict: {STATUS_WORDS.get(v['status'], v['status'])}.** Conclusion changed at "
-        f"alpha = {c['alpha']}: **{_yes_no(changed)}**.",
-        "",
-        _esc(v["summary"]),
-        "",
-        "### Key figures",
-        "",
-        "| | value |",
-        "|---|---|",
-        f"| response | `{_esc(c['response'])}` |",
-        f"| treatment | {', '.join('`' + _esc(t) + '`' for t in c['treatments'])} |",
-    ]
-    for u in doc["experimental_units"]:
-        lines.append(
-            f"| experimental unit of `{_esc(u['treatment'])}` | "
-            f"{'`' + _esc(u['unit']) + '`' if u['unit'] else 'each row'} ({u['relation']}, "
-            f"{u['n_units']} units, {u['n_observations']} observations) |"
-        )
-    cl = doc["clustering"]
-    if cl.get("icc") is not None:
-        lo, hi = cl["icc_ci"]
-        lines += [
-            f"| ICC | {cl['icc']:.3f} (ANOVA {cl['icc_anova']:.3f}, 95% CI {lo:.3f} to {hi:.3f}) |",
-            f"| design effect | {cl['design_effect']:.2f} |",
-            f"| effective n | {cl['effective_n']:.1f} of {cl['n_observations']} |",
-        ]
-    if c["reported"]:
-        lines.append(f"| reported | {_esc(c['reported']['text'])} |")
-    rc = doc["reported_check"]
-    if rc["explanation"]:
-        lines.append(f"| reported df | {_esc(rc['explanation'])} |")
-    lines += ["", "### What was read", ""]
-    lines += [f"- {label}: {_esc(text)}" for label, text in reading_lines(inp)]
-    lines += effects_lines(doc)
-    if len(doc["terms"]) > 1:
-        lines += [
-            "",
-            "### Terms: claimed and corrected",
-            "",
-            "| " + " | ".join(TERMS_HEADER) + " |",
-            "|" + "---|" * len(TERMS_HEADER),
-        ]
-        for r in terms_rows(doc):
-            lines.append("| " + " | ".join(_esc(x) for x in r) + " |")
-    alts = alternative_items(doc)
-    if alts:
-        lines += ["", "### Other readings of the unit (each refitted)", ""]
-        for term, head, why, settle in alts:
-            lines.append(
-                f"- `{_esc(term)}`: {_esc(head)}. {_esc(why)}. *Settled by:* {_esc(settle)}."
-            )
-    roles = roles_rows(doc)
-    if roles:
-        lines += ["", "### Roles of the columns", "", "| column | role | source | why |"]
-        lines.append("|---|---|---|---|")
-        for col, role, source, why in roles:
-            lines.append(f"| `{_esc(col)}` | {role} | {_esc(source)} | {_esc(why)} |")
-    lines += [
-        "",
-        "### Analyses",
-        "",
-        "| " + " | ".join(analyses_header(doc)) + " |",
-        "|" + "---|" * len(analyses_header(doc)),
-    ]
-    for r in analyses_rows(doc):
-        lines.append("| " + " | ".join(_esc(x) for x in r) + " |")
-    lines.append("")
-    lines.append("`*` marks the analysis the corrected verdict rests on.")
-    if doc["findings"]:
-        lines += ["", "### Findings", ""]
+def _section(doc: dict[str, Any], key: str) -> list[str]:
+    out = ["", f"### {C.TITLES[key]}", ""]
+    if key == "terms":
+        out += _table(C.TERMS_HEADER, C.terms_rows(doc))
+    elif key == "claim":
+        out += _table(["", "value"], [[k, v] for k, v in C.claim_rows(doc)])
+    elif key == "read":
+        out += [f"- {label}: {_esc(text)}" for label, text in reading_lines(doc["input"])]
+    elif key == "unit":
+        out += [f"- {_esc(line)}" for line in C.unit_lines(doc)]
+        tree = C.design_tree(doc)
+        if tree:
+            out += ["", "Design structure (each grouping under the one it is nested in):", ""]
+            out += [f"{'  ' * depth}- {_esc(line)}" for depth, line in tree]
+        items = C.candidate_items(doc)
+        if items:
+            out += ["", "Candidate units (coarsest credible first):", ""]
+            for head, reasons in items:
+                out.append(f"- {_esc(head)}")
+                out += [f"  - {_esc(r)}" for r in reasons]
+        alts = C.alternative_items(doc)
+        if alts:
+            out += ["", "Other readings of the unit (each refitted):", ""]
+            for term, head, why, settle in alts:
+                out.append(
+                    f"- `{_esc(term)}`: {_esc(head)}. {_esc(why)}. *Settled by:* {_esc(settle)}."
+                )
+    elif key == "roles":
+        rows = [[f"`{col}`", *rest] for col, *rest in C.roles_rows(doc)]
+        out += _table(["column", "role", "source", "why"], rows)
+    elif key == "clustering":
+        for unit, sentences in C.clustering_blocks(doc):
+            lead = f"Unit `{_esc(unit)}`: " if len(doc["terms"]) > 1 else ""
+            out += [lead + _esc(" ".join(sentences)), ""]
+        out.pop()
+    elif key == "analyses":
+        out += _table(C.analyses_header(doc), C.analyses_rows(doc))
+        out += ["", C.ANALYSES_KEY.replace("*", "`*`", 1)]
+        notes = C.analysis_notes(doc)
+        if notes:
+            out += ["", *(f"- {_esc(n)}" for n in notes)]
+    elif key == "findings":
         for f in doc["findings"]:
-            lines.append(
+            out.append(
                 f"- **{f['severity']}** `{f['rule']}`: {_esc(f['message'])} "
                 f"*What to do:* {_esc(f['advice'])}"
             )
-    derived = (doc.get("hidden") or {}).get("derived", [])
-    if derived:
-        lines += ["", "### Groupings found in the data (no column names them)", ""]
-        for g in derived:
-            use = f"unit of {', '.join(g['unit_of'])}" if g["unit_of"] else "candidate"
-            lines.append(f"- `{_esc(g['name'])}` ({g['n_groups']} groups; {use}): {_esc(g['how'])}")
-    needs = needs_sentence(doc)
-    if needs:
-        lines += ["", "### What a valid design would need", "", _esc(needs)]
-    lines += ["", "### Suggested wording", "", "> " + _esc(suggested_wording(doc))]
-    lines += ["", "### Caution", "", _esc(doc["caution"]), ""]
-    return "\n".join(lines)
+    elif key == "hidden":
+        out += ["No column names these groupings.", ""]
+        out += [f"- {_esc(item)}" for item in C.hidden_items(doc)]
+    elif key == "needs":
+        out.append(_esc(C.needs_sentence(doc)))
+    elif key == "wording":
+        out.append("> " + _esc(C.suggested_wording(doc)))
+    elif key == "caution":
+        out.append(_esc(doc["caution"]))
+    return out
 
 
 def _interval(iv: dict[str, Any] | None) -> str:
     if iv is None:
         return "no interval"
     if iv["low"] is None:
-        return f"{fmt_num(iv['estimate'], 4)} (no error df)"
+        return f"{C.fmt_num(iv['estimate'])} (no error df)"
     return (
-        f"{fmt_num(iv['estimate'], 4)} ({fmt_num(iv['low'], 4)} to {fmt_num(iv['high'], 4)}; "
-        f"df {fmt_df([iv['df']])})"
+        f"{C.fmt_num(iv['estimate'])} ({C.fmt_num(iv['low'])} to {C.fmt_num(iv['high'])}; "
+        f"df {C.fmt_df([iv['df']])})"
     )
 
 
@@ -160,48 +118,28 @@ def effects_lines(doc: dict[str, Any]) -> list[str]:
     return out
 
 
-def suggested_wording(doc: dict[str, Any]) -> str:
-    """A sentence a reviewer can adapt for a report to authors or editors."""
+def render_markdown(doc: dict[str, Any]) -> str:
+    """Render the report dictionary as Markdown."""
     v = doc["verdict"]
-    units = doc["experimental_units"][-1]
-    trt = ", ".join(doc["claim"]["treatments"])
-    if v["status"] == "confounded":
-        return (
-            f"Each level of {trt} appears to have been applied to a single {units['unit']}; "
-            f"if so, the treatment effect cannot be separated from differences between "
-            f"{units['unit']} levels, and the statistical test reported does not support the "
-            f"conclusion. Could the authors clarify how treatments were allocated?"
-        )
-    if v["status"] == "pseudoreplicated":
-        corrected = next((a for a in doc["analyses"] if a["corrected"]), None)
-        extra = ""
-        if corrected and corrected["p_value"] is not None:
-            extra = (
-                f" Reanalysed with {units['unit']} as the replicate, the data give "
-                f"F({fmt_df(corrected['df'])}) = {fmt_num(corrected['statistic'])}, "
-                f"p = {fmt_p(corrected['p_value'])}."
-            )
-        random = doc["claim"].get("random_effects") or []
-        how = (
-            f"while the claimed mixed model's random effects ({', '.join(random)}) do not "
-            f"include {units['unit']}, so its test treats finer levels as independent "
-            f"replicates."
-            if random
-            else f"while the analysis treats the {units['n_observations']} individual "
-            f"observations as independent replicates."
-        )
-        return (
-            f"The treatment ({trt}) appears to have been applied to {units['unit']} units "
-            f"({units['n_units']} in all), {how}"
-            f"{extra} Please analyse the data with {units['unit']} as the experimental unit "
-            f"(or a mixed model with a random effect for it) and report n accordingly."
-        )
-    if v["status"] == "unclear":
-        return (
-            "From the data file alone it is not clear what the experimental unit was. Could "
-            "the authors state how treatments were allocated and which unit the analysis "
-            "treats as the replicate?"
-        )
-    return (
-        "The data file gives no sign that observations were counted as replicates of a larger unit."
-    )
+    lines = [
+        f"## replicheck audit: `{_esc(doc['input']['source'])}`",
+        "",
+        f"**Verdict: {C.STATUS_WORDS.get(v['status'], v['status'])}.** "
+        + " ".join(_esc(x) for x in C.verdict_lines(doc)),
+    ]
+    keys = C.sections(doc)
+    if "terms" in keys:
+        lines += _section(doc, "terms")[1:]  # the per-term table first, under the verdict
+    lines += ["", _esc(v["summary"])]
+    lines += effects_lines(doc)
+    for key in keys:
+        if key in ("verdict", "terms", "glossary", "caution"):
+            continue
+        lines += _section(doc, key)
+    entries = C.glossary_entries("\n".join(lines))
+    lines += ["", f"### {C.TITLES['glossary']}", ""]
+    lines += [f"- **{e.term}**: {_esc(e.definition)} ({_esc(e.source)})" for e in entries]
+    if not entries:
+        lines.append("No glossary term appears in this report.")
+    lines += _section(doc, "caution")
+    return "\n".join(lines) + "\n"

@@ -17,6 +17,7 @@ from replicheck import __version__
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.display import Display, Interval
+from replicheck.glossary import analysis_title
 from replicheck.io import Layout, Table
 from replicheck.numbers import log10_count
 from replicheck.reconcile import Reconciliation
@@ -159,6 +160,11 @@ def _alternative(a: AlternativeEvidence) -> dict[str, Any]:
         "why": a.reading.why,
         "settle": a.reading.settle,
         "method": a.refit.corrected,
+        "method_title": None
+        if a.refit.corrected is None
+        else analysis_title(
+            a.refit.corrected, choice.unit, corrected.stratum if corrected else None
+        ),
         "test": corrected.test if corrected else None,
         "statistic": corrected.statistic if corrected else None,
         "df": list(corrected.df) if corrected and corrected.df else None,
@@ -200,6 +206,13 @@ def _error_term(te: TermEvidence, s: Structure) -> str | None:
         if te.term in st.terms:
             return "residual" if st.kind == "rows" else st.name
     return te.unit.unit or "residual"
+
+
+def _method_title(method: str | None, corrected: Any, unit: str | None) -> str | None:
+    """The reader's name of the analysis a term's verdict rests on."""
+    if method is None:
+        return None
+    return analysis_title(method, unit, corrected.stratum if corrected is not None else None)
 
 
 def _interval(iv: Interval | None) -> dict[str, Any] | None:
@@ -315,12 +328,14 @@ class Report:
             for te in ev.terms
         ]
         main = next((te for te in ev.terms if te.clustering is not None), ev.terms[0])
+        unit_of = {te.term: te.unit.unit for te in ev.terms}
         analyses = []
         for tr in self.refit.terms:
             for a in tr.analyses:
                 analyses.append(
                     {
                         "name": a.name,
+                        "title": analysis_title(a.name, unit_of.get(a.term), a.stratum),
                         "label": a.label,
                         "term": a.term,
                         "level": a.level,
@@ -353,6 +368,7 @@ class Report:
                     "error_term": _error_term(te, s),
                     "status": tv.status,
                     "method": tv.method,
+                    "method_title": _method_title(tv.method, corrected, te.unit.unit),
                     "test": corrected.test if corrected else None,
                     "statistic": corrected.statistic if corrected else None,
                     "df": list(corrected.df) if corrected and corrected.df else None,
@@ -426,6 +442,10 @@ class Report:
                 "status": self.verdict.status,
                 "conclusion_changed": self.verdict.conclusion_changed,
                 "method": self.verdict.method,
+                "method_title": next(
+                    (t["method_title"] for t in terms if t["status"] == self.verdict.status),
+                    None,
+                ),
                 "summary": self.verdict.summary,
             },
             "experimental_units": units,

@@ -393,10 +393,11 @@ def localise(
         readings.append(
             (
                 "labels-local-to-treatment",
-                f"labels of '{col}' repeat under several levels of '{parent}' ('{col}' "
-                f"{example!s} appears under more than one) and {because}, so replicheck read "
-                f"each {col} within its {parent} ('{name}') as a distinct unit; if one physical "
-                f"{col} carries the same label everywhere, rerun with --unit-labels global",
+                f"labels of '{col}' repeat under several levels of '{parent}' (label "
+                f"'{example!s}' of '{col}' appears under more than one) and {because}, so "
+                f"replicheck read each {col} within its {parent} ('{name}') as a distinct "
+                f"unit; if one physical {col} carries the same label everywhere, rerun with "
+                f"--unit-labels global",
             )
         )
     if extra:

@@ -84,7 +84,6 @@ from replicheck.structure.strata import (
     build_strata,
     crossed_cells,
 )
-from replicheck.words import article
 
 __all__ = [
     "Alternative",
@@ -192,6 +191,17 @@ class Structure:
 # ------------------------------------------------------------------ candidates
 
 
+# what a name hint's kind means, in a reader's words
+HINT_WORDS = {
+    "container": "a container or enclosure",
+    "block": "a block",
+    "location": "a place",
+    "time": "a time",
+    "process": "a shared origin or setting (a batch, site, family or class)",
+    "individual": "an individual",
+}
+
+
 def _candidate(
     data: pd.DataFrame,
     y: np.ndarray,
@@ -218,9 +228,9 @@ def _candidate(
         support = "stated"
     if hint.suggests_unit:
         score += 2
-        reasons.append(f"the name suggests {article(hint.kind)} {hint.kind} ('{hint.word}')")
+        reasons.append(f"the name suggests {HINT_WORDS.get(hint.kind, hint.kind)} ('{hint.word}')")
     elif hint.kind == "label":
-        reasons.append(f"the name suggests a label ('{hint.word}')")
+        reasons.append(f"the name suggests a label of the treatment ('{hint.word}')")
     n_units = relation.n_levels
     icc = icc_p = None
     structural = False
