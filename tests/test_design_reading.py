@@ -21,6 +21,7 @@ import statsmodels.formula.api as smf
 from statsmodels.stats.anova import anova_lm
 
 from replicheck import audit
+from replicheck.numbers import p_phrase
 
 Doc = dict[str, Any]
 
@@ -475,7 +476,7 @@ def test_main_plots_the_data_do_not_show_are_named_with_the_statement_that_sets_
         if f["rule"] == "unit-reading-uncertain" and "'block' x 'irrigation' cell" in f["message"]
     ]
     assert len(notes) == 1
-    assert f"(p = {p:.2g})" in notes[0]
+    assert f"({p_phrase(p)})" in notes[0]  # p-values as every report writes them
     assert '--unit "block:irrigation"' in notes[0]
     stated = _doc(
         d, response="y", treatment=["irrigation", "variety", "nitro"], unit="block:irrigation"

@@ -41,7 +41,7 @@ from typing import Any
 import numpy as np
 from scipy import stats as sps
 
-from replicheck.numbers import count_text
+from replicheck.numbers import count_text, format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.stats.classic import (
     DesignError,
@@ -352,7 +352,7 @@ def _randomisation_analysis(
         None,
         r.p_value,
         notes=(
-            f"{how}; smallest attainable p = {r.min_attainable_p:.3g}",
+            f"{how}; smallest attainable {p_phrase(r.min_attainable_p)}",
             *(
                 [
                     "unit means first adjusted for "
@@ -1194,7 +1194,7 @@ def _cross_checks(
         family = "binomial" if kind == "binary" else "poisson"
         try:
             g = gee_test(y, Xc, t.unit, L, family)
-            notes = [f"{family} family, working correlation {g.working_correlation:.3g}"]
+            notes = [f"{family} family, working correlation {format_number(g.working_correlation)}"]
             if not g.converged:
                 notes.append("the GEE fit did not converge")
             unit_level(

@@ -349,10 +349,12 @@ def _slope(ev: Evidence) -> Iterator[Finding]:
             f"'{t.term}' varies within '{sc.grouping}', and the claimed model gives "
             f"'{sc.grouping}' a random intercept only, so '{t.term}' is tested against the "
             f"residual. The {sc.grouping} levels respond differently to '{t.term}' "
-            f"({sc.grouping}:{t.term} {slope_kind} {sc.var_slope:.3g} against residual "
-            f"{sc.var_residual:.3g}; REML likelihood ratio {sc.lr:.3g}, {_p(sc.p_value)}). "
+            f"({sc.grouping}:{t.term} {slope_kind} {format_number(sc.var_slope)} against residual "
+            f"{format_number(sc.var_residual)}; REML likelihood ratio {format_number(sc.lr)}, "
+            f"{_p(sc.p_value)}). "
             f"With that variation as a random effect, {added}: "
-            f"F({sc.df[0]:g}, {sc.df[1]:.4g}) = {sc.statistic:.3g}, {_p(sc.term_p)}"
+            f"F({sc.df[0]:g}, {format_df(sc.df[1])}) = {format_number(sc.statistic)}, "
+            f"{_p(sc.term_p)}"
             + (f" (as claimed: {_p(claimed.p_value)})." if claimed is not None else "."),
             f"Ask the authors to fit the {sc.grouping}-by-{t.term} variation (a random slope, "
             f"or (1|{sc.grouping}:{t.term}) for a categorical {t.term}) and report that test.",
@@ -741,7 +743,7 @@ def _floor(ev: Evidence) -> Iterator[Finding]:
             f"With {n_units} {_u(t.unit.unit)} units the design allows only "
             f"{count_text(r.n_assignments)} "
             f"assignments of '{t.term}', so the smallest p-value any test on these units can "
-            f"reach is {r.min_attainable_p:.3g}, above alpha = {ev.claim.alpha:g}: no "
+            f"reach is {format_number(r.min_attainable_p)}, above alpha = {ev.claim.alpha:g}: no "
             f"randomisation test can find '{t.term}' significant with these data, and a smaller "
             f"p-value (from an F or t test) rests wholly on the normal model.",
             "A convincing result would need more independent units per level; the "
@@ -790,7 +792,7 @@ def _disagree(ev: Evidence) -> Iterator[Finding]:
         ]
         if not others:
             continue
-        listed = "; ".join(f"{a.name.replace('_', ' ')} p = {a.p_value:.3g}" for a in others)
+        listed = "; ".join(f"{a.name.replace('_', ' ')} {p_phrase(a.p_value)}" for a in others)
         side = "below" if verdict else "above"
         yield Finding(
             "cross-checks-disagree",
@@ -815,8 +817,10 @@ def _overdispersion(ev: Evidence) -> Iterator[Finding]:
             "unit-overdispersion",
             "warning",
             f"The {what} differ between {_u(t.unit.unit)} units of the same level far more than "
-            f"{od.family} chance allows (dispersion {od.dispersion:.2f}, chi2({od.df}) = "
-            f"{od.chi2:.3g}, {_p(od.p_value)}): the {_u(t.unit.unit)} units are clustered, so "
+            f"{od.family} chance allows (dispersion {format_number(od.dispersion)}, "
+            f"chi2({od.df}) = "
+            f"{format_number(od.chi2)}, {_p(od.p_value)}): the {_u(t.unit.unit)} units are "
+            f"clustered, so "
             f"rows are not independent trials.",
             "Analyse one value per unit, or a model that allows for the clustering.",
             (*t.factors, *t.unit.columns),

@@ -298,7 +298,9 @@ def icc_sentences(cl: dict[str, Any], others: list[str]) -> list[str]:
         f"it compares units within treatment levels only and ignores {joined(others)}, "
         f"which the mixed model allows for"
         if others
-        else "the two estimators weigh units of unequal size differently"
+        else "the units differ in size, and the two estimators weigh them differently"
+        if cl.get("cv_unit_size")
+        else "the mixed model allows for terms the one-way estimate leaves out"
     )
     return [
         f"ICC {fmt_num(cl['icc'])} (REML, from the corrected mixed model), the estimate the "
@@ -346,7 +348,13 @@ def clustering_blocks(doc: dict[str, Any]) -> list[tuple[str, list[str]]]:
     """``(unit, sentences)`` for each term's unit with a measured clustering (each unit once)."""
     out: list[tuple[str, list[str]]] = []
     seen: set[str] = set()
-    blocks = [b["name"] for b in doc.get("design", {}).get("blocks", [])]
+    design = doc.get("design", {})
+    within = [r["column"] for r in doc.get("roles", []) if r["role"] == "within"]
+    blocks = [b["name"] for b in design.get("blocks", []) if b["name"] not in within]
+    finer: dict[str, list[str]] = {}
+    for st in design.get("strata", []):
+        if st["kind"] == "subunit" and st["parent"]:
+            finer.setdefault(st["parent"], []).append(st["name"])
     for t in doc["terms"]:
         cl = t["clustering"]
         if cl.get("icc") is None or cl["unit"] in seen:
@@ -354,6 +362,8 @@ def clustering_blocks(doc: dict[str, Any]) -> list[tuple[str, list[str]]]:
         seen.add(cl["unit"])
         others = [f"'{o['term']}'" for o in doc["terms"] if o["term"] != t["term"]]
         others += [f"the block '{b}'" for b in blocks]
+        others += [f"the finer grouping '{name}'" for name in finer.get(cl["unit"], [])]
+        others += [f"the within-unit factor '{w}'" for w in within]
         out.append((cl["unit"], clustering_sentences(cl, others)))
     return out
 

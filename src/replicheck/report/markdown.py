@@ -17,6 +17,15 @@ def _esc(text: object) -> str:
     return re.sub(r"<(?=[A-Za-z/!?])", "&lt;", str(text).replace("|", "\\|"))
 
 
+def _code(text: object) -> str:
+    """A name as inline code; a name with ``<`` is written quoted and escaped instead,
+    so no renderer, however lax, can read it as HTML."""
+    t = str(text)
+    if "<" in t or "`" in t:
+        return f"'{_esc(t)}'"
+    return f"`{t}`"
+
+
 def _table(header: list[str], rows: list[list[str]]) -> list[str]:
     return [
         "| " + " | ".join(_esc(h) for h in header) + " |",
@@ -50,14 +59,14 @@ def _section(doc: dict[str, Any], key: str) -> list[str]:
             out += ["", "Other readings of the unit (each refitted):", ""]
             for term, head, why, settle in alts:
                 out.append(
-                    f"- `{_esc(term)}`: {_esc(head)}. {_esc(why)}. *Settled by:* {_esc(settle)}."
+                    f"- {_code(term)}: {_esc(head)}. {_esc(why)}. *Settled by:* {_esc(settle)}."
                 )
     elif key == "roles":
-        rows = [[f"`{col}`", *rest] for col, *rest in C.roles_rows(doc)]
+        rows = [[_code(col), *rest] for col, *rest in C.roles_rows(doc)]
         out += _table(["column", "role", "source", "why"], rows)
     elif key == "clustering":
         for unit, sentences in C.clustering_blocks(doc):
-            lead = f"Unit `{_esc(unit)}`: " if len(doc["terms"]) > 1 else ""
+            lead = f"Unit {_code(unit)}: " if len(doc["terms"]) > 1 else ""
             out += [lead + _esc(" ".join(sentences)), ""]
         out.pop()
     elif key == "analyses":
@@ -104,7 +113,7 @@ def effects_lines(doc: dict[str, Any]) -> list[str]:
     conf = f"{e['confidence']:.0%}"
     out = [
         "",
-        f"### Effects of `{_esc(d['term'])}` ({conf} confidence intervals)",
+        f"### Effects of {_code(d['term'])} ({conf} confidence intervals)",
         "",
         "| comparison | every row a replicate (as claimed) | unit as replicate (corrected) |",
         "|---|---|---|",
@@ -122,7 +131,7 @@ def render_markdown(doc: dict[str, Any]) -> str:
     """Render the report dictionary as Markdown."""
     v = doc["verdict"]
     lines = [
-        f"## replicheck audit: `{_esc(doc['input']['source'])}`",
+        f"## replicheck audit: {_code(doc['input']['source'])}",
         "",
         f"**Verdict: {C.STATUS_WORDS.get(v['status'], v['status'])}.** "
         + " ".join(_esc(x) for x in C.verdict_lines(doc)),

@@ -61,6 +61,7 @@ from functools import partial
 import numpy as np
 import pandas as pd
 
+from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes, is_nested
 from replicheck.structure import evidence as ev
 from replicheck.structure.columns import yes_no_column
@@ -497,7 +498,9 @@ def blocks(
             # a shared effect: one container or place under every treatment, a block
         p = block_evidence(y, codes, all_trt)
         if p is not None:
-            reason += f"; rows differ between its levels beyond the treatment effects: p = {p:.2g}"
+            reason += (
+                f"; rows differ between its levels beyond the treatment effects: {p_phrase(p)}"
+            )
         out.append(Block(col, source, n_levels, p, reason))
     for combo in stated_combos:
         if len(combo) > 1:

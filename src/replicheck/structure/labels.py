@@ -58,6 +58,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.structure import evidence as ev
 from replicheck.structure.columns import numeric_kind
@@ -384,11 +385,11 @@ def localise(
                 + (
                     ""
                     if r.cells_p is None
-                    else f" (p = {r.cells_p:.2g}, the F test and random relabelling of the "
+                    else f" ({p_phrase(r.cells_p)}, the F test and random relabelling of the "
                     f"{col} labels within each {r.parent} both)"
                 )
                 + f" while the labels carry no shared effect across {r.parent} levels"
-                + ("" if r.shared_p is None else f" (p = {r.shared_p:.2g})")
+                + ("" if r.shared_p is None else f" ({p_phrase(r.shared_p)})")
             )
         readings.append(
             (

@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 
 from replicheck.codebook import column_codes, combined_codes
+from replicheck.numbers import format_number
 from replicheck.structure.alignment import alignment, contingency_table, cramers_v
 
 # Common practice (no published threshold): at most 5% of the rows, and at
@@ -177,8 +178,8 @@ def classify(
             "ami": al.ami,
         }
         detail += (
-            f" ({al.share_aligned:.0%} of rows aligned; Cramer's V {al.cramers_v:.2f}, "
-            f"adjusted mutual information {al.ami:.2f})"
+            f" ({al.share_aligned:.0%} of rows aligned; Cramer's V {format_number(al.cramers_v)}, "
+            f"adjusted mutual information {format_number(al.ami)})"
         )
         return Relation(column, treatment, name, n_levels, lpt, exceptions, detail, strength)
 

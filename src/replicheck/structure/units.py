@@ -47,6 +47,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
+from replicheck.numbers import format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
 from replicheck.roles import ColumnRole, Roles, Statement
 from replicheck.structure import evidence as ev
@@ -252,8 +253,9 @@ def _candidate(
     if icc is not None and icc_p is not None:
         score += min(2.0, 4.0 * max(icc, 0.0))
         reasons.append(
-            f"residual ICC {icc:.2f} within '{treatment}' (F test beyond every treatment term: "
-            f"p = {icc_p:.2g})"
+            f"residual ICC {format_number(icc)} within '{treatment}' (F test beyond every "
+            f"treatment term: "
+            f"{p_phrase(icc_p)})"
         )
     if alias:
         reasons.append("read as another label of the treatment, not a unit")
@@ -387,7 +389,7 @@ def _weigh(
         )
         if col in cells:
             cell = cells[col]
-            p = "not computed" if cell.p_value is None else f"p = {cell.p_value:.2g}"
+            p = "not computed" if cell.p_value is None else f"{p_phrase(cell.p_value)}"
             cand = replace(
                 cand,
                 credible=cell.credible or is_stated,
@@ -1015,7 +1017,7 @@ def _reading_alternatives(
                 alt,
                 "reading",
                 f"the {c.block} x {term} cells differ beyond the {c.block} and treatment "
-                f"effects on every scale (p = {c.p_value:.2g}), as the plots of a "
+                f"effects on every scale ({p_phrase(c.p_value)}), as the plots of a "
                 f"randomised-block or split-plot design would; but nothing names '{c.block}' "
                 "as a block of plots",
                 f"whether each {c.block} x {term} cell was one plot that received its "
@@ -1031,7 +1033,7 @@ def _reading_alternatives(
         alt = _choice(data, term, cand)
         if choice.unit is not None and alt.n_units >= choice.n_units:
             continue
-        p = "not computed" if r.cells_p is None else f"p = {r.cells_p:.2g}"
+        p = "not computed" if r.cells_p is None else f"{p_phrase(r.cells_p)}"
         out.append(
             Alternative(
                 term,
@@ -1149,12 +1151,13 @@ def _cell_readings(
     chosen = {u.unit for u in units}
     out: list[tuple[str, str]] = []
     for c in cells:
-        p = "not computed" if c.p_value is None else f"p = {c.p_value:.2g}"
+        p = "not computed" if c.p_value is None else f"{p_phrase(c.p_value)}"
         if c.name in chosen:
             out.append(
                 (
                     "unit-reading-uncertain",
-                    f"each '{c.block}' x '{c.treatment}' cell holds {c.mean_size:.3g} rows on "
+                    f"each '{c.block}' x '{c.treatment}' cell holds {format_number(c.mean_size)} "
+                    f"rows on "
                     f"average and the cells differ beyond the {c.block} and treatment effects "
                     f"on every scale ({p}), so replicheck took each cell as the unit that "
                     f"received '{c.treatment}' (a plot in a split-plot or randomised-block "
@@ -1195,7 +1198,8 @@ def _cell_readings(
             out.append(
                 (
                     "unit-reading-uncertain",
-                    f"each '{c.block}' x '{c.treatment}' cell holds {c.mean_size:.3g} rows on "
+                    f"each '{c.block}' x '{c.treatment}' cell holds {format_number(c.mean_size)} "
+                    f"rows on "
                     f"average; the cells do not differ beyond the {c.block} and treatment "
                     f"effects ({p}), so replicheck took the rows within each {c.block} as the "
                     f"units of '{c.treatment}' and '{c.block}' as a block; if each cell was one "

@@ -100,7 +100,7 @@ from scipy.stats import norm
 from replicheck.codebook import column_codes
 from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
-from replicheck.numbers import p_phrase
+from replicheck.numbers import format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.structure.evidence import replicated_share
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
@@ -789,8 +789,9 @@ def _autocorrelation(
         test.r1,
         test.p_value,
         f"Residuals of '{response}' (minus {removed}) are correlated along {where}: lag-1 "
-        f"autocorrelation {test.r1:.2f} over {_item_words(items, n_items)}, where "
-        f"{test.expected:.2f} is expected without an order effect (permutation {within}, "
+        f"autocorrelation {format_number(test.r1)} over {_item_words(items, n_items)}, where "
+        f"{format_number(test.expected)} is expected without an order effect (permutation "
+        f"{within}, "
         f"{p_phrase(test.p_value)}).",
     )
 

@@ -68,7 +68,7 @@ from scipy.spatial import cKDTree
 
 from replicheck.codebook import first_seen_codes_of
 from replicheck.errors import InputError
-from replicheck.numbers import p_phrase
+from replicheck.numbers import format_number, p_phrase
 from replicheck.partitions import dense_codes
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
 
@@ -456,10 +456,11 @@ def _how(
     else:
         body = "each treatment level sits in its own spatial groups: " + "; ".join(per_level)
     return (
-        f"{body[0].upper()}{body[1:]} (neighbour agreement {test.agreement:.2f} against "
-        f"{test.expected:.2f} by chance, permutation {p_phrase(test.p_value)}); each group joins "
+        f"{body[0].upper()}{body[1:]} (neighbour agreement {format_number(test.agreement)} against "
+        f"{format_number(test.expected)} by chance, permutation {p_phrase(test.p_value)}); each "
+        f"group joins "
         f"same-level positions among the {K_NEIGHBOURS} nearest neighbours no more than "
-        f"{eps:.3g}{unit} apart."
+        f"{format_number(eps)}{unit} apart."
     )
 
 
@@ -651,7 +652,8 @@ def _scan_pair(
                     p_value=mt.p_value,
                     message=(
                         f"Along {where}, Moran's I of the residuals is "
-                        f"{mt.statistic:.3f} (expected {mt.expected:.3f}, z = {mt.z:.2f}; "
+                        f"{mt.statistic:.3f} (expected {mt.expected:.3f}, z = "
+                        f"{format_number(mt.z)}; "
                         f"{mt.n_locations} positions, {K_NEIGHBOURS} nearest neighbours, "
                         f"permutation {p_phrase(mt.p_value)})."
                     ),
