@@ -316,6 +316,29 @@ def _loaded_after(statement: str, modules: tuple[str, ...]) -> list[str]:
     return out.stdout.split()
 
 
+@pytest.mark.parametrize(
+    "args",
+    [["rules"], ["rules", "--terms"], ["demo", "--list"], ["--version"], ["explain", "REML"]],
+)
+def test_commands_that_print_text_load_no_statistics_stack(args: list[str]) -> None:
+    heavy = ("numpy", "pandas", "scipy", "statsmodels", "matplotlib", "replicheck.api")
+    code = (
+        f"import sys\nfrom replicheck.cli import main\ntry:\n    main({args!r})\n"
+        f"except SystemExit:\n    pass\n"
+        f"print('LOADED', *[m for m in {heavy!r} if m in sys.modules])"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.stdout.splitlines()[-1].split() == ["LOADED"]
+
+
+def test_the_rule_list_is_the_registered_rules() -> None:
+    from replicheck.rulebook import RULE_DOCS
+    from replicheck.verdict import RULES
+
+    assert list(RULES) == list(RULE_DOCS)
+    assert all(RULES[name][1] == doc for name, doc in RULE_DOCS.items())
+
+
 def test_the_command_line_starts_without_the_statistics_stack() -> None:
     # --help and usage errors must not wait for scipy, statsmodels and the rest:
     # the command module loads them only when an audit runs

@@ -450,7 +450,6 @@ def demo(name: str | None, list_: bool, write_dir: str | None, fmt: str) -> None
 
     The demo exits 0 when it ran, whatever its verdict.
     """
-    from replicheck.api import audit
     from replicheck.demo import SCENARIOS, get_scenario
 
     if list_:
@@ -468,6 +467,8 @@ def demo(name: str | None, list_: bool, write_dir: str | None, fmt: str) -> None
             err=True,
         )
         return
+    from replicheck.api import audit
+
     click.echo(f"demo scenario '{scenario.name}' (INVENTED DATA): {scenario.title}", err=True)
     click.echo(scenario.story, err=True)
     click.echo(f"command: {scenario.command()}\n", err=True)
@@ -491,9 +492,9 @@ def rules(terms: bool) -> None:
             click.echo(f"{e.term:34} {e.source}")
         click.echo("\n'replicheck explain TERM' defines a term.")
         return
-    from replicheck.verdict import RULES
+    from replicheck.rulebook import RULE_DOCS
 
-    for name, (_, doc) in RULES.items():
+    for name, doc in RULE_DOCS.items():
         click.echo(f"{name:34} {doc}")
 
 

@@ -17,6 +17,7 @@ from replicheck.glossary import short_title, unit_noun
 from replicheck.numbers import count_text, format_df, format_number, p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
+from replicheck.rulebook import RULE_DOCS
 from replicheck.slopes import SlopeCheck
 from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.numbers import NumberReading
@@ -142,13 +143,16 @@ Rule = Callable[[Evidence], Iterable[Finding]]
 RULES: dict[str, tuple[Rule, str]] = {}
 
 
-def rule(name: str, doc: str) -> Callable[[Rule], Rule]:
-    """Register a rule under a stable kebab-case name with a one-line description."""
+def rule(name: str) -> Callable[[Rule], Rule]:
+    """Register a rule under a stable kebab-case name listed in :mod:`replicheck.rulebook`
+    (its one-line description comes from there)."""
 
     def register(fn: Rule) -> Rule:
         if name in RULES:
             raise ValueError(f"rule {name} registered twice")
-        RULES[name] = (fn, doc)
+        if name not in RULE_DOCS:
+            raise ValueError(f"rule {name} is not in replicheck.rulebook")
+        RULES[name] = (fn, RULE_DOCS[name])
         return fn
 
     return register
@@ -255,7 +259,7 @@ def _pseudo_terms(ev: Evidence) -> Iterator[TermEvidence]:
             yield t
 
 
-@rule("treatment-confounded-with-unit", "each treatment level sits in a single unit")
+@rule("treatment-confounded-with-unit")
 def _confounded(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         u = t.unit
@@ -274,7 +278,7 @@ def _confounded(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("rows-counted-as-replicates", "rows were analysed as replicates of a larger unit")
+@rule("rows-counted-as-replicates")
 def _pseudo(ev: Evidence) -> Iterator[Finding]:
     for t in _pseudo_terms(ev):
         u = t.unit
@@ -325,10 +329,7 @@ def _reconciled(ev: Evidence) -> Iterator[tuple[str, Reconciliation]]:
             yield (f"'{t.term}': " if several else ""), t.reconciliation
 
 
-@rule(
-    "random-slope-omitted",
-    "a claimed mixed model leaves out how its groupings respond to a treatment within them",
-)
+@rule("random-slope-omitted")
 def _slope(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         sc = t.slope
@@ -362,7 +363,7 @@ def _slope(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("term-in-block-stratum", "an interaction is confounded with blocks")
+@rule("term-in-block-stratum")
 def _block_stratum(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         block = block_of(t, ev)
@@ -384,7 +385,7 @@ def _block_stratum(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("reported-df-level", "which level the reported degrees of freedom point to")
+@rule("reported-df-level")
 def _df_level(ev: Evidence) -> Iterator[Finding]:
     for prefix, r in _reconciled(ev):
         if r.explanation is None:
@@ -402,7 +403,7 @@ def _df_level(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("reported-result-not-reproduced", "the reported numbers differ from the data")
+@rule("reported-result-not-reproduced")
 def _mismatch(ev: Evidence) -> Iterator[Finding]:
     for prefix, r in _reconciled(ev):
         for m in r.mismatches:
@@ -422,7 +423,7 @@ def _analysis_text(a: Analysis | None) -> str:
     return _f(a)
 
 
-@rule("stated-unit-not-supported", "the data disagree with a stated unit")
+@rule("stated-unit-not-supported")
 def _stated(ev: Evidence) -> Iterator[Finding]:
     advice = (
         "Check how the treatment was applied: the unit is the smallest thing that received a "
@@ -451,7 +452,7 @@ def _stated(ev: Evidence) -> Iterator[Finding]:
             )
 
 
-@rule("stated-role-disputed", "the data disagree with a stated block or within-unit factor")
+@rule("stated-role-disputed")
 def _role_disputed(ev: Evidence) -> Iterator[Finding]:
     for kind, text, columns in ev.structure.disputes:
         if kind == "stated-role-disputed":
@@ -464,10 +465,7 @@ def _role_disputed(ev: Evidence) -> Iterator[Finding]:
             )
 
 
-@rule(
-    "unit-reading-open",
-    "the data and the names support different units, with different conclusions",
-)
+@rule("unit-reading-open")
 def _reading_open(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         disputed = set(map(id, disputed_readings(t, ev)))
@@ -509,21 +507,13 @@ def _reading_rule(name: str) -> Rule:
     return emit
 
 
-rule("labels-local-to-treatment", "unit labels repeat under several treatment levels")(
-    _reading_rule("labels-local-to-treatment")
-)
-rule("unit-reading-uncertain", "the data allow plots (cells) or rows within blocks as units")(
-    _reading_rule("unit-reading-uncertain")
-)
-rule("column-reads-as-treatment-label", "a column is a function of the treatments: a label")(
-    _reading_rule("column-reads-as-treatment-label")
-)
-rule("grouping-not-weighed", "a grouping could not be weighed as a unit and was left out")(
-    _reading_rule("grouping-not-weighed")
-)
+rule("labels-local-to-treatment")(_reading_rule("labels-local-to-treatment"))
+rule("unit-reading-uncertain")(_reading_rule("unit-reading-uncertain"))
+rule("column-reads-as-treatment-label")(_reading_rule("column-reads-as-treatment-label"))
+rule("grouping-not-weighed")(_reading_rule("grouping-not-weighed"))
 
 
-@rule("treatment-coincides-with-column", "treatment coincides with a column of unknown meaning")
+@rule("treatment-coincides-with-column")
 def _ambiguous(ev: Evidence) -> Iterator[Finding]:
     term = ev.terms[0].term if ev.terms else ""
     for col in ev.structure.ambiguous:
@@ -538,7 +528,7 @@ def _ambiguous(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("formula-block-as-stratum", "a blocking factor of the formula is taken as a stratum")
+@rule("formula-block-as-stratum")
 def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
     for b in ev.formula_blocks:
         yield Finding(
@@ -552,10 +542,7 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule(
-    "response-rescaled",
-    "a response (or a number in the model) of extreme magnitude was rescaled for the arithmetic",
-)
+@rule("response-rescaled")
 def _rescaled(ev: Evidence) -> Iterator[Finding]:
     for col, e in ev.rescaled_columns:
         yield Finding(
@@ -586,7 +573,7 @@ def _rescaled(ev: Evidence) -> Iterator[Finding]:
     )
 
 
-@rule("claimed-grouping-unreplicated", "a claimed random effect has one row per level")
+@rule("claimed-grouping-unreplicated")
 def _claimed_singletons(ev: Evidence) -> Iterator[Finding]:
     for name, levels, rows in ev.claimed_groupings:
         if rows == 0 or levels < rows:
@@ -603,7 +590,7 @@ def _claimed_singletons(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("rows-read-as-trials", "a cbind() response: each file row read as its yes/no trials")
+@rule("rows-read-as-trials")
 def _trials(ev: Evidence) -> Iterator[Finding]:
     f = ev.claim.formula
     if ev.trials is None or f is None or f.trials is None:
@@ -623,7 +610,7 @@ def _trials(ev: Evidence) -> Iterator[Finding]:
     )
 
 
-@rule("numbers-in-formula", "how each numeric column of a claimed formula was read")
+@rule("numbers-in-formula")
 def _numbers(ev: Evidence) -> Iterator[Finding]:
     slopes = [r for r in ev.numbers if r.slope]
     levels = [r for r in ev.numbers if not r.slope and r.n_values > 2]
@@ -651,7 +638,7 @@ def _numbers(ev: Evidence) -> Iterator[Finding]:
     )
 
 
-@rule("unreplicated-interaction", "each treatment combination occurs once")
+@rule("unreplicated-interaction")
 def _unreplicated(ev: Evidence) -> Iterator[Finding]:
     for term in ev.unreplicated:
         yield Finding(
@@ -666,7 +653,7 @@ def _unreplicated(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("partial-alignment", "a column is aligned with treatment except for a few rows")
+@rule("partial-alignment")
 def _partial(ev: Evidence) -> Iterator[Finding]:
     for r in ev.structure.relations:
         if r.relation == "partial":
@@ -680,7 +667,7 @@ def _partial(ev: Evidence) -> Iterator[Finding]:
             )
 
 
-@rule("single-unit-levels", "some treatment levels have a single unit")
+@rule("single-unit-levels")
 def _single(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         u = t.unit
@@ -698,7 +685,7 @@ def _single(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("few-units", "fewer than three units per treatment level")
+@rule("few-units")
 def _few(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         u = t.unit
@@ -730,7 +717,7 @@ def _few(ev: Evidence) -> Iterator[Finding]:
             )
 
 
-@rule("randomisation-floor", "no test on these units can reach alpha")
+@rule("randomisation-floor")
 def _floor(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         r = t.refit.randomisation
@@ -772,7 +759,7 @@ def _calibrated(name: str, t: TermEvidence, kind: str) -> bool:
     return fewest >= need
 
 
-@rule("cross-checks-disagree", "a cross-check falls on the other side of alpha from the verdict")
+@rule("cross-checks-disagree")
 def _disagree(ev: Evidence) -> Iterator[Finding]:
     alpha = ev.claim.alpha
     for t in ev.terms:
@@ -806,7 +793,7 @@ def _disagree(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("unit-overdispersion", "yes/no or count outcomes vary between units more than chance allows")
+@rule("unit-overdispersion")
 def _overdispersion(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         od = None if t.clustering is None or t.numeric else t.clustering.overdispersion
@@ -827,7 +814,7 @@ def _overdispersion(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("grouping-derived", "a grouping no column names was found and weighed as a unit")
+@rule("grouping-derived")
 def _derived(ev: Evidence) -> Iterator[Finding]:
     for g in ev.hidden.derived:
         used = [t.term for t in ev.terms if g.name in (t.unit.columns or ())]
@@ -851,15 +838,15 @@ def _derived(ev: Evidence) -> Iterator[Finding]:
 
 
 SIGNAL_P = 0.001  # p-value below which a hidden-structure signal is reported (common practice)
-SIGNAL_RULES: dict[str, tuple[str, str]] = {
-    "treatment-by-time": ("warning", "treatment levels sit on separate days or sessions"),
-    "treatment-in-runs": ("warning", "treatment levels were processed in runs along the order"),
-    "order-autocorrelation": ("note", "residuals are correlated along the processing order"),
-    "treatment-clumped-in-space": ("warning", "treatment levels are clumped in space"),
-    "residual-spatial-autocorrelation": ("note", "residuals are correlated in space"),
-    "code-encodes-treatment": ("note", "a sample code carries the treatment"),
-    "treatment-in-file-runs": ("note", "the file lists treatment levels in long stretches"),
-    "day-month-ambiguous": ("note", "dates could be read day first or month first"),
+SIGNAL_RULES: dict[str, str] = {  # rule name -> severity
+    "treatment-by-time": "warning",
+    "treatment-in-runs": "warning",
+    "order-autocorrelation": "note",
+    "treatment-clumped-in-space": "warning",
+    "residual-spatial-autocorrelation": "note",
+    "code-encodes-treatment": "note",
+    "treatment-in-file-runs": "note",
+    "day-month-ambiguous": "note",
 }
 SIGNAL_ALWAYS = frozenset({"treatment-by-time"})  # a fact of the data, whatever its p-value
 SIGNAL_ADVICE = {
@@ -894,11 +881,11 @@ def _signal_rule(check: str, severity: str) -> Rule:
     return fn
 
 
-for _check, (_severity, _doc) in SIGNAL_RULES.items():
-    rule(_check, _doc)(_signal_rule(_check, _severity))
+for _check, _severity in SIGNAL_RULES.items():
+    rule(_check)(_signal_rule(_check, _severity))
 
 
-@rule("unit-variance-zero", "the mixed model put the unit variance at zero")
+@rule("unit-variance-zero")
 def _boundary(ev: Evidence) -> Iterator[Finding]:
     for t in ev.terms:
         v = t.refit.unit_variance
@@ -915,7 +902,7 @@ def _boundary(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("rows-dropped", "rows were left out for missing values")
+@rule("rows-dropped")
 def _dropped(ev: Evidence) -> Iterator[Finding]:
     lost = ev.n_rows_read - ev.n_rows_used - ev.rows_without_unit
     if lost > 0:
@@ -941,7 +928,7 @@ def _dropped(ev: Evidence) -> Iterator[Finding]:
         )
 
 
-@rule("crossed-grouping", "a block or a within-unit factor crossed with the treatments")
+@rule("crossed-grouping")
 def _crossed(ev: Evidence) -> Iterator[Finding]:
     used = {c for t in ev.terms for c in t.unit.columns}
     for b in ev.structure.blocks:

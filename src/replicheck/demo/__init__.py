@@ -11,11 +11,12 @@ import shlex
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-
-import numpy as np
-import pandas as pd
+from typing import TYPE_CHECKING
 
 from replicheck.errors import InputError
+
+if TYPE_CHECKING:  # numpy and pandas load only when a recipe runs: listing stays instant
+    import pandas as pd
 
 
 @dataclass(frozen=True)
@@ -86,6 +87,9 @@ def _fish_feed() -> pd.DataFrame:
     Feed means 50, 52 and 55 mm. Two technicians each measured half of the fish
     in every tank (a decoy crossed with feed). Seed 20261203.
     """
+    import numpy as np
+    import pandas as pd
+
     rng = np.random.default_rng(20261203)
     rows = []
     feed_mean = {"starter-A": 50.0, "starter-B": 52.0, "starter-C": 55.0}
@@ -113,6 +117,9 @@ def _cup_lids() -> pd.DataFrame:
     Temperature drop N(12, 1.5^2) degC with lid "vented" 1.4 degC worse; shelf
     (4 shelves, crossed with lid) adds N(0, 0.3^2). Seed 7305.
     """
+    import numpy as np
+    import pandas as pd
+
     rng = np.random.default_rng(7305)
     lids = np.array(["sealed"] * 20 + ["vented"] * 20)
     rng.shuffle(lids)
@@ -139,6 +146,9 @@ def _glaze_kilns() -> pd.DataFrame:
     Gloss N(70, 4^2) gloss units; kiln effect N(0, 5^2); no glaze effect at all.
     Seed 3303.
     """
+    import numpy as np
+    import pandas as pd
+
     rng = np.random.default_rng(3303)
     rows = []
     for glaze, kiln in (("celadon", "K1"), ("tenmoku", "K2"), ("shino", "K3")):
@@ -162,6 +172,9 @@ def _co2_chambers() -> pd.DataFrame:
     N(0, 2^2), tray effect N(0, 0.8^2). Trays are numbered T01 to T12 through the
     chambers. Seed 4410.
     """
+    import numpy as np
+    import pandas as pd
+
     rng = np.random.default_rng(4410)
     rows = []
     tray_no = 0
