@@ -44,6 +44,7 @@ def kinds(text: str, doc: dict | None = None) -> list[str]:
         ("corrected verdict rests on: strata_anova", "identifier"),
         ("9999 draws, webb weights (seed 1)", "identifier"),
         ("the the rows", "repeated"),
+        ("an interval from 0.032364 to 14.2132", "digits"),
     ],
 )
 def test_each_fault_is_found(text: str, kind: str) -> None:

@@ -622,3 +622,45 @@ def test_input_errors_are_one_line() -> None:
         with pytest.raises(InputError) as info:
             case()
         assert "\n" not in str(info.value)
+
+
+# ---------------------------------------------------------------------------
+# balanced designs computed from their cells (two rows per cell) equal the dense table
+
+
+@pytest.mark.parametrize("key", sorted(SPECS))
+def test_cells_give_the_dense_table(key: str) -> None:
+    y, strata, terms = _inputs(key)
+    _assert_same_table(
+        multistratum_anova(y, strata, terms),
+        multistratum_anova(y, strata, terms, by_cells=False),
+    )
+
+
+def test_oxide_is_computed_from_its_cells_and_still_matches_r() -> None:
+    # nlme::Oxide: 3 sites on every wafer, so the 72 rows fall into 24 cells of 3 and the
+    # table comes from the cells; test_matches_r_aov_error_strata checks it against R
+    from replicheck.stats.strata import _check_strata, _check_terms, _equal_cells
+
+    y, strata, terms = _inputs("oxide")
+    _, given = _check_strata(strata, y.size)
+    cells = _equal_cells(given, _check_terms(terms, y.size), y.size)
+    assert cells is not None and cells.m == 3
+
+
+def test_many_rows_per_unit_give_the_dense_table() -> None:
+    # invented: 60 units of 40 rows in 3 arms, then a split of each unit into 2 halves
+    rng = np.random.default_rng(11)
+    unit = np.repeat(np.arange(60), 40)
+    arm = unit % 3
+    half = np.tile(np.repeat([0, 1], 20), 60)
+    y = rng.normal(size=unit.size) + rng.normal(size=60)[unit]
+    dummies = np.eye(3)[arm][:, 1:]
+    terms = [("arm", dummies), ("half", half[:, None].astype(float))]
+    terms.append(("arm:half", dummies * half[:, None]))
+    strata = {"unit": unit}
+    _assert_same_table(
+        multistratum_anova(y, strata, terms),
+        multistratum_anova(y, strata, terms, by_cells=False),
+    )
+    assert is_balanced_orthogonal(strata, terms)

@@ -40,6 +40,7 @@ from replicheck.io import (
 )
 from replicheck.io.columns import yes_no_coding
 from replicheck.io.reshape import find_families, reshape_long
+from replicheck.numbers import format_number
 from replicheck.partitions import same_partition, units_per_level
 from replicheck.random_terms import judged_groupings, slope_terms
 from replicheck.ranks import rank_tests
@@ -440,7 +441,10 @@ def _levels(
         )
         for a in unit_analyses:
             if a.df is not None and abs(a.df[1] - (choice.n_units - k)) > 0.5:
-                removed = f"{choice.n_units - a.df[1]:g} parameters of the {choice.unit} level"
+                removed = (
+                    f"{format_number(choice.n_units - a.df[1])} parameters of the "
+                    f"{choice.unit} level"
+                )
                 levels.append(Level(choice.unit, "units", choice.n_units, a.df[1], removed, per))
     seen = {lv.name for lv in levels}
     for cand in structure.candidates:

@@ -42,7 +42,7 @@ import numpy as np
 from scipy import stats as sps
 
 from replicheck.numbers import count_text, format_number, p_phrase
-from replicheck.partitions import dense_codes, is_nested, same_partition
+from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
 from replicheck.stats.classic import (
     DesignError,
     TestResult,
@@ -1078,6 +1078,25 @@ class _SkipRobust(Exception):
     """A cluster-robust check is over its work bound (already recorded as untested)."""
 
 
+# From this many units in every level of a term, the wild cluster bootstrap is not run:
+# the calibration study (docs/calibration.md) finds the small-sample CR2 test at its
+# level for every number of units, and the bootstrap near it from 10 units per level
+# and at it by 30, the largest number studied; past that point the two agree up to the
+# bootstrap's own Monte Carlo error, so its draws (the costliest cross-check: draws x
+# units) add nothing the CR2 row does not already say.
+BOOTSTRAP_SETTLED_UNITS = 30
+
+
+def _bootstrap_settled(t: TermInput) -> bool:
+    """Whether every level of the term has enough units for CR2 to settle the check."""
+    if t.unit is None:
+        return False
+    if t.numeric:
+        return int(t.unit.max()) + 1 >= 2 * BOOTSTRAP_SETTLED_UNITS
+    k = int(t.codes.max()) + 1
+    return int(units_per_level(t.unit, t.codes, k).min()) >= BOOTSTRAP_SETTLED_UNITS
+
+
 def _untested(name: str, t: TermInput, why: str) -> Analysis:
     n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
     return Analysis(name, LABELS[name], t.term, "units", n_rep, None, None, None, notes=(why,))
@@ -1164,6 +1183,17 @@ def _cross_checks(
             raise _SkipRobust
         if n_units > MAX_MC_UNITS:
             raise _SkipBootstrap
+        if _bootstrap_settled(t):
+            out.append(
+                _untested(
+                    "wild_bootstrap",
+                    t,
+                    f"not run: with at least {BOOTSTRAP_SETTLED_UNITS} units in every level "
+                    "the cluster-robust (CR2) test holds its level (docs/calibration.md), and "
+                    "the bootstrap would only repeat it with Monte Carlo error",
+                )
+            )
+            raise _SkipRobust
         b = wild_cluster_bootstrap(
             y,
             Xc,

@@ -263,13 +263,29 @@ def alternative_items(doc: dict[str, Any]) -> list[tuple[str, str, str, str]]:
     return out
 
 
+ROLES_SHOWN = 3  # columns named in a row of columns with the same role and reason
+
+
 def roles_rows(doc: dict[str, Any]) -> list[list[str]]:
-    """Column, role, where the role came from, and why: every column but the claimed ones."""
-    return [
-        [r["column"], ROLE_WORDS.get(r["role"], r["role"]), r["source"], r["evidence"]]
-        for r in doc.get("roles", [])
-        if r["role"] not in ("response", "treatment")
-    ]
+    """Column, role, where the role came from, and why: every column but the claimed ones.
+
+    Columns with the same role, source and reason share one row (a wide table of
+    measurements reads as one line, not thousands), naming the first few.
+    """
+    groups: dict[tuple[str, str, str], list[str]] = {}
+    for r in doc.get("roles", []):
+        if r["role"] in ("response", "treatment"):
+            continue
+        key = (ROLE_WORDS.get(r["role"], r["role"]), r["source"], r["evidence"])
+        groups.setdefault(key, []).append(r["column"])
+    rows = []
+    for (role, source, why), cols in groups.items():
+        if len(cols) <= ROLES_SHOWN + 1:
+            rows += [[c, role, source, why] for c in cols]
+        else:
+            more = f"{len(cols) - ROLES_SHOWN:,} more"
+            rows.append([joined([*cols[:ROLES_SHOWN], more]), role, source, why])
+    return rows
 
 
 # ---------------------------------------------------------------------------

@@ -167,7 +167,7 @@ def _units_figure(doc: dict[str, Any], figures: bool = True) -> str:
         )
     rows = [
         [
-            lv["label"],
+            f"'{lv['label']}'",
             f"{lv['n_units']:,}",
             f"{lv['n_observations']:,}",
             C.fmt_num(lv["mean_of_unit_means"]),
@@ -200,7 +200,7 @@ def _effects_section(doc: dict[str, Any], figures: bool = True) -> str:
     e = d["effects"]
     conf = f"{e['confidence']:.0%}"
     rows = [
-        [f"{r['level']} − {r['reference']}", *_ci(r["claimed"]), *_ci(r["corrected"])]
+        [f"'{r['level']}' − '{r['reference']}'", *_ci(r["claimed"]), *_ci(r["corrected"])]
         for r in e["rows"]
     ]
     header = [

@@ -62,7 +62,8 @@ def _section(doc: dict[str, Any], key: str) -> list[str]:
                     f"- {_code(term)}: {_esc(head)}. {_esc(why)}. *Settled by:* {_esc(settle)}."
                 )
     elif key == "roles":
-        rows = [[_code(col), *rest] for col, *rest in C.roles_rows(doc)]
+        names = {r["column"] for r in doc.get("roles", [])}
+        rows = [[_code(c) if c in names else c, *rest] for c, *rest in C.roles_rows(doc)]
         out += _table(["column", "role", "source", "why"], rows)
     elif key == "clustering":
         for unit, sentences in C.clustering_blocks(doc):
@@ -120,7 +121,7 @@ def effects_lines(doc: dict[str, Any]) -> list[str]:
     ]
     for r in e["rows"]:
         out.append(
-            f"| {_esc(r['level'])} − {_esc(r['reference'])} | {_interval(r['claimed'])} | "
+            f"| '{_esc(r['level'])}' − '{_esc(r['reference'])}' | {_interval(r['claimed'])} | "
             f"{_interval(r['corrected'])} |"
         )
     out += ["", f"Corrected intervals: {_esc(e['corrected_method'])}."]

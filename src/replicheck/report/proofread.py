@@ -12,6 +12,8 @@ without noticing:
 * ``identifier``: an internal name (an analysis identifier such as ``unit_means``)
   where a reader's name belongs;
 * ``repeated``: a word written twice in a row ("the the");
+* ``digits``: a number with more than four significant digits after its whole part
+  ("0.03236 to 14.21"), against the rule of :mod:`replicheck.numbers`;
 * ``contradiction``: a sentence that contradicts the verdict: an ``ok`` report that
   blames the claimed analysis, or a stated unit called "not used" when it was used.
 
@@ -52,6 +54,7 @@ _ARTICLE = re.compile(r"(?<![\w'-])([Aa]n?) ([A-Za-z][\w-]*)")
 _NUMBER = r"(\d[\d,]*(?:\.\d+)?)"
 _NOT_SAME = re.compile(_NUMBER + r"\s*,?\s+not\s+" + _NUMBER)
 _IDENTIFIER = re.compile(r"\b(" + "|".join(IDENTIFIERS) + r")\b|\bwebb weights\b")
+_DIGITS = re.compile(r"(?<![\w.])-?(\d+)\.(\d+)(?![\w.])")
 _REPEATED = re.compile(r"\b([A-Za-z]{2,}) \1\b")
 _SENTENCE = re.compile(r"[^.!?\n]+[.!?]?")
 # phrases that blame the claimed analysis: out of place in an ``ok`` report
@@ -137,6 +140,11 @@ def problems(rendered: str, fmt: str, doc: Mapping[str, Any]) -> list[Problem]:
             add("not-same", text, m.start(), m.end())
     for m in _IDENTIFIER.finditer(plain):
         add("identifier", text, m.start(), m.end())
+    for m in _DIGITS.finditer(plain):
+        whole, frac = m.group(1), m.group(2)
+        significant = (whole.lstrip("0") + frac).lstrip("0")
+        if len(significant) > 4 and len(frac) > 1:
+            add("digits", text, m.start(), m.end())
     for m in _REPEATED.finditer(plain):
         add("repeated", text, m.start(), m.end())
     for start, end in _contradictions(text, doc):

@@ -526,6 +526,82 @@ def _snap(value: float) -> float:
 
 
 # ---------------------------------------------------------------------------
+# balanced designs: the analysis of the cells
+
+
+@dataclass(frozen=True, eq=False)
+class _Cells:
+    """Rows grouped into cells that no factor or term tells apart, all of one size ``m``.
+
+    ``rows`` picks two rows of every cell (the reduced data); ``scale`` is ``m / 2``.
+    """
+
+    codes: np.ndarray
+    rows: np.ndarray
+    m: int
+
+    @property
+    def scale(self) -> float:
+        return self.m / 2.0
+
+
+def _equal_cells(
+    given: Sequence[tuple[str, np.ndarray]], terms: Sequence[tuple[str, np.ndarray]], n: int
+) -> _Cells | None:
+    """The cells of a design whose rows repeat in cells of equal size (at least 3 rows).
+
+    A cell is a set of rows that agree on every random factor and every term column.
+    Every stratum projector and every term column is constant within cells, so the data
+    space splits into the cell-constant vectors and the within-cell contrasts, which lie
+    wholly in the rows stratum and hold no term. With ``m`` rows in every cell, two rows
+    per cell carrying the cell mean reproduce the cell-constant part with every inner
+    product multiplied by ``2 / m`` (same strata, same dimensions, same efficiencies);
+    the within-cell sum of squares and its ``n - cells`` df are added back to the rows
+    stratum. Two rows (not one) keep every given factor distinct from the rows.
+    """
+    key = np.zeros(n, dtype=np.int64)
+    columns = [codes for _, codes in given]
+    for _, mat in terms:
+        columns += [mat[:, j] for j in range(mat.shape[1])]
+    for col in columns:
+        part = first_seen_codes(col)
+        key = first_seen_codes(key * (int(part.max()) + 1) + part)
+    counts = np.bincount(key)
+    m = int(counts[0])
+    if m < 3 or not np.all(counts == m):
+        return None
+    order = np.argsort(key, kind="stable")
+    starts = np.arange(counts.size) * m
+    rows = np.sort(np.concatenate([order[starts], order[starts + 1]]))
+    return _Cells(key, rows, m)
+
+
+def _cell_fit(
+    cells: _Cells,
+    given: Sequence[tuple[str, np.ndarray]],
+    terms: Sequence[tuple[str, np.ndarray]],
+    y: np.ndarray,
+) -> tuple[_Structure, _Fit]:
+    """The structure and stratum fits of the full data, computed on two rows per cell."""
+    k = int(cells.codes.max()) + 1
+    means = np.bincount(cells.codes, weights=y, minlength=k) / cells.m
+    within = float(np.sum((y - means[cells.codes]) ** 2))
+    pick = cells.rows
+    structure = _build_structure(pick.size, [_factor(name, codes[pick]) for name, codes in given])
+    fit = _fit(structure, means[cells.codes[pick]], [(t, mat[pick]) for t, mat in terms])
+    c = cells.scale
+    last = len(structure.factors) - 1
+    strata = []
+    for sf in fit.strata:
+        rows = tuple((t, ss * c, df, eff) for t, ss, df, eff in sf.rows)
+        ss, df = sf.residual_ss * c, sf.residual_df
+        if sf.index == last:
+            ss, df = ss + within, df + (y.size - 2 * k)
+        strata.append(_StratumFit(sf.index, rows, ss, df))
+    return structure, _Fit(tuple(strata), fit.term_df, fit.wholly_in_one)
+
+
+# ---------------------------------------------------------------------------
 # public functions
 
 
@@ -565,10 +641,16 @@ def is_balanced_orthogonal(
         raise InputError("at least two rows are needed")
     if not all(_equally_replicated(codes) for _, codes in given):
         return False  # condition 2 fails already for a given factor
+    checked = _check_terms(terms, n)
+    cells = _equal_cells(given, checked, n)
+    if cells is not None:  # the same answer from two rows per cell
+        pick = cells.rows
+        given = [(name, codes[pick]) for name, codes in given]
+        checked = [(t, mat[pick]) for t, mat in checked]
+        n = pick.size
     structure = _build_structure(n, [_factor(name, codes) for name, codes in given])
     if not (structure.orthogonal and structure.balanced):
         return False
-    checked = _check_terms(terms, n)
     return _fit(structure, np.zeros(n), checked).wholly_in_one
 
 
@@ -576,6 +658,7 @@ def multistratum_anova(
     y: np.ndarray,
     strata: Mapping[str, np.ndarray],
     terms: Sequence[tuple[str, np.ndarray]],
+    by_cells: bool = True,
 ) -> MultiStratumAnova:
     """Multi-stratum ANOVA, as R's ``aov(y ~ terms + Error(strata))``.
 
@@ -591,7 +674,11 @@ def multistratum_anova(
     2008, ch. 10). Raises :class:`DesignError` (an ``InputError``) when the
     random factors are not pairwise orthogonal, and ``InputError`` for
     malformed input. A term with no degree of freedom left after the earlier
-    terms (constant, or aliased) appears in no stratum. When a stratum's
+    terms (constant, or aliased) appears in no stratum. When the rows fall into
+    cells of one size (rows alike in every factor and term: a balanced design
+    with repeated measurements per unit), the strata are computed from the cells
+    and the within-cell sum of squares (``by_cells``; the same table up to
+    rounding, in time that does not grow with the rows per cell). When a stratum's
     residual SS is zero (an exact fit) a term there gets ``F = inf`` and
     ``p = 0``.
     """
@@ -604,14 +691,20 @@ def multistratum_anova(
         raise InputError("at least two rows are needed")
     if not np.all(np.isfinite(resp)):
         raise InputError("the response has missing or infinite values")
-    structure = _structure_from(strata, n)
+    _, given = _check_strata(strata, n)
+    checked = _check_terms(terms, n)
+    cells = _equal_cells(given, checked, n) if by_cells else None
+    if cells is not None:
+        structure, fit = _cell_fit(cells, given, checked, resp)
+    else:
+        structure = _build_structure(n, [_factor(name, codes) for name, codes in given])
     if not structure.orthogonal:
         raise DesignError(
             "the random factors are not orthogonal (crossed with unequal cell counts), "
             "so no multi-stratum ANOVA exists; use the REML mixed model"
         )
-    checked = _check_terms(terms, n)
-    fit = _fit(structure, resp, checked)
+    if cells is None:
+        fit = _fit(structure, resp, checked)
     total = float(np.sum((resp - resp.mean()) ** 2))
     out_terms: list[StratumTerm] = []
     residuals: list[StratumResidual] = []

@@ -276,7 +276,7 @@ def _amount_of(data: pd.DataFrame, col: str, treatments: Sequence[str]) -> tuple
             if not (ok & ~in_zero).any():
                 continue
             names = pd.unique(data[t][in_zero].astype(str))
-            return t, " and ".join(f"'{t}' = {n}" for n in names[:3])
+            return t, " and ".join(f"'{t}' = '{n}'" for n in names[:3])
     return None
 
 

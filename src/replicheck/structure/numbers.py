@@ -35,6 +35,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from replicheck.numbers import format_number
 from replicheck.partitions import dense_codes
 from replicheck.structure.relations import group_codes
 from replicheck.structure.units import Structure, UnitChoice
@@ -55,7 +56,7 @@ class NumberReading:
 
 
 def _show(x: float) -> str:
-    return f"{x:g}"
+    return format_number(x)
 
 
 def read_numbers(
