@@ -26,7 +26,8 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats as sps
+
+from replicheck.stats import dist
 
 MAX_POINTS = 60  # observations drawn per unit (display only)
 MAX_UNITS = 400  # units per level beyond which MAX_UNITS unit means are drawn, no observations
@@ -252,7 +253,7 @@ def _pooled_intervals(
             continue
         mse = float(resid @ resid) / df
         se = float(np.sqrt(mse * (1 / sizes[j] + 1 / sizes[0])))
-        q = float(sps.t.ppf(0.5 + confidence / 2, df))
+        q = float(dist.t_ppf(0.5 + confidence / 2, df))
         out.append(Interval(est, est - q * se, est + q * se, df, int(values.size)))
     return out
 

@@ -15,7 +15,6 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 import numpy as np
-from scipy import stats as sps
 
 from replicheck.refit import Analysis, TermInput
 
@@ -42,6 +41,8 @@ def rank_tests(y: np.ndarray, t: TermInput, blocks: Mapping[str, np.ndarray]) ->
     """The signed-rank test on the pairs (when a block pairs the levels) and the rank-sum test."""
     if len(t.labels) != 2:
         return []
+    from scipy import stats as sps  # only when a rank test was claimed
+
     out: list[Analysis] = []
     pairs = _pairs(t, blocks)
     if pairs is not None:

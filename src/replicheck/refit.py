@@ -39,10 +39,10 @@ from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
-from scipy import stats as sps
 
 from replicheck.numbers import count_text, format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
+from replicheck.stats import dist
 from replicheck.stats.classic import (
     DesignError,
     TestResult,
@@ -633,7 +633,7 @@ def _ols_term_tests(
                     "II extra sum of squares",
                 )
             q = estimable
-        p = float(sps.f.sf(f, q, df_res))
+        p = float(dist.f_sf(f, q, df_res))
         name = "as_claimed"
         slope = q == 1 and t.numeric
         out.append(

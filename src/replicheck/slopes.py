@@ -28,7 +28,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy import stats as sps
 
 from replicheck.partitions import dense_codes, is_nested, pair_codes, same_partition
 from replicheck.refit import (
@@ -39,7 +38,7 @@ from replicheck.refit import (
     whitened,
     with_blocks,
 )
-from replicheck.stats import DesignError, satterthwaite_test
+from replicheck.stats import DesignError, dist, satterthwaite_test
 from replicheck.stats.random_slopes import RandomTerm, fit_random_slopes
 
 SLOPE_ALPHA = 0.05  # the likelihood-ratio test of the omitted variance (common practice)
@@ -136,7 +135,7 @@ def omitted_slopes(
                 t.term,
                 gname,
                 lr,
-                float(0.5 * sps.chi2.sf(lr, 1)) if lr > 0 else 1.0,
+                float(0.5 * dist.chi2_sf(lr, 1)) if lr > 0 else 1.0,
                 variance,
                 float(fit.components["residual"]),
                 float(test.statistic),

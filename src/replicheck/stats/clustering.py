@@ -14,9 +14,9 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from replicheck.partitions import dense_codes, is_nested
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -153,12 +153,12 @@ def anova_components(
     nan = float("nan")
     if ms_w > 0.0:
         f = ms_b / ms_w
-        p_value = float(stats.f.sf(f, df_b, df_w))
+        p_value = float(dist.f_sf(f, df_b, df_w))
         icc_raw = s2_raw / (s2_raw + ms_w)
         icc = s2_unit / (s2_unit + ms_w)
         alpha = 1.0 - conf_level
-        f_lo = f / float(stats.f.ppf(1.0 - alpha / 2.0, df_b, df_w))
-        f_hi = f / float(stats.f.ppf(alpha / 2.0, df_b, df_w))
+        f_lo = f / float(dist.f_ppf(1.0 - alpha / 2.0, df_b, df_w))
+        f_hi = f / float(dist.f_ppf(alpha / 2.0, df_b, df_w))
         lo = (f_lo - 1.0) / (f_lo + n0 - 1.0)
         hi = (f_hi - 1.0) / (f_hi + n0 - 1.0)
         ci_low, ci_high = min(max(lo, 0.0), 1.0), min(max(hi, 0.0), 1.0)

@@ -42,9 +42,9 @@ from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
-from scipy import special, stats
-from statsmodels.tools.sm_exceptions import ConvergenceWarning, IterationLimitWarning
+from scipy import special
 
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError, _as_codes, oneway_anova, two_sample_t
 
 __all__ = [
@@ -345,6 +345,8 @@ def gee_test(
             raise DesignError(f"the GEE fit failed: {exc}") from exc
     if res is None or res.cov_robust_bc is None:
         raise DesignError("the GEE fit failed: singular working covariance or update")
+    from statsmodels.tools.sm_exceptions import ConvergenceWarning, IterationLimitWarning
+
     converged = not any(
         issubclass(w.category, ConvergenceWarning | IterationLimitWarning) for w in caught
     )
@@ -382,12 +384,12 @@ def gee_test(
     link = "logit" if fam == "binomial" else "log"
     if small_sample:
         stat = chi2 / q
-        pval = float(stats.f.sf(stat, q, df_den))
+        pval = float(dist.f_sf(stat, q, df_den))
         ref = f"F({q}, {g} - {p})"
         den: float | None = df_den
     else:
         stat = chi2
-        pval = float(stats.chi2.sf(chi2, q))
+        pval = float(dist.chi2_sf(chi2, q))
         ref = f"chi-square({q})"
         den = None
     return GeeTest(
@@ -585,7 +587,7 @@ def unit_overdispersion(
         dispersion=chi2 / df,
         chi2=chi2,
         df=df,
-        p_value=float(stats.chi2.sf(chi2, df)),
+        p_value=float(dist.chi2_sf(chi2, df)),
         n_units=g_used,
         mean_unit_size=float(sizes[keep].mean()),
     )

@@ -26,8 +26,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 
 __all__ = ["GlmTerm", "glm_start", "glm_term_tests"]
@@ -119,14 +119,14 @@ def glm_term_tests(
             coef = float(b[0])
             se = float(np.sqrt(v[0, 0]))
             z = coef / se
-            half = float(stats.norm.ppf(0.975)) * se
+            half = float(dist.norm_ppf(0.975)) * se
             ci = (float(np.exp(coef - half)), float(np.exp(coef + half)))
         out[term] = GlmTerm(
             wald,
             q,
-            float(stats.chi2.sf(wald, q)),
+            float(dist.chi2_sf(wald, q)),
             lr,
-            float(stats.chi2.sf(lr, q)),
+            float(dist.chi2_sf(lr, q)),
             z,
             coef,
             ci,

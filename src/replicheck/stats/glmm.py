@@ -29,8 +29,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg, special, stats
+from scipy import linalg, special
 
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 from replicheck.stats.glm import GlmTerm
 from replicheck.stats.numderiv import hessian, minimise
@@ -172,8 +173,8 @@ def glmm_term_tests(fit: GlmmFit, index: Mapping[str, Sequence[int]]) -> dict[st
             coef = float(b[0])
             se = float(np.sqrt(v[0, 0]))
             z = coef / se
-            half = float(stats.norm.ppf(0.975)) * se
+            half = float(dist.norm_ppf(0.975)) * se
             ci = (float(np.exp(coef - half)), float(np.exp(coef + half)))
         nan = float("nan")
-        out[term] = GlmTerm(wald, q, float(stats.chi2.sf(wald, q)), nan, nan, z, coef, ci)
+        out[term] = GlmTerm(wald, q, float(dist.chi2_sf(wald, q)), nan, nan, z, coef, ci)
     return out

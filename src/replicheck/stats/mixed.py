@@ -65,8 +65,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg, stats
+from scipy import linalg
 
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 from replicheck.stats.reml_search import (
     FinalPoint,
@@ -663,7 +664,7 @@ def _satterthwaite_1d(fit: MixedFit, vec: np.ndarray) -> TTest:
         se=se,
         statistic=float(t),
         df=float(df),
-        p_value=float(2.0 * stats.t.sf(abs(t), df)),
+        p_value=float(2.0 * dist.t_sf(abs(t), df)),
     )
 
 
@@ -720,7 +721,7 @@ def satterthwaite_test(fit: MixedFit, L: np.ndarray) -> FTest:
             statistic=f,
             df_num=1.0,
             df_den=tt.df,
-            p_value=float(stats.f.sf(f, 1.0, tt.df)),
+            p_value=float(dist.f_sf(f, 1.0, tt.df)),
             method="Satterthwaite",
         )
     vl = mat @ fit.cov_beta @ mat.T
@@ -735,7 +736,7 @@ def satterthwaite_test(fit: MixedFit, L: np.ndarray) -> FTest:
     if q == 1:
         tt = _satterthwaite_1d(fit, ptl[0])
         f = tt.statistic**2
-        return FTest(f, 1.0, tt.df, float(stats.f.sf(f, 1.0, tt.df)), "Satterthwaite")
+        return FTest(f, 1.0, tt.df, float(dist.f_sf(f, 1.0, tt.df)), "Satterthwaite")
     d = evals[:q]
     t2 = (ptl @ fit.beta) ** 2 / d
     f = float(np.sum(t2) / q)
@@ -748,6 +749,6 @@ def satterthwaite_test(fit: MixedFit, L: np.ndarray) -> FTest:
         statistic=f,
         df_num=float(q),
         df_den=float(ddf),
-        p_value=float(stats.f.sf(f, q, ddf)),
+        p_value=float(dist.f_sf(f, q, ddf)),
         method="Satterthwaite (Fai-Cornelius)",
     )

@@ -6,7 +6,14 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
-from scipy import optimize
+
+
+def _minimize(*args: Any, **kwargs: Any) -> Any:
+    """scipy.optimize.minimize, imported when first needed (it loads scipy.spatial)."""
+    from scipy import optimize
+
+    return optimize.minimize(*args, **kwargs)
+
 
 __all__ = ["hessian", "minimise"]
 
@@ -21,8 +28,8 @@ def minimise(
 ) -> Any:
     """L-BFGS-B from ``x0``, polished by Powell's method; the better of the two results
     (a scipy ``OptimizeResult``)."""
-    first = optimize.minimize(f, x0, method="L-BFGS-B", bounds=bounds)
-    polish = optimize.minimize(
+    first = _minimize(f, x0, method="L-BFGS-B", bounds=bounds)
+    polish = _minimize(
         f,
         first.x,
         method="Powell",

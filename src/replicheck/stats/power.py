@@ -17,7 +17,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 MAX_UNITS = 10_000
 
@@ -51,6 +50,8 @@ def f_test_power(f2: float, levels: int, units: int, alpha: float) -> float:
     df1, df2 = levels - 1, levels * (units - 1)
     if df2 < 1:
         return 0.0
+    from scipy import stats  # loaded when design needs are computed, not at start-up
+
     crit = stats.f.isf(alpha, df1, df2)
     return float(stats.ncf.sf(crit, df1, df2, levels * units * f2))
 

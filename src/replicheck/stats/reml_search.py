@@ -73,12 +73,20 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
-from scipy import linalg, optimize
+from scipy import linalg
 
 from replicheck.stats.classic import DesignError
+
+
+def _minimize(*args: Any, **kwargs: Any) -> Any:
+    """scipy.optimize.minimize, imported when first needed (it loads scipy.spatial)."""
+    from scipy import optimize
+
+    return optimize.minimize(*args, **kwargs)
+
 
 __all__ = [
     "FinalPoint",
@@ -269,7 +277,7 @@ def _minimise_theta(search: _Search, starts: Sequence[float]) -> np.ndarray:
     best_x: np.ndarray | None = None
     best_f = float("inf")
     for start in starts:
-        res = optimize.minimize(
+        res = _minimize(
             fun,
             np.full(k, np.sqrt(start)),
             jac=True,
@@ -307,7 +315,7 @@ def _minimise_lam(search: _Search, fixed_zero: Sequence[int], start: np.ndarray)
         dev, g = search.safe_profiled(expand(x))
         return dev, g[free] / scale
 
-    res = optimize.minimize(
+    res = _minimize(
         fun,
         np.asarray(start, dtype=float)[free] * scale,
         jac=True,

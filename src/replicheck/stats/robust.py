@@ -65,9 +65,9 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from replicheck.defaults import DEFAULT_SEED
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -444,7 +444,7 @@ def cr2_test(y: np.ndarray, X: np.ndarray, cluster: np.ndarray, L: np.ndarray) -
             statistic=t * t,
             df_num=1.0,
             df_den=df,
-            p_value=float(2.0 * stats.t.sf(abs(t), df)),
+            p_value=float(2.0 * dist.t_sf(abs(t), df)),
             t_statistic=t,
             estimate=float(est[0]),
             std_error=se,
@@ -461,7 +461,7 @@ def cr2_test(y: np.ndarray, X: np.ndarray, cluster: np.ndarray, L: np.ndarray) -
         statistic=float(f_stat),
         df_num=float(q),
         df_den=df_den,
-        p_value=float(stats.f.sf(f_stat, q, df_den)),
+        p_value=float(dist.f_sf(f_stat, q, df_den)),
         t_statistic=None,
         estimate=None,
         std_error=None,

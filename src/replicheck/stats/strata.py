@@ -82,11 +82,12 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse, stats
+from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
 from replicheck.errors import InputError
 from replicheck.partitions import dense_codes, first_seen_codes
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 
 __all__ = [
@@ -734,7 +735,7 @@ def _term_row(
         f_stat, p_val = (math.inf, 0.0) if ss > 1e-24 * total else (None, None)
     else:
         f_stat = ms / (sf.residual_ss / sf.residual_df)
-        p_val = float(stats.f.sf(f_stat, df, sf.residual_df))
+        p_val = float(dist.f_sf(f_stat, df, sf.residual_df))
     return StratumTerm(
         term, stratum, ss, df, ms, f_stat, p_val, sf.residual_ss, sf.residual_df, eff
     )

@@ -46,9 +46,9 @@ import math
 from collections.abc import Callable, Sequence
 
 import numpy as np
-from scipy import stats
 
 from replicheck.partitions import dense_codes, is_nested, pair_codes
+from replicheck.stats import dist
 from replicheck.stats.classic import DesignError, cell_term_f
 
 # Dense least squares on more cells than this is too slow for a screen.
@@ -136,7 +136,7 @@ def units_beyond_model(
         if ss_within <= 0:
             return 0.0 if ss_between > 0 else None
         f = (ss_between / df1) / (ss_within / df2)
-        return float(stats.f.sf(f, df1, df2))
+        return float(dist.f_sf(f, df1, df2))
     if n_units + n_cells > MAX_CELLS:
         return None
     return _cells_f(y, dense_codes(pair_codes(unit, cells)), [cells], unit)
@@ -181,7 +181,7 @@ def shared_label_effect(
     if rss_f <= 1e-12 * max(rss_r, 1e-300):
         return 0.0 if rss_r > 0 else None
     f = ((rss_r - rss_f) / df1) / (rss_f / df2)
-    return float(stats.f.sf(f, df1, df2))
+    return float(dist.f_sf(f, df1, df2))
 
 
 def chance_nesting(column: np.ndarray, treatment: np.ndarray) -> float:

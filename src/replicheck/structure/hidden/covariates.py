@@ -63,7 +63,6 @@ from collections.abc import Sequence
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from replicheck.codebook import column_codes
 from replicheck.errors import InputError
@@ -75,6 +74,7 @@ from replicheck.partitions import (
     same_partition,
     units_per_level,
 )
+from replicheck.stats import dist
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan
 from replicheck.structure.names import (
     BLOCK_WORDS,
@@ -155,7 +155,7 @@ def lack_of_fit(
         return None
     f = ((rss_line - rss_pure) / df1) / (rss_pure / df2)
     f = max(f, 0.0)
-    return f, df1, df2, float(stats.f.sf(f, df1, df2))
+    return f, df1, df2, float(dist.f_sf(f, df1, df2))
 
 
 def _validate(frame: pd.DataFrame, response: str, treatments: Sequence[str]) -> np.ndarray:

@@ -95,13 +95,13 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 from scipy.special import gammaln, logsumexp
-from scipy.stats import norm
 
 from replicheck.codebook import column_codes
 from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
 from replicheck.numbers import format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
+from replicheck.stats import dist
 from replicheck.structure.evidence import replicated_share
 from replicheck.structure.hidden.base import DerivedGrouping, HiddenScan, Signal
 from replicheck.structure.hidden.time import parse_times
@@ -241,7 +241,7 @@ def runs_test(labels: np.ndarray, *, seed: int = DEFAULT_SEED, draws: int = N_DR
         p = runs_cdf_two(int(counts[0]), int(counts[1]), runs)
         return RunsTest(runs, expected, sd, z, p, "exact", n, k)
     if n * draws > _WORK:
-        p = float(norm.cdf((runs + 0.5 - expected) / sd)) if sd > 0 else 1.0
+        p = float(dist.norm_sf(-(runs + 0.5 - expected) / sd)) if sd > 0 else 1.0
         return RunsTest(runs, expected, sd, z, p, "normal", n, k)
     rng = np.random.default_rng([seed, 2])
     hits, done = 0, 0
@@ -358,7 +358,7 @@ def autocorrelation_test(
     if not normal:
         return Autocorrelation(observed, mean, (1 + hits) / (1 + draws), "permutation", n, draws)
     sd = math.sqrt(max(float(sums[1]) / draws - mean * mean, 0.0))
-    p = float(norm.sf((observed - mean) / sd)) if sd > 0 else float(observed < mean)
+    p = float(dist.norm_sf((observed - mean) / sd)) if sd > 0 else float(observed < mean)
     return Autocorrelation(observed, mean, p, "normal", n, draws)
 
 

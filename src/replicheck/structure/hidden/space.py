@@ -64,7 +64,6 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
-from scipy.spatial import cKDTree
 
 from replicheck.codebook import first_seen_codes_of
 from replicheck.errors import InputError
@@ -246,6 +245,8 @@ def neighbour_weights(points: np.ndarray, k: int = K_NEIGHBOURS) -> sp.csr_matri
     if n < 2:
         return sp.csr_matrix((n, n))
     kk = min(k, n - 1)
+    from scipy.spatial import cKDTree  # only when a file has coordinates
+
     tree = cKDTree(pts)
     m = min(n, kk + 1 + 8)
     dist, idx = tree.query(pts, k=m)
