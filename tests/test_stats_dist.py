@@ -41,3 +41,11 @@ def test_normal_and_invalid_df() -> None:
     assert np.isnan(dist.f_sf(1.0, 0, 5)) and np.isnan(st.f.sf(1.0, 0, 5))
     assert np.isnan(dist.chi2_sf(5.0, 0)) and np.isnan(st.chi2.sf(5.0, 0))
     assert isinstance(dist.f_sf(3.11, 2, 6), float)
+
+
+@pytest.mark.parametrize(("d1", "d2"), [(1, 4), (2, 6), (2, 2997), (5, 40)])
+@pytest.mark.parametrize("nc", [0.5, 3.0, 12.0, 80.0])
+def test_power_functions(d1: float, d2: float, nc: float) -> None:
+    crit = dist.f_isf(0.05, d1, d2)
+    assert crit == pytest.approx(st.f.isf(0.05, d1, d2), rel=1e-13)
+    assert dist.ncf_sf(crit, d1, d2, nc) == pytest.approx(st.ncf.sf(crit, d1, d2, nc), rel=1e-12)

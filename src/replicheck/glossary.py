@@ -34,7 +34,7 @@ def analysis_title(name: str, unit: str | None = None, stratum: str | None = Non
     "mixed model with 'Block:Contour' as a random effect"
     """
     u = unit_noun(unit)
-    units = f"{u} units" if unit else "rows"
+    units = (f"{u}s" if u.lower().endswith("unit") else f"{u} units") if unit else "rows"
     titles = {
         "as_claimed": "as claimed: each row a replicate",
         "likelihood_ratio": "as claimed (likelihood-ratio test): each row a replicate",

@@ -76,3 +76,20 @@ def norm_sf(x: Any) -> Any:
     x = np.asarray(x, float)
     value = special.ndtr(-x)
     return float(value) if np.ndim(value) == 0 else value
+
+
+def f_isf(q: float, dfn: float, dfd: float) -> float:
+    """The F value exceeded with probability ``q`` (``scipy.stats.f.isf``: the
+    ``1 - q`` quantile)."""
+    return float(f_ppf(1.0 - q, dfn, dfd))
+
+
+def ncf_sf(x: float, dfn: float, dfd: float, nc: float) -> float:
+    """P(F' > x) for the noncentral F on (dfn, dfd) df with noncentrality ``nc``
+    (the Boost function ``scipy.stats.ncf.sf`` calls, else one minus the CDF)."""
+    from scipy.special import _ufuncs
+
+    tail = getattr(_ufuncs, "_ncf_sf", None)
+    if tail is not None:
+        return float(tail(x, dfn, dfd, nc))
+    return float(1.0 - special.ncfdtr(dfn, dfd, nc, x))

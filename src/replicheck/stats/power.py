@@ -18,6 +18,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from replicheck.stats import dist
+
 MAX_UNITS = 10_000
 
 
@@ -50,10 +52,8 @@ def f_test_power(f2: float, levels: int, units: int, alpha: float) -> float:
     df1, df2 = levels - 1, levels * (units - 1)
     if df2 < 1:
         return 0.0
-    from scipy import stats  # loaded when design needs are computed, not at start-up
-
-    crit = stats.f.isf(alpha, df1, df2)
-    return float(stats.ncf.sf(crit, df1, df2, levels * units * f2))
+    crit = dist.f_isf(alpha, df1, df2)
+    return dist.ncf_sf(crit, df1, df2, levels * units * f2)
 
 
 def units_needed(f2: float, levels: int, alpha: float, power: float) -> int | None:
