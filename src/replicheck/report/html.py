@@ -113,13 +113,22 @@ def _h2(key: str) -> str:
     return f"<h2>{_e(C.TITLES[key])}</h2>"
 
 
+def _status_reason(status: str) -> str:
+    """What the status means, without repeating its name (the heading gives it)."""
+    words = C.STATUS_WORDS.get(status, status)
+    reason = words.split(" - ", 1)[-1]
+    return reason[:1].upper() + reason[1:]
+
+
 def _verdict(doc: dict[str, Any]) -> str:
     v = doc["verdict"]
     status = v["status"]
     parts = [
         f'<section class="verdict tone-{_e(status)}" aria-label="verdict">',
         f'<p class="status">Verdict: <span>{_e(STATUS_TITLES.get(status, status))}</span></p>',
-        f"<p>{_e(C.STATUS_WORDS.get(status, status))}.</p>",
+        ""
+        if _status_reason(status).lower() == STATUS_TITLES.get(status, status).lower()
+        else f"<p>{_e(_status_reason(status))}.</p>",
         "<p>" + " ".join(_e(x) for x in C.verdict_lines(doc)) + "</p>",
         f"<p>{_e(v['summary'])}</p>",
         '<p class="caution-short">A screening aid, not a judgement: how the experiment was run '
