@@ -12,6 +12,7 @@ from typing import Any
 
 from replicheck.glossary import Entry, unit_noun, used_in
 from replicheck.numbers import format_df, format_number, format_p, p_phrase
+from replicheck.verdict import SIGNAL_P
 from replicheck.words import counted, joined
 
 SECTIONS: tuple[tuple[str, str], ...] = (
@@ -431,9 +432,6 @@ def analysis_notes(doc: dict[str, Any]) -> list[str]:
 # groupings found in the data
 
 
-HIDDEN_SIGNAL_P = 0.001  # signals shown beside derived groupings (as in the findings)
-
-
 def hidden_items(doc: dict[str, Any]) -> list[str]:
     """Derived groupings with how they were found, and the signals worth reading."""
     h = doc.get("hidden") or {}
@@ -447,7 +445,7 @@ def hidden_items(doc: dict[str, Any]) -> list[str]:
         out.append(f"'{g['name']}' ({counted(g['n_groups'], 'group')}; {use}): {g['how']}")
     for sig in h.get("signals", []):
         p = sig["p_value"]
-        if p is not None and p > HIDDEN_SIGNAL_P:
+        if p is not None and p > SIGNAL_P:  # the findings' threshold
             continue
         out.append(sig["message"])
     return out

@@ -412,11 +412,6 @@ def _check_terms(terms: Sequence[tuple[str, np.ndarray]], n: int) -> list[tuple[
     return out
 
 
-def _structure_from(strata: Mapping[str, np.ndarray], n: int) -> _Structure:
-    _, given = _check_strata(strata, n)
-    return _build_structure(n, [_factor(name, codes) for name, codes in given])
-
-
 # ---------------------------------------------------------------------------
 # sequential fitting
 
