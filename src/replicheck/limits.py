@@ -36,8 +36,9 @@ class Limits:
     levels: int = 1000
     #: Fixed-effect parameters of the claimed model (intercept, levels, slopes, interactions).
     parameters: int = 2000
-    #: Levels of crossed random groupings in all for the dense REML fit; past it the fit
-    #: is not run (the report says so and rests on the unit means), not an error.
+    #: Levels of crossed random groupings outside the one with the most levels, for the
+    #: REML fit (its work grows as their square); past it the fit is not run (the
+    #: report says so and rests on the unit means), not an error.
     crossed_levels: int = 2000
 
     @staticmethod

@@ -34,9 +34,11 @@ condition ``d d / d lam_k >= 0`` at 0; Newton steps on the unprofiled REML
 deviance in log-variance coordinates). This module supplies the analytic
 gradient ``d d / d lam_k = tr(P_H V_k) - y'P_H V_k P_H y / s2_e``, the
 unprofiled deviance and its Hessian (below). Three theta starts are used
-unless the problem is large (``r > 300`` with several factors, when every
-evaluation costs a dense ``r x r`` factorisation: then lme4's single start
-``theta = 1``); the Newton polish stops at log steps below ``1e-13``.
+unless each evaluation is costly (more than 300 levels in the dense part of the
+problem: then lme4's single start ``theta = 1``); the Newton polish stops at log
+steps below ``1e-13``. Several groupings with more than 300 levels in all go to
+:mod:`replicheck.stats.mixed_lowrank`, which holds ``N`` as diagonal plus low rank
+(the largest grouping eliminated first) instead of factorising it densely.
 When ``y`` lies in ``col([X, Z])`` the REML likelihood is unbounded (residual
 variance 0) and the fit is refused.
 
@@ -63,6 +65,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any, Protocol
 
 import numpy as np
 from scipy import linalg
@@ -119,8 +122,68 @@ class TTest:
 # design: within/between decomposition
 
 
+class SearchInterface:
+    """The REML search interface (:class:`replicheck.stats.reml_search.RemlProblem`)
+    of a design that provides ``solver``, ``gradient`` and ``second_order``
+    (the dense :class:`_Design` here, the low-rank one in
+    :mod:`replicheck.stats.mixed_lowrank`)."""
+
+    n: int
+    p: int
+    sizes: tuple[int, ...]
+    xb: np.ndarray
+    yb: np.ndarray
+    xw: np.ndarray
+    yw: np.ndarray
+    sw: np.ndarray
+
+    def solver(self, lam: np.ndarray) -> _Solver:
+        raise NotImplementedError
+
+    def gradient(self, ev: _Eval) -> np.ndarray:
+        raise NotImplementedError
+
+    def second_order(self, ev: _Eval, active: Sequence[int], sigma2: float) -> _Second:
+        raise NotImplementedError
+
+    def profiled(self, lam: np.ndarray) -> tuple[float, np.ndarray]:
+        """lme4's REMLcrit at ``lam`` and its gradient in ``lam``."""
+        ev = _evaluate(self, lam)
+        return ev.deviance, self.gradient(ev)
+
+    def profiled_deviance(self, lam: np.ndarray) -> float:
+        """lme4's REMLcrit at ``lam``."""
+        return _evaluate(self, lam).deviance
+
+    def polish_start(self, lam: np.ndarray, active: Sequence[int]) -> PolishPoint:
+        """Unprofiled deviance at ``lam`` and the profiled ``s2_e`` (Newton start)."""
+        ev = _evaluate(self, lam)
+        sigma2 = ev.rhr / (self.n - self.p)
+        return _polish_point(self, ev, active, active_variances(lam, active, sigma2))
+
+    def polish_point(self, variances: np.ndarray, active: Sequence[int]) -> PolishPoint:
+        """Unprofiled deviance at the variances (active components, residual last)."""
+        lam = lam_from_variances(variances, active, len(self.sizes))
+        ev = _evaluate(self, lam)
+        return _polish_point(self, ev, active, variances)
+
+    def final(self, lam: np.ndarray, active: Sequence[int]) -> FinalPoint:
+        """Estimates, criterion, Hessian and Jacobian of ``cov(beta)`` at ``lam``."""
+        ev = _evaluate(self, lam)
+        sigma2 = ev.rhr / (self.n - self.p)
+        sec = self.second_order(ev, active, sigma2)
+        return FinalPoint(
+            sigma2=sigma2,
+            deviance=ev.deviance,
+            beta=ev.beta.copy(),
+            cov_beta=sec.cov_beta,
+            hessian=sec.hessian,
+            jac=sec.jac,
+        )
+
+
 @dataclass(frozen=True, eq=False)
-class _Design:
+class _Design(SearchInterface):
     """Fixed quantities of the problem, computed once.
 
     ``Z'Z = U diag(e) U'`` with the ``r`` positive eigenvalues kept; ``Q = Z U e^{-1/2}``
@@ -156,6 +219,10 @@ class _Design:
             return t * mat if mat.ndim == 1 else t[:, None] * mat
         return np.asarray(t @ mat)
 
+    def solver(self, lam: np.ndarray) -> _NSolver:
+        """N^{-1} at ``lam``."""
+        return _NSolver(self, lam)
+
     def n_matrix(self, lam: np.ndarray) -> np.ndarray:
         """N = I + sum_k lam_k T_k (a vector in the single-factor case)."""
         if self.diagonal:
@@ -165,41 +232,13 @@ class _Design:
             out += lam[k] * t
         return out
 
-    # the REML search interface (replicheck.stats.reml_search.RemlProblem)
+    def gradient(self, ev: _Eval) -> np.ndarray:
+        """Gradient of the profiled criterion in ``lam`` at an evaluation."""
+        return _gradient_lam(self, ev)
 
-    def profiled(self, lam: np.ndarray) -> tuple[float, np.ndarray]:
-        """lme4's REMLcrit at ``lam`` and its gradient in ``lam``."""
-        ev = _evaluate(self, lam)
-        return ev.deviance, _gradient_lam(self, ev)
-
-    def profiled_deviance(self, lam: np.ndarray) -> float:
-        """lme4's REMLcrit at ``lam``."""
-        return _evaluate(self, lam).deviance
-
-    def polish_start(self, lam: np.ndarray, active: Sequence[int]) -> PolishPoint:
-        """Unprofiled deviance at ``lam`` and the profiled ``s2_e`` (Newton start)."""
-        ev = _evaluate(self, lam)
-        sigma2 = ev.rhr / (self.n - self.p)
-        return _polish_point(self, ev, active, active_variances(lam, active, sigma2))
-
-    def polish_point(self, variances: np.ndarray, active: Sequence[int]) -> PolishPoint:
-        """Unprofiled deviance at the variances (active components, residual last)."""
-        ev = _evaluate(self, lam_from_variances(variances, active, len(self.sizes)))
-        return _polish_point(self, ev, active, variances)
-
-    def final(self, lam: np.ndarray, active: Sequence[int]) -> FinalPoint:
-        """Estimates, criterion, Hessian and Jacobian of ``cov(beta)`` at ``lam``."""
-        ev = _evaluate(self, lam)
-        sigma2 = ev.rhr / (self.n - self.p)
-        sec = _second_order(self, ev, active, sigma2)
-        return FinalPoint(
-            sigma2=sigma2,
-            deviance=ev.deviance,
-            beta=ev.beta.copy(),
-            cov_beta=sec.cov_beta,
-            hessian=sec.hessian,
-            jac=sec.jac,
-        )
+    def second_order(self, ev: _Eval, active: Sequence[int], sigma2: float) -> _Second:
+        """Score, Hessian and Jacobian at an evaluation."""
+        return _second_order(self, ev, active, sigma2)
 
 
 def _check_inputs(
@@ -260,7 +299,9 @@ def _check_inputs(
         zkx = np.column_stack(
             [np.bincount(codes, weights=xx[:, j], minlength=k) for j in range(p)]
         ).reshape(k, p)
-        resid = np.diag(m_k) - zkx @ np.linalg.solve(xx.T @ xx, zkx.T)
+        # Z_k'(I - P_X)Z_k is positive semi-definite, so its largest entry is on
+        # the diagonal: the diagonal alone decides (k x k is never formed)
+        resid = m_k - np.sum(zkx * np.linalg.solve(xx.T @ xx, zkx.T).T, axis=1)
         if float(np.max(np.abs(resid))) <= 1e-8 * float(np.max(m_k)):
             raise DesignError(
                 f"random factor {name!r} is confounded with the fixed effects (each of its "
@@ -366,7 +407,7 @@ def _build_design(
     )
 
 
-def _check_residual_identifiable(design: _Design) -> None:
+def _check_residual_identifiable(design: Any) -> None:
     """The REML likelihood is unbounded when y lies in col([X, Z])."""
     coef, *_ = np.linalg.lstsq(design.xw, design.yw, rcond=None)
     rss_within = float(np.sum((design.yw - design.xw @ coef) ** 2))
@@ -417,10 +458,45 @@ class _NSolver:
         return np.asarray(lower + np.tril(lower, -1).T)
 
 
+class _Solver(Protocol):
+    """Applies N^{-1} and knows log|N| (dense, diagonal or diagonal plus low rank)."""
+
+    logdet: float
+
+    def __call__(self, v: np.ndarray) -> np.ndarray: ...
+
+
+class _Between(Protocol):
+    """What :func:`_evaluate` reads of a design (``_Design`` or the low-rank one)."""
+
+    @property
+    def n(self) -> int: ...
+
+    @property
+    def p(self) -> int: ...
+
+    @property
+    def xb(self) -> np.ndarray: ...
+
+    @property
+    def yb(self) -> np.ndarray: ...
+
+    @property
+    def xw(self) -> np.ndarray: ...
+
+    @property
+    def yw(self) -> np.ndarray: ...
+
+    @property
+    def sw(self) -> np.ndarray: ...
+
+    def solver(self, lam: np.ndarray) -> _Solver: ...
+
+
 @dataclass(frozen=True, eq=False)
 class _Eval:
     lam: np.ndarray
-    solver: _NSolver
+    solver: _Solver
     c_h: np.ndarray  # (X'H^{-1}X)^{-1}
     logdet_x: float
     beta: np.ndarray
@@ -431,11 +507,11 @@ class _Eval:
     deviance: float  # profiled REML criterion (lme4's REMLcrit)
 
 
-def _evaluate(design: _Design, lam: np.ndarray) -> _Eval:
+def _evaluate(design: _Between, lam: np.ndarray) -> _Eval:
     """H^{-1} = (I - QQ') + Q N^{-1} Q' splits every quantity into a within part
     (fixed) and a between part (r-dimensional)."""
     lam = np.asarray(lam, dtype=float)
-    solver = _NSolver(design, lam)
+    solver = design.solver(lam)
     w_b = solver(design.xb)
     xhx = design.sw + design.xb.T @ w_b
     chol_x = linalg.cho_factor(xhx, lower=True, check_finite=False)
@@ -473,6 +549,7 @@ def _gradient_lam(design: _Design, ev: _Eval) -> np.ndarray:
     and ``P_H y = r_w + Q u_b``.
     """
     sigma2 = ev.rhr / (design.n - design.p)
+    assert isinstance(ev.solver, _NSolver)
     ninv = ev.solver.inverse()
     grad = np.empty(len(design.sizes))
     for k in range(len(design.sizes)):
@@ -496,11 +573,67 @@ class _Second:
     cov_beta: np.ndarray
 
 
+@dataclass(frozen=True, eq=False)
+class BetweenTraces:
+    """The between-part quantities of the second-order formulas, over the active
+    components ``i, j`` (``P = P_bb``, ``u = u_b``): ``tr(P T_i P T_j)``,
+    ``(T_i u)'P(T_j u)``, ``tr(P T_i P)``, ``u'P T_i u``, ``tr(T_i P)``, and
+    ``tr(P)``, ``tr(P^2)``, ``u'P u``. The dense design computes them from ``P``
+    as a matrix, the low-rank one from ``P`` as diagonal plus low rank."""
+
+    ptpt: np.ndarray
+    tu_p_tu: np.ndarray
+    ptp: np.ndarray
+    u_p_tu: np.ndarray
+    tp: np.ndarray
+    tr_p: float
+    tr_p2: float
+    u_p_u: float
+
+
+def _dense_traces(design: _Design, ev: _Eval, active: Sequence[int]) -> BetweenTraces:
+    """:class:`BetweenTraces` from ``P_bb`` formed as a matrix."""
+    c = ev.c_h
+    w = ev.w_b
+    u = ev.u_b
+    assert isinstance(ev.solver, _NSolver)
+    ninv = ev.solver.inverse()
+    pbb = (np.diag(ninv) if design.diagonal else ninv) - w @ c @ w.T
+    pbb = 0.5 * (pbb + pbb.T)
+    a = len(active)
+    ptpt = np.empty((a, a))
+    tu_p_tu = np.empty((a, a))
+    pt = [design.t_times(k, pbb).T for k in active]  # P_bb T_k
+    tu = [design.t_times(k, u) for k in active]  # T_k u
+    for i in range(a):
+        for j in range(i, a):
+            ptpt[i, j] = ptpt[j, i] = float(np.sum(pt[i] * pt[j].T))
+            tu_p_tu[i, j] = tu_p_tu[j, i] = float(tu[i] @ pbb @ tu[j])
+    return BetweenTraces(
+        ptpt=ptpt,
+        tu_p_tu=tu_p_tu,
+        ptp=np.array([float(np.sum(pt[i] * pbb)) for i in range(a)]),
+        u_p_tu=np.array([float(u @ pbb @ tu[i]) for i in range(a)]),
+        tp=np.array([float(np.trace(pt[i])) for i in range(a)]),
+        tr_p=float(np.trace(pbb)),
+        tr_p2=float(np.sum(pbb * pbb)),
+        u_p_u=float(u @ pbb @ u),
+    )
+
+
 def _second_order(design: _Design, ev: _Eval, active: Sequence[int], sigma2: float) -> _Second:
+    """Score, Hessian and Jacobian of the dense design (:func:`assemble_second`)."""
+    return assemble_second(design, ev, active, sigma2, _dense_traces(design, ev, active))
+
+
+def assemble_second(
+    design: Any, ev: _Eval, active: Sequence[int], sigma2: float, tr: BetweenTraces
+) -> _Second:
     """Score, Hessian of -2 log L_R and d cov(beta) / d s2 at (lam, sigma2).
 
-    With ``P_H = s2_e P``, ``T_k = Q'V_kQ``, ``P_bb = Q'P_H Q``,
-    ``K = N^{-1} Q'X C``, ``S_w = X_w'X_w``, ``g_w = X_w'r_w``:
+    ``design`` provides ``p``, ``sw``, ``xw``, ``n_within`` and ``t_times``. With
+    ``P_H = s2_e P``, ``T_k = Q'V_kQ``, ``P_bb = Q'P_H Q``, ``K = N^{-1} Q'X C``,
+    ``S_w = X_w'X_w``, ``g_w = X_w'r_w``:
 
     * ``tr(P_H V_k P_H V_l) = tr(P_bb T_k P_bb T_l)``,
       ``y'P_H V_k P_H V_l P_H y = u'T_k P_bb T_l u``;
@@ -509,17 +642,15 @@ def _second_order(design: _Design, ev: _Eval, active: Sequence[int], sigma2: flo
     * ``tr(P_H^2) = n_w - 2 tr(C S_w) + tr((C S_w)^2) + 2 tr(K S_w K') + tr(P_bb^2)``,
       ``y'P_H^3 y = r_w'r_w - g_w'C g_w - 2 g_w'C h + u'P_bb u`` with ``h = W'u``.
 
-    No term is a difference of quantities much larger than the result, so the
-    Hessian stays accurate when the residual variance is tiny compared with
-    the unit variances (large lam).
+    The terms in ``P_bb`` come in ``tr`` (:class:`BetweenTraces`). No term is a
+    difference of quantities much larger than the result, so the Hessian stays
+    accurate when the residual variance is tiny compared with the unit
+    variances (large lam).
     """
     p = design.p
     c = ev.c_h
     w = ev.w_b
     u = ev.u_b
-    ninv = ev.solver.inverse()
-    pbb = (np.diag(ninv) if design.diagonal else ninv) - w @ c @ w.T
-    pbb = 0.5 * (pbb + pbb.T)
     kb = w @ c  # N^{-1} Q'X C
     sw = design.sw
     g_w = design.xw.T @ ev.r_w
@@ -527,37 +658,31 @@ def _second_order(design: _Design, ev: _Eval, active: Sequence[int], sigma2: flo
     m = len(active) + 1
     g_mat = np.empty((m, m))
     q_mat = np.empty((m, m))
-    pt = [design.t_times(k, pbb).T for k in active]  # P_bb T_k
+    g_mat[:-1, :-1] = tr.ptpt
+    q_mat[:-1, :-1] = tr.tu_p_tu
     tu = [design.t_times(k, u) for k in active]  # T_k u
     for i, k in enumerate(active):
-        for j in range(i, len(active)):
-            g_mat[i, j] = g_mat[j, i] = float(np.sum(pt[i] * pt[j].T))
-            q_mat[i, j] = q_mat[j, i] = float(tu[i] @ pbb @ tu[j])
         ktk = kb.T @ design.t_times(k, kb)
-        g_mat[i, -1] = g_mat[-1, i] = float(np.sum(pt[i] * pbb) + np.sum(ktk * sw))
-        q_mat[i, -1] = q_mat[-1, i] = float(u @ pbb @ tu[i] - g_w @ (kb.T @ tu[i]))
+        g_mat[i, -1] = g_mat[-1, i] = float(tr.ptp[i] + np.sum(ktk * sw))
+        q_mat[i, -1] = q_mat[-1, i] = float(tr.u_p_tu[i] - g_w @ (kb.T @ tu[i]))
     csw = c @ sw
     ksk = float(np.sum((kb.T @ kb) * sw))
-    tr_pbb = float(np.trace(pbb))
     g_mat[-1, -1] = (
         design.n_within
         - 2.0 * float(np.trace(csw))
         + float(np.sum(csw * csw.T))
         + 2.0 * ksk
-        + float(np.sum(pbb * pbb))
+        + tr.tr_p2
     )
     q_mat[-1, -1] = (
-        float(ev.r_w @ ev.r_w)
-        - float(g_w @ c @ g_w)
-        - 2.0 * float(g_w @ c @ h)
-        + float(u @ pbb @ u)
+        float(ev.r_w @ ev.r_w) - float(g_w @ c @ g_w) - 2.0 * float(g_w @ c @ h) + tr.u_p_u
     )
     s2 = sigma2
     hessian = -g_mat / s2**2 + 2.0 * q_mat / s2**3
     score = np.empty(m)
-    for i, _k in enumerate(active):
-        score[i] = float(np.trace(pt[i])) / s2 - float(u @ tu[i]) / s2**2
-    tr_p = design.n_within - float(np.trace(csw)) + tr_pbb
+    for i in range(len(active)):
+        score[i] = float(tr.tp[i]) / s2 - float(u @ tu[i]) / s2**2
+    tr_p = design.n_within - float(np.trace(csw)) + tr.tr_p
     yp2y = float(ev.r_w @ ev.r_w + u @ u)
     score[-1] = tr_p / s2 - yp2y / s2**2
     jac = np.empty((m, p, p))
@@ -568,7 +693,7 @@ def _second_order(design: _Design, ev: _Eval, active: Sequence[int], sigma2: flo
     return _Second(score=score, hessian=hessian, jac=jac, cov_beta=s2 * c)
 
 
-def _unprofiled_deviance(design: _Design, ev: _Eval, sigma2: float) -> float:
+def _unprofiled_deviance(design: _Between, ev: _Eval, sigma2: float) -> float:
     nmp = design.n - design.p
     return float(
         nmp * np.log(sigma2) + ev.solver.logdet + ev.logdet_x + ev.rhr / sigma2 + nmp * _LOG_2PI
@@ -576,12 +701,12 @@ def _unprofiled_deviance(design: _Design, ev: _Eval, sigma2: float) -> float:
 
 
 def _polish_point(
-    design: _Design, ev: _Eval, active: Sequence[int], variances: np.ndarray
+    design: SearchInterface, ev: _Eval, active: Sequence[int], variances: np.ndarray
 ) -> PolishPoint:
     """A Newton point at ``ev`` with ``s2_e = variances[-1]``; derivatives on demand."""
 
     def derivatives() -> tuple[np.ndarray, np.ndarray]:
-        sec = _second_order(design, ev, active, variances[-1])
+        sec = design.second_order(ev, active, variances[-1])
         return sec.score, sec.hessian
 
     return PolishPoint(
@@ -591,11 +716,16 @@ def _polish_point(
     )
 
 
-#: Levels of crossed groupings the general (dense) REML fit accepts: each evaluation
-#: factorises a matrix of that order (a chosen bound: 1,500 levels took 9 s and 3,000
-#: took 137 s on a busy 2-core machine; nested groupings go through the per-unit
-#: summaries instead, without this bound).
+#: Levels of crossed groupings, outside the one with the most levels, that the REML
+#: fit accepts: the low-rank algorithm (:mod:`replicheck.stats.mixed_lowrank`) holds
+#: ``levels x that number`` values and each evaluation costs ``levels x that number^2``
+#: (a chosen bound; 2,000 lecturers crossed with 1,500 batches means 3.5 GB of work
+#: arrays; nested groupings go through the per-unit summaries instead, without this bound).
 MAX_CROSSED_LEVELS = 2000
+
+#: Levels in all from which crossed groupings are fitted by the low-rank algorithm
+#: rather than the dense one (below it the dense ``r x r`` factorisation is quick).
+LOW_RANK_FROM = 300
 
 
 def fit_reml(
@@ -604,6 +734,7 @@ def fit_reml(
     factors: Mapping[str, np.ndarray],
     fixed_names: Sequence[str],
     max_levels: int = MAX_CROSSED_LEVELS,
+    algorithm: str = "auto",
 ) -> MixedFit:
     """Fit ``y = X beta + sum_k Z_k u_k + e`` by REML (random intercepts only).
 
@@ -612,25 +743,43 @@ def fit_reml(
     inner unit uniquely, e.g. cask-within-batch as its own factor). ``X`` must
     have full column rank. See the module docstring for the method (Patterson &
     Thompson 1971, Biometrika 58:545-554; Bates et al. 2015, J. Stat. Software
-    67(1)). Raises :class:`DesignError` for unusable input, and for crossed
-    groupings with more than ``max_levels`` levels in all (the cost of each
-    evaluation grows as the cube of the levels).
+    67(1)). ``algorithm`` is ``"dense"`` (this module), ``"low-rank"``
+    (:mod:`replicheck.stats.mixed_lowrank`, the largest grouping eliminated first)
+    or ``"auto"``: low-rank for several groupings with more than
+    :data:`LOW_RANK_FROM` levels in all, dense otherwise; both give the same fit
+    (tests/test_stats_mixed_crossed.py). Raises :class:`DesignError` for unusable
+    input, and for several groupings whose levels outside the largest one number
+    more than ``max_levels`` (the work grows as their square).
     """
+    if algorithm not in ("auto", "dense", "low-rank"):
+        raise ValueError(f"unknown REML algorithm {algorithm!r}")
     if len(factors) > 1:
-        levels = sum(int(np.unique(np.asarray(c)).size) for c in factors.values())
-        if levels > max_levels:
+        counts = sorted(int(np.unique(np.asarray(c)).size) for c in factors.values())
+        outside = sum(counts[:-1])
+        if outside > max_levels:
             raise DesignError(
-                f"the crossed groupings have {levels} levels in all, more than the limit of "
-                f"{max_levels} for their REML fit (its cost grows as the cube of the levels; "
-                "--limit crossed-levels=N raises it)"
+                f"the crossed groupings have {outside} levels outside the largest one, more "
+                f"than the limit of {max_levels} for their REML fit (its work grows as the "
+                "square of that number; --limit crossed-levels=N raises it)"
             )
-    design = _build_design(y, X, factors, fixed_names)
-    _check_residual_identifiable(design)
+        low_rank = algorithm == "low-rank" or (algorithm == "auto" and sum(counts) > LOW_RANK_FROM)
+    else:
+        low_rank = False
+    if low_rank:
+        from replicheck.stats.mixed_lowrank import build_low_rank
+
+        problem: Any = build_low_rank(y, X, factors, fixed_names)
+        # several starts when each evaluation is cheap (the dense part small)
+        cheap = sum(problem.sizes) - problem.sizes[problem.large] <= LOW_RANK_FROM
+    else:
+        problem = _build_design(y, X, factors, fixed_names)
+        cheap = problem.r <= LOW_RANK_FROM or problem.diagonal
+    _check_residual_identifiable(problem)
     # several starts for small problems; one (lme4's theta = 1) when every
-    # evaluation costs a large dense factorisation
-    starts = (1.0, 0.0625, 16.0) if design.r <= 300 or design.diagonal else (1.0,)
+    # evaluation costs a large factorisation
+    starts = (1.0, 0.0625, 16.0) if cheap else (1.0,)
     return fit_components(
-        design,
+        problem,
         tuple(str(s) for s in fixed_names),
         starts,
         newton_stop=_NEWTON_STOP,
