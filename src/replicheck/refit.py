@@ -24,11 +24,12 @@ For every term (a treatment, or an interaction of treatments):
 * ``no_test``: when each level of the term sits in a single unit: no p-value.
 
 The analysis the corrected verdict rests on (``TermRefit.corrected``) is chosen
-by regime, as the calibration study in docs/calibration.md supports: the exact
-multi-stratum ANOVA when the design is balanced and orthogonal; otherwise the
-mixed model for a continuous response (the unit means when the unit variance
-is estimated at zero or REML fails) and the unit means (proportions or mean
-counts per unit) for a yes/no or count response.
+by regime in :func:`replicheck.decisions.verdict_method`, as the calibration
+study in docs/calibration.md supports: the exact multi-stratum ANOVA when the
+design is balanced and orthogonal; otherwise the mixed model for a continuous
+response (the unit means when the unit variance is estimated at zero or REML
+fails) and the unit means (proportions or mean counts per unit) for a yes/no or
+count response.
 """
 
 from __future__ import annotations
@@ -40,6 +41,7 @@ from typing import Any
 
 import numpy as np
 
+from replicheck.decisions import MethodRegime, verdict_method
 from replicheck.numbers import count_text, format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
 from replicheck.stats import dist
@@ -1361,7 +1363,8 @@ def refit(
                     notes=("the term and its unit cannot be separated, so no p-value is given",),
                 )
             )
-            out.append(TermRefit(t.term, tuple(analyses), None, None))
+            none = verdict_method(MethodRegime(kind=kind, has_unit=False, confounded=True))
+            out.append(TermRefit(t.term, tuple(analyses), none, None))
             continue
         rname = None
         if t.unit is not None:
@@ -1400,7 +1403,6 @@ def refit(
                 if rand is not None:
                     analyses.append(_randomisation_analysis(t, rand, list(adjust)))
         variance = None
-        corrected: str | None = "unit_means" if has_unit else "as_claimed"
         if fit is not None:
             n_rep = int(t.unit.max()) + 1 if has_unit and t.unit is not None else n
             mixed = _mixed_analysis(fit, X, index[t.term], t, rname, n_rep, single)
@@ -1414,18 +1416,24 @@ def refit(
                     at_zero,
                     bool(fit.converged),
                 )
-                if not at_zero and fit.converged and kind == "continuous":
-                    corrected = "mixed_model"
-            elif fit.converged:
-                corrected = "mixed_model"
         if has_unit:
             analyses.extend(_cross_checks(y, X, index[t.term], t, blocks, kind, seed))
         exact = _strata_analysis(table, t, n) if table is not None else None
         if exact is not None:
             analyses.append(exact)
-            corrected = "strata_anova"
-        if has_unit and kind != "continuous" and _too_few_discrete(t):
-            corrected = None  # no test on so few units holds its error rate (calibration study)
+        too_few = has_unit and kind != "continuous" and _too_few_discrete(t)
+        corrected = verdict_method(
+            MethodRegime(
+                kind=kind,
+                has_unit=has_unit,
+                mixed_fitted=fit is not None,
+                mixed_converged=fit is not None and bool(fit.converged),
+                unit_variance_at_zero=variance is not None and variance.at_boundary,
+                strata_row=exact is not None,
+                too_few_discrete=too_few,
+            )
+        )
+        if too_few:
             analyses = [
                 replace(a, notes=(*a.notes, FEW_DISCRETE_UNITS)) if a.name == "unit_means" else a
                 for a in analyses
