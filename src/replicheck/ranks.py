@@ -17,6 +17,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from replicheck.refit import Analysis, TermInput
+from replicheck.vocab import AnalysisName
 
 EXACT_BELOW = 50  # R's wilcox.test: exact p-values below 50 observations, without ties
 
@@ -58,7 +59,7 @@ def rank_tests(y: np.ndarray, t: TermInput, blocks: Mapping[str, np.ndarray]) ->
         nz = d[d != 0]
         ranks = sps.rankdata(np.abs(nz))
         v = float(ranks[nz > 0].sum())  # R's V: the sum of the ranks of positive differences
-        name = "signed_rank"
+        name: AnalysisName = "signed_rank"
         out.append(
             Analysis(name, LABELS[name], t.term, "rows", k, v, None, float(r.pvalue), test="rank")
         )

@@ -67,13 +67,14 @@ from replicheck.stats.randomisation import (
 )
 from replicheck.stats.robust import cr2_test, wild_cluster_bootstrap
 from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, multistratum_anova
+from replicheck.vocab import AnalysisName
 
 
 @dataclass(frozen=True)
 class Analysis:
     """One test of one term."""
 
-    name: str  # as_claimed | unit_means | mixed_model | no_test
+    name: AnalysisName
     label: str
     term: str
     level: str  # rows | units
@@ -139,7 +140,7 @@ class TermRefit:
 
     term: str
     analyses: tuple[Analysis, ...]
-    corrected: str | None  # None when no valid test exists
+    corrected: AnalysisName | None  # None when no valid test exists
     unit_variance: UnitVariance | None
     randomisation: RandomisationResult | None = None
 
@@ -208,7 +209,7 @@ def mc_draws(default: int, n_units: int) -> int:
     return max(MIN_MC_DRAWS, min(default, MC_WORK // max(n_units, 1)))
 
 
-def _too_many_units(name: str, t: TermInput) -> Analysis:
+def _too_many_units(name: AnalysisName, t: TermInput) -> Analysis:
     n = int(t.unit.max()) + 1 if t.unit is not None else 0
     return _untested(
         name,
@@ -246,7 +247,9 @@ UNIT_MEANS_LABELS = {
 }
 
 
-def _plain_test(name: str, term: str, level: str, y: np.ndarray, groups: np.ndarray) -> Analysis:
+def _plain_test(
+    name: AnalysisName, term: str, level: str, y: np.ndarray, groups: np.ndarray
+) -> Analysis:
     k = int(groups.max()) + 1
     n = int(y.size)
     if k == 2:
@@ -343,7 +346,7 @@ def _randomisation_analysis(
         else f"Monte Carlo, {r.draws} draws of {count_text(r.n_assignments)} assignments "
         f"(seed {r.seed})"
     )
-    name = "randomisation"
+    name: AnalysisName = "randomisation"
     return Analysis(
         name,
         LABELS[name],
@@ -434,7 +437,7 @@ def _unit_means(
 
 
 def _unit_f(
-    name: str, label: str, t: TermInput, n_units: int, r: TestResult, **extra: Any
+    name: AnalysisName, label: str, t: TermInput, n_units: int, r: TestResult, **extra: Any
 ) -> Analysis:
     """A unit-level analysis from an F test result."""
     df = (float(r.df[0]), float(r.df[1]))
@@ -472,7 +475,7 @@ def _lack_of_fit(
         r = ols_term_f(means, full, line)
     except DesignError:
         return None
-    name = "lack_of_fit"
+    name: AnalysisName = "lack_of_fit"
     why = ("departure from a straight line; not a test of the effect itself",)
     return _unit_f(name, LABELS[name], t, n_units, r, notes=why)
 
@@ -636,7 +639,7 @@ def _ols_term_tests(
                 )
             q = estimable
         p = float(dist.f_sf(f, q, df_res))
-        name = "as_claimed"
+        name: AnalysisName = "as_claimed"
         slope = q == 1 and t.numeric
         out.append(
             Analysis(
@@ -677,7 +680,7 @@ def within_block_tests(
     x = with_blocks(X, list(blocks.values()))
     if int(np.linalg.matrix_rank(x)) >= y.size:
         return {}
-    name = "within_blocks"
+    name: AnalysisName = "within_blocks"
     return {
         a.term: replace(a, name=name, label=LABELS[name])
         for a in _ols_term_tests(y, x, index, terms)
@@ -724,7 +727,7 @@ def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis
     if len(rows) != 1 or rows[0].efficiency < 1 - 1e-9:
         return None
     r = rows[0]
-    name = "strata_anova"
+    name: AnalysisName = "strata_anova"
     level = "rows" if r.stratum == "residual" else "units"
     n_rep = n if t.unit is None or level == "rows" else int(t.unit.max()) + 1
     testable = (
@@ -821,7 +824,7 @@ def _mixed_analysis(
     if (two or t.numeric) and len(index) == 1:
         estimate = float(fit.beta[index[0]])
         t_stat = float(np.sign(estimate) * np.sqrt(test.statistic))
-    name = "mixed_model"
+    name: AnalysisName = "mixed_model"
     return Analysis(
         name,
         LABELS[name],
@@ -931,7 +934,7 @@ def _claimed_glm(
             )
             continue
         claimed.append(_wald_analysis(label, t, n, g, family, ()))
-        name = "likelihood_ratio"
+        name: AnalysisName = "likelihood_ratio"
         ratio[t.term] = Analysis(
             name,
             f"as claimed: {what}, every row a replicate (likelihood-ratio test)",
@@ -1023,7 +1026,7 @@ def known_groupings(
 def _row_chi2(t: TermInput, y: np.ndarray) -> Analysis:
     """Pearson's chi-squared test of a yes/no response, every row a trial."""
     r = pearson_chi2(y, t.codes)
-    name = "as_claimed"
+    name: AnalysisName = "as_claimed"
     return Analysis(
         name,
         "as claimed: every row a replicate (Pearson chi-squared)",
@@ -1099,7 +1102,7 @@ def _bootstrap_settled(t: TermInput) -> bool:
     return int(units_per_level(t.unit, t.codes, k).min()) >= BOOTSTRAP_SETTLED_UNITS
 
 
-def _untested(name: str, t: TermInput, why: str) -> Analysis:
+def _untested(name: AnalysisName, t: TermInput, why: str) -> Analysis:
     n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
     return Analysis(name, LABELS[name], t.term, "units", n_rep, None, None, None, notes=(why,))
 
@@ -1129,7 +1132,7 @@ def _cross_checks(
         out.append(_untested("cluster_robust", t, why))
 
     def unit_level(
-        name: str,
+        name: AnalysisName,
         stat: float,
         df: tuple[float, ...] | None,
         p: float,
@@ -1222,7 +1225,7 @@ def _cross_checks(
     except DesignError as err:
         out.append(_untested("wild_bootstrap", t, f"not computed: {err}"))
     if kind in ("binary", "count"):
-        name = "gee"
+        name: AnalysisName = "gee"
         family = "binomial" if kind == "binary" else "poisson"
         try:
             g = gee_test(y, Xc, t.unit, L, family)
@@ -1349,7 +1352,7 @@ def refit(
     for t, row_test in zip(terms, claimed, strict=True):
         analyses = [row_test, *([ratio_tests[t.term]] if t.term in ratio_tests else [])]
         if t.confounded:
-            name = "no_test"
+            name: AnalysisName = "no_test"
             analyses.append(
                 Analysis(
                     name,

@@ -23,12 +23,8 @@ from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.numbers import NumberReading
 from replicheck.structure.units import Alternative, Structure, UnitChoice
 from replicheck.trials import FILE_ROW
+from replicheck.vocab import SEVERITIES, STATUS_ORDER, AnalysisName, Severity, Status
 from replicheck.words import with_article
-
-SEVERITIES = ("error", "warning", "note")
-STATUSES = ("ok", "pseudoreplicated", "confounded", "unclear")
-# worst first: the overall status is the worst status of any term
-STATUS_ORDER = ("confounded", "pseudoreplicated", "unclear", "ok")
 
 CAUTION = (
     "replicheck is a screening aid, not a judgement. How the experiment was actually run "
@@ -47,7 +43,7 @@ class Finding:
     """One thing the audit noticed."""
 
     rule: str
-    severity: str
+    severity: Severity
     message: str
     advice: str
     columns: tuple[str, ...] = ()
@@ -120,19 +116,19 @@ class TermVerdict:
     """The corrected verdict for one term."""
 
     term: str
-    status: str
+    status: Status
     conclusion_changed: bool | None
     claimed_significant: bool | None
-    method: str | None
+    method: AnalysisName | None
 
 
 @dataclass(frozen=True)
 class Verdict:
     """The corrected verdict."""
 
-    status: str
+    status: Status
     conclusion_changed: bool | None
-    method: str | None
+    method: AnalysisName | None
     summary: str
     findings: tuple[Finding, ...]
     terms: tuple[TermVerdict, ...]
@@ -224,7 +220,7 @@ def disputed_readings(t: TermEvidence, ev: Evidence) -> tuple[AlternativeEvidenc
     return tuple(out)
 
 
-def term_status(t: TermEvidence, ev: Evidence) -> str:
+def term_status(t: TermEvidence, ev: Evidence) -> Status:
     """The status of one term from its unit and, for the claimed term, the reported df."""
     if disputed_readings(t, ev):
         return "unclear"
@@ -838,7 +834,7 @@ def _derived(ev: Evidence) -> Iterator[Finding]:
 
 
 SIGNAL_P = 0.001  # p-value below which a hidden-structure signal is reported (common practice)
-SIGNAL_RULES: dict[str, str] = {  # rule name -> severity
+SIGNAL_RULES: dict[str, Severity] = {  # rule name -> severity
     "treatment-by-time": "warning",
     "treatment-in-runs": "warning",
     "order-autocorrelation": "note",
@@ -869,7 +865,7 @@ SIGNAL_ADVICE = {
 }
 
 
-def _signal_rule(check: str, severity: str) -> Rule:
+def _signal_rule(check: str, severity: Severity) -> Rule:
     def fn(ev: Evidence) -> Iterator[Finding]:
         for sig in ev.hidden.signals:
             if sig.check != check:

@@ -16,6 +16,7 @@ from typing import Any
 from replicheck import __version__
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
+from replicheck.decisions import measured_term
 from replicheck.display import Display, Interval
 from replicheck.glossary import analysis_title
 from replicheck.io import Layout, Table
@@ -327,7 +328,7 @@ class Report:
             }
             for te in ev.terms
         ]
-        main = next((te for te in ev.terms if te.clustering is not None), ev.terms[0])
+        main = ev.terms[measured_term([te.clustering is not None for te in ev.terms])]
         unit_of = {te.term: te.unit.unit for te in ev.terms}
         analyses = []
         for tr in self.refit.terms:

@@ -23,9 +23,10 @@ from typing import Any
 from urllib.parse import quote
 
 from replicheck.numbers import format_p
+from replicheck.vocab import STATUS_ORDER
 
-# The audit's verdicts, worst first (as replicheck.verdict.STATUS_ORDER; checked by the tests).
-VERDICTS = ("confounded", "pseudoreplicated", "unclear", "ok")
+# The audit's verdicts, worst first.
+VERDICTS: tuple[str, ...] = STATUS_ORDER
 NOT_SCREENED = ("error", "timeout", "too-large", "unreadable", "internal-error")
 SEVERITY: tuple[str, ...] = (*VERDICTS[:-1], *NOT_SCREENED, "needs-spec", "ok")
 

@@ -85,6 +85,7 @@ from replicheck.structure.strata import (
     build_strata,
     crossed_cells,
 )
+from replicheck.vocab import UNIT_LABEL_MODES
 
 __all__ = [
     "Alternative",
@@ -103,8 +104,6 @@ CLUSTER_EVIDENCE_P = 0.01
 # A nesting is structure, not chance, when a column of these level sizes would
 # lie inside the treatment levels by chance with probability below 1 in 1000.
 CHANCE_NESTING_LOG10 = -3.0
-
-UNIT_LABEL_MODES = ("auto", "local", "global")
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,28 @@
+"""Checks that a report document speaks only the closed vocabularies.
+
+Used by tests/conftest.py on every report the suite produces, and tested in
+tests/test_vocab.py.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from replicheck.rulebook import RULE_DOCS
+from replicheck.vocab import ANALYSES, SEVERITIES, STATUSES
+
+
+def vocabulary_faults(doc: dict[str, Any]) -> list[str]:
+    """Values of the document outside their vocabulary (an empty list when none)."""
+    faults = []
+    statuses = [doc["verdict"]["status"], *(t["status"] for t in doc["terms"])]
+    faults += [f"status {s!r}" for s in statuses if s not in STATUSES]
+    methods = [doc["verdict"]["method"], *(t["method"] for t in doc["terms"])]
+    methods += [a["name"] for a in doc["analyses"]]
+    faults += [f"analysis {m!r}" for m in methods if m is not None and m not in ANALYSES]
+    for f in doc["findings"]:
+        if f["rule"] not in RULE_DOCS:
+            faults.append(f"finding of an unregistered rule {f['rule']!r}")
+        if f["severity"] not in SEVERITIES:
+            faults.append(f"severity {f['severity']!r}")
+    return faults
