@@ -384,7 +384,7 @@ def test_build_claim_defaults() -> None:
 @pytest.mark.parametrize(
     ("kw", "pattern"),
     [
-        ({"treatments": ["g"]}, "no response column given: use --response COL"),
+        ({"treatments": ["g"]}, r"no response column given: use response=\.\.\., formula=\.\.\."),
         ({"response": "y"}, "no treatment column given"),
         ({"response": "y", "treatments": ["g"], "alpha": 1.0}, "alpha"),
         ({"response": "y", "treatments": ["g"], "alpha": 0.0}, "alpha"),
@@ -397,7 +397,7 @@ def test_build_claim_defaults() -> None:
             "stated both as",
         ),
         ({"response": "y", "treatments": ["g"], "unit": "a::b"}, "empty part"),
-        ({"response": "y", "treatments": ["g"], "unit_labels": "sideways"}, "unit-labels"),
+        ({"response": "y", "treatments": ["g"], "unit_labels": "sideways"}, "unit_labels=.* must"),
         ({"response": "y", "treatments": ["g"], "claim_text": "hello"}, "no statistic"),
         ({"response": "y", "treatments": ["g"], "spec": {"colour": 1}}, "unknown key 'colour'"),
     ],

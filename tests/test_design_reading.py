@@ -477,7 +477,8 @@ def test_main_plots_the_data_do_not_show_are_named_with_the_statement_that_sets_
     ]
     assert len(notes) == 1
     assert f"({p_phrase(p)})" in notes[0]  # p-values as every report writes them
-    assert '--unit "block:irrigation"' in notes[0]
+    # a Python caller is told the keyword argument (the command line: --unit block:irrigation)
+    assert "unit='block:irrigation'" in notes[0]
     stated = _doc(
         d, response="y", treatment=["irrigation", "variety", "nitro"], unit="block:irrigation"
     )

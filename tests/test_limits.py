@@ -90,7 +90,7 @@ def test_a_spec_raises_or_lowers_a_limit(tmp_path: Path) -> None:
     _one_line(out, "limit of 20 columns")
     spec.write_text('response = "y"\ntreatment = "feed"\nlimits = "columns"\n')
     out = _run(["wide.csv"], tmp_path, spec=True)
-    _one_line(out, "--limit takes KEY=N")
+    _one_line(out, "a limit is written KEY=N")
 
 
 def test_a_text_cell_too_long(tmp_path: Path) -> None:

@@ -73,7 +73,7 @@ def test_statements_are_checked_before_the_data_are_read(tmp_path: Path) -> None
         audit(missing, response="y", treatment="t", unit="y")
     with pytest.raises(InputError, match="empty part"):
         audit(missing, response="y", treatment="t", unit="a::b")
-    with pytest.raises(InputError, match="unit-labels"):
+    with pytest.raises(InputError, match=r"unit_labels=.* must be one of"):
         audit(missing, response="y", treatment="t", unit_labels="sideways")
 
 

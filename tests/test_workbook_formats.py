@@ -301,7 +301,7 @@ def test_ods_zip_bomb_refused_by_its_unpacked_size() -> None:
     ):
         with pytest.raises(InputError, match=r"^bomb\.ods: the workbook unpacks to 2 MB.*"):
             call()
-        with pytest.raises(InputError, match="--limit workbook-mb=N"):
+        with pytest.raises(InputError, match=r"limits=\{'workbook-mb': N\}"):
             call()
 
 
@@ -314,7 +314,7 @@ def test_xls_sheet_past_the_cell_and_column_limits() -> None:
         _grid(DATASETS, "xls", "iris", Limits(sheet_cells=700))
     message = str(caught.value)
     assert message.startswith("datasets.xls: sheet 'iris' spans 151 rows by 5 columns")
-    assert "--limit sheet-cells=N" in message
+    assert "limits={'sheet-cells': N}" in message
     with pytest.raises(InputError, match=r"^datasets\.xls: sheet 'iris' runs to column 5.*"):
         _grid(DATASETS, "xls", "iris", Limits(columns=4))
     assert _grid(DATASETS, "xls", "iris", Limits(columns=5, sheet_cells=755)).shape == (151, 5)
@@ -333,7 +333,7 @@ def test_ods_all_sheets_count_since_all_are_parsed(tmp_path: Path) -> None:
     # Two sheets of 4 x 6 = 24 cells each: one is within a limit of 30 cells,
     # both together are not, and the reader parses both to reach one.
     path = _write_ods(tmp_path / "two.ods", {"tanks": TANKS, "copy": TANKS})
-    with pytest.raises(InputError, match=r"span 48 cells in all.*--limit sheet-cells=N"):
+    with pytest.raises(InputError, match=r"span 48 cells in all.*limits=\{'sheet-cells': N\}"):
         _grid(path, "ods", "tanks", Limits(sheet_cells=30))
 
 

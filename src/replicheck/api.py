@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from replicheck.advice import option
 from replicheck.claim import (
     Claim,
     ReportedResult,
@@ -147,8 +148,8 @@ def _long(table: Table, c: Claim) -> Table:
     ids = tuple(resolve_column(table.columns, name, "identifier") for name in reading.ids)
     if ids and not reading.long and c.response in table.columns:
         raise InputError(
-            "an identifier column is given (--id) but no wide columns to reshape: "
-            "name them with --long PATTERN"
+            f"an identifier column is given ({option('id')}) but no wide columns to reshape: "
+            f"name them with {option('long')}"
         )
     data, done = reshape_long(table.data, response=c.response, patterns=reading.long, ids=ids)
     if not done:
@@ -346,7 +347,7 @@ def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
                 rows = "1 row" if bad == 1 else f"{bad} rows"
                 raise InputError(
                     f"column '{col}' of the model has infinite values in {rows}: "
-                    "correct them or mark them missing (--na)"
+                    f"correct them or mark them missing ({option('na')})"
                 )
     for t in claim.treatments:
         if frame[t].nunique() < 2:
@@ -608,13 +609,16 @@ def audit(
     Returns
     -------
     Report
-        With ``status``, ``to_dict()``, ``to_json()``, ``to_text()`` and
-        ``to_markdown()``.
+        With ``status``, ``to_dict()``, ``to_json()``, ``to_text()``,
+        ``to_markdown()`` and ``to_html()``. Advice in them names options as
+        keyword arguments of this function (``unit='tank'``); each takes
+        ``syntax="cli"`` to name them as the command line does (``--unit tank``).
 
     Raises
     ------
     InputError
-        Bad input, with a one-line message.
+        Bad input, with a one-line message (``str(err)``; ``err.render("cli")``
+        for the command line's spelling of the options it names).
 
     Examples
     --------

@@ -53,6 +53,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import NamedTuple, cast
 
+from replicheck.advice import option
 from replicheck.errors import InputError
 from replicheck.formula import ModelFormula, factor_name, parse_formula, replace_response
 from replicheck.io.table import ReadOptions
@@ -987,12 +988,12 @@ def build_claim(
     resp, treats, model = _model(response, cli_treats, formula, s)
     if resp is None:
         raise InputError(
-            "no response column given: use --response COL, --formula 'y ~ ...' "
+            f"no response column given: use {option('response')}, {option('formula')} "
             "or 'response' in the spec"
         )
     if not treats:
         raise InputError(
-            "no treatment column given: use --treatment COL, --formula 'y ~ ...' "
+            f"no treatment column given: use {option('treatment')}, {option('formula')} "
             "or 'treatment' in the spec"
         )
     if len(set(treats)) != len(treats):
@@ -1015,7 +1016,7 @@ def build_claim(
     labels = unit_labels if unit_labels is not None else cast("str | None", s.get("unit_labels"))
     fam = family if family is not None else cast("str | None", s.get("family"))
     if fam is not None and fam not in FAMILIES:
-        raise InputError(f"--family must be one of {', '.join(FAMILIES)}, not {fam!r}")
+        raise InputError(f"{option('family')} must be one of {', '.join(FAMILIES)}, not {fam!r}")
     if model is not None and model.trials is not None:
         if fam == "poisson":
             raise InputError(
@@ -1024,7 +1025,7 @@ def build_claim(
             )
         fam = "binomial"
     if labels is not None and labels not in UNIT_LABEL_MODES:
-        raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
+        raise InputError(f"{option('unit-labels')} must be one of {', '.join(UNIT_LABEL_MODES)}")
     if isinstance(claim_texts, str):
         claim_texts = (claim_texts,)
     texts = [*([claim_text] if claim_text is not None else []), *claim_texts]

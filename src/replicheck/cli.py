@@ -30,12 +30,12 @@ def _render(report: object, fmt: str) -> str:
 
     assert isinstance(report, Report)
     if fmt == "json":
-        return report.to_json() + "\n"
+        return report.to_json(syntax="cli") + "\n"
     if fmt == "markdown":
-        return report.to_markdown()
+        return report.to_markdown(syntax="cli")
     if fmt == "html":
-        return report.to_html()
-    return report.to_text()
+        return report.to_html(syntax="cli")
+    return report.to_text(syntax="cli")
 
 
 def _emit(text: str, output: str | None) -> None:
@@ -528,7 +528,7 @@ def main(argv: Sequence[str] | None = None) -> None:
             standalone_mode=False,
         )
     except InputError as err:
-        click.echo(f"replicheck: error: {err}", err=True)
+        click.echo(f"replicheck: error: {err.render('cli')}", err=True)
         sys.exit(2)
     except click.exceptions.Abort:
         click.echo("replicheck: aborted", err=True)

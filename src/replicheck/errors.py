@@ -17,7 +17,14 @@ class InputError(Exception):
         self.message = one_line
 
     def __str__(self) -> str:
-        return self.message
+        return self.render("api")
+
+    def render(self, syntax: str) -> str:
+        """The message with the options it names in ``syntax`` (``api`` or ``cli``;
+        :mod:`replicheck.advice`): ``str()`` gives the ``api`` form."""
+        from replicheck.advice import render
+
+        return render(self.message, "cli" if syntax == "cli" else "api")
 
 
 def brief(exc: BaseException, limit: int = 160) -> str:

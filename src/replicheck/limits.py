@@ -15,6 +15,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, fields, replace
 
+from replicheck.advice import option
 from replicheck.errors import InputError, LimitExceeded
 
 
@@ -53,7 +54,8 @@ class Limits:
         flag = key.replace("_", "-")
         return LimitExceeded(
             f"{what}, more than the limit of {shown} {_UNITS[key]}: "
-            f"raise it with --limit {flag}=N (or [limits] in the spec) if the file is what "
+            f"raise it with {option('limit', flag)} (or [limits] in the spec) if the file is "
+            "what "
             "it should be"
         )
 
@@ -104,7 +106,7 @@ def make_limits(
             key, sep, raw = str(text).partition("=")
             if not sep:
                 raise InputError(
-                    f"--limit takes KEY=N, e.g. columns=20000, not {text!r}; keys: "
+                    f"a limit is written KEY=N, e.g. columns=20000, not {text!r}; keys: "
                     f"{', '.join(Limits.keys())}"
                 )
             items.append((key.strip(), raw.strip()))

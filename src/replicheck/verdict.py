@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 
+from replicheck.advice import option
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.glossary import short_title, unit_noun
@@ -496,7 +497,8 @@ def _reading_rule(name: str) -> Rule:
                     name,
                     "note",
                     _cap(text) + ".",
-                    "Say otherwise with --unit or --unit-labels if this reading is wrong.",
+                    f"Say otherwise with {option('unit')} or {option('unit-labels')} if this "
+                    "reading is wrong.",
                     (),
                 )
 
@@ -519,7 +521,7 @@ def _ambiguous(ev: Evidence) -> Iterator[Finding]:
             f"Every level of '{term}' lies in a single level of '{col}'. If '{col}' marks a "
             f"physical unit or a time of processing, the treatment is confounded with it; if "
             f"it is another label of the treatment, this is harmless. The data cannot tell which.",
-            f"Find out what '{col}' records. If it is a unit, rerun with --unit {col}.",
+            f"Find out what '{col}' records. If it is a unit, rerun with {option('unit', col)}.",
             (term, col),
         )
 
@@ -533,7 +535,7 @@ def _formula_blocks(ev: Evidence) -> Iterator[Finding]:
             f"'{b}' enters the formula as a main effect and its name says block, place, time or "
             f"subject, so replicheck took it as a block of the design (a random stratum), not "
             f"as a treatment to test.",
-            f"If '{b}' is a treatment of interest, give it with --treatment instead.",
+            f"If '{b}' is a treatment of interest, give it with {option('treatment', b)} instead.",
             (b,),
         )
 
@@ -623,7 +625,7 @@ def _numbers(ev: Evidence) -> Iterator[Finding]:
     if levels:
         advice.append(
             "If " + " or ".join(f"'{r.column}'" for r in levels) + " is a quantity fitted "
-            "with one slope, state it with --covariate " + levels[0].column + "."
+            "with one slope, state it with " + option("covariate", levels[0].column) + "."
         )
     yield Finding(
         "numbers-in-formula",
@@ -828,7 +830,7 @@ def _derived(ev: Evidence) -> Iterator[Finding]:
             f"{g.how} The grouping '{g.name}' (from {', '.join(g.sources)}) is named in no "
             f"column; {role}.",
             "Check it against the methods. If it is not a unit of the design, state the unit "
-            "with --unit, or turn the search off with --no-hidden.",
+            f"with {option('unit')}, or turn the search off with {option('hidden', False)}.",
             g.sources,
         )
 
@@ -859,9 +861,9 @@ SIGNAL_ADVICE = {
     "code-encodes-treatment": "Harmless when the code merely names the treatment; rows that "
     "break the pattern may be mislabelled.",
     "treatment-in-file-runs": "Usually just how the file was sorted; if the rows are in "
-    "processing order, state it with --order so runs can be weighed as units.",
-    "day-month-ambiguous": "Say how the dates are written with --dates day-first or "
-    "--dates month-first.",
+    f"processing order, state it with {option('order')} so runs can be weighed as units.",
+    "day-month-ambiguous": f"Say how the dates are written with {option('dayfirst', True)} or "
+    f"{option('dayfirst', False)}.",
 }
 
 
@@ -945,7 +947,7 @@ def _crossed(ev: Evidence) -> Iterator[Finding]:
             )
             advice = (
                 f"Check that '{b.name}' was a blocking or subject factor; if not, state its "
-                f"role (--covariate {b.name} or --ignore {b.name})."
+                f"role ({option('covariate', b.name)} or {option('ignore', b.name)})."
             )
         if stated:
             advice = "As stated."

@@ -40,6 +40,7 @@ from pandas.api.types import (
     is_timedelta64_dtype,
 )
 
+from replicheck.advice import option
 from replicheck.codebook import column_codes
 from replicheck.errors import InputError, LimitExceeded, SheetChoice, brief
 from replicheck.io.arrow_csv import Dialect, read_delimited
@@ -832,7 +833,8 @@ def _default_sheet(
         names = tuple(str(t.sheet) for t in (chosen or tables))
         raise SheetChoice(
             f"{label}: sheets {quote_list(names)} each hold a table: choose one with "
-            "--sheet NAME, or stack those with the same columns with --sheet all",
+            f"{option('sheet')}, or stack those with the same columns with "
+            f"{option('sheet', 'all')}",
             names,
         )
     pick = chosen[0]
@@ -890,7 +892,7 @@ def _stacked(tables: list[_Parsed], skipped: list[str], label: str) -> _Parsed:
     if len(chosen) == 1 and len(tables) > 1:
         raise InputError(
             f"{label}: the sheets hold tables with different columns "
-            f"({quote_list(str(t.sheet) for t in tables)}): choose one with --sheet"
+            f"({quote_list(str(t.sheet) for t in tables)}): choose one with {option('sheet')}"
         )
     key = "sheet" if "sheet" not in columns else "sheet (workbook)"
     frames = []

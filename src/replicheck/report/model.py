@@ -11,9 +11,10 @@ import json
 import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import Any, cast
 
 from replicheck import __version__
+from replicheck.advice import Syntax, render, render_all
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
 from replicheck.decisions import measured_term
@@ -294,8 +295,14 @@ class Report:
         """0 when no problem was found, 1 otherwise."""
         return 0 if self.verdict.status == "ok" else 1
 
-    def to_dict(self) -> dict[str, Any]:
-        """The report as plain data (the JSON document)."""
+    def to_dict(self, syntax: Syntax = "api") -> dict[str, Any]:
+        """The report as plain data (the JSON document).
+
+        Advice that names an option is written in ``syntax``: ``api`` (keyword
+        arguments of :func:`replicheck.api.audit`, for Python callers) or ``cli``
+        (command-line options, as the command line writes its reports); see
+        :mod:`replicheck.advice`.
+        """
         t, c, ev = self.table, self.claim, self.evidence
         s = ev.structure
         alpha = c.alpha
@@ -546,27 +553,27 @@ class Report:
             "display": _display(self.display),
             "caution": self.verdict.caution,
         }
-        return _clean(doc)
+        return cast("dict[str, Any]", render_all(_clean(doc), syntax))
 
-    def to_json(self, indent: int | None = 2) -> str:
+    def to_json(self, indent: int | None = 2, syntax: Syntax = "api") -> str:
         """The JSON document."""
-        return json.dumps(self.to_dict(), indent=indent, ensure_ascii=False)
+        return json.dumps(self.to_dict(syntax), indent=indent, ensure_ascii=False)
 
-    def to_text(self) -> str:
+    def to_text(self, syntax: Syntax = "api") -> str:
         from replicheck.report.text import render_text
 
-        return render_text(self.to_dict())
+        return render(render_text(self.to_dict(syntax)), syntax)
 
-    def to_markdown(self) -> str:
+    def to_markdown(self, syntax: Syntax = "api") -> str:
         from replicheck.report.markdown import render_markdown
 
-        return render_markdown(self.to_dict())
+        return render(render_markdown(self.to_dict(syntax)), syntax)
 
-    def to_html(self) -> str:
+    def to_html(self, syntax: Syntax = "api") -> str:
         """The self-contained HTML report (one file: no network, scripts or external fonts)."""
         from replicheck.report.html import render_html
 
-        return render_html(self.to_dict())
+        return render(render_html(self.to_dict(syntax)), syntax)
 
     def _repr_html_(self) -> str:  # Jupyter shows the HTML report
         return self.to_html()

@@ -29,6 +29,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
+from replicheck.advice import render
 from replicheck.words import article
 
 IDENTIFIERS = (
@@ -149,6 +150,8 @@ def problems(rendered: str, fmt: str, doc: Mapping[str, Any]) -> list[Problem]:
         add("repeated", text, m.start(), m.end())
     for start, end in _contradictions(text, doc):
         add("contradiction", text, start, end)
+    for m in re.finditer("⟦[^⟧]*⟧?", text):  # a mention of an option left unrendered
+        add("marker", text, m.start(), m.end())
     return found
 
 
@@ -159,8 +162,8 @@ def proofread(doc: Mapping[str, Any]) -> list[Problem]:
     from replicheck.report.text import render_text
 
     d = dict(doc)
-    return [
-        *problems(render_text(d), "text", doc),
-        *problems(render_markdown(d), "markdown", doc),
-        *problems(render_html(d, figures=False), "html", doc),  # the words, not the images
+    return [  # options named as a Python caller reads them (replicheck.advice)
+        *problems(render(render_text(d), "api"), "text", doc),
+        *problems(render(render_markdown(d), "api"), "markdown", doc),
+        *problems(render(render_html(d, figures=False), "api"), "html", doc),
     ]

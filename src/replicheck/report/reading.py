@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from typing import Any
 
+from replicheck.advice import option
+
 _SHOWN_TEXT = 60
 
 
@@ -97,7 +99,7 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
                 "side by side",
                 "the first table was read; not read: "
                 + "; ".join(str(t) for t in beside)
-                + " (state --range to read another)",
+                + f" (state {option('range')} to read another)",
             )
         )
     filled = lay.get("filled_down") or []
@@ -113,7 +115,8 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
             (
                 "filled down",
                 f"{items}: each empty cell took the value above it, as for a label written "
-                "once per block (turn off with --no-fill-down; name columns with --fill-down)",
+                f"once per block (turn off with {option('fill-down', False)}; name columns with "
+                f"{option('fill-down')})",
             )
         )
     for r in lay.get("reshaped") or []:
@@ -136,7 +139,8 @@ def reading_lines(inp: dict[str, Any]) -> list[tuple[str, str]]:
         text += (
             " (stated)"
             if r["stated"]
-            else " (found because the response is not a column; state the columns with --long)"
+            else f" (found because the response is not a column; state the columns with "
+            f"{option('long')})"
         )
         lines.append(("reshaped", text))
     rows = f"{inp['n_rows']:,} read, {inp['n_rows_used']:,} analysed"

@@ -126,7 +126,7 @@ def _check_entry(pattern: str, spec: dict[str, object], index: str, where: str) 
             spec_path=f"spec index {index}, {where}",
         )
     except InputError as err:
-        msg = str(err)
+        msg = err.message  # options still neutral: the reader's syntax is chosen later
         prefix = f"spec index {index}, {where}"
         raise InputError(msg if prefix in msg else f"{prefix}: {msg}") from None
     return IndexEntry(_normalise_pattern(pattern), spec, where)

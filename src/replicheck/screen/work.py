@@ -13,6 +13,7 @@ from typing import Any
 import pandas as pd
 
 from replicheck.api import audit
+from replicheck.decisions import shown_term
 from replicheck.errors import InputError, SheetChoice
 from replicheck.io import Table, fill_down, read_table
 from replicheck.io.reshape import find_families, reshape_long
@@ -24,15 +25,12 @@ from replicheck.screen.task import Outcome, Task, one_line
 
 def _primary(doc: dict[str, Any]) -> int:
     """The term the verdict rests on: the first with a reported result, else the first."""
-    for i, t in enumerate(doc["terms"]):
-        if t.get("reported_check") is not None:
-            return i
-    return 0
+    return shown_term([t.get("reported_check") is not None for t in doc["terms"]])
 
 
 def outcome_of(report: Report, spec_source: str) -> Outcome:
     """The summary fields of an audit report, with the rendered report."""
-    doc = report.to_dict()
+    doc = report.to_dict(syntax="cli")
     i = _primary(doc)
     term = doc["terms"][i]
     unit = doc["experimental_units"][i]
@@ -51,8 +49,8 @@ def outcome_of(report: Report, spec_source: str) -> Outcome:
         corrected_p=term.get("p_value"),
         icc=clustering.get("icc"),
         design_effect=clustering.get("design_effect"),
-        report_html=report.to_html(),
-        report_json=report.to_json(),
+        report_html=report.to_html(syntax="cli"),
+        report_json=report.to_json(syntax="cli"),
     )
 
 
@@ -139,7 +137,9 @@ def _sheet_by_sheet(task: Task, sheets: tuple[str, ...]) -> Outcome:
         try:
             part = _work(task, name)
         except InputError as err:
-            part = Outcome("error", str(err).replace(task.path, task.name), spec_source=source)
+            part = Outcome(
+                "error", err.render("cli").replace(task.path, task.name), spec_source=source
+            )
         parts.append(replace(part, sheet=name))
     worst = min(parts, key=lambda o: severity(o.status))
     return Outcome(
@@ -160,7 +160,7 @@ def run_task(task: Task) -> Outcome:
     try:
         out = _work(task)
     except InputError as err:  # the row names the file: no need for its full path
-        out = Outcome("error", str(err).replace(task.path, task.name), spec_source=source)
+        out = Outcome("error", err.render("cli").replace(task.path, task.name), spec_source=source)
     except Exception as err:  # a bug in replicheck or a library: one line, the batch goes on
         out = Outcome("internal-error", one_line(err), spec_source=source)
     return replace(out, seconds=time.perf_counter() - start)

@@ -70,6 +70,7 @@ from typing import Any, Protocol
 import numpy as np
 from scipy import linalg
 
+from replicheck.advice import option
 from replicheck.stats import dist
 from replicheck.stats.classic import DesignError
 from replicheck.stats.reml_search import (
@@ -760,7 +761,7 @@ def fit_reml(
             raise DesignError(
                 f"the crossed groupings have {outside} levels outside the largest one, more "
                 f"than the limit of {max_levels} for their REML fit (its work grows as the "
-                "square of that number; --limit crossed-levels=N raises it)"
+                f"square of that number; {option('limit', 'crossed-levels')} raises it)"
             )
         low_rank = algorithm == "low-rank" or (algorithm == "auto" and sum(counts) > LOW_RANK_FROM)
     else:

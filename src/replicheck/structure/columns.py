@@ -37,6 +37,7 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 
+from replicheck.advice import option
 from replicheck.codebook import column_codes
 from replicheck.partitions import is_nested
 from replicheck.structure import evidence as ev
@@ -328,7 +329,7 @@ def treatment_labels(
                     "column-reads-as-treatment-label",
                     f"'{col}' has exactly one level per level of '{alias_of}' and reads as "
                     f"another label of it, so it was not taken as a unit; if '{col}' names "
-                    f"physical units, the design is confounded (state --unit {col})",
+                    f"physical units, the design is confounded (state {option('unit', col)})",
                 )
             )
             continue
@@ -347,7 +348,7 @@ def treatment_labels(
                     f"'{col}' takes one value for each combination of "
                     f"{', '.join(repr(t) for t in treatments)} (a function of the treatments "
                     f"alone), so it was read as a label of the treatment combinations, not a "
-                    f"unit; if each value marks one physical unit, state --unit {col}",
+                    f"unit; if each value marks one physical unit, state {option('unit', col)}",
                 )
             )
             continue
@@ -360,7 +361,7 @@ def treatment_labels(
                     f"'{col}' is 0 in every row of {amount[1]} and only there: a quantity of "
                     f"the treatment '{amount[0]}' (an amount or dose, zero for the control), "
                     f"read as part of it, not a unit; if each value marks one physical unit, "
-                    f"state --unit {col}",
+                    f"state {option('unit', col)}",
                 )
             )
             continue
@@ -402,7 +403,7 @@ def treatment_labels(
                     f"'{col}' takes one value for each level of '{of}' (an attribute of the "
                     f"treatment, such as a dose, a duration or a grouping of its levels), so "
                     f"it was read as part of the treatment, not a unit; if each value marks "
-                    f"one physical unit, state --unit {col}",
+                    f"one physical unit, state {option('unit', col)}",
                 )
             )
             continue

@@ -58,6 +58,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.advice import option
 from replicheck.numbers import p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition
 from replicheck.structure import evidence as ev
@@ -378,7 +379,7 @@ def localise(
         parent = ":".join(chain(parent_of[col]))
         example = data[col].dropna().iloc[0]
         if r.why == "stated":
-            because = "as --unit-labels local says"
+            because = f"as {option('unit-labels', 'local')} says"
         else:
             because = (
                 f"the {col} x {r.parent} cells differ beyond both main effects"
@@ -398,7 +399,7 @@ def localise(
                 f"'{example!s}' of '{col}' appears under more than one) and {because}, so "
                 f"replicheck read each {col} within its {parent} ('{name}') as a distinct "
                 f"unit; if one physical {col} carries the same label everywhere, rerun with "
-                f"--unit-labels global",
+                f"{option('unit-labels', 'global')}",
             )
         )
     if extra:

@@ -47,6 +47,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
+from replicheck.advice import option
 from replicheck.numbers import format_number, p_phrase
 from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
 from replicheck.roles import ColumnRole, Roles, Statement
@@ -527,7 +528,7 @@ def infer_structure(
     from replicheck.structure.hidden.space import coordinate_columns
 
     if unit_labels not in UNIT_LABEL_MODES:
-        raise InputError(f"--unit-labels must be one of {', '.join(UNIT_LABEL_MODES)}")
+        raise InputError(f"{option('unit-labels')} must be one of {', '.join(UNIT_LABEL_MODES)}")
     roles = roles or Roles()
     if stated_unit is not None:
         cols_ = (stated_unit,) if isinstance(stated_unit, str) else tuple(stated_unit)
@@ -1020,8 +1021,8 @@ def _reading_alternatives(
                 f"randomised-block or split-plot design would; but nothing names '{c.block}' "
                 "as a block of plots",
                 f"whether each {c.block} x {term} cell was one plot that received its "
-                f'{term} (state --unit "{c.block}:{term}") or the rows were allocated one by '
-                f"one (state --block {c.block})",
+                f"{term} (state {option('unit', f'{c.block}:{term}')}) or the rows were "
+                f"allocated one by one (state {option('block', c.block)})",
             )
         )
     for r in name_only:
@@ -1042,7 +1043,8 @@ def _reading_alternatives(
                 f"says container, as if numbered afresh within each level ('{r.column}' 1 of "
                 f"every {term}); the data do not show it (cells {p})",
                 f"whether one physical {r.column} carries the same label under every {term} "
-                f"(--unit-labels global) or each {term} had its own (--unit-labels local)",
+                f"({option('unit-labels', 'global')}) or each {term} had its own "
+                f"({option('unit-labels', 'local')})",
             )
         )
     return out
@@ -1185,7 +1187,7 @@ def _cell_readings(
                     f"would; the cells do not differ beyond the {c.block} and treatment "
                     f"effects ({p}), so replicheck took '{unit}' as the unit of "
                     f"'{c.treatment}'; if '{c.treatment}' was applied to whole main plots, "
-                    f'state --unit "{c.block}:{c.treatment}"',
+                    f"state {option('unit', f'{c.block}:{c.treatment}')}",
                 )
             )
         elif (
@@ -1202,8 +1204,8 @@ def _cell_readings(
                     f"average; the cells do not differ beyond the {c.block} and treatment "
                     f"effects ({p}), so replicheck took the rows within each {c.block} as the "
                     f"units of '{c.treatment}' and '{c.block}' as a block; if each cell was one "
-                    f"plot that received its '{c.treatment}', state --unit "
-                    f'"{c.block}:{c.treatment}"',
+                    f"plot that received its '{c.treatment}', state "
+                    f"{option('unit', f'{c.block}:{c.treatment}')}",
                 )
             )
     return out

@@ -66,6 +66,7 @@ import pandas as pd
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 
+from replicheck.advice import option
 from replicheck.codebook import column_codes, first_seen_codes_of, remembered
 from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
@@ -257,7 +258,7 @@ def _read_times(series: pd.Series, dayfirst: bool | None) -> tuple[TimeReading |
             why = (
                 "as asked"
                 if dayfirst is not None
-                else "by default (--dayfirst reads them day-first)"
+                else f"by default ({option('dayfirst', True)} reads them day-first)"
             )
             dates = "date reads" if n_ambiguous == 1 else "dates read"
             note_extra = (
