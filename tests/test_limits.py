@@ -260,7 +260,15 @@ def test_within_block_test_of_a_block_too_large_to_code_densely() -> None:
     assert n * levels > ROBUST_CELLS
     rng = np.random.default_rng(3)
     trt = np.repeat([0, 1, 2], n // 3)
-    term = TermInput("glaze", ("glaze",), trt, ["a", "b", "c"], None, None, False)
+    term = TermInput(
+        term="glaze",
+        factors=("glaze",),
+        codes=trt,
+        labels=["a", "b", "c"],
+        unit=None,
+        unit_name=None,
+        confounded=False,
+    )
     block = np.tile(np.arange(levels), n // levels)
     assert within_block_tests(rng.normal(size=n), [term], {"when": block}) == {}
     small = {"when": block % 20}  # 20 levels: fitted as before

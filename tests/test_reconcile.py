@@ -23,8 +23,26 @@ from replicheck.refit import LABELS, Analysis
 ROWS = Level("rows", "rows", 60, 57, "3 groups")
 TANKS = Level("tank", "units", 12, 9, "3 groups")
 # invented numbers: the row-level F is large, the unit-level one is not
-AS_CLAIMED = Analysis("as_claimed", LABELS["as_claimed"], "feed", "rows", 60, 8.31, (2, 57), 0.0007)
-UNIT_MEANS = Analysis("unit_means", LABELS["unit_means"], "feed", "units", 12, 2.10, (2, 9), 0.18)
+AS_CLAIMED = Analysis(
+    name="as_claimed",
+    label=LABELS["as_claimed"],
+    term="feed",
+    level="rows",
+    n_replicates=60,
+    statistic=8.31,
+    df=(2, 57),
+    p_value=0.0007,
+)
+UNIT_MEANS = Analysis(
+    name="unit_means",
+    label=LABELS["unit_means"],
+    term="feed",
+    level="units",
+    n_replicates=12,
+    statistic=2.10,
+    df=(2, 9),
+    p_value=0.18,
+)
 
 
 def _check(text: str | None) -> Reconciliation:

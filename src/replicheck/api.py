@@ -811,7 +811,15 @@ def audit(
             )
             inputs.append(
                 TermInput(
-                    t.name, t.factors, codes, labels, units, choice.unit, confounded, values, degree
+                    term=t.name,
+                    factors=t.factors,
+                    codes=codes,
+                    labels=labels,
+                    unit=units,
+                    unit_name=choice.unit,
+                    confounded=confounded,
+                    values=values,
+                    degree=degree,
                 )
             )
         strata = {
@@ -915,17 +923,17 @@ def audit(
                 rec = claimed_model_level(ti, completed, rec, tr.get("as_claimed"), c.alpha)
             evidence_terms.append(
                 TermEvidence(
-                    ti.term,
-                    ti.factors,
-                    structure.unit_of(ti.term),
-                    clustering,
-                    tr,
-                    per_level,
-                    i == 0,
-                    rec,
-                    tuple(alternatives.get(ti.term, ())),
-                    slopes.get(ti.term),
-                    ti.numeric,
+                    term=ti.term,
+                    factors=ti.factors,
+                    unit=structure.unit_of(ti.term),
+                    clustering=clustering,
+                    refit=tr,
+                    units_per_level=per_level,
+                    claimed=i == 0,
+                    reconciliation=rec,
+                    alternatives=tuple(alternatives.get(ti.term, ())),
+                    slope=slopes.get(ti.term),
+                    numeric=ti.numeric,
                 )
             )
         primary = evidence_terms[shown_term([t.reconciliation is not None for t in evidence_terms])]

@@ -61,7 +61,17 @@ def rank_tests(y: np.ndarray, t: TermInput, blocks: Mapping[str, np.ndarray]) ->
         v = float(ranks[nz > 0].sum())  # R's V: the sum of the ranks of positive differences
         name: AnalysisName = "signed_rank"
         out.append(
-            Analysis(name, LABELS[name], t.term, "rows", k, v, None, float(r.pvalue), test="rank")
+            Analysis(
+                name=name,
+                label=LABELS[name],
+                term=t.term,
+                level="rows",
+                n_replicates=k,
+                statistic=v,
+                df=None,
+                p_value=float(r.pvalue),
+                test="rank",
+            )
         )
     a, b = y[t.codes == 0], y[t.codes == 1]
     tied = bool(np.unique(y).size < y.size)
@@ -76,14 +86,14 @@ def rank_tests(y: np.ndarray, t: TermInput, blocks: Mapping[str, np.ndarray]) ->
     name = "rank_sum"
     out.append(
         Analysis(
-            name,
-            LABELS[name],
-            t.term,
-            "rows",
-            int(y.size),
-            float(r2.statistic),
-            None,
-            float(r2.pvalue),
+            name=name,
+            label=LABELS[name],
+            term=t.term,
+            level="rows",
+            n_replicates=int(y.size),
+            statistic=float(r2.statistic),
+            df=None,
+            p_value=float(r2.pvalue),
             test="rank",
         )
     )

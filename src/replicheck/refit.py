@@ -70,7 +70,7 @@ from replicheck.stats.strata import MultiStratumAnova, is_balanced_orthogonal, m
 from replicheck.vocab import AnalysisName
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Analysis:
     """One test of one term."""
 
@@ -93,7 +93,7 @@ class Analysis:
         return None if self.p_value is None else bool(self.p_value < alpha)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class TermInput:
     """What the refit needs to know about one term."""
 
@@ -257,10 +257,30 @@ def _plain_test(
         t = float(r.statistic)
         est = None if r.estimate is None else float(r.estimate)
         df = (1.0, float(r.df[0]))
-        return Analysis(name, LABELS[name], term, level, n, t * t, df, float(r.p_value), t, est)
+        return Analysis(
+            name=name,
+            label=LABELS[name],
+            term=term,
+            level=level,
+            n_replicates=n,
+            statistic=t * t,
+            df=df,
+            p_value=float(r.p_value),
+            t_statistic=t,
+            estimate=est,
+        )
     r = oneway_anova(y, groups)
     df = (float(r.df[0]), float(r.df[1]))
-    return Analysis(name, LABELS[name], term, level, n, float(r.statistic), df, float(r.p_value))
+    return Analysis(
+        name=name,
+        label=LABELS[name],
+        term=term,
+        level=level,
+        n_replicates=n,
+        statistic=float(r.statistic),
+        df=df,
+        p_value=float(r.p_value),
+    )
 
 
 def _unit_table(
@@ -348,14 +368,14 @@ def _randomisation_analysis(
     )
     name: AnalysisName = "randomisation"
     return Analysis(
-        name,
-        LABELS[name],
-        t.term,
-        "units",
-        int(t.unit.max()) + 1 if t.unit is not None else 0,
-        r.statistic if np.isfinite(r.statistic) else None,
-        None,
-        r.p_value,
+        name=name,
+        label=LABELS[name],
+        term=t.term,
+        level="units",
+        n_replicates=int(t.unit.max()) + 1 if t.unit is not None else 0,
+        statistic=r.statistic if np.isfinite(r.statistic) else None,
+        df=None,
+        p_value=r.p_value,
         notes=(
             f"{how}; smallest attainable {p_phrase(r.min_attainable_p)}",
             *(
@@ -442,7 +462,15 @@ def _unit_f(
     """A unit-level analysis from an F test result."""
     df = (float(r.df[0]), float(r.df[1]))
     return Analysis(
-        name, label, t.term, "units", n_units, float(r.statistic), df, float(r.p_value), **extra
+        name=name,
+        label=label,
+        term=t.term,
+        level="units",
+        n_replicates=n_units,
+        statistic=float(r.statistic),
+        df=df,
+        p_value=float(r.p_value),
+        **extra,
     )
 
 
@@ -596,7 +624,15 @@ def _ols_term_tests(
     def untested(t: TermInput, why: str) -> Analysis:
         n = int(y.size)
         return Analysis(
-            "as_claimed", LABELS["as_claimed"], t.term, "rows", n, None, None, None, notes=(why,)
+            name="as_claimed",
+            label=LABELS["as_claimed"],
+            term=t.term,
+            level="rows",
+            n_replicates=n,
+            statistic=None,
+            df=None,
+            p_value=None,
+            notes=(why,),
         )
 
     if df_res < 1:  # as many parameters as rows: no residual to test against
@@ -643,14 +679,14 @@ def _ols_term_tests(
         slope = q == 1 and t.numeric
         out.append(
             Analysis(
-                name,
-                LABELS[name],
-                t.term,
-                "rows",
-                int(y.size),
-                f,
-                (float(q), float(df_res)),
-                p,
+                name=name,
+                label=LABELS[name],
+                term=t.term,
+                level="rows",
+                n_replicates=int(y.size),
+                statistic=f,
+                df=(float(q), float(df_res)),
+                p_value=p,
                 t_statistic=float(np.sign(lb[0]) * np.sqrt(f)) if slope else None,
                 estimate=float(lb[0]) if slope else None,
                 notes=notes,
@@ -734,14 +770,14 @@ def _strata_analysis(table: MultiStratumAnova, t: TermInput, n: int) -> Analysis
         r.f_statistic is not None and r.error_df is not None and bool(np.isfinite(r.f_statistic))
     )  # an error stratum with no variation at all (yes/no data) gives no test
     return Analysis(
-        name,
-        LABELS[name],
-        t.term,
-        level,
-        n_rep,
-        float(r.f_statistic) if testable and r.f_statistic is not None else None,
-        (float(r.df), float(r.error_df)) if testable and r.error_df is not None else None,
-        float(r.p_value) if testable and r.p_value is not None else None,
+        name=name,
+        label=LABELS[name],
+        term=t.term,
+        level=level,
+        n_replicates=n_rep,
+        statistic=float(r.f_statistic) if testable and r.f_statistic is not None else None,
+        df=(float(r.df), float(r.error_df)) if testable and r.error_df is not None else None,
+        p_value=float(r.p_value) if testable and r.p_value is not None else None,
         notes=()
         if testable
         else (
@@ -826,14 +862,14 @@ def _mixed_analysis(
         t_stat = float(np.sign(estimate) * np.sqrt(test.statistic))
     name: AnalysisName = "mixed_model"
     return Analysis(
-        name,
-        LABELS[name],
-        t.term,
-        "units" if rname is not None else "rows",
-        n_rep,
-        float(test.statistic),
-        (float(test.df_num), float(test.df_den)),
-        float(test.p_value),
+        name=name,
+        label=LABELS[name],
+        term=t.term,
+        level="units" if rname is not None else "rows",
+        n_replicates=n_rep,
+        statistic=float(test.statistic),
+        df=(float(test.df_num), float(test.df_den)),
+        p_value=float(test.p_value),
         t_statistic=t_stat,
         estimate=estimate,
         notes=tuple(notes),
@@ -920,7 +956,17 @@ def _claimed_glm(
     except DesignError as err:
         why = f"the claimed {what} could not be fitted: {err}"
         return [
-            Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
+            Analysis(
+                name="as_claimed",
+                label=label,
+                term=t.term,
+                level="rows",
+                n_replicates=n,
+                statistic=None,
+                df=None,
+                p_value=None,
+                notes=(why,),
+            )
             for t in terms
         ], {}
     claimed: list[Analysis] = []
@@ -930,20 +976,30 @@ def _claimed_glm(
         if g is None:
             why = "aliased with other terms of the claimed model: not estimable there"
             claimed.append(
-                Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
+                Analysis(
+                    name="as_claimed",
+                    label=label,
+                    term=t.term,
+                    level="rows",
+                    n_replicates=n,
+                    statistic=None,
+                    df=None,
+                    p_value=None,
+                    notes=(why,),
+                )
             )
             continue
         claimed.append(_wald_analysis(label, t, n, g, family, ()))
         name: AnalysisName = "likelihood_ratio"
         ratio[t.term] = Analysis(
-            name,
-            f"as claimed: {what}, every row a replicate (likelihood-ratio test)",
-            t.term,
-            "rows",
-            n,
-            g.lr_chi2,
-            (float(g.df),),
-            g.lr_p,
+            name=name,
+            label=f"as claimed: {what}, every row a replicate (likelihood-ratio test)",
+            term=t.term,
+            level="rows",
+            n_replicates=n,
+            statistic=g.lr_chi2,
+            df=(float(g.df),),
+            p_value=g.lr_p,
             test="chi2",
         )
     return claimed, ratio
@@ -979,7 +1035,17 @@ def _claimed_glmm(
     except DesignError as err:
         why = f"the claimed mixed {what} could not be fitted: {err}"
         return [
-            Analysis("as_claimed", label, t.term, "rows", n, None, None, None, notes=(why,))
+            Analysis(
+                name="as_claimed",
+                label=label,
+                term=t.term,
+                level="rows",
+                n_replicates=n,
+                statistic=None,
+                df=None,
+                p_value=None,
+                notes=(why,),
+            )
             for t in terms
         ]
     return [_wald_analysis(label, t, n, tests[t.term], family, notes) for t in terms]
@@ -998,14 +1064,14 @@ def _wald_analysis(
             f"{g.ratio_ci[0]:.4g} to {g.ratio_ci[1]:.4g})",
         )
     return Analysis(
-        "as_claimed",
-        label,
-        t.term,
-        "rows",
-        n,
-        g.wald_chi2,
-        (float(g.df),),
-        g.wald_p,
+        name="as_claimed",
+        label=label,
+        term=t.term,
+        level="rows",
+        n_replicates=n,
+        statistic=g.wald_chi2,
+        df=(float(g.df),),
+        p_value=g.wald_p,
         t_statistic=g.z,
         estimate=g.coefficient,
         notes=notes,
@@ -1028,14 +1094,14 @@ def _row_chi2(t: TermInput, y: np.ndarray) -> Analysis:
     r = pearson_chi2(y, t.codes)
     name: AnalysisName = "as_claimed"
     return Analysis(
-        name,
-        "as claimed: every row a replicate (Pearson chi-squared)",
-        t.term,
-        "rows",
-        int(y.size),
-        float(r.statistic),
-        (float(r.df[0]),),
-        float(r.p_value),
+        name=name,
+        label="as claimed: every row a replicate (Pearson chi-squared)",
+        term=t.term,
+        level="rows",
+        n_replicates=int(y.size),
+        statistic=float(r.statistic),
+        df=(float(r.df[0]),),
+        p_value=float(r.p_value),
         test="chi2",
     )
 
@@ -1104,7 +1170,17 @@ def _bootstrap_settled(t: TermInput) -> bool:
 
 def _untested(name: AnalysisName, t: TermInput, why: str) -> Analysis:
     n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
-    return Analysis(name, LABELS[name], t.term, "units", n_rep, None, None, None, notes=(why,))
+    return Analysis(
+        name=name,
+        label=LABELS[name],
+        term=t.term,
+        level="units",
+        n_replicates=n_rep,
+        statistic=None,
+        df=None,
+        p_value=None,
+        notes=(why,),
+    )
 
 
 def _cross_checks(
@@ -1143,14 +1219,14 @@ def _cross_checks(
     ) -> None:
         out.append(
             Analysis(
-                name,
-                LABELS[name],
-                t.term,
-                "units",
-                n_units,
-                stat,
-                df,
-                p,
+                name=name,
+                label=LABELS[name],
+                term=t.term,
+                level="units",
+                n_replicates=n_units,
+                statistic=stat,
+                df=df,
+                p_value=p,
                 t_statistic=t_statistic,
                 estimate=estimate,
                 notes=notes,
@@ -1355,14 +1431,14 @@ def refit(
             name: AnalysisName = "no_test"
             analyses.append(
                 Analysis(
-                    name,
-                    LABELS[name],
-                    t.term,
-                    "units",
-                    len(t.labels),
-                    None,
-                    None,
-                    None,
+                    name=name,
+                    label=LABELS[name],
+                    term=t.term,
+                    level="units",
+                    n_replicates=len(t.labels),
+                    statistic=None,
+                    df=None,
+                    p_value=None,
                     notes=("the term and its unit cannot be separated, so no p-value is given",),
                 )
             )

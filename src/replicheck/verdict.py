@@ -62,7 +62,7 @@ class AlternativeEvidence:
         return self.refit.get(self.refit.corrected or "")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class TermEvidence:
     """What the audit found for one term."""
 
