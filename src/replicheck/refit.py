@@ -623,17 +623,7 @@ def _ols_term_tests(
 
     def untested(t: TermInput, why: str) -> Analysis:
         n = int(y.size)
-        return Analysis(
-            name="as_claimed",
-            label=LABELS["as_claimed"],
-            term=t.term,
-            level="rows",
-            n_replicates=n,
-            statistic=None,
-            df=None,
-            p_value=None,
-            notes=(why,),
-        )
+        return _without_test("as_claimed", LABELS["as_claimed"], t.term, "rows", n, why)
 
     if df_res < 1:  # as many parameters as rows: no residual to test against
         why = "the claimed model has as many parameters as rows: no residual, no test"
@@ -955,39 +945,14 @@ def _claimed_glm(
         tests = glm_term_tests(y, X, index, family)
     except DesignError as err:
         why = f"the claimed {what} could not be fitted: {err}"
-        return [
-            Analysis(
-                name="as_claimed",
-                label=label,
-                term=t.term,
-                level="rows",
-                n_replicates=n,
-                statistic=None,
-                df=None,
-                p_value=None,
-                notes=(why,),
-            )
-            for t in terms
-        ], {}
+        return [_without_test("as_claimed", label, t.term, "rows", n, why) for t in terms], {}
     claimed: list[Analysis] = []
     ratio: dict[str, Analysis] = {}
     for t in terms:
         g = tests.get(t.term)
         if g is None:
             why = "aliased with other terms of the claimed model: not estimable there"
-            claimed.append(
-                Analysis(
-                    name="as_claimed",
-                    label=label,
-                    term=t.term,
-                    level="rows",
-                    n_replicates=n,
-                    statistic=None,
-                    df=None,
-                    p_value=None,
-                    notes=(why,),
-                )
-            )
+            claimed.append(_without_test("as_claimed", label, t.term, "rows", n, why))
             continue
         claimed.append(_wald_analysis(label, t, n, g, family, ()))
         name: AnalysisName = "likelihood_ratio"
@@ -1034,20 +999,7 @@ def _claimed_glmm(
         tests = glmm_term_tests(fit, index)
     except DesignError as err:
         why = f"the claimed mixed {what} could not be fitted: {err}"
-        return [
-            Analysis(
-                name="as_claimed",
-                label=label,
-                term=t.term,
-                level="rows",
-                n_replicates=n,
-                statistic=None,
-                df=None,
-                p_value=None,
-                notes=(why,),
-            )
-            for t in terms
-        ]
+        return [_without_test("as_claimed", label, t.term, "rows", n, why) for t in terms]
     return [_wald_analysis(label, t, n, tests[t.term], family, notes) for t in terms]
 
 
@@ -1168,19 +1120,26 @@ def _bootstrap_settled(t: TermInput) -> bool:
     return int(units_per_level(t.unit, t.codes, k).min()) >= BOOTSTRAP_SETTLED_UNITS
 
 
-def _untested(name: AnalysisName, t: TermInput, why: str) -> Analysis:
-    n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
+def _without_test(
+    name: AnalysisName, label: str, term: str, level: str, n_replicates: int, why: str
+) -> Analysis:
+    """An analysis that gives no test, and why (its statistic, df and p are None)."""
     return Analysis(
         name=name,
-        label=LABELS[name],
-        term=t.term,
-        level="units",
-        n_replicates=n_rep,
+        label=label,
+        term=term,
+        level=level,
+        n_replicates=n_replicates,
         statistic=None,
         df=None,
         p_value=None,
         notes=(why,),
     )
+
+
+def _untested(name: AnalysisName, t: TermInput, why: str) -> Analysis:
+    n_rep = int(t.unit.max()) + 1 if t.unit is not None else 0
+    return _without_test(name, LABELS[name], t.term, "units", n_rep, why)
 
 
 def _cross_checks(
@@ -1430,16 +1389,13 @@ def refit(
         if t.confounded:
             name: AnalysisName = "no_test"
             analyses.append(
-                Analysis(
-                    name=name,
-                    label=LABELS[name],
-                    term=t.term,
-                    level="units",
-                    n_replicates=len(t.labels),
-                    statistic=None,
-                    df=None,
-                    p_value=None,
-                    notes=("the term and its unit cannot be separated, so no p-value is given",),
+                _without_test(
+                    name,
+                    LABELS[name],
+                    t.term,
+                    "units",
+                    len(t.labels),
+                    "the term and its unit cannot be separated, so no p-value is given",
                 )
             )
             none = verdict_method(MethodRegime(kind=kind, has_unit=False, confounded=True))
