@@ -43,7 +43,7 @@ from replicheck.io import (
 from replicheck.io.columns import yes_no_coding
 from replicheck.io.reshape import find_families, reshape_long
 from replicheck.numbers import format_number
-from replicheck.partitions import same_partition, units_per_level
+from replicheck.partitions import group_means, same_partition, units_per_level
 from replicheck.random_terms import judged_groupings, slope_terms
 from replicheck.ranks import rank_tests
 from replicheck.reconcile import Level, claimed_model_level, reconcile
@@ -1069,11 +1069,8 @@ def _needs(
         cl = te.clustering
         if cl is None or ti.unit is None:
             continue
-        n_units = int(ti.unit.max()) + 1
-        means = np.bincount(ti.unit, weights=y, minlength=n_units) / np.bincount(
-            ti.unit, minlength=n_units
-        )
-        level = np.zeros(n_units, dtype=np.int64)
+        means, _ = group_means(ti.unit, y)
+        level = np.zeros(means.size, dtype=np.int64)
         level[ti.unit] = ti.codes
         k = len(ti.labels)
         if effect is None:

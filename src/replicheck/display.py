@@ -27,6 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from replicheck.partitions import group_means
 from replicheck.stats import dist
 
 MAX_POINTS = 60  # observations drawn per unit (display only)
@@ -287,9 +288,8 @@ def effect_intervals(
         corrected = [None] * (k - 1)
         corrected_method = "no unit-means interval: the levels vary within units"
     else:
-        g = int(unit_codes.max()) + 1
-        sizes = np.bincount(unit_codes, minlength=g)
-        means = np.bincount(unit_codes, weights=y, minlength=g) / sizes
+        means, _ = group_means(unit_codes, y)
+        g = means.size
         unit_level = np.zeros(g, dtype=np.int64)
         unit_level[unit_codes] = level_codes
         corrected = _pooled_intervals(means, unit_level, k, confidence)

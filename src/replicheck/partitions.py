@@ -76,6 +76,18 @@ def same_partition(a: np.ndarray, b: np.ndarray) -> bool:
     return int(a.max()) == int(b.max()) and is_nested(a, b)
 
 
+def group_means(codes: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The mean of ``values`` in each group of ``codes`` (0..k-1, every group present),
+    and the groups' sizes: the one home for unit means.
+
+    >>> group_means(np.array([0, 0, 1]), np.array([1.0, 3.0, 5.0]))
+    (array([2., 5.]), array([2, 1]))
+    """
+    k = int(codes.max()) + 1
+    sizes = np.bincount(codes, minlength=k)
+    return np.bincount(codes, weights=values, minlength=k) / sizes, sizes
+
+
 def units_per_level(unit: np.ndarray, level: np.ndarray, k: int) -> np.ndarray:
     """Number of distinct ``unit`` codes among the rows of each ``level`` code ``0..k-1``."""
     pairs = pd.unique(unit.astype(np.int64, copy=False) * np.int64(max(k, 1)) + level)

@@ -43,7 +43,13 @@ import numpy as np
 
 from replicheck.decisions import MethodRegime, verdict_method
 from replicheck.numbers import count_text, format_number, p_phrase
-from replicheck.partitions import dense_codes, is_nested, same_partition, units_per_level
+from replicheck.partitions import (
+    dense_codes,
+    group_means,
+    is_nested,
+    same_partition,
+    units_per_level,
+)
 from replicheck.stats import dist
 from replicheck.stats.classic import (
     DesignError,
@@ -288,10 +294,8 @@ def _unit_table(
 ) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
     """Unit means, the term level of each unit, and each block that holds whole units."""
     assert t.unit is not None
-    n_units = int(t.unit.max()) + 1
-    means = np.bincount(t.unit, weights=y, minlength=n_units) / np.bincount(
-        t.unit, minlength=n_units
-    )
+    means, _ = group_means(t.unit, y)
+    n_units = means.size
     level = np.zeros(n_units, dtype=np.int64)
     level[t.unit] = t.codes
     unit_blocks = []
@@ -306,10 +310,7 @@ def _unit_table(
 
 def _per_unit(unit: np.ndarray, values: np.ndarray) -> np.ndarray:
     """The mean of ``values`` in each unit (the value itself when constant within units)."""
-    n_units = int(unit.max()) + 1
-    return np.bincount(unit, weights=values, minlength=n_units) / np.bincount(
-        unit, minlength=n_units
-    )
+    return group_means(unit, values)[0]
 
 
 def unit_covariates(t: TermInput, terms: Sequence[TermInput]) -> dict[str, np.ndarray]:
@@ -1082,9 +1083,8 @@ def _canonical_units(unit: np.ndarray, y: np.ndarray) -> np.ndarray:
     however the rows are ordered and under an affine change of the response
     (as for the randomisation test). Exact ties keep the given order.
     """
-    n_units = int(unit.max()) + 1
-    sizes = np.bincount(unit, minlength=n_units)
-    means = np.bincount(unit, weights=y, minlength=n_units) / sizes
+    means, sizes = group_means(unit, y)
+    n_units = means.size
     spread = float(np.std(y)) or 1.0
     distance = np.round(np.abs(means - y.mean()) / spread, 12)
     order = np.lexsort((sizes, distance))
