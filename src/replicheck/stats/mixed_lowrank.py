@@ -61,7 +61,7 @@ order as the forward error of the dense Cholesky solve with ``N``
 checks this path equal to the dense one to 1e-6 on designs from balanced to
 unbalanced, with three groupings, components at the boundary and a residual
 variance about 10^5 times smaller than a grouping's, and against lme4 on
-lme4::InstEval (2,972 students crossed with 1,128 lecturers).
+lme4::InstEval (2,972 students crossed with 1,128 teachers).
 """
 
 from __future__ import annotations
