@@ -274,4 +274,14 @@ def test_stage_callback_names_every_stage_once_in_order(ratpup) -> None:  # type
     # the stage names documented for audit(stage=...) (and timed in Report.seconds)
     seen: list[str] = []
     audit(ratpup, response="weight", treatment="Treatment", stage=seen.append)
-    assert seen == ["claim", "read", "hidden", "structure", "refit", "clustering", "report data"]
+    assert seen == [
+        "claim",
+        "read",
+        "hidden",
+        "structure",
+        "refit",
+        "clustering",
+        "reconcile",
+        "verdict",
+        "report data",
+    ]

@@ -179,7 +179,7 @@ def test_an_internal_error_names_the_stage(
     def broken(*args: object, **kwargs: object) -> None:
         raise RuntimeError("a stand-in bug\nover two lines")
 
-    monkeypatch.setattr(replicheck.api, "refit", broken)
+    monkeypatch.setattr(replicheck.api, "refit_design", broken)
     monkeypatch.delenv("REPLICHECK_DEBUG", raising=False)
     data = _table(tmp_path)
     with pytest.raises(SystemExit) as stop:

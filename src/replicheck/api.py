@@ -1,13 +1,43 @@
-"""The audit: read -> claim -> structure -> clustering -> refit -> verdict -> report.
+"""The audit: the stages of :func:`audit`, in the order they run.
 
-:func:`audit` is the one entry point used by the command line and by Python
-callers. Each stage is a pure function of the previous stages' results.
+Each stage is a pure function of earlier stages' results (the input is never
+changed); each gives a frozen result object:
+
+1. **claim** (:func:`make_claim`): the options, a spec (given, or found beside
+   the data file) and the reported results -> :class:`replicheck.claim.Claim`.
+2. **read** (:func:`replicheck.io.read_table`, then
+   :func:`replicheck.prepare.prepare`): the file or DataFrame -> a ``Table`` as
+   read -> :class:`replicheck.prepare.Prepared`: the analysis rows, the model's
+   terms, the claim with its names as the data spell them.
+3. **hidden** (:func:`replicheck.structure.hidden.scan_hidden`): the analysis
+   rows -> ``HiddenScan``, the groupings no column names.
+4. **structure** (:func:`replicheck.structure.stage.read_design`): rows, terms,
+   stated roles and hidden groupings -> ``DesignReading``: the unit of every
+   term, alternative readings, strata, the rows with a recorded unit.
+5. **refit** (:func:`replicheck.refit_stage.refit_design`): rows, terms and
+   units -> ``RefitStage``: every analysis of every term, also with each
+   alternative unit, and a claimed mixed model's omitted random slopes.
+6. **clustering** (:func:`replicheck.clustering.cluster_terms`): the units and
+   the refit's REML components -> ``TermClustering`` per term (ICC, design
+   effect, effective n).
+7. **reconcile** (:func:`replicheck.reconcile.reconcile_terms`): the reported
+   results and the refit's analyses -> ``Reconciled``: the analysis and level
+   each reported result reproduces.
+8. **verdict** (:func:`replicheck.verdict.decide`): all of the above as
+   ``Evidence`` -> ``Verdict``: the findings of the registered rules, status.
+9. **report data** (:func:`replicheck.needs.needs_of`,
+   :func:`replicheck.display.display_data`): the design needs and the
+   picture's data, then the :class:`replicheck.report.model.Report`.
+
+Where new work goes: a column role is stated in :mod:`replicheck.roles` and
+read by the structure stage; a claim syntax is parsed in :mod:`replicheck.claim`;
+a rule is registered in :mod:`replicheck.verdict` (and documented in
+docs/rules.md); a decision several stages need goes in :mod:`replicheck.decisions`.
 """
 
 from __future__ import annotations
 
 import os
-import re
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import replace
@@ -16,57 +46,22 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from replicheck.advice import option
-from replicheck.claim import (
-    Claim,
-    ReportedResult,
-    build_claim,
-    load_spec,
-    match_term,
-    spec_beside,
-)
-from replicheck.clustering import measure_clustering
-from replicheck.codebook import allow_for, shared_codes
-from replicheck.decisions import measured_term, shown_term
+from replicheck.claim import Claim, build_claim, load_spec, spec_beside
+from replicheck.clustering import TermClustering, cluster_terms
+from replicheck.codebook import shared_codes
+from replicheck.decisions import shown_term
 from replicheck.defaults import DEFAULT_SEED
-from replicheck.display import display_data
+from replicheck.display import Display, display_data
 from replicheck.errors import InputError
-from replicheck.formula import Transform, rename_columns
-from replicheck.io import (
-    ReadOptions,
-    Table,
-    fill_down,
-    numeric_column,
-    read_table,
-    resolve_column,
-)
-from replicheck.io.columns import yes_no_coding
-from replicheck.io.reshape import find_families, reshape_long
-from replicheck.numbers import format_number
-from replicheck.partitions import group_means, same_partition, units_per_level
-from replicheck.random_terms import judged_groupings, slope_terms
-from replicheck.ranks import rank_tests
-from replicheck.reconcile import Level, claimed_model_level, reconcile
-from replicheck.refit import Analysis, TermInput, design_matrix, refit, within_block_tests
+from replicheck.io import ReadOptions, read_table, resolve_column
+from replicheck.needs import needs_of
+from replicheck.prepare import Prepared, prepare
+from replicheck.reconcile import Reconciled, reconcile_terms
+from replicheck.refit_stage import RefitStage, refit_design
 from replicheck.report.model import Report
-from replicheck.roles import Roles, Statement
-from replicheck.slopes import omitted_slopes
-from replicheck.stats.discrete import ResponseKind
-from replicheck.stats.power import DesignNeeds, design_needs, stated_effect_means
-from replicheck.structure.hidden import HiddenScan, derived_column, scan_hidden
-from replicheck.structure.names import name_hint
-from replicheck.structure.numbers import NumberReading, read_numbers, slope_units
-from replicheck.structure.relations import codes_of, group_codes
-from replicheck.structure.terms import Term, drop_unreplicated, interaction_levels, model_terms
-from replicheck.structure.units import (
-    Structure,
-    UnitChoice,
-    complete_codes,
-    infer_structure,
-    unit_codes,
-)
-from replicheck.trials import claimed_kind, expand_trials
-from replicheck.verdict import AlternativeEvidence, Evidence, TermEvidence, decide
+from replicheck.structure.hidden import HiddenScan, scan_hidden
+from replicheck.structure.stage import DesignReading, read_design
+from replicheck.verdict import Evidence, TermEvidence, decide
 
 
 def make_claim(
@@ -120,354 +115,6 @@ def make_claim(
         limits=limits,
         reading=reading,
     )
-
-
-def _filled(table: Table, c: Claim) -> Table:
-    """The table with groupings written once per block filled down (never the response)."""
-    reading = c.reading
-    if not reading.fill_down and not reading.find_fill:
-        return table  # (merged cells are filled while reading: a sheet shows them so)
-    columns = table.columns
-    protect = {
-        col
-        for col in columns
-        if col == c.response or re.search(rf"(?<![\w.]){re.escape(col)}(?![\w.])", c.response)
-    }
-    protect |= {col for f in find_families(table.data) for col in f.columns}
-    stated = tuple(resolve_column(columns, name, "fill-down") for name in reading.fill_down)
-    data, filled = fill_down(table.data, protect=protect, stated=stated, detect=reading.find_fill)
-    if not filled:
-        return table
-    merged = table.layout.filled  # filled from a sheet's merged cells while reading
-    return replace(table, data=data, layout=replace(table.layout, filled=(*merged, *filled)))
-
-
-def _long(table: Table, c: Claim) -> Table:
-    """The table in long form when a wide family of columns holds the response."""
-    reading = c.reading
-    ids = tuple(resolve_column(table.columns, name, "identifier") for name in reading.ids)
-    if ids and not reading.long and c.response in table.columns:
-        raise InputError(
-            f"an identifier column is given ({option('id')}) but no wide columns to reshape: "
-            f"name them with {option('long')}"
-        )
-    data, done = reshape_long(table.data, response=c.response, patterns=reading.long, ids=ids)
-    if not done:
-        return table
-    return replace(table, data=data, layout=replace(table.layout, reshaped=done))
-
-
-def _resolve_statement(
-    cols: Sequence[str], text: str, parts: tuple[str, ...], role: str
-) -> tuple[str, ...]:
-    """A stated role's columns as the data spell them: one column, or 'a:b' for several."""
-    try:
-        return (resolve_column(cols, text, role),)
-    except InputError:
-        if len(parts) < 2:
-            raise
-    return tuple(resolve_column(cols, part, role) for part in parts)
-
-
-def _resolve(table: Table, claim: Claim) -> Claim:
-    """Column names as the data spell them, in the response, treatments, formula and roles."""
-    cols = table.columns
-    response = resolve_column(cols, claim.response, "response")
-    treatments = tuple(resolve_column(cols, t, "treatment") for t in claim.treatments)
-    if len(set(treatments)) != len(treatments):
-        raise InputError(f"the same column is named twice as a treatment: {', '.join(treatments)}")
-    if response in treatments:
-        raise InputError(f"column '{response}' cannot be both the response and a treatment")
-    statements = []
-    for st in claim.roles.statements:
-        columns = _resolve_statement(cols, st.text, st.columns, st.role)
-        in_model = len(columns) == 1 and columns[0] in treatments and st.role != "covariate"
-        if response in columns or in_model:
-            raise InputError(
-                f"'{st.text}' cannot be a {st.role}: it is the response or a treatment column"
-            )
-        statements.append(replace(st, columns=columns))
-    roles = Roles(tuple(statements))
-    seen: dict[str, str] = {}
-    for st in roles.statements:
-        if len(st.columns) == 1:
-            col = st.columns[0]
-            if seen.get(col, st.role) != st.role:
-                raise InputError(
-                    f"column '{col}' is stated both as {seen[col]} and as {st.role}: give each "
-                    "column one role"
-                )
-            seen[col] = st.role
-    formula = claim.formula
-    if formula is not None:
-        mapping = {claim.response: response}
-        mapping.update(dict(zip(claim.treatments, treatments, strict=True)))
-        for g in formula.random:
-            for col in g:
-                if col not in mapping:
-                    mapping[col] = resolve_column(cols, col, "random-effect grouping")
-        if formula.trials is not None:
-            mapping[formula.trials[1]] = resolve_column(cols, formula.trials[1], "cbind() column")
-        for s in formula.slopes:
-            for col in (*s.grouping, *s.effects):
-                if col not in mapping:
-                    mapping[col] = resolve_column(cols, col, "random-effect column")
-        formula = rename_columns(formula, mapping)
-    return replace(claim, response=response, treatments=treatments, roles=roles, formula=formula)
-
-
-def _formula_terms(claim: Claim, frame: pd.DataFrame) -> tuple[list[Term], list[str]]:
-    """Model terms of a formula, and the factors read as blocks rather than treatments.
-
-    A factor of the formula is a block of the design (replicheck puts it in the
-    random structure, and the claimed row-level model keeps it as a fixed
-    effect) when it is stated as a block, when it is part of a stated unit
-    together with another factor (``B`` in a stated whole plot ``B:V``), or
-    when it enters only as a main effect, beside at least one other factor,
-    and its name says block, place, unit or subject (not time: periods and
-    days are usually fixed effects of a claimed model).
-    """
-    assert claim.formula is not None
-    in_interaction = {f for t in claim.formula.terms if len(t) > 1 for f in t}
-    stated_blocks = set(claim.roles.columns("block"))
-    unit_parts = {
-        f
-        for s in claim.roles.units
-        if len(s.columns) > 1
-        for f in s.columns
-        if any(g != f and g in claim.treatments for g in s.columns)
-    }
-    # a number the formula fits with a slope (a transform of one, or a quantity) is never
-    # a block by its name
-    quantities = {t.name for t in claim.formula.transforms} | {
-        r.column
-        for r in read_numbers(frame, [f for f in claim.treatments if f in frame.columns])
-        if r.slope
-    }
-    named = {
-        f
-        for f in claim.treatments
-        if f not in in_interaction
-        and f not in quantities
-        and name_hint(f).suggests_unit
-        and name_hint(f).kind != "time"
-        and len(claim.treatments) > 1
-    }
-    factors = set(claim.treatments)
-    blocks = [
-        f
-        for f in claim.treatments
-        if f in stated_blocks or (f in unit_parts and f not in in_interaction) or f in named
-    ]
-    if len(blocks) == len(factors):
-        blocks = []
-    terms = [
-        Term(":".join(t), tuple(t)) for t in claim.formula.terms if not any(f in blocks for f in t)
-    ]
-    return terms, blocks
-
-
-def _transformed(table: Table, transforms: Sequence[Transform]) -> Table:
-    """The table with a column for each transformed term of the formula (``log(dose)``).
-
-    The transform must be defined wherever the column has a value (a log of a
-    dose of 0 is not): else one line saying where it is not.
-    """
-    data = table.data.copy()
-    for t in transforms:
-        if t.name in data.columns:
-            continue
-        x = numeric_column(table, t.column, "column").to_numpy(dtype=float)
-        values = t.apply(x)
-        bad = int(np.sum(np.isfinite(x) & ~np.isfinite(values)))
-        if bad:
-            raise InputError(
-                f"{t.name} is undefined for {bad} rows of the data (e.g. a logarithm of 0 or "
-                f"of a negative value): transform '{t.column}' in the file, e.g. log(x + 1)"
-            )
-        data[t.name] = values
-    return replace(table, data=data)
-
-
-def _claimed_covariates(claim: Claim, data: pd.DataFrame) -> list[str]:
-    """The covariates of a claimed analysis of covariance given without a formula.
-
-    When a reported result says the analysis was adjusted for covariates
-    ("ANCOVA with baseline", "adjusted for body weight"), the stated
-    covariates enter the model with one slope each, and so do numeric
-    columns named as whole words in that text (not the response, a treatment
-    or a stated grouping). Otherwise none: a stated covariate only keeps a
-    column from being read as a grouping.
-    """
-    results = [r for r in (claim.reported, *(r for _, r in claim.reported_terms)) if r]
-    adjusted = [r.text for r in results if r.adjusted]
-    if not adjusted:
-        return []
-    taken = {claim.response, *claim.treatments}
-    for role in ("unit", "block", "within", "ignore"):
-        taken |= set(claim.roles.columns(role))
-    out = [c for c in claim.roles.columns("covariate") if c not in taken]
-    for col in data.columns:
-        if col in taken or col in out or not pd.api.types.is_numeric_dtype(data[col]):
-            continue
-        word = re.compile(rf"(?<![\w.]){re.escape(str(col))}(?![\w.])", re.I)
-        if any(word.search(t) for t in adjusted):
-            out.append(col)
-    return out
-
-
-def _unit_columns(structure: Structure, terms: Sequence[Term], frame: pd.DataFrame) -> list[str]:
-    """The recorded columns that identify the experimental units of the terms."""
-    out: list[str] = []
-    for t in terms:
-        choice = structure.unit_of(t.name)
-        if choice.unit is None or choice.relation == "confounded":
-            continue
-        out += [col for col in choice.columns if col in frame.columns and col not in out]
-    return [col for col in out if col not in {t.name for t in terms}]
-
-
-def _analysis_frame(table: Table, claim: Claim) -> pd.DataFrame:
-    y = numeric_column(table, claim.response, "response")
-    frame = table.data.copy()
-    frame[claim.response] = y
-    keep = frame[claim.response].notna()
-    for t in claim.treatments:
-        keep &= frame[t].notna()
-    frame = frame[keep]
-    if frame.empty:
-        raise InputError("no row has both a response value and every treatment value")
-    if frame[claim.response].nunique() < 2:
-        raise InputError("response has the same value in every row; nothing to test")
-    for col in dict.fromkeys([*claim.treatments, *claim.roles.columns("covariate")]):
-        if col in frame.columns and pd.api.types.is_numeric_dtype(frame[col]):
-            values = frame[col].to_numpy(dtype=float)
-            bad = int(np.sum(np.isinf(values)))
-            if bad:
-                rows = "1 row" if bad == 1 else f"{bad} rows"
-                raise InputError(
-                    f"column '{col}' of the model has infinite values in {rows}: "
-                    f"correct them or mark them missing ({option('na')})"
-                )
-    for t in claim.treatments:
-        if frame[t].nunique() < 2:
-            only = frame[t].iloc[0]
-            raise InputError(
-                f"treatment column '{t}' has a single level ({only!s}) among rows with a "
-                f"response: nothing to compare"
-            )
-    return frame
-
-
-EXTREME_EXPONENT = 300  # about 1e90 or 1e-90: squares and sums of squares would overflow
-
-
-def _rescaled(frame: pd.DataFrame, response: str) -> tuple[pd.DataFrame, int]:
-    """The frame with the response (or another numeric column) multiplied by an exact
-    power of two when its spread is so large or so small that squares would overflow or
-    vanish, and the exponent used.
-
-    Tests, p-values and ICCs do not depend on the response's scale; the report says in
-    which units its means and variances are then shown.
-    """
-    y = frame[response].to_numpy(dtype=float)
-    present = y[np.isfinite(y)]
-    spread = float(np.max(np.abs(present - np.median(present)))) if present.size else 0.0
-    if spread == 0.0 or not np.isfinite(spread):
-        return frame, 0
-    exponent = int(np.floor(np.log2(spread)))
-    if abs(exponent) < EXTREME_EXPONENT:
-        return frame, 0
-    frame = frame.copy()
-    frame[response] = np.ldexp(y, -exponent)
-    return frame, exponent
-
-
-def _check_size(frame: pd.DataFrame, claim: Claim, terms: Sequence[Term], slopes: set[str]) -> None:
-    """The claimed model within the limits: levels of each factor, fixed-effect parameters."""
-    limits = claim.limits
-    levels = {t: int(frame[t].nunique()) for t in claim.treatments if t not in slopes}
-    for t, k in levels.items():
-        if k > limits.levels:
-            raise limits.exceeded("levels", f"treatment column '{t}' has {k:,} levels")
-    params = 1
-    for term in terms:
-        size = 1
-        for f in term.factors:
-            size *= 1 if f in slopes else max(1, levels.get(f, 2) - 1)
-        params += size
-    if params > limits.parameters:
-        raise limits.exceeded(
-            "parameters", f"the claimed model has {params:,} fixed-effect parameters"
-        )
-
-
-def _check_parameters(frame: pd.DataFrame, treatments: Sequence[str], slopes: set[str]) -> None:
-    """A residual must remain: one parameter per level of a factor, one per number."""
-    params = 1 + sum(1 if t in slopes else int(frame[t].nunique()) - 1 for t in treatments)
-    if len(frame) - params < 1:
-        raise InputError(
-            f"too few rows to test the treatments: {len(frame)} rows for {params} parameters"
-        )
-
-
-def _levels(
-    n: int,
-    term: TermInput,
-    n_params: int,
-    choice: UnitChoice,
-    structure: Structure,
-    single: bool,
-    unit_analyses: Sequence[Analysis],
-) -> list[Level]:
-    """Levels at which a term could have been analysed, rows first.
-
-    A number entering with one slope removes two parameters at a level (the
-    intercept and the slope); a factor removes one per group.
-    """
-    k = len(term.labels)
-    used = term.degree + 1 if term.numeric else k
-    groups = (
-        "an intercept and a slope"
-        if term.numeric and term.degree == 1
-        else f"an intercept and {term.degree} polynomial coefficients"
-        if term.numeric
-        else f"{k} groups"
-    )
-    rows_removed = groups if single else f"{n_params} model parameters"
-    levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(term.codes)))]
-    if term.unit is not None and choice.unit is not None:
-        per = tuple(int(c) for c in units_per_level(term.unit, term.codes, k))
-        levels.append(
-            Level(choice.unit, "units", choice.n_units, choice.n_units - used, groups, per)
-        )
-        for a in unit_analyses:
-            if a.df is not None and abs(a.df[1] - (choice.n_units - k)) > 0.5:
-                removed = (
-                    f"{format_number(choice.n_units - a.df[1])} parameters of the "
-                    f"{choice.unit} level"
-                )
-                levels.append(Level(choice.unit, "units", choice.n_units, a.df[1], removed, per))
-    seen = {lv.name for lv in levels}
-    for cand in structure.candidates:
-        if cand.treatment == term.term and cand.name not in seen:
-            seen.add(cand.name)
-            levels.append(Level(cand.name, "other", cand.n_units, cand.n_units - used, groups))
-    return levels
-
-
-def _reported_by_term(claim: Claim, terms: Sequence[Term]) -> dict[str, ReportedResult]:
-    """Reported results keyed by term name; an unprefixed result is the first term's."""
-    out: dict[str, ReportedResult] = {}
-    if claim.reported is not None:
-        out[terms[0].name] = claim.reported
-    for name, result in claim.reported_terms:
-        factors = match_term(name, [t.factors for t in terms])
-        key = next(t.name for t in terms if t.factors == factors)
-        if key in out:
-            raise InputError(f"two reported results are given for the term '{key}'")
-        out[key] = result
-    return out
 
 
 def audit(
@@ -564,7 +211,8 @@ def audit(
         and parsed; ``total`` is twice the file size), e.g. to drive a progress bar.
     stage:
         Called with the name of each stage as it starts (``claim``, ``read``,
-        ``hidden``, ``structure``, ``refit``, ``clustering``, ``report data``),
+        ``hidden``, ``structure``, ``refit``, ``clustering``, ``reconcile``,
+        ``verdict``, ``report data``: :data:`STAGES`, in the order they run),
         e.g. to say what a long audit is doing.
     unit_labels:
         ``auto``, ``local`` (labels such as "tank 1" are numbered afresh within
@@ -628,39 +276,12 @@ def audit(
     >>> audit(df, response="y", treatment="feed").status
     'pseudoreplicated'
     """
-    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
-        raise InputError(f"the seed must be a whole number of 0 or more, got {seed!r}")
-    if isinstance(power, bool) or not 0 < power < 1:
-        raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
-    if effect is not None and not (np.isfinite(effect) and effect > 0):
-        raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
+    _check_numbers(seed, power, effect)
     with shared_codes():  # each column coded once for every stage
         clock = _Stopwatch(stage)
-        given = dict(roles or {})
-        for key, value in (
-            ("unit", unit),
-            ("block", block),
-            ("within", within),
-            ("covariate", covariate),
-            ("ignore", ignore),
-        ):
-            if value is not None:
-                given[key] = value
-        fill_names: tuple[str, ...] = ()
-        if isinstance(fill_down, str):
-            fill_names = (fill_down,)
-        elif fill_down is not None and not isinstance(fill_down, bool):
-            fill_names = tuple(str(v) for v in fill_down)
-        c = make_claim(
+        stated = make_claim(
             data,
-            reading=ReadOptions(
-                header_row,
-                cell_range,
-                fill_names,
-                find_fill and fill_down is not False,
-                (long,) if isinstance(long, str) else tuple(long),
-                (ids,) if isinstance(ids, str) else tuple(ids),
-            ),
+            reading=_reading(header_row, cell_range, fill_down, find_fill, long, ids),
             response=response,
             treatment=treatment,
             claim=claim,
@@ -670,7 +291,9 @@ def audit(
             spec=spec,
             find_spec=find_spec,
             formula=formula,
-            roles=given,
+            roles=_roles(
+                roles, unit=unit, block=block, within=within, covariate=covariate, ignore=ignore
+            ),
             unit_labels=unit_labels,
             family=family,
             limits=limits,
@@ -678,354 +301,190 @@ def audit(
         clock.lap("claim")
         table = read_table(
             data if isinstance(data, pd.DataFrame) else Path(data),
-            sheet=c.sheet,
-            na_values=c.na_values,
+            sheet=stated.sheet,
+            na_values=stated.na_values,
             progress=progress,
-            limits=c.limits,
-            header_row=c.reading.header_row,
-            cell_range=c.reading.cell_range,
-            needed=c.treatments,
+            limits=stated.limits,
+            header_row=stated.reading.header_row,
+            cell_range=stated.reading.cell_range,
+            needed=stated.treatments,
         )
         if name is not None and isinstance(data, pd.DataFrame):
             table = replace(table, source=str(name))
-        table = _long(_filled(table, c), c)
-        if c.formula is not None and c.formula.transforms:
-            table = _transformed(table, c.formula.transforms)
-        c = _resolve(table, c)
-        source_table = table
-        if c.formula is not None and c.formula.trials is not None:
-            table = expand_trials(table, c.formula.trials)
-        ignored = c.roles.columns("ignore")
-        if ignored:
-            table = replace(table, data=table.data.drop(columns=list(ignored)))
-        formula_blocks: list[str] = []
-        if c.formula is not None:
-            terms, formula_blocks = _formula_terms(c, table.data)
-            c = replace(
-                c,
-                treatments=tuple(f for f in c.treatments if f not in formula_blocks),
-                roles=c.roles.added(
-                    Statement("block", (b,), "in the claimed formula") for b in formula_blocks
-                ),
-            )
-        adjusted_for = _claimed_covariates(c, table.data) if c.formula is None else []
-        c = replace(c, treatments=(*c.treatments, *adjusted_for))
-        frame = _analysis_frame(table, c)
-        frame, exponent = _rescaled(frame, c.response)
-        rescaled_columns = []
-        for col in dict.fromkeys([*c.treatments, *c.roles.columns("covariate")]):
-            if col in frame.columns and pd.api.types.is_numeric_dtype(frame[col]):
-                frame, e = _rescaled(frame, col)
-                if e:
-                    rescaled_columns.append((col, e))
-        allow_for(frame)
-        numbers: tuple[NumberReading, ...] = ()
-        if c.formula is None:
-            plain = [f for f in c.treatments if f not in adjusted_for]
-            terms = [*model_terms(frame, plain), *(Term(x, (x,)) for x in adjusted_for)]
-            numbers = read_numbers(frame, adjusted_for, (), adjusted_for)
-        else:
-            numbers = read_numbers(
-                frame,
-                c.treatments,
-                c.formula.categorical,
-                c.roles.columns("covariate"),
-                {
-                    k: float(r.df[0])
-                    for k, r in _reported_by_term(c, terms).items()
-                    if r.df and (r.test == "F" or r.test is None)
-                },
-                {col for s in c.formula.slopes for col in s.effects},
-                {x for t in c.formula.transforms for x in (t.column, t.name)},
-            )
-        slopes_on = {r.column for r in numbers if r.slope}
-        _check_parameters(frame, c.treatments, slopes_on)
-        _check_size(frame, c, terms, slopes_on)
-        categorical = [f for f in c.treatments if f not in slopes_on]
-        with_numbers = [t for t in terms if any(f in slopes_on for f in t.factors)]
-        kept, dropped = drop_unreplicated(
-            frame, [t for t in terms if t not in with_numbers], categorical
-        )
-        terms = [t for t in terms if t in kept or t in with_numbers]
-        reported = _reported_by_term(c, terms)
-        interactions = [t.name for t in terms if t.is_interaction]
+        prepared = prepare(table, stated)
+        c = prepared.claim
         clock.lap("read")
-        hidden_scan = HiddenScan()
+        scan = HiddenScan()
         if hidden:
-            order_col = None if order is None else resolve_column(table.columns, order, "order")
-            hidden_scan = scan_hidden(
-                frame,
-                c.response,
-                c.treatments,
-                seed=seed,
-                dayfirst=dayfirst,
-                order=order_col,
+            at = None if order is None else resolve_column(prepared.table.columns, order, "order")
+            scan = scan_hidden(
+                prepared.frame, c.response, c.treatments, seed=seed, dayfirst=dayfirst, order=at
             )
-            for g in hidden_scan.derived:
-                frame[g.name] = derived_column(g, frame.index)
-        for t in terms:
-            if t.is_interaction:
-                frame[t.name] = interaction_levels(frame, t.factors)
         clock.lap("hidden")
-
-        def read_structure(frame: pd.DataFrame) -> Structure:
-            return infer_structure(
-                frame,
-                c.response,
-                [t.name for t in terms],
-                exclude=c.treatments,
-                interactions=interactions,
-                roles=c.roles,
-                unit_labels=c.unit_labels or "auto",
-                derived_columns=[g.name for g in hidden_scan.derived],
-                file_order=[g.name for g in hidden_scan.derived if g.name.endswith("[file order]")],
-            )
-
-        structure = slope_units(read_structure(frame), frame, slopes_on)
-        # rows whose experimental unit is not recorded cannot be placed among the
-        # replicates: they leave the audit, and the design is read again without them
-        unit_columns = _unit_columns(structure, terms, frame)
-        no_unit = frame[unit_columns].isna().any(axis=1) if unit_columns else None
-        rows_without_unit = 0
-        if no_unit is not None and no_unit.any() and not no_unit.all():
-            rows_without_unit = int(no_unit.sum())
-            frame = frame[~no_unit.to_numpy()]
-            structure = slope_units(read_structure(frame), frame, slopes_on)
-        y = frame[c.response].to_numpy(dtype=float)
-        inputs: list[TermInput] = []
-        for t in terms:
-            choice = structure.unit_of(t.name)
-            codes, labels = codes_of(frame[t.name])
-            confounded = choice.relation == "confounded"
-            units = (
-                unit_codes(frame, choice) if choice.unit is not None and not confounded else None
-            )
-            values = frame[t.name].to_numpy(dtype=float) if t.name in slopes_on else None
-            degree = next(
-                (
-                    int(tr.power)
-                    for tr in (c.formula.transforms if c.formula is not None else ())
-                    if tr.name == t.name and tr.function == "poly"
-                ),
-                1,
-            )
-            inputs.append(
-                TermInput(
-                    term=t.name,
-                    factors=t.factors,
-                    codes=codes,
-                    labels=labels,
-                    unit=units,
-                    unit_name=choice.unit,
-                    confounded=confounded,
-                    values=values,
-                    degree=degree,
-                )
-            )
-        strata = {
-            s.name: complete_codes(group_codes(frame, s.columns))
-            for s in structure.strata
-            if s.kind != "rows"
-        }
-        blocks = {
-            s.name: strata[s.name]
-            for s in structure.strata
-            if s.kind == "block" and s.name in strata
-        }
-        fixed_blocks = [complete_codes(group_codes(frame, (b,))) for b in formula_blocks]
-        kind = claimed_kind(y, c.family, c.response)
-        coding = yes_no_coding(table.data[c.response])
-        first_claim = reported.get(terms[0].name)
-        row_chi2 = None if first_claim is None else first_claim.test in (None, "chi2", "z")
+        design = read_design(prepared.frame, c, prepared.terms, prepared.slopes_on, scan)
         clock.lap("structure")
-        claimed_random = {  # -1 marks a missing value: those rows leave the claimed model
-            ":".join(g): group_codes(frame, g)
-            for g in (c.formula.random if c.formula is not None else ())
-        }
-        claimed_slopes = (
-            slope_terms(frame, c.formula, slopes_on, c.treatments) if c.formula is not None else []
-        )
-        judged = (
-            judged_groupings(frame, c.formula.slopes, claimed_random)
-            if c.formula is not None
-            else claimed_random
-        )
-        fits = refit(
-            y,
-            inputs,
-            strata,
-            blocks,
-            fixed_blocks,
-            seed,
-            kind,
-            row_chi2,
-            claimed_random,
-            c.family,
-            claimed_slopes,
-            c.limits.crossed_levels,
-        )
-        alternatives = _refit_alternatives(
-            frame, y, structure, inputs, strata, blocks, fixed_blocks, seed, kind, row_chi2
-        )
+        fitted = refit_design(prepared, design, seed)
         clock.lap("refit")
-        single = len(terms) == 1 and not fixed_blocks
-        X, index, _ = design_matrix(inputs, "treatment" if single else "sum")
-        for b in fixed_blocks:
-            X = np.hstack([X, np.eye(int(b.max()) + 1)[b]])
-        n_params = int(np.linalg.matrix_rank(X))
-        evidence_terms: list[TermEvidence] = []
-        in_blocks = within_block_tests(y, inputs, blocks) if reported else {}
-        slopes = omitted_slopes(y, inputs, judged, fixed_blocks) if judged else {}
-        for i, ti in enumerate(inputs):
-            tr = fits.term(ti.term)
-            clustering = None
-            per_level: dict[str, int] = {}
-            if ti.unit is not None and ti.unit_name is not None:
-                v = tr.unit_variance
-                reml = (v.var_unit, v.var_residual) if v is not None and v.converged else None
-                clustering = measure_clustering(
-                    y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml, kind=kind
-                )
-                counts = units_per_level(ti.unit, ti.codes, len(ti.labels))
-                for k, label in enumerate(ti.labels):
-                    per_level[label] = int(counts[k])
-            rec = None
-            if ti.term in reported:
-                as_claimed = tr.get("as_claimed")
-                assert as_claimed is not None
-                unit_level = [
-                    a for a in tr.analyses if a.level == "units" and a.p_value is not None
-                ]
-                levels = _levels(
-                    len(frame),
-                    ti,
-                    n_params,
-                    structure.unit_of(ti.term),
-                    structure,
-                    single,
-                    unit_level,
-                )
-                rec = reconcile(
-                    reported[ti.term],
-                    c.alpha,
-                    levels,
-                    as_claimed,
-                    len(index[ti.term]),
-                    unit_level,
-                    [
-                        *tr.analyses,
-                        *([in_blocks[ti.term]] if ti.term in in_blocks else []),
-                        *(rank_tests(y, ti, blocks) if reported[ti.term].method else []),
-                    ],
-                )
-            if judged:
-                completed = {k: complete_codes(v) for k, v in judged.items()}
-                rec = claimed_model_level(ti, completed, rec, tr.get("as_claimed"), c.alpha)
-            evidence_terms.append(
-                TermEvidence(
-                    term=ti.term,
-                    factors=ti.factors,
-                    unit=structure.unit_of(ti.term),
-                    clustering=clustering,
-                    refit=tr,
-                    units_per_level=per_level,
-                    claimed=i == 0,
-                    reconciliation=rec,
-                    alternatives=tuple(alternatives.get(ti.term, ())),
-                    slope=slopes.get(ti.term),
-                    numeric=ti.numeric,
-                )
-            )
-        primary = evidence_terms[shown_term([t.reconciliation is not None for t in evidence_terms])]
-        first_claimed = primary.analysis("as_claimed")
-        assert first_claimed is not None
-        overall = primary.reconciliation or reconcile(
-            None, c.alpha, [], first_claimed, len(index[primary.term])
-        )
-        evidence = Evidence(
-            claim=c,
-            n_rows_read=source_table.n_rows,
-            trials=len(table.data) if table is not source_table else None,
-            n_rows_used=len(frame),
-            rows_without_unit=rows_without_unit,
-            unit_columns=tuple(unit_columns) if rows_without_unit else (),
-            structure=structure,
-            terms=tuple(evidence_terms),
-            reconciliation=overall,
-            formula_blocks=tuple(formula_blocks),
-            unreplicated=tuple(t.name for t in dropped),
-            response_kind=kind,
-            response_coding=coding,
-            hidden=hidden_scan,
-            numbers=numbers,
-            response_exponent=exponent,
-            rescaled_columns=tuple(rescaled_columns),
-            claimed_groupings=tuple(
-                (name, int(np.unique(codes[codes >= 0]).size), int((codes >= 0).sum()))
-                for name, codes in claimed_random.items()
-            ),
-        )
+        clusters = cluster_terms(fitted.y, fitted.inputs, fitted.fits, fitted.kind)
         clock.lap("clustering")
-        verdict = decide(evidence)
-        needs = _needs(inputs, evidence, y, c, power, effect)
-        shown = inputs[evidence_terms.index(primary)]
-        display = display_data(
-            frame,
-            shown.term,
-            y,
-            shown.codes,
-            shown.labels,
-            primary.unit.columns,
-            shown.unit,
-            shown.unit_name or primary.unit.unit,
-            shown.confounded,
+        reconciled = reconcile_terms(
+            fitted.y,
+            fitted.inputs,
+            fitted.fits,
+            design.structure,
+            prepared.reported,
+            c.alpha,
+            fitted.blocks,
+            fitted.fixed_blocks,
+            fitted.judged,
         )
+        clock.lap("reconcile")
+        evidence = _evidence(prepared, scan, design, fitted, clusters, reconciled)
+        verdict = decide(evidence)
+        clock.lap("verdict")
+        needs = needs_of(
+            fitted.y,
+            fitted.inputs,
+            [te.clustering for te in evidence.terms],
+            alpha=c.alpha,
+            power=power,
+            effect=effect,
+        )
+        display = _display(design, fitted, evidence)
         clock.lap("report data")
         return Report(
-            source_table, len(frame), c, evidence, fits, verdict, needs, display, clock.seconds()
+            prepared.source,
+            len(design.frame),
+            c,
+            evidence,
+            fitted.fits,
+            verdict,
+            needs,
+            display,
+            clock.seconds(),
         )
 
 
-def _refit_alternatives(
-    frame: pd.DataFrame,
-    y: np.ndarray,
-    structure: Structure,
-    inputs: Sequence[TermInput],
-    strata: Mapping[str, np.ndarray],
-    blocks: Mapping[str, np.ndarray],
-    fixed_blocks: Sequence[np.ndarray],
-    seed: int,
-    kind: ResponseKind,
-    row_chi2: bool | None,
-) -> dict[str, list[AlternativeEvidence]]:
-    """Each alternative reading of a term's unit, refitted with that unit in its place."""
-    out: dict[str, list[AlternativeEvidence]] = {}
-    for alt in structure.alternatives:
-        at = next((i for i, t in enumerate(inputs) if t.term == alt.term), None)
-        if at is None:
-            continue
-        ti = inputs[at]
-        choice = alt.choice
-        confounded = choice.relation == "confounded"
-        codes = unit_codes(frame, choice) if choice.unit is not None and not confounded else None
-        new = replace(ti, unit=codes, unit_name=choice.unit, confounded=confounded)
-        others = [t for t in inputs if t.term != ti.term and t.unit is not None]
-        kept = {
-            name: c
-            for name, c in strata.items()
-            if ti.unit is None
-            or not same_partition(c, ti.unit)
-            or any(same_partition(c, o.unit) for o in others if o.unit is not None)
-        }
-        if codes is not None and int(codes.max()) + 1 < len(frame) and choice.unit is not None:
-            kept[choice.unit] = codes
-        term_inputs = [new if i == at else t for i, t in enumerate(inputs)]
-        fit = refit(y, term_inputs, kept, blocks, fixed_blocks, seed, kind, row_chi2)
-        out.setdefault(ti.term, []).append(AlternativeEvidence(alt, fit.term(ti.term)))
+def _check_numbers(seed: int, power: float, effect: float | None) -> None:
+    """The numeric options, before anything is read."""
+    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
+        raise InputError(f"the seed must be a whole number of 0 or more, got {seed!r}")
+    if isinstance(power, bool) or not 0 < power < 1:
+        raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
+    if effect is not None and not (np.isfinite(effect) and effect > 0):
+        raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
+
+
+def _roles(given: Mapping[str, object] | None, **named: object) -> dict[str, object]:
+    """The stated roles: the mapping, with each role given as a keyword in its place."""
+    out = dict(given or {})
+    out.update({key: value for key, value in named.items() if value is not None})
     return out
 
 
-STAGES = ("claim", "read", "hidden", "structure", "refit", "clustering", "report data")
+def _reading(
+    header_row: int | None,
+    cell_range: str | None,
+    fill_down: str | Sequence[str] | bool | None,
+    find_fill: bool,
+    long: str | Sequence[str],
+    ids: str | Sequence[str],
+) -> ReadOptions:
+    """Where the table is and how to read it, from audit()'s arguments."""
+    fill_names: tuple[str, ...] = ()
+    if isinstance(fill_down, str):
+        fill_names = (fill_down,)
+    elif fill_down is not None and not isinstance(fill_down, bool):
+        fill_names = tuple(str(v) for v in fill_down)
+    return ReadOptions(
+        header_row,
+        cell_range,
+        fill_names,
+        find_fill and fill_down is not False,
+        (long,) if isinstance(long, str) else tuple(long),
+        (ids,) if isinstance(ids, str) else tuple(ids),
+    )
+
+
+def _evidence(
+    prepared: Prepared,
+    scan: HiddenScan,
+    design: DesignReading,
+    fitted: RefitStage,
+    clusters: Mapping[str, TermClustering],
+    reconciled: Reconciled,
+) -> Evidence:
+    """Everything the rules may look at, from the stages' results."""
+    structure = design.structure
+    terms = tuple(
+        TermEvidence(
+            term=ti.term,
+            factors=ti.factors,
+            unit=structure.unit_of(ti.term),
+            clustering=clusters[ti.term].clustering,
+            refit=fitted.fits.term(ti.term),
+            units_per_level=clusters[ti.term].units_per_level,
+            claimed=i == 0,
+            reconciliation=reconciled.terms[ti.term],
+            alternatives=fitted.alternatives.get(ti.term, ()),
+            slope=fitted.slopes.get(ti.term),
+            numeric=ti.numeric,
+        )
+        for i, ti in enumerate(fitted.inputs)
+    )
+    return Evidence(
+        claim=prepared.claim,
+        n_rows_read=prepared.source.n_rows,
+        trials=prepared.trials,
+        n_rows_used=len(design.frame),
+        rows_without_unit=design.rows_without_unit,
+        unit_columns=design.unit_columns,
+        structure=structure,
+        terms=terms,
+        reconciliation=reconciled.overall,
+        formula_blocks=prepared.formula_blocks,
+        unreplicated=tuple(t.name for t in prepared.dropped),
+        response_kind=fitted.kind,
+        response_coding=prepared.response_coding,
+        hidden=scan,
+        numbers=prepared.numbers,
+        response_exponent=prepared.exponent,
+        rescaled_columns=prepared.rescaled_columns,
+        claimed_groupings=tuple(
+            (name, int(np.unique(codes[codes >= 0]).size), int((codes >= 0).sum()))
+            for name, codes in fitted.claimed_random.items()
+        ),
+    )
+
+
+def _display(design: DesignReading, fitted: RefitStage, evidence: Evidence) -> Display:
+    """The picture and intervals of the term the claim section speaks of."""
+    at = shown_term([t.reconciliation is not None for t in evidence.terms])
+    shown, unit = fitted.inputs[at], evidence.terms[at].unit
+    return display_data(
+        design.frame,
+        shown.term,
+        fitted.y,
+        shown.codes,
+        shown.labels,
+        unit.columns,
+        shown.unit,
+        shown.unit_name or unit.unit,
+        shown.confounded,
+    )
+
+
+STAGES = (
+    "claim",
+    "read",
+    "hidden",
+    "structure",
+    "refit",
+    "clustering",
+    "reconcile",
+    "verdict",
+    "report data",
+)
 
 
 class _Stopwatch:
@@ -1052,38 +511,3 @@ class _Stopwatch:
 
     def seconds(self) -> dict[str, float]:
         return dict(self._laps)
-
-
-def _needs(
-    inputs: Sequence[TermInput],
-    evidence: Evidence,
-    y: np.ndarray,
-    claim: Claim,
-    power: float,
-    effect: float | None,
-) -> DesignNeeds | None:
-    """Units per level a design would need to detect the observed effect (or ``effect``,
-    a difference between two level means) of the first term with a replicated unit."""
-    at = measured_term([te.clustering is not None for te in evidence.terms])
-    for ti, te in list(zip(inputs, evidence.terms, strict=True))[at:]:
-        cl = te.clustering
-        if cl is None or ti.unit is None:
-            continue
-        means, _ = group_means(ti.unit, y)
-        level = np.zeros(means.size, dtype=np.int64)
-        level[ti.unit] = ti.codes
-        k = len(ti.labels)
-        if effect is None:
-            level_means = [float(means[level == j].mean()) for j in range(k)]
-        else:
-            level_means = stated_effect_means(effect, k)
-        needs = design_needs(
-            level_means,
-            cl.var_unit,
-            cl.var_residual,
-            cl.mean_unit_size,
-            alpha=claim.alpha,
-            power=power,
-        )
-        return needs if effect is None else replace(needs, effect_kind="stated", difference=effect)
-    return None

@@ -89,6 +89,8 @@ _STAGE_WORDS = {
     "structure": "finding the experimental units",
     "refit": "refitting with the unit as the replicate",
     "clustering": "measuring clustering",
+    "reconcile": "comparing with the reported result",
+    "verdict": "weighing the evidence",
     "report data": "preparing the report",
 }
 

@@ -12,11 +12,13 @@ Epidemiol. 35:1292-1300 (unequal cluster sizes).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
-from replicheck.partitions import units_in_levels
+from replicheck.partitions import units_in_levels, units_per_level
+from replicheck.refit import Refit, TermInput
 from replicheck.stats.classic import DesignError
 from replicheck.stats.clustering import anova_components, design_effect
 from replicheck.stats.discrete import Overdispersion, ResponseKind, unit_overdispersion
@@ -44,6 +46,35 @@ class Clustering:
     effective_n: float
     effective_n_per_level: dict[str, float]
     overdispersion: Overdispersion | None = None  # yes/no and count responses
+
+
+@dataclass(frozen=True)
+class TermClustering:
+    """The clustering stage's result for one term."""
+
+    clustering: Clustering | None  # None when every row is a unit, or when confounded
+    units_per_level: dict[str, int]  # units of the term's unit in each of its levels
+
+
+def cluster_terms(
+    y: np.ndarray, inputs: Sequence[TermInput], fits: Refit, kind: ResponseKind
+) -> dict[str, TermClustering]:
+    """The clustering within the unit of each term that has a replicated unit, with the
+    mixed model's REML components when its fit converged (by term)."""
+    out: dict[str, TermClustering] = {}
+    for ti in inputs:
+        if ti.unit is None or ti.unit_name is None:
+            out[ti.term] = TermClustering(None, {})
+            continue
+        v = fits.term(ti.term).unit_variance
+        reml = (v.var_unit, v.var_residual) if v is not None and v.converged else None
+        clustering = measure_clustering(
+            y, ti.unit, ti.codes, ti.labels, ti.unit_name, reml, kind=kind
+        )
+        counts = units_per_level(ti.unit, ti.codes, len(ti.labels))
+        per_level = {label: int(counts[k]) for k, label in enumerate(ti.labels)}
+        out[ti.term] = TermClustering(clustering, per_level)
+    return out
 
 
 def measure_clustering(

@@ -16,10 +16,13 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from replicheck.claim import ReportedResult
+from replicheck.decisions import shown_term
 from replicheck.glossary import short_title
-from replicheck.numbers import p_phrase
+from replicheck.numbers import format_number, p_phrase
 from replicheck.partitions import is_nested, units_per_level
-from replicheck.refit import Analysis, TermInput
+from replicheck.ranks import rank_tests
+from replicheck.refit import Analysis, Refit, TermInput, row_model_size, within_block_tests
+from replicheck.structure.units import Structure, UnitChoice, complete_codes
 
 # Common practice for comparing a reported, rounded statistic with a
 # recomputed one: allow 3% relative or the rounding of the last printed digit.
@@ -188,6 +191,51 @@ class Level:
     error_df: float  # replicates minus the parameters of the model at that level
     removed: str  # what the parameters are, e.g. "3 groups"
     per_group: tuple[int, ...] = ()  # replicates in each level of the term
+
+
+def levels_of(
+    n: int,
+    term: TermInput,
+    n_params: int,
+    choice: UnitChoice,
+    structure: Structure,
+    single: bool,
+    unit_analyses: Sequence[Analysis],
+) -> list[Level]:
+    """Levels at which a term could have been analysed, rows first.
+
+    A number entering with one slope removes two parameters at a level (the
+    intercept and the slope); a factor removes one per group.
+    """
+    k = len(term.labels)
+    used = term.degree + 1 if term.numeric else k
+    groups = (
+        "an intercept and a slope"
+        if term.numeric and term.degree == 1
+        else f"an intercept and {term.degree} polynomial coefficients"
+        if term.numeric
+        else f"{k} groups"
+    )
+    rows_removed = groups if single else f"{n_params} model parameters"
+    levels = [Level("rows", "rows", n, n - n_params, rows_removed, tuple(np.bincount(term.codes)))]
+    if term.unit is not None and choice.unit is not None:
+        per = tuple(int(c) for c in units_per_level(term.unit, term.codes, k))
+        levels.append(
+            Level(choice.unit, "units", choice.n_units, choice.n_units - used, groups, per)
+        )
+        for a in unit_analyses:
+            if a.df is not None and abs(a.df[1] - (choice.n_units - k)) > 0.5:
+                removed = (
+                    f"{format_number(choice.n_units - a.df[1])} parameters of the "
+                    f"{choice.unit} level"
+                )
+                levels.append(Level(choice.unit, "units", choice.n_units, a.df[1], removed, per))
+    seen = {lv.name for lv in levels}
+    for cand in structure.candidates:
+        if cand.treatment == term.term and cand.name not in seen:
+            seen.add(cand.name)
+            levels.append(Level(cand.name, "other", cand.n_units, cand.n_units - used, groups))
+    return levels
 
 
 def _meaning(lv: Level, verb: str) -> str:
@@ -434,3 +482,70 @@ def claimed_model_level(
         return Reconciliation(level, grouping, why, (), significant)
     explanation = why if rec.explanation is None else f"{why}; {rec.explanation}"
     return replace(rec, level=level, level_grouping=grouping, explanation=explanation)
+
+
+@dataclass(frozen=True)
+class Reconciled:
+    """The reconcile stage's result."""
+
+    terms: dict[str, Reconciliation | None]  # by term: None when nothing was reported for it
+    overall: Reconciliation  # that of the term the claim section speaks of (decisions.shown_term)
+
+
+def reconcile_terms(
+    y: np.ndarray,
+    inputs: Sequence[TermInput],
+    fits: Refit,
+    structure: Structure,
+    reported: Mapping[str, ReportedResult],
+    alpha: float,
+    blocks: Mapping[str, np.ndarray],
+    fixed_blocks: Sequence[np.ndarray],
+    judged: Mapping[str, np.ndarray],
+) -> Reconciled:
+    """What each reported result says about the analysis behind it.
+
+    A term's candidates are every analysis of its refit, the test within blocks
+    (a paired t or a randomised-block ANOVA), and, when the report names a
+    method, the rank tests; the levels are the rows, the term's unit and every
+    other candidate grouping. A claimed mixed model is then placed by its
+    random effects (:func:`claimed_model_level`).
+    """
+    n_params, columns = row_model_size(inputs, fixed_blocks)
+    single = len(inputs) == 1 and not fixed_blocks
+    in_blocks = within_block_tests(y, inputs, blocks) if reported else {}
+    completed = {k: complete_codes(v) for k, v in judged.items()}
+    out: dict[str, Reconciliation | None] = {}
+    for ti in inputs:
+        tr = fits.term(ti.term)
+        rec = None
+        if ti.term in reported:
+            as_claimed = tr.get("as_claimed")
+            assert as_claimed is not None
+            unit_level = [a for a in tr.analyses if a.level == "units" and a.p_value is not None]
+            levels = levels_of(
+                int(y.size), ti, n_params, structure.unit_of(ti.term), structure, single, unit_level
+            )
+            rec = reconcile(
+                reported[ti.term],
+                alpha,
+                levels,
+                as_claimed,
+                columns[ti.term],
+                unit_level,
+                [
+                    *tr.analyses,
+                    *([in_blocks[ti.term]] if ti.term in in_blocks else []),
+                    *(rank_tests(y, ti, blocks) if reported[ti.term].method else []),
+                ],
+            )
+        if judged:
+            rec = claimed_model_level(ti, completed, rec, tr.get("as_claimed"), alpha)
+        out[ti.term] = rec
+    shown = inputs[shown_term([out[ti.term] is not None for ti in inputs])].term
+    overall = out[shown]
+    if overall is None:
+        first = fits.term(shown).get("as_claimed")
+        assert first is not None
+        overall = reconcile(None, alpha, [], first, columns[shown])
+    return Reconciled(out, overall)

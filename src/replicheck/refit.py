@@ -579,6 +579,26 @@ def design_matrix(
     return np.hstack(columns), index, names
 
 
+def model_design(
+    terms: Sequence[TermInput],
+) -> tuple[np.ndarray, dict[str, list[int]], list[str]]:
+    """The terms' design matrix as every row-level model here codes it: treatment coding
+    for one term (its coefficient is the difference of the second level from the first,
+    as a t test gives it), sum-to-zero for several (so that no term's test depends on
+    another's baseline level)."""
+    return design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
+
+
+def row_model_size(
+    terms: Sequence[TermInput], fixed_blocks: Sequence[np.ndarray] = ()
+) -> tuple[int, dict[str, int]]:
+    """The parameters of the row-level model of the terms and the fixed blocks (the rank
+    of the design the analysis as claimed fits), and the columns of each term."""
+    X, index, _ = model_design(terms)
+    rank = int(np.linalg.matrix_rank(with_blocks(X, fixed_blocks)))
+    return rank, {term: len(cols) for term, cols in index.items()}
+
+
 def _contrast(index: list[int], p: int) -> np.ndarray:
     L = np.zeros((len(index), p))
     L[np.arange(len(index)), index] = 1.0
@@ -698,7 +718,7 @@ def within_block_tests(
     """
     if not blocks:
         return {}
-    X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
+    X, index, _ = model_design(terms)
     width = X.shape[1] + sum(int(b.max()) for b in blocks.values())
     if y.size * width > ROBUST_CELLS:
         # only used to recognise a reported result; a dense design of blocks with
@@ -1320,8 +1340,7 @@ def refit(
     """
     n = int(y.size)
     single = len(terms) == 1
-    coding = "treatment" if single else "sum"
-    X, index, names = design_matrix(terms, coding)
+    X, index, names = model_design(terms)
     if fixed_blocks:
         x_rows = with_blocks(X, fixed_blocks)
         claimed = [

@@ -32,9 +32,9 @@ import numpy as np
 from replicheck.partitions import dense_codes, is_nested, pair_codes, same_partition
 from replicheck.refit import (
     TermInput,
-    design_matrix,
     fit_mixed,
     known_groupings,
+    model_design,
     whitened,
     with_blocks,
 )
@@ -88,7 +88,7 @@ def omitted_slopes(
         fixed_blocks = [b[known] for b in fixed_blocks]
     if y.size < 3:  # no row (or almost none) has a value of every claimed grouping
         return {}
-    X, index, _ = design_matrix(terms, "treatment" if len(terms) == 1 else "sum")
+    X, index, _ = model_design(terms)
     X = with_blocks(X, fixed_blocks)
     names = [f"x{j}" for j in range(X.shape[1])]
     try:

@@ -283,8 +283,8 @@ class Report:
     design_needs: DesignNeeds | None = None
     display: Display | None = None
     seconds: Mapping[str, float] = field(default_factory=dict, compare=False)
-    """Seconds spent in each stage (claim, read, hidden, structure, refit, clustering,
-    report data); for benchmarks, not part of the report document."""
+    """Seconds spent in each stage (:data:`replicheck.api.STAGES`); for benchmarks, not
+    part of the report document."""
 
     @property
     def status(self) -> str:
