@@ -47,15 +47,20 @@ def _normal(value: Any) -> Any:
     return value
 
 
-def differences(a: Any, b: Any, tol: float, path: str = "") -> list[tuple[str, Any, Any]]:
-    """Key paths at which two documents differ (numbers to a relative tolerance)."""
+def differences(
+    a: Any, b: Any, tol: float, path: str = "", added: frozenset[str] = frozenset()
+) -> list[tuple[str, Any, Any]]:
+    """Key paths at which two documents differ (numbers to a relative tolerance); a key
+    path in ``added`` (``.verdict.term``) may be new in the second document."""
     if isinstance(a, dict) and isinstance(b, dict):
         out: list[tuple[str, Any, Any]] = []
         for k in sorted(set(a) | set(b)):
+            if k not in a and f"{path}.{k}" in added:
+                continue
             if k not in a or k not in b:
                 out.append((f"{path}.{k}", a.get(k, "<absent>"), b.get(k, "<absent>")))
             else:
-                out += differences(a[k], b[k], tol, f"{path}.{k}")
+                out += differences(a[k], b[k], tol, f"{path}.{k}", added)
         return out
     if isinstance(a, list) and isinstance(b, list):
         if len(a) != len(b):
@@ -63,7 +68,7 @@ def differences(a: Any, b: Any, tol: float, path: str = "") -> list[tuple[str, A
         return [
             d
             for i, (x, y) in enumerate(zip(a, b, strict=True))
-            for d in differences(x, y, tol, f"{path}[{i}]")
+            for d in differences(x, y, tol, f"{path}[{i}]", added)
         ]
     numbers = (int, float)
     if isinstance(a, numbers) and isinstance(b, numbers) and not isinstance(a, bool):
@@ -89,14 +94,14 @@ def run_suite(tree: Path, out: Path, keyword: str | None) -> None:
     print(f"{tree}: {last[0]}", flush=True)
 
 
-def compare(old: Path, new: Path, tol: float) -> int:
+def compare(old: Path, new: Path, tol: float, added: frozenset[str] = frozenset()) -> int:
     a = {p.name for p in old.glob("*.json")}
     b = {p.name for p in new.glob("*.json")}
     count = 0
     for name in sorted(a & b):
         da = _normal(json.loads((old / name).read_text(encoding="utf-8")))
         db = _normal(json.loads((new / name).read_text(encoding="utf-8")))
-        for path, x, y in differences(da, db, tol):
+        for path, x, y in differences(da, db, tol, added=added):
             count += 1
             print(f"{name}{path}: {x!r} -> {y!r}")
     print(f"{len(a & b)} reports compared, {count} differences beyond {tol:g}")
@@ -111,6 +116,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("rev", help="the revision to compare with the working tree")
     ap.add_argument("--tol", type=float, default=1e-9)
     ap.add_argument("-k", dest="keyword", help="only the tests pytest -k selects")
+    ap.add_argument(
+        "--added",
+        action="append",
+        default=[],
+        metavar="PATH",
+        help="a key new in the working tree's reports, such as .verdict.term (repeatable)",
+    )
     args = ap.parse_args(argv)
     with tempfile.TemporaryDirectory() as tmp:
         base = Path(tmp)
@@ -122,7 +134,7 @@ def main(argv: list[str] | None = None) -> int:
                 (base / sub).mkdir()
             run_suite(tree, base / "old", args.keyword)
             run_suite(ROOT, base / "new", args.keyword)
-            count = compare(base / "old", base / "new", args.tol)
+            count = compare(base / "old", base / "new", args.tol, frozenset(args.added))
         finally:
             subprocess.run(["git", "worktree", "remove", "--force", str(tree)], cwd=ROOT,
                            check=False)  # fmt: skip

@@ -172,6 +172,15 @@ def test_a_claimed_mixed_poisson_model_is_fitted_as_claimed() -> None:
     trt = _term(doc, "trt")
     assert trt["status"] == "ok"  # the random intercept sits at the patients, the unit of trt
     assert trt["reported_check"]["level"] == "units"
+    # the baseline count and the age are numbers measured once per patient: the same
+    # random intercept tests their slopes between the patients, though several patients
+    # are alone with their value (once read as rows counted as replicates)
+    for name in ("base", "age"):
+        term = _term(doc, name)
+        assert term["unit"] == "subject"
+        assert term["reported_check"]["level"] == "units", name
+        assert term["status"] == "ok", name
+    assert doc["verdict"]["status"] == "ok"
 
 
 def test_a_claimed_mixed_logistic_model_with_cbind() -> None:

@@ -104,17 +104,19 @@ def test_audits_take_the_decision(
 
 
 def test_which_term_each_part_of_the_report_speaks_of() -> None:
-    from replicheck.decisions import headline_term, measured_term, shown_term
+    from replicheck.decisions import headline_term, key_term, shown_term
 
     # the first with a reported result; the first when none has one
     assert shown_term([False, False, True]) == 2
     assert shown_term([False, False]) == 0
-    # the first with a measured unit; the first when none has one
-    assert measured_term([False, True, True]) == 1
-    assert measured_term([False, False]) == 0
     # the first with the report's status (the worst); the first otherwise
     assert headline_term(["ok", "unclear", "pseudoreplicated"], "pseudoreplicated") == 2
     assert headline_term(["ok", "ok"], "ok") == 0
+    # the headline term when its unit was measured, though an earlier one's was too
+    assert key_term(["ok", "pseudoreplicated"], "pseudoreplicated", [True, True]) == 1
+    # else the first with a measured unit (a confounded headline has none); else the first
+    assert key_term(["confounded", "ok", "ok"], "confounded", [False, False, True]) == 2
+    assert key_term(["ok", "ok"], "ok", [False, False]) == 0
 
 
 def test_a_split_plot_report_names_its_terms_by_these_selections() -> None:

@@ -25,9 +25,10 @@ changed); each gives a frozen result object:
    each reported result reproduces.
 8. **verdict** (:func:`replicheck.verdict.decide`): all of the above as
    ``Evidence`` -> ``Verdict``: the findings of the registered rules, status.
-9. **report data** (:func:`replicheck.needs.needs_of`,
-   :func:`replicheck.display.display_data`): the design needs and the
-   picture's data, then the :class:`replicheck.report.model.Report`.
+9. **report data** (:func:`replicheck.decisions.key_term`,
+   :func:`replicheck.needs.needs_of`, :func:`replicheck.display.display_data`):
+   the design needs of the key term and the picture's data, then the
+   :class:`replicheck.report.model.Report`.
 
 Where new work goes: a column role is stated in :mod:`replicheck.roles` and
 read by the structure stage; a claim syntax is parsed in :mod:`replicheck.claim`;
@@ -49,7 +50,7 @@ import pandas as pd
 from replicheck.claim import Claim, build_claim, load_spec, spec_beside
 from replicheck.clustering import TermClustering, cluster_terms
 from replicheck.codebook import shared_codes
-from replicheck.decisions import shown_term
+from replicheck.decisions import key_term, shown_term
 from replicheck.defaults import DEFAULT_SEED
 from replicheck.display import Display, display_data
 from replicheck.errors import InputError
@@ -342,10 +343,15 @@ def audit(
         evidence = _evidence(prepared, scan, design, fitted, clusters, reconciled)
         verdict = decide(evidence)
         clock.lap("verdict")
+        key = key_term(
+            [tv.status for tv in verdict.terms],
+            verdict.status,
+            [te.clustering is not None for te in evidence.terms],
+        )
         needs = needs_of(
             fitted.y,
-            fitted.inputs,
-            [te.clustering for te in evidence.terms],
+            fitted.inputs[key],
+            evidence.terms[key].clustering,
             alpha=c.alpha,
             power=power,
             effect=effect,
@@ -353,15 +359,16 @@ def audit(
         display = _display(design, fitted, evidence)
         clock.lap("report data")
         return Report(
-            prepared.source,
-            len(design.frame),
-            c,
-            evidence,
-            fitted.fits,
-            verdict,
-            needs,
-            display,
-            clock.seconds(),
+            table=prepared.source,
+            n_rows_used=len(design.frame),
+            claim=c,
+            evidence=evidence,
+            refit=fitted.fits,
+            verdict=verdict,
+            design_needs=needs,
+            display=display,
+            key_term=key,
+            seconds=clock.seconds(),
         )
 
 

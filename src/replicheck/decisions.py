@@ -4,7 +4,7 @@ Stages and renderers read these decisions; none takes them again. Each is a
 pure function of plain values with its own tests (tests/test_decisions.py).
 
 * :func:`verdict_method`: the analysis a term's corrected verdict rests on;
-* :func:`shown_term`, :func:`measured_term`, :func:`headline_term`: which term each
+* :func:`shown_term`, :func:`headline_term`, :func:`key_term`: which term each
   part of a report with several terms speaks of (below).
 """
 
@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 from replicheck.vocab import AnalysisName
 
-__all__ = ["MethodRegime", "headline_term", "measured_term", "shown_term", "verdict_method"]
+__all__ = ["MethodRegime", "headline_term", "key_term", "shown_term", "verdict_method"]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -93,11 +93,16 @@ def verdict_method(r: MethodRegime) -> AnalysisName | None:
 # * the reported term: the term a reported result is read for (the first term,
 #   the first treatment, unless the claim names its terms): the claim section and
 #   the picture of the data;
-# * the term with a measured unit: the first term whose replicated experimental unit
-#   was measured (ICC, design effect): the top-level clustering, randomisation test
-#   and design needs, which need such a unit;
-# * the headline term: the first term with the report's (worst) status: the verdict's
-#   summary and the suggested wording.
+# * the headline term: the first term with the report's (worst) status: the verdict
+#   (its summary, its analysis), the suggested wording and the row of a screening index;
+# * the key term: the term whose unit the key figures describe (the top-level
+#   clustering, randomisation test and design needs, which need a measured unit): the
+#   headline term when its unit was measured, so that the figures under a verdict
+#   quantify the problem the verdict names; else the first term with a measured unit.
+#
+# The picture follows the reported term because it draws the claimed result beside
+# the corrected one; the key figures follow the verdict because they say how large
+# the verdict's problem is and what a design without it would need.
 
 
 def shown_term(has_claim: Sequence[bool]) -> int:
@@ -110,12 +115,6 @@ def shown_term(has_claim: Sequence[bool]) -> int:
     return next((i for i, c in enumerate(has_claim) if c), 0)
 
 
-def measured_term(has_unit: Sequence[bool]) -> int:
-    """Index of the term whose unit the top-level clustering, randomisation test and
-    design needs describe: the first with a measured replicated unit, else the first."""
-    return next((i for i, u in enumerate(has_unit) if u), 0)
-
-
 def headline_term(statuses: Sequence[str], status: str) -> int:
     """Index of the term the verdict speaks of: the first with the report's status
     (the worst over the terms), else the first.
@@ -124,3 +123,19 @@ def headline_term(statuses: Sequence[str], status: str) -> int:
     1
     """
     return next((i for i, s in enumerate(statuses) if s == status), 0)
+
+
+def key_term(statuses: Sequence[str], status: str, has_unit: Sequence[bool]) -> int:
+    """Index of the term whose unit the key figures describe (the top-level clustering,
+    randomisation test and design needs): the headline term when its replicated unit
+    was measured, else the first term whose unit was, else the first.
+
+    >>> key_term(["ok", "pseudoreplicated"], "pseudoreplicated", [True, True])
+    1
+    >>> key_term(["confounded", "pseudoreplicated"], "confounded", [False, True])
+    1
+    """
+    at = headline_term(statuses, status)
+    if has_unit[at]:
+        return at
+    return next((i for i, u in enumerate(has_unit) if u), 0)

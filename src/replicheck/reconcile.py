@@ -426,6 +426,22 @@ def reconcile(
     )
 
 
+def _replicates_term(codes: np.ndarray, ti: TermInput) -> bool:
+    """Whether a grouping within whose levels a term is constant leaves the term's test
+    residual degrees of freedom between its levels.
+
+    A factor needs two levels of the grouping in every level of its own: a grouping
+    with one level per term level is the term itself and tests nothing. A number
+    entering with a slope needs more levels of the grouping than parameters of its
+    curve and the intercept (a patient-level baseline count in a model with a random
+    intercept per patient is tested between the patients, whether or not two patients
+    share a value).
+    """
+    if ti.numeric:
+        return int(codes.max()) + 1 > ti.degree + 1
+    return int(units_per_level(codes, ti.codes, len(ti.labels)).min()) >= 2
+
+
 def claimed_model_level(
     ti: TermInput,
     random: Mapping[str, np.ndarray],
@@ -449,8 +465,8 @@ def claimed_model_level(
         for name, codes in random.items()
         if is_nested(codes, term_codes)
         and int(codes.max()) + 1 < codes.size
-        and int(units_per_level(codes, term_codes, len(ti.labels)).min()) >= 2
-    ]  # a grouping with one level per term level is the term itself: it tests nothing
+        and _replicates_term(codes, ti)
+    ]
     if inside:
         name, codes = min(inside, key=lambda nc: int(nc[1].max()))
         n_g = int(codes.max()) + 1

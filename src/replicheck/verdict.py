@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from replicheck.advice import option
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
+from replicheck.decisions import headline_term
 from replicheck.glossary import short_title, unit_noun
 from replicheck.numbers import count_text, format_df, format_number, p_phrase
 from replicheck.reconcile import Reconciliation
@@ -121,6 +122,8 @@ class TermVerdict:
     conclusion_changed: bool | None
     claimed_significant: bool | None
     method: AnalysisName | None
+    claimed_p_value: float | None = None  # the reported p, else the row-level test's
+    error_term: str | None = None  # the stratum it is tested in (None: untestable)
 
 
 @dataclass(frozen=True)
@@ -134,6 +137,12 @@ class Verdict:
     findings: tuple[Finding, ...]
     terms: tuple[TermVerdict, ...]
     caution: str = CAUTION
+    term: str = ""  # the headline term: the first with the report's status
+
+    @property
+    def headline(self) -> TermVerdict:
+        """The verdict of the headline term (decisions.headline_term)."""
+        return next(tv for tv in self.terms if tv.term == self.term)
 
 
 Rule = Callable[[Evidence], Iterable[Finding]]
@@ -177,6 +186,29 @@ def claimed_significance(t: TermEvidence, ev: Evidence) -> bool | None:
         return t.reconciliation.claimed_significant
     row = t.analysis("as_claimed")
     return None if row is None else row.significant(ev.claim.alpha)
+
+
+def claimed_p(t: TermEvidence) -> float | None:
+    """The p-value the claim gives a term: the reported one, else the row-level test's."""
+    rec = t.reconciliation
+    if rec is not None and rec.reported_p is not None:
+        return rec.reported_p
+    row = t.analysis("as_claimed")
+    return None if row is None else row.p_value
+
+
+def error_term(t: TermEvidence, ev: Evidence) -> str | None:
+    """The stratum a term is tested in: the exact multi-stratum ANOVA's, else the design's
+    stratum holding the term, else its unit or the residual; None when confounded."""
+    if t.unit.relation == "confounded":
+        return None
+    exact = stratum_of(t)
+    if exact is not None:
+        return exact
+    for st in ev.structure.strata:
+        if t.term in st.terms:
+            return "residual" if st.kind == "rows" else st.name
+    return t.unit.unit or "residual"
 
 
 def stratum_of(t: TermEvidence) -> str | None:
@@ -966,14 +998,24 @@ def decide(ev: Evidence) -> Verdict:
             None if term_status(t, ev) == "confounded" else _changed(t, ev),
             claimed_significance(t, ev),
             t.refit.corrected,
+            claimed_p(t),
+            error_term(t, ev),
         )
         for t in ev.terms
     )
     status = min((tv.status for tv in terms), key=STATUS_ORDER.index)
     changes = [tv.conclusion_changed for tv in terms if tv.conclusion_changed is not None]
     changed = None if status == "confounded" or not changes else any(changes)
-    worst = next(tv for tv in terms if tv.status == status)
-    return Verdict(status, changed, worst.method, summarise(ev, terms), tuple(findings), terms)
+    worst = terms[headline_term([tv.status for tv in terms], status)]
+    return Verdict(
+        status,
+        changed,
+        worst.method,
+        summarise(ev, terms),
+        tuple(findings),
+        terms,
+        term=worst.term,
+    )
 
 
 def _within(unit: str) -> str:

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 from typing import Any
 
-from replicheck.decisions import headline_term
 from replicheck.glossary import Entry, unit_noun, used_in
 from replicheck.numbers import format_df, format_number, format_p, p_phrase
 from replicheck.verdict import SIGNAL_P
@@ -108,9 +107,8 @@ def sections(doc: dict[str, Any]) -> list[str]:
 
 
 def headline(doc: dict[str, Any]) -> dict[str, Any]:
-    """The term the verdict speaks of: the first term with the report's status."""
-    terms = doc["terms"]
-    return terms[headline_term([t["status"] for t in terms], doc["verdict"]["status"])]
+    """The term the verdict speaks of (the verdict's ``term``: decisions.headline_term)."""
+    return next(t for t in doc["terms"] if t["term"] == doc["verdict"]["term"])
 
 
 # ---------------------------------------------------------------------------

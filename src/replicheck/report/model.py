@@ -17,7 +17,6 @@ from replicheck import __version__
 from replicheck.advice import Syntax, render, render_all
 from replicheck.claim import Claim
 from replicheck.clustering import Clustering
-from replicheck.decisions import measured_term
 from replicheck.display import Display, Interval
 from replicheck.glossary import analysis_title
 from replicheck.io import Layout, Table
@@ -25,7 +24,6 @@ from replicheck.numbers import log10_count
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Refit, TermRefit
 from replicheck.stats.power import DesignNeeds
-from replicheck.structure.units import Structure
 from replicheck.verdict import AlternativeEvidence, Evidence, TermEvidence, Verdict
 
 SCHEMA = "replicheck/report-v1"
@@ -197,19 +195,6 @@ def _needs(n: DesignNeeds | None, te: TermEvidence) -> dict[str, Any] | None:
     }
 
 
-def _error_term(te: TermEvidence, s: Structure) -> str | None:
-    """The stratum a term is tested in: its unit, the residual, or None when untestable."""
-    if te.unit.relation == "confounded":
-        return None
-    exact = te.analysis("strata_anova")
-    if exact is not None and exact.stratum is not None:
-        return exact.stratum
-    for st in s.strata:
-        if te.term in st.terms:
-            return "residual" if st.kind == "rows" else st.name
-    return te.unit.unit or "residual"
-
-
 def _method_title(method: str | None, corrected: Any, unit: str | None) -> str | None:
     """The reader's name of the analysis a term's verdict rests on."""
     if method is None:
@@ -282,6 +267,9 @@ class Report:
     verdict: Verdict
     design_needs: DesignNeeds | None = None
     display: Display | None = None
+    key_term: int = 0
+    """Index of the term whose unit the key figures (the top-level clustering,
+    randomisation test and design needs) describe: :func:`replicheck.decisions.key_term`."""
     seconds: Mapping[str, float] = field(default_factory=dict, compare=False)
     """Seconds spent in each stage (:data:`replicheck.api.STAGES`); for benchmarks, not
     part of the report document."""
@@ -335,7 +323,7 @@ class Report:
             }
             for te in ev.terms
         ]
-        main = ev.terms[measured_term([te.clustering is not None for te in ev.terms])]
+        main = ev.terms[self.key_term]
         unit_of = {te.term: te.unit.unit for te in ev.terms}
         analyses = []
         for tr in self.refit.terms:
@@ -363,17 +351,13 @@ class Report:
         terms = []
         for te, tv in zip(ev.terms, self.verdict.terms, strict=True):
             corrected = te.corrected
-            row = te.analysis("as_claimed")
-            claimed_p = row.p_value if row is not None else None
             rec = te.reconciliation
-            if rec is not None and rec.reported_p is not None:
-                claimed_p = rec.reported_p
             terms.append(
                 {
                     "term": te.term,
                     "factors": list(te.factors),
                     "unit": te.unit.unit,
-                    "error_term": _error_term(te, s),
+                    "error_term": tv.error_term,
                     "status": tv.status,
                     "method": tv.method,
                     "method_title": _method_title(tv.method, corrected, te.unit.unit),
@@ -381,7 +365,7 @@ class Report:
                     "statistic": corrected.statistic if corrected else None,
                     "df": list(corrected.df) if corrected and corrected.df else None,
                     "p_value": corrected.p_value if corrected else None,
-                    "claimed_p_value": claimed_p,
+                    "claimed_p_value": tv.claimed_p_value,
                     "claimed_significant": tv.claimed_significant,
                     "testable": corrected is not None,
                     "conclusion_changed": tv.conclusion_changed,
@@ -451,9 +435,9 @@ class Report:
                 "conclusion_changed": self.verdict.conclusion_changed,
                 "method": self.verdict.method,
                 "method_title": next(
-                    (t["method_title"] for t in terms if t["status"] == self.verdict.status),
-                    None,
+                    t["method_title"] for t in terms if t["term"] == self.verdict.term
                 ),
+                "term": self.verdict.term,
                 "summary": self.verdict.summary,
             },
             "experimental_units": units,

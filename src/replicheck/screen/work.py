@@ -13,7 +13,6 @@ from typing import Any
 import pandas as pd
 
 from replicheck.api import audit
-from replicheck.decisions import shown_term
 from replicheck.errors import InputError, SheetChoice
 from replicheck.io import Table, fill_down, read_table
 from replicheck.io.reshape import find_families, reshape_long
@@ -24,8 +23,9 @@ from replicheck.screen.task import Outcome, Task, one_line
 
 
 def _primary(doc: dict[str, Any]) -> int:
-    """The term the verdict rests on: the first with a reported result, else the first."""
-    return shown_term([t.get("reported_check") is not None for t in doc["terms"]])
+    """The term the verdict speaks of (decisions.headline_term): the index row gives its
+    unit, p-values and clustering beside the verdict's status and summary."""
+    return [t["term"] for t in doc["terms"]].index(doc["verdict"]["term"])
 
 
 def outcome_of(report: Report, spec_source: str) -> Outcome:
