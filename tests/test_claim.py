@@ -210,21 +210,6 @@ def test_significant_at(text: str, alpha: float, expected: bool | None) -> None:
     assert parse_reported(text).significant_at(alpha) is expected
 
 
-@pytest.mark.parametrize(
-    ("text", "upper"),
-    [
-        ("p = .001", 0.001),
-        ("p < .05", 0.05),
-        ("p <= .05", 0.05),
-        ("p > .05", 1.0),
-        ("ns", 1.0),
-        ("t(38) = 2.9", None),
-    ],
-)
-def test_p_upper(text: str, upper: float | None) -> None:
-    assert parse_reported(text).p_upper() == upper
-
-
 @pytest.mark.parametrize("alpha", [0.0, 1.0, -0.1, 1.5, math.nan])
 def test_significant_at_rejects_bad_alpha(alpha: float) -> None:
     with pytest.raises(InputError):
@@ -529,17 +514,23 @@ def test_spec_keys() -> None:
         "block",
         "claim",
         "covariate",
+        "dates",
+        "effect",
         "family",
         "fill_down",
         "formula",
         "header_row",
+        "hidden",
         "id",
         "ignore",
         "limits",
         "long",
         "na",
+        "order",
+        "power",
         "range",
         "response",
+        "seed",
         "sheet",
         "treatment",
         "unit",

@@ -9,7 +9,14 @@ from __future__ import annotations
 from typing import Any
 
 from replicheck.rulebook import RULE_DOCS
-from replicheck.vocab import ANALYSES, SEVERITIES, STATUSES
+from replicheck.vocab import (
+    ANALYSES,
+    FACTOR_RELATIONS,
+    RELATIONS,
+    SEVERITIES,
+    STATUSES,
+    UNIT_RELATIONS,
+)
 
 
 def vocabulary_faults(doc: dict[str, Any]) -> list[str]:
@@ -25,4 +32,10 @@ def vocabulary_faults(doc: dict[str, Any]) -> list[str]:
             faults.append(f"finding of an unregistered rule {f['rule']!r}")
         if f["severity"] not in SEVERITIES:
             faults.append(f"severity {f['severity']!r}")
+    for vocabulary, values in (
+        (RELATIONS, [r["relation"] for r in doc["relations"]]),
+        (UNIT_RELATIONS, [u["relation"] for u in doc["experimental_units"]]),
+        (FACTOR_RELATIONS, [r["relation"] for r in doc["design"]["factor_relations"]]),
+    ):
+        faults += [f"relation {v!r}" for v in values if v not in vocabulary]
     return faults

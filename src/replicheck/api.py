@@ -51,7 +51,6 @@ from replicheck.claim import Claim, build_claim, load_spec, spec_beside
 from replicheck.clustering import TermClustering, cluster_terms
 from replicheck.codebook import shared_codes
 from replicheck.decisions import key_term, shown_term
-from replicheck.defaults import DEFAULT_SEED
 from replicheck.display import Display, display_data
 from replicheck.errors import InputError
 from replicheck.io import ReadOptions, read_table, resolve_column
@@ -83,8 +82,10 @@ def make_claim(
     family: str | None = None,
     limits: Sequence[str] | Mapping[str, object] | None = None,
     reading: ReadOptions | None = None,
+    options: Mapping[str, object] | None = None,
 ) -> Claim:
-    """Build the claim from options, an explicit spec, or the spec found beside the data file."""
+    """Build the claim from options, an explicit spec, or the spec found beside the data
+    file; every stated role and setting is checked here, before any data are read."""
     spec_data: Mapping[str, object] | None = None
     spec_path: str | None = None
     if isinstance(spec, Mapping):
@@ -115,6 +116,7 @@ def make_claim(
         family=family,
         limits=limits,
         reading=reading,
+        options=options,
     )
 
 
@@ -137,12 +139,13 @@ def audit(
     covariate: str | Sequence[str] | None = None,
     ignore: str | Sequence[str] | None = None,
     roles: Mapping[str, object] | None = None,
-    seed: int = DEFAULT_SEED,
-    power: float = 0.8,
+    seed: int | None = None,
+    power: float | None = None,
     effect: float | None = None,
-    hidden: bool = True,
+    hidden: bool | None = None,
     dayfirst: bool | None = None,
     order: str | None = None,
+    options: Mapping[str, object] | None = None,
     progress: Callable[[int, int], None] | None = None,
     stage: Callable[[str], None] | None = None,
     name: str | None = None,
@@ -191,19 +194,31 @@ def audit(
         places or subjects (block, bench, plate, subject, ...) are taken as
         blocks of the design; times (day, period) stay terms.
     seed:
-        Seed of the Monte Carlo randomisation test (used only when the design
-        allows more than 100,000 assignments); the same seed gives the same report.
+        Seed of the random steps (the Monte Carlo randomisation test, used only
+        when the design allows more than 100,000 assignments, and the wild
+        cluster bootstrap); the same seed gives the same report (default
+        :data:`replicheck.defaults.DEFAULT_SEED`).
     power, effect:
-        Target power of the "what a valid design would need" figures, and the
-        difference between two level means (in the response's units) to detect;
-        by default the observed differences between the level means.
+        Target power of the "what a valid design would need" figures (default
+        0.8), and the difference between two level means (in the response's
+        units) to detect; by default the observed differences between the level
+        means.
     hidden, dayfirst, order:
         Whether to look for groupings that no column names (sessions in time
         stamps, zones in coordinates, runs in the row order, tokens of sample
-        codes, covariates constant within unrecorded units); how to read
-        ambiguous dates (day first or month first; by default the reading that
-        fits every value, month first when both do); a column giving the order
-        in which samples were processed (default: detected, else file order).
+        codes, covariates constant within unrecorded units; default True); how
+        to read ambiguous dates (``True`` day first, ``False`` month first; by
+        default the reading that fits every value, month first when both do);
+        a column giving the order in which samples were processed (default:
+        detected, else file order).
+    options:
+        The settings above as a mapping of the keys of
+        :data:`replicheck.options.OPTION_FIELDS` (``alpha``, ``seed``, ``power``,
+        ``effect``, ``hidden``, ``dates``, ``order``; as the command line passes
+        them); keyword arguments above win for their setting. A spec's values
+        fill the settings given by neither, and the report records where each
+        value came from (``claim.settings`` in the JSON). Every setting is
+        checked before any data are read.
     name:
         How the report names a DataFrame's source (default ``<dataframe>``);
         a file is always named by its path.
@@ -277,7 +292,6 @@ def audit(
     >>> audit(df, response="y", treatment="feed").status
     'pseudoreplicated'
     """
-    _check_numbers(seed, power, effect)
     with shared_codes():  # each column coded once for every stage
         clock = _Stopwatch(stage)
         stated = make_claim(
@@ -286,19 +300,29 @@ def audit(
             response=response,
             treatment=treatment,
             claim=claim,
-            alpha=alpha,
             na=na,
             sheet=sheet,
             spec=spec,
             find_spec=find_spec,
             formula=formula,
-            roles=_roles(
+            roles=_given(
                 roles, unit=unit, block=block, within=within, covariate=covariate, ignore=ignore
             ),
             unit_labels=unit_labels,
             family=family,
             limits=limits,
+            options=_given(
+                options,
+                alpha=alpha,
+                seed=seed,
+                power=power,
+                effect=effect,
+                hidden=hidden,
+                dates=_dates(dayfirst),
+                order=order,
+            ),
         )
+        settings = stated.options
         clock.lap("claim")
         table = read_table(
             data if isinstance(data, pd.DataFrame) else Path(data),
@@ -316,15 +340,25 @@ def audit(
         c = prepared.claim
         clock.lap("read")
         scan = HiddenScan()
-        if hidden:
-            at = None if order is None else resolve_column(prepared.table.columns, order, "order")
+        if settings.hidden:
+            order_of = settings.order
+            at = (
+                None
+                if order_of is None
+                else resolve_column(prepared.table.columns, order_of, "order")
+            )
             scan = scan_hidden(
-                prepared.frame, c.response, c.treatments, seed=seed, dayfirst=dayfirst, order=at
+                prepared.frame,
+                c.response,
+                c.treatments,
+                seed=settings.seed,
+                dayfirst=settings.dayfirst,
+                order=at,
             )
         clock.lap("hidden")
         design = read_design(prepared.frame, c, prepared.terms, prepared.slopes_on, scan)
         clock.lap("structure")
-        fitted = refit_design(prepared, design, seed)
+        fitted = refit_design(prepared, design, settings.seed)
         clock.lap("refit")
         clusters = cluster_terms(fitted.y, fitted.inputs, fitted.fits, fitted.kind)
         clock.lap("clustering")
@@ -353,8 +387,8 @@ def audit(
             fitted.inputs[key],
             evidence.terms[key].clustering,
             alpha=c.alpha,
-            power=power,
-            effect=effect,
+            power=settings.power,
+            effect=settings.effect,
         )
         display = _display(design, fitted, evidence)
         clock.lap("report data")
@@ -372,21 +406,20 @@ def audit(
         )
 
 
-def _check_numbers(seed: int, power: float, effect: float | None) -> None:
-    """The numeric options, before anything is read."""
-    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
-        raise InputError(f"the seed must be a whole number of 0 or more, got {seed!r}")
-    if isinstance(power, bool) or not 0 < power < 1:
-        raise InputError(f"power must be a number between 0 and 1 (exclusive), got {power!r}")
-    if effect is not None and not (np.isfinite(effect) and effect > 0):
-        raise InputError(f"the effect to detect must be a positive number, got {effect!r}")
-
-
-def _roles(given: Mapping[str, object] | None, **named: object) -> dict[str, object]:
-    """The stated roles: the mapping, with each role given as a keyword in its place."""
-    out = dict(given or {})
+def _given(mapping: Mapping[str, object] | None, **named: object) -> dict[str, object]:
+    """Stated values: the mapping, with each value given as a keyword in its place."""
+    out = dict(mapping or {})
     out.update({key: value for key, value in named.items() if value is not None})
     return out
+
+
+def _dates(dayfirst: object) -> str | None:
+    """``dayfirst`` as the ``dates`` setting (None: not given)."""
+    if dayfirst is None:
+        return None
+    if not isinstance(dayfirst, bool):
+        raise InputError(f"dayfirst must be True, False or None, got {dayfirst!r}")
+    return "day-first" if dayfirst else "month-first"
 
 
 def _reading(

@@ -54,10 +54,11 @@ from pathlib import Path
 from typing import NamedTuple, cast
 
 from replicheck.advice import option
-from replicheck.errors import InputError
+from replicheck.errors import InputError, kind_of
 from replicheck.formula import ModelFormula, factor_name, parse_formula, replace_response
 from replicheck.io.table import ReadOptions
 from replicheck.limits import Limits, make_limits
+from replicheck.options import OPTION_FIELDS, Options, option_field, stated_options
 from replicheck.roles import ROLE_FIELDS, Roles, stated_roles
 from replicheck.vocab import UNIT_LABEL_MODES
 
@@ -80,7 +81,6 @@ SPEC_SUFFIX = ".replicheck.toml"
 SPEC_KEYS = tuple(
     sorted(
         (
-            "alpha",
             "claim",
             "family",
             "fill_down",
@@ -96,6 +96,7 @@ SPEC_KEYS = tuple(
             "treatment",
             "unit_labels",
             *(f.key for f in ROLE_FIELDS),
+            *(f.key for f in OPTION_FIELDS),
         )
     )
 )
@@ -115,9 +116,7 @@ _EXAMPLE = "expected text such as 'F(2, 57) = 8.31, p = .001'"
 
 
 def _check_alpha(alpha: object) -> float:
-    if isinstance(alpha, bool) or not isinstance(alpha, int | float) or not 0 < alpha < 1:
-        raise InputError(f"alpha must be a number between 0 and 1 (exclusive), got {alpha!r}")
-    return float(alpha)
+    return cast(float, option_field("alpha").check(alpha, ""))
 
 
 @dataclass(frozen=True)
@@ -136,14 +135,6 @@ class ReportedResult:
     adjusted: bool = False  # the text says the analysis was adjusted for covariates (ANCOVA)
     ratio: float | None = None  # a reported odds or rate ratio ("OR = 2.1")
     ratio_ci: tuple[float, float] | None = None  # its 95% interval, when given
-
-    def p_upper(self) -> float | None:
-        """Largest p consistent with the report (no allowance for rounding of "=")."""
-        if self.p_relation in ("=", "<", "<="):
-            return self.p_value
-        if self.p_relation in (">", ">=", "ns"):
-            return 1.0
-        return None
 
     def significant_at(self, alpha: float) -> bool | None:
         """What the report says about ``p < alpha``; None when it cannot tell.
@@ -639,6 +630,7 @@ class Claim:
     family: str | None = None  # binomial | poisson: a claimed logistic or Poisson regression
     limits: Limits = field(default_factory=Limits)
     reading: ReadOptions = field(default_factory=ReadOptions)
+    options: Options = field(default_factory=Options)  # alpha among them, with its source
 
     @property
     def unit(self) -> str | None:
@@ -657,23 +649,9 @@ def spec_beside(data_path: str | os.PathLike[str]) -> Path | None:
         return None
 
 
-def _kind(value: object) -> str:
-    for typ, label in (
-        (bool, "true/false"),
-        (str, "text"),
-        (int, "an integer"),
-        (float, "a number"),
-        (list, "a list"),
-        (dict, "a table"),
-    ):
-        if isinstance(value, typ):
-            return label
-    return type(value).__name__
-
-
 def _text(value: object, key: str, source: str) -> str:
     if not isinstance(value, str) or not value.strip():
-        raise InputError(f"'{key}' in {source} must be a non-empty string, not {_kind(value)}")
+        raise InputError(f"'{key}' in {source} must be a non-empty string, not {kind_of(value)}")
     return value
 
 
@@ -735,14 +713,14 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
             for v in value:
                 if not isinstance(v, str) or not v.strip():
                     raise InputError(
-                        f"'claim' in {source} must hold non-empty strings, not {_kind(v)}"
+                        f"'claim' in {source} must hold non-empty strings, not {kind_of(v)}"
                     )
             out["claim"] = tuple(value)
         elif isinstance(value, str) and value.strip():
             out["claim"] = value
         else:
             raise InputError(
-                f"'claim' in {source} must be a string or a list of strings, not {_kind(value)}"
+                f"'claim' in {source} must be a string or a list of strings, not {kind_of(value)}"
             )
     if "treatment" in spec:
         value = spec["treatment"]
@@ -762,17 +740,15 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
             f"'formula' in {source}",
             f"in {source}",
         )
-    if "alpha" in spec:
-        value = spec["alpha"]
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            raise InputError(f"'alpha' in {source} must be a number, not {_kind(value)}")
-        out["alpha"] = _check_alpha(value)
+    for setting in OPTION_FIELDS:
+        if spec.get(setting.key) is not None:
+            out[setting.key] = setting.check(spec[setting.key], f" in {source}")
     if "na" in spec:
         value = spec["na"]
         items = list(value) if isinstance(value, list | tuple) else [value]
         for v in items:
             if isinstance(v, bool) or not isinstance(v, str | int | float):
-                raise InputError(f"'na' in {source} must hold strings or numbers, not {_kind(v)}")
+                raise InputError(f"'na' in {source} must hold strings or numbers, not {kind_of(v)}")
         out["na"] = tuple(str(v) for v in items)
     if "sheet" in spec:
         value = spec["sheet"]
@@ -824,7 +800,7 @@ def _check_spec(spec: Mapping[str, object], source: str) -> dict[str, object]:
         elif not isinstance(value, Mapping | list | tuple):
             raise InputError(
                 f"'limits' in {source} must be a table such as {{ columns = 20000 }}, "
-                f"not {_kind(value)}"
+                f"not {kind_of(value)}"
             )
         else:
             out["limits"] = make_limits(value, f"in {source}")
@@ -937,6 +913,7 @@ def build_claim(
     family: str | None = None,
     limits: Sequence[str] | Mapping[str, object] | None = None,
     reading: ReadOptions | None = None,
+    options: Mapping[str, object] | None = None,
 ) -> Claim:
     """Merge command-line values with a spec; command-line values win.
 
@@ -969,7 +946,10 @@ def build_claim(
     binomial.
 
     Treatments given on the command line replace the spec's list; na values
-    are the union (spec first); alpha defaults to 0.05. An integer sheet from
+    are the union (spec first). ``options`` are the settings of
+    :data:`replicheck.options.OPTION_FIELDS` (None: not given), ``alpha`` among
+    them (the ``alpha`` argument wins); each replaces the spec's, and each takes
+    its default when neither gives it (alpha 0.05). An integer sheet from
     the spec becomes its string form (the reader decides name or position).
     ``limits`` (``KEY=N`` texts or a mapping, see :mod:`replicheck.limits`)
     replace the spec's limits of the same keys. ``reading`` (header row, range,
@@ -1033,7 +1013,10 @@ def build_claim(
         spec_claim = cast("str | tuple[str, ...]", s["claim"])
         texts = [spec_claim] if isinstance(spec_claim, str) else list(spec_claim)
     reported, per_term = _results(texts, model, treats)
-    a = _check_alpha(alpha) if alpha is not None else cast(float, s.get("alpha", 0.05))
+    stated_settings = dict(options or {})
+    if alpha is not None:
+        stated_settings["alpha"] = alpha
+    settings = stated_options(stated_settings, spec=s, spec_source=f"in {spec_path or 'the spec'}")
     spec_na = cast("tuple[str, ...]", s.get("na", ()))
     na = tuple(dict.fromkeys([*spec_na, *(str(v) for v in na_values)]))
     sh = sheet if sheet is not None else cast("str | int | tuple[str, ...] | None", s.get("sheet"))
@@ -1044,7 +1027,7 @@ def build_claim(
         treatments=treats,
         roles=stated,
         reported=reported,
-        alpha=a,
+        alpha=settings.alpha,
         na_values=na,
         sheet=None if sh is None else sh if isinstance(sh, tuple) else str(sh),
         spec_path=spec_path,
@@ -1054,6 +1037,7 @@ def build_claim(
         family=fam,
         limits=make_limits(limits, "in the options", cast("Limits", s.get("limits", Limits()))),
         reading=_reading(reading or ReadOptions(), s),
+        options=settings,
     )
 
 

@@ -18,8 +18,8 @@ from typing import Any
 import click
 
 from replicheck import __version__
-from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
+from replicheck.options import OPTION_FIELDS
 from replicheck.screen.command import screen_command
 
 FORMATS = ("text", "json", "markdown", "html")
@@ -137,6 +137,28 @@ def cli() -> None:
     """
 
 
+_SETTING_TYPES: dict[str, Any] = {"number": float, "whole": int, "column": str}
+
+
+def _setting_options(command: Any) -> Any:
+    """One option per setting, from the one table of settings (replicheck.options); none
+    has a default here, so that a spec's value fills a setting the command line omits."""
+    from replicheck.options import DATES
+
+    for field in reversed(OPTION_FIELDS):
+        kind: dict[str, Any] = {}
+        if field.kind == "flag":
+            kind = {"default": None}
+        elif field.kind == "choice":
+            kind = {"type": click.Choice(DATES), "default": None}
+        else:
+            kind = {"type": _SETTING_TYPES[field.kind], "metavar": field.metavar, "default": None}
+        command = click.option(field.option, f"setting_{field.key}", help=field.help, **kind)(
+            command
+        )
+    return command
+
+
 def _role_options(command: Any) -> Any:
     """One repeatable option per statable role, from the one table of roles."""
     from replicheck.roles import ROLE_FIELDS
@@ -191,6 +213,7 @@ Exit codes:
     "'Error(block/plot)': it is fitted as claimed and judged at the experimental units.",
 )
 @_role_options
+@_setting_options
 @click.option(
     "-c",
     "--claim",
@@ -205,12 +228,12 @@ Exit codes:
     metavar="FILE",
     type=click.Path(dir_okay=False, path_type=str),
     help="TOML file with response, treatment (or formula), claim (one or a list), the "
-    "stated roles unit, block, within, covariate, ignore (one or a list each), unit_labels, "
-    "alpha, na, sheet, header_row, range, fill_down, long, id. Default: "
+    "stated roles unit, block, within, covariate, ignore (one or a list each), the settings "
+    f"{', '.join(f.key for f in OPTION_FIELDS)} (the options of the same names win), "
+    "unit_labels, family, na, sheet, header_row, range, fill_down, long, id. Default: "
     "NAME.replicheck.toml beside the data file, if present.",
 )
 @click.option("--no-spec", is_flag=True, help="Ignore a spec file found beside the data.")
-@click.option("--alpha", type=float, metavar="A", help="Significance level (default 0.05).")
 @click.option(
     "--na",
     "na_codes",
@@ -296,50 +319,6 @@ Exit codes:
 )
 @click.option("-o", "--output", metavar="PATH", help="Write the report here instead of stdout.")
 @click.option(
-    "--seed",
-    type=int,
-    default=DEFAULT_SEED,
-    show_default=True,
-    help="Seed of the random steps (Monte Carlo randomisation test, wild cluster bootstrap).",
-)
-@click.option(
-    "--power",
-    type=float,
-    default=0.8,
-    show_default=True,
-    help="Power the 'what a valid design would need' figures aim for.",
-)
-@click.option(
-    "--effect",
-    type=float,
-    default=None,
-    metavar="D",
-    help="Difference between two level means (in the response's units) the design "
-    "should detect; default: the observed differences.",
-)
-@click.option(
-    "--hidden/--no-hidden",
-    default=True,
-    show_default=True,
-    help="Look for groupings no column names: sessions in time stamps, zones in "
-    "coordinates, runs in the processing order, tokens of sample codes, covariates "
-    "constant within unrecorded units.",
-)
-@click.option(
-    "--dates",
-    type=click.Choice(["auto", "day-first", "month-first"]),
-    default="auto",
-    show_default=True,
-    help="How to read dates such as 04/03/2026 when both readings fit.",
-)
-@click.option(
-    "--order",
-    "order_col",
-    metavar="COL",
-    help="Column giving the order in which samples were processed (default: a "
-    "sequence column if one is found, else the file order).",
-)
-@click.option(
     "--limit",
     "limits",
     metavar="KEY=N",
@@ -358,7 +337,6 @@ def check(
     claim_texts: Sequence[str],
     spec: str | None,
     no_spec: bool,
-    alpha: float | None,
     na_codes: Sequence[str],
     sheets: Sequence[str],
     header_row: int | None,
@@ -371,14 +349,8 @@ def check(
     unit_labels: str | None,
     fmt: str,
     output: str | None,
-    seed: int,
-    power: float,
-    effect: float | None,
-    hidden: bool,
-    dates: str,
-    order_col: str | None,
     limits: Sequence[str],
-    **role_values: Sequence[str],
+    **stated: Any,
 ) -> None:
     """Audit DATA against its claimed analysis.
 
@@ -396,9 +368,17 @@ def check(
         response=response,
         treatment=treatments,
         claim=tuple(claim_texts) or None,
-        roles={k.removeprefix("role_"): tuple(v) for k, v in role_values.items() if v},
+        roles={
+            k.removeprefix("role_"): tuple(v)
+            for k, v in stated.items()
+            if k.startswith("role_") and v
+        },
+        options={
+            k.removeprefix("setting_"): v
+            for k, v in stated.items()
+            if k.startswith("setting_") and v is not None
+        },
         formula=formula,
-        alpha=alpha,
         na=na_codes,
         sheet=None if not sheets else sheets[0] if len(sheets) == 1 else tuple(sheets),
         header_row=header_row,
@@ -411,12 +391,6 @@ def check(
         find_spec=not no_spec,
         unit_labels=unit_labels,
         family=family,
-        seed=seed,
-        power=power,
-        effect=effect,
-        hidden=hidden,
-        dayfirst=None if dates == "auto" else dates == "day-first",
-        order=order_col,
         progress=bar.update,
         stage=line.begin,
         limits=limits or None,

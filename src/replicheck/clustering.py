@@ -24,7 +24,7 @@ from replicheck.stats.clustering import anova_components, design_effect
 from replicheck.stats.discrete import Overdispersion, ResponseKind, unit_overdispersion
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Clustering:
     """Clustering of the response within experimental units, within treatment levels."""
 

@@ -27,6 +27,21 @@ class InputError(Exception):
         return render(self.message, "cli" if syntax == "cli" else "api")
 
 
+def kind_of(value: object) -> str:
+    """What kind of value a user gave, for a message that refuses it ("text", "a list")."""
+    for typ, label in (
+        (bool, "true/false"),
+        (str, "text"),
+        (int, "an integer"),
+        (float, "a number"),
+        (list, "a list"),
+        (dict, "a table"),
+    ):
+        if isinstance(value, typ):
+            return label
+    return type(value).__name__
+
+
 def brief(exc: BaseException, limit: int = 160) -> str:
     """A library's exception as one short line, for the reason part of an InputError."""
     text = " ".join(str(exc).split()) or type(exc).__name__

@@ -11,7 +11,13 @@ written"):
   "< 0.0001" below that;
 * degrees of freedom: whole numbers, or three significant digits when fractional
   (Satterthwaite and similar approximations);
-* counts: whole numbers.
+* counts: whole numbers;
+* one exception: a figure of the data set beside a reported one to check it
+  (the reading of the reported df, the reported-result findings) keeps four
+  significant digits for a statistic and three for a p-value, so that it can
+  be compared with a value printed to two decimals; the reported value is
+  written as it was given (:func:`beside_reported`, :func:`p_beside`,
+  :func:`plain`).
 """
 
 from __future__ import annotations
@@ -65,6 +71,35 @@ def p_phrase(p: float | None) -> str:
         return "p not available"
     text = format_p(p)
     return f"p {text[0]} {text[1:]}" if text.startswith("<") else f"p = {text}"
+
+
+def beside_reported(x: float, digits: int = 4) -> str:
+    """A statistic of the data set beside a reported one: four significant digits (three
+    where the sentence gives the reported one first).
+
+    >>> beside_reported(17.3512), beside_reported(2.0), beside_reported(17.3512, 3)
+    ('17.35', '2', '17.4')
+    """
+    return f"{x:.{digits}g}"
+
+
+def p_beside(p: float) -> str:
+    """A p-value of the data set beside a reported one: three significant digits.
+
+    >>> p_beside(0.27238), p_beside(3.1e-06)
+    ('0.272', '3.1e-06')
+    """
+    return f"{p:.3g}"
+
+
+def plain(x: float) -> str:
+    """A value written with the digits it has (up to six significant): a reported value
+    as it was given, and degrees of freedom compared with reported ones.
+
+    >>> plain(0.001), plain(319.0), plain(21.5)
+    ('0.001', '319', '21.5')
+    """
+    return f"{x:g}"
 
 
 def count_text(n: int) -> str:

@@ -18,7 +18,7 @@ import numpy as np
 from replicheck.claim import ReportedResult
 from replicheck.decisions import shown_term
 from replicheck.glossary import short_title
-from replicheck.numbers import format_number, p_phrase
+from replicheck.numbers import beside_reported, format_number, p_beside, p_phrase, plain
 from replicheck.partitions import is_nested, units_per_level
 from replicheck.ranks import rank_tests
 from replicheck.refit import Analysis, Refit, TermInput, row_model_size, within_block_tests
@@ -30,7 +30,7 @@ STAT_REL_TOL = 0.03
 STAT_ABS_TOL = 0.051
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Reconciliation:
     """What the reported numbers say about the analysis the authors ran."""
 
@@ -167,18 +167,20 @@ def _shown(a: Analysis, test: str | None) -> str:
     """An analysis and its result, e.g. "the unit means (F(1, 14) = 4.61, p = 0.0497)"."""
     if a.test == "rank" and a.statistic is not None:
         stat = "V" if a.name == "signed_rank" else "W"
-        return f"{_short(a)} ({stat} = {a.statistic:.4g}, {p_phrase(a.p_value)})"
+        return f"{_short(a)} ({stat} = {beside_reported(a.statistic)}, {p_phrase(a.p_value)})"
     if a.df is None or a.statistic is None:
         return _short(a)
     if a.test == "chi2":
         if test == "z" and a.t_statistic is not None:
-            return f"{_short(a)} (z = {a.t_statistic:.4g}, {p_phrase(a.p_value)})"
-        return f"{_short(a)} (chi2({a.df[0]:g}) = {a.statistic:.4g}, {p_phrase(a.p_value)})"
-    den = f"{a.df[1]:.4g}"
+            return f"{_short(a)} (z = {beside_reported(a.t_statistic)}, {p_phrase(a.p_value)})"
+        chi2 = beside_reported(a.statistic)
+        return f"{_short(a)} (chi2({plain(a.df[0])}) = {chi2}, {p_phrase(a.p_value)})"
+    den = beside_reported(a.df[1])
     t = _t_of(a)
     if test == "t" and t is not None:
-        return f"{_short(a)} (t({den}) = {t:.4g}, {p_phrase(a.p_value)})"
-    return f"{_short(a)} (F({a.df[0]:g}, {den}) = {a.statistic:.4g}, {p_phrase(a.p_value)})"
+        return f"{_short(a)} (t({den}) = {beside_reported(t)}, {p_phrase(a.p_value)})"
+    f = beside_reported(a.statistic)
+    return f"{_short(a)} (F({plain(a.df[0])}, {den}) = {f}, {p_phrase(a.p_value)})"
 
 
 @dataclass(frozen=True)
@@ -268,7 +270,13 @@ def reconcile(
     ``num_df`` is the term's numerator df.
     """
     if reported is None:
-        return Reconciliation("unknown", None, None, (), as_claimed.significant(alpha))
+        return Reconciliation(
+            level="unknown",
+            level_grouping=None,
+            explanation=None,
+            mismatches=(),
+            claimed_significant=as_claimed.significant(alpha),
+        )
     mismatches: list[str] = []
     level, grouping, explanation = "unknown", None, None
     rows = levels[0]
@@ -305,10 +313,10 @@ def reconcile(
             f"{how}, not by {_shown(as_claimed, reported.test)}"
         )
         same = [lv for lv in levels if err is not None and abs(lv.error_df - err) < 0.5]
-        if same and same[0].kind != "rows":
+        if same and same[0].kind != "rows" and err is not None:
             lv = same[0]
             explanation = (
-                f"error df {err:g} = {lv.replicates} levels of '{lv.name}' - {lv.removed}: "
+                f"error df {plain(err)} = {lv.replicates} levels of '{lv.name}' - {lv.removed}: "
                 + explanation
             )
     elif err is not None:
@@ -317,15 +325,16 @@ def reconcile(
                 level, grouping = lv.kind, (None if lv.kind == "rows" else lv.name)
                 what = "rows" if lv.kind == "rows" else f"levels of '{lv.name}'"
                 explanation = (
-                    f"error df {err:g} = {lv.replicates} {what} - {lv.removed}: "
+                    f"error df {plain(err)} = {lv.replicates} {what} - {lv.removed}: "
                     + _meaning(lv, "took")
                 )
                 break
         if explanation is None:
             nearest = min(levels, key=lambda lv: abs(lv.error_df - err))
             explanation = (
-                f"error df {err:g} matches no level of the data (rows give {rows.error_df:g}; "
-                f"closest: '{nearest.name}' with {nearest.error_df:g}); rows may have been "
+                f"error df {plain(err)} matches no level of the data "
+                f"(rows give {plain(rows.error_df)}; "
+                f"closest: '{nearest.name}' with {plain(nearest.error_df)}); rows may have been "
                 f"excluded or another model fitted"
             )
     if explanation is None and reported.n_per_group is not None:
@@ -346,8 +355,8 @@ def reconcile(
                     unit = next((lv for lv in levels if lv.kind == "units"), None)
                     level, grouping = "units", (unit.name if unit else None)
                     explanation = (
-                        f"reported p = {q:g} matches the {short_title(a.name)} "
-                        f"(p = {a.p_value:.3g}), not the row-level one: the units were "
+                        f"reported p = {plain(q)} matches the {short_title(a.name)} "
+                        f"(p = {p_beside(a.p_value)}), not the row-level one: the units were "
                         f"probably the replicates"
                     )
                     break
@@ -357,7 +366,7 @@ def reconcile(
         and len(reported.df) >= 2
         and abs(reported.df[0] - num_df) > 0.5
     ):
-        mismatches.append(f"numerator df {reported.df[0]:g} differs from {num_df} in the data")
+        mismatches.append(f"numerator df {plain(reported.df[0])} differs from {num_df} in the data")
     if (
         explanation is None
         and reproduced_by == "as_claimed"
@@ -368,7 +377,7 @@ def reconcile(
         shown = (
             _shown(as_claimed, reported.test)
             if reported.test
-            else f"the row-level analysis (ratio {_ratio(as_claimed) or 0:.4g})"
+            else f"the row-level analysis (ratio {beside_reported(_ratio(as_claimed) or 0)})"
         )
         if as_claimed.label.startswith("as claimed: mixed"):  # judged by its random effects
             shown = shown.replace("the row-level analysis", "the claimed mixed model")
@@ -390,16 +399,17 @@ def reconcile(
         if not _close(mine, theirs):
             tried = [_shown(a, reported.test) for a in others if a.statistic is not None]
             mismatches.append(
-                f"reported {reported.test} = {reported.statistic:g}, but the data give "
-                f"{mine:.3g} for the row-level analysis"
+                f"reported {reported.test} = {plain(reported.statistic)}, but the data give "
+                f"{beside_reported(mine, 3)} for the row-level analysis"
                 + (f" (also tried: {'; '.join(tried)})" if tried else "")
             )
     if reported.ratio is not None and checked:
         mine_ratio = _ratio(reference)
         if mine_ratio is not None and not _ratio_matches(reported, reference):
             mismatches.append(
-                f"reported ratio {reported.ratio:g}, but the data give {mine_ratio:.3g} "
-                f"(or {1 / mine_ratio:.3g} the other way round)"
+                f"reported ratio {plain(reported.ratio)}, "
+                f"but the data give {beside_reported(mine_ratio, 3)} "
+                f"(or {beside_reported(1 / mine_ratio, 3)} the other way round)"
             )
     if (
         reported.p_value is not None
@@ -409,20 +419,20 @@ def reconcile(
     ):
         p, q = reference.p_value, reported.p_value
         if reported.p_relation == "=" and not _p_matches(q, p):
-            mismatches.append(f"reported p = {q:g}, but the data give p = {p:.3g}")
+            mismatches.append(f"reported p = {plain(q)}, but the data give p = {p_beside(p)}")
         if reported.p_relation in {"<", "<="} and p > q * 1.05:
-            mismatches.append(f"reported p < {q:g}, but the data give p = {p:.3g}")
+            mismatches.append(f"reported p < {plain(q)}, but the data give p = {p_beside(p)}")
     claimed_sig = reported.significant_at(alpha)
     if claimed_sig is None:
         claimed_sig = as_claimed.significant(alpha)
     return Reconciliation(
-        level,
-        grouping,
-        explanation,
-        tuple(mismatches),
-        claimed_sig,
-        reported.p_value,
-        reproduced_by,
+        level=level,
+        level_grouping=grouping,
+        explanation=explanation,
+        mismatches=tuple(mismatches),
+        claimed_significant=claimed_sig,
+        reported_p=reported.p_value,
+        reproduced_by=reproduced_by,
     )
 
 
@@ -495,7 +505,13 @@ def claimed_model_level(
         )
     if rec is None:
         significant = None if as_claimed is None else as_claimed.significant(alpha)
-        return Reconciliation(level, grouping, why, (), significant)
+        return Reconciliation(
+            level=level,
+            level_grouping=grouping,
+            explanation=why,
+            mismatches=(),
+            claimed_significant=significant,
+        )
     explanation = why if rec.explanation is None else f"{why}; {rec.explanation}"
     return replace(rec, level=level, level_grouping=grouping, explanation=explanation)
 

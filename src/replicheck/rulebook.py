@@ -7,7 +7,52 @@ stack, and by :mod:`replicheck.verdict`, whose registered rules must be exactly 
 
 from __future__ import annotations
 
-RULE_DOCS: dict[str, str] = {
+from typing import Literal
+
+#: The rule behind a finding (``findings[].rule`` in the JSON). Rule names are stable:
+#: never rename one. :data:`RULE_DOCS` gives each its description, in this order.
+RuleName = Literal[
+    "treatment-confounded-with-unit",
+    "rows-counted-as-replicates",
+    "random-slope-omitted",
+    "term-in-block-stratum",
+    "reported-df-level",
+    "reported-result-not-reproduced",
+    "stated-unit-not-supported",
+    "stated-role-disputed",
+    "unit-reading-open",
+    "labels-local-to-treatment",
+    "unit-reading-uncertain",
+    "column-reads-as-treatment-label",
+    "grouping-not-weighed",
+    "treatment-coincides-with-column",
+    "formula-block-as-stratum",
+    "response-rescaled",
+    "claimed-grouping-unreplicated",
+    "rows-read-as-trials",
+    "numbers-in-formula",
+    "unreplicated-interaction",
+    "partial-alignment",
+    "single-unit-levels",
+    "few-units",
+    "randomisation-floor",
+    "cross-checks-disagree",
+    "unit-overdispersion",
+    "grouping-derived",
+    "treatment-by-time",
+    "treatment-in-runs",
+    "order-autocorrelation",
+    "treatment-clumped-in-space",
+    "residual-spatial-autocorrelation",
+    "code-encodes-treatment",
+    "treatment-in-file-runs",
+    "day-month-ambiguous",
+    "unit-variance-zero",
+    "rows-dropped",
+    "crossed-grouping",
+]
+
+RULE_DOCS: dict[RuleName, str] = {
     "treatment-confounded-with-unit": "each treatment level sits in a single unit",
     "rows-counted-as-replicates": "rows were analysed as replicates of a larger unit",
     "random-slope-omitted": (

@@ -19,7 +19,7 @@ from replicheck.glossary import short_title, unit_noun
 from replicheck.numbers import count_text, format_df, format_number, p_phrase
 from replicheck.reconcile import Reconciliation
 from replicheck.refit import Analysis, TermRefit
-from replicheck.rulebook import RULE_DOCS
+from replicheck.rulebook import RULE_DOCS, RuleName
 from replicheck.slopes import SlopeCheck
 from replicheck.structure.hidden.base import HiddenScan
 from replicheck.structure.numbers import NumberReading
@@ -44,7 +44,7 @@ FEW_UNITS = 3
 class Finding:
     """One thing the audit noticed."""
 
-    rule: str
+    rule: RuleName
     severity: Severity
     message: str
     advice: str
@@ -87,7 +87,7 @@ class TermEvidence:
         return self.refit.get(self.refit.corrected or "")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Evidence:
     """Everything the rules may look at."""
 
@@ -113,7 +113,7 @@ class Evidence:
     claimed_groupings: tuple[tuple[str, int, int], ...] = ()
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class TermVerdict:
     """The corrected verdict for one term."""
 
@@ -126,7 +126,7 @@ class TermVerdict:
     error_term: str | None = None  # the stratum it is tested in (None: untestable)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Verdict:
     """The corrected verdict."""
 
@@ -146,10 +146,10 @@ class Verdict:
 
 
 Rule = Callable[[Evidence], Iterable[Finding]]
-RULES: dict[str, tuple[Rule, str]] = {}
+RULES: dict[RuleName, tuple[Rule, str]] = {}
 
 
-def rule(name: str) -> Callable[[Rule], Rule]:
+def rule(name: RuleName) -> Callable[[Rule], Rule]:
     """Register a rule under a stable kebab-case name listed in :mod:`replicheck.rulebook`
     (its one-line description comes from there)."""
 
@@ -462,7 +462,7 @@ def _stated(ev: Evidence) -> Iterator[Finding]:
     for kind, text, columns in ev.structure.disputes:
         if kind != "stated-unit-not-supported":
             continue
-        yield Finding(kind, "warning", _cap(text) + ".", advice, columns)
+        yield Finding("stated-unit-not-supported", "warning", _cap(text) + ".", advice, columns)
     for t in ev.terms:
         for alt in t.alternatives:
             if alt.reading.kind != "stated":
@@ -486,7 +486,7 @@ def _role_disputed(ev: Evidence) -> Iterator[Finding]:
     for kind, text, columns in ev.structure.disputes:
         if kind == "stated-role-disputed":
             yield Finding(
-                kind,
+                "stated-role-disputed",
                 "warning",
                 _cap(text) + ".",
                 "The statement was used as given; check it against the methods.",
@@ -521,7 +521,7 @@ def _reading_open(ev: Evidence) -> Iterator[Finding]:
             )
 
 
-def _reading_rule(name: str) -> Rule:
+def _reading_rule(name: RuleName) -> Rule:
     def emit(ev: Evidence) -> Iterator[Finding]:
         for kind, text in ev.structure.readings:
             if kind == name:
@@ -868,7 +868,7 @@ def _derived(ev: Evidence) -> Iterator[Finding]:
 
 
 SIGNAL_P = 0.001  # p-value below which a hidden-structure signal is reported (common practice)
-SIGNAL_RULES: dict[str, Severity] = {  # rule name -> severity
+SIGNAL_RULES: dict[RuleName, Severity] = {  # rule name -> severity
     "treatment-by-time": "warning",
     "treatment-in-runs": "warning",
     "order-autocorrelation": "note",
@@ -899,7 +899,7 @@ SIGNAL_ADVICE = {
 }
 
 
-def _signal_rule(check: str, severity: Severity) -> Rule:
+def _signal_rule(check: RuleName, severity: Severity) -> Rule:
     def fn(ev: Evidence) -> Iterator[Finding]:
         for sig in ev.hidden.signals:
             if sig.check != check:
@@ -993,13 +993,13 @@ def decide(ev: Evidence) -> Verdict:
     findings.sort(key=lambda f: order[f.severity])
     terms = tuple(
         TermVerdict(
-            t.term,
-            term_status(t, ev),
-            None if term_status(t, ev) == "confounded" else _changed(t, ev),
-            claimed_significance(t, ev),
-            t.refit.corrected,
-            claimed_p(t),
-            error_term(t, ev),
+            term=t.term,
+            status=term_status(t, ev),
+            conclusion_changed=None if term_status(t, ev) == "confounded" else _changed(t, ev),
+            claimed_significant=claimed_significance(t, ev),
+            method=t.refit.corrected,
+            claimed_p_value=claimed_p(t),
+            error_term=error_term(t, ev),
         )
         for t in ev.terms
     )
@@ -1008,12 +1008,12 @@ def decide(ev: Evidence) -> Verdict:
     changed = None if status == "confounded" or not changes else any(changes)
     worst = terms[headline_term([tv.status for tv in terms], status)]
     return Verdict(
-        status,
-        changed,
-        worst.method,
-        summarise(ev, terms),
-        tuple(findings),
-        terms,
+        status=status,
+        conclusion_changed=changed,
+        method=worst.method,
+        summary=summarise(ev, terms),
+        findings=tuple(findings),
+        terms=terms,
         term=worst.term,
     )
 

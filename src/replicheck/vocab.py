@@ -1,4 +1,4 @@
-"""The closed vocabularies of the report: statuses, severities, analysis names.
+"""The closed vocabularies of the report: statuses, severities, analysis names, relations.
 
 Each is a ``Literal`` type, so that the type checker refuses a misspelt value
 wherever one is written, and a tuple of its values for code and tests that
@@ -13,14 +13,20 @@ from typing import Literal, get_args
 
 __all__ = [
     "ANALYSES",
+    "FACTOR_RELATIONS",
+    "RELATIONS",
     "SEVERITIES",
     "STATUSES",
     "STATUS_ORDER",
     "UNIT_LABEL_MODES",
+    "UNIT_RELATIONS",
     "AnalysisName",
+    "FactorRelationName",
+    "RelationName",
     "Severity",
     "Status",
     "UnitLabels",
+    "UnitRelationName",
 ]
 
 #: A term's or the report's verdict.
@@ -56,3 +62,16 @@ STATUS_ORDER: tuple[Status, ...] = ("confounded", "pseudoreplicated", "unclear",
 SEVERITIES: tuple[Severity, ...] = get_args(Severity)
 ANALYSES: tuple[AnalysisName, ...] = get_args(AnalysisName)
 UNIT_LABEL_MODES: tuple[UnitLabels, ...] = get_args(UnitLabels)
+
+#: How a grouping column relates to a treatment (``relations[].relation`` in the JSON).
+RelationName = Literal["confounded", "nested", "crossed", "partial", "unrelated"]
+RELATIONS: tuple[RelationName, ...] = get_args(RelationName)
+#: How a term's experimental unit relates to the term (``experimental_units[].relation``):
+#: ``none`` when no grouping holds the term constant and the rows are the replicates.
+UnitRelationName = Literal["nested", "confounded", "partial", "none"]
+UNIT_RELATIONS: tuple[UnitRelationName, ...] = get_args(UnitRelationName)
+#: How two factors of the model relate to each other (``factor_relations`` in the JSON).
+FactorRelationName = Literal[
+    "aliased", "nested", "contains", "crossed", "partially aliased", "unrelated"
+]
+FACTOR_RELATIONS: tuple[FactorRelationName, ...] = get_args(FactorRelationName)

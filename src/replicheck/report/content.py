@@ -169,7 +169,24 @@ def claim_rows(doc: dict[str, Any]) -> list[tuple[str, str]]:
     rc = doc["reported_check"]
     if rc and rc["explanation"]:
         rows.append(("reading of the reported df", rc["explanation"]))
+    stated = settings_text(c.get("settings", []))
+    if stated:
+        rows.append(("settings", stated))
     return rows
+
+
+def settings_text(settings: list[dict[str, Any]]) -> str:
+    """The settings that differ from their defaults, each with where it came from."""
+    from replicheck.options import option_field
+
+    parts = []
+    for s in settings:
+        if s["value"] == option_field(s["name"]).default:
+            continue
+        value = s["value"]
+        shown = "off" if value is False else "on" if value is True else str(value)
+        parts.append(f"{s['name']} {shown} ({s['source']})")
+    return "; ".join(parts)
 
 
 # ---------------------------------------------------------------------------

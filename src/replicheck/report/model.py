@@ -418,6 +418,7 @@ class Report:
                 if c.formula is not None
                 else [],
                 "family": c.family,
+                "settings": c.options.to_list(),
                 "numbers": [
                     {
                         "column": r.column,

@@ -14,6 +14,7 @@ from dataclasses import dataclass, fields, replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from replicheck.defaults import DEFAULT_SEED
 from replicheck.errors import InputError
 from replicheck.screen.discover import DataFile, Discovery, find_data_files
 from replicheck.screen.state import (
@@ -261,8 +262,6 @@ def screen(
         A path is missing, an option is out of range, the outputs would land
         among the data, the spec index is bad, or there is no data file.
     """
-    from replicheck.defaults import DEFAULT_SEED
-
     if jobs is not None and (isinstance(jobs, bool) or jobs < 1):
         raise InputError(f"--jobs must be at least 1, got {jobs!r}")
     if time_limit is not None and not time_limit >= 0:
@@ -270,7 +269,8 @@ def screen(
     if alpha is not None and not 0 < alpha < 1:
         raise InputError(f"--alpha must be a number between 0 and 1 (exclusive), got {alpha!r}")
     limit_bytes = parse_size(max_size)
-    the_seed = DEFAULT_SEED if seed is None else seed
+    if seed is not None and (isinstance(seed, bool) or seed < 0):
+        raise InputError(f"--seed must be a whole number of 0 or more, got {seed!r}")
     out_dir = Path(os.path.abspath(os.fspath(out)))
     summary_path = (
         out_dir / "summary.csv" if summary is None else Path(os.path.abspath(os.fspath(summary)))
@@ -309,7 +309,7 @@ def screen(
             time_limit=time_limit or None,
             limit_bytes=limit_bytes,
             client=client,
-            seed=the_seed,
+            seed=seed,
             alpha=alpha,
             fresh=fresh,
             progress=progress,
@@ -330,7 +330,7 @@ def _screen(
     time_limit: float | None,
     limit_bytes: int,
     client: object,
-    seed: int,
+    seed: int | None,
     alpha: float | None,
     fresh: bool,
     progress: Callable[[Row, int], None] | None,
@@ -481,7 +481,7 @@ def _screen(
     _prune_reports(out_dir, stored, final)
     index_path = out_dir / "index.html"
     options = [
-        ("--seed", str(seed)),
+        ("--seed", f"from each spec (default {DEFAULT_SEED})" if seed is None else str(seed)),
         ("--alpha", "from each spec (default 0.05)" if alpha is None else f"{alpha:g}"),
         ("--time-limit", "none" if not time_limit else f"{time_limit:g} s"),
         ("--max-size", f"{limit_bytes:,} bytes"),

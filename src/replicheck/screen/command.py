@@ -66,10 +66,9 @@ from replicheck.screen.summary import SEVERITY, Row
 @click.option(
     "--seed",
     type=int,
-    default=DEFAULT_SEED,
-    show_default=True,
+    default=None,
     metavar="N",
-    help="Seed of the random steps of every audit (the same for every file).",
+    help=f"Seed of the random steps for every file (default: each spec's, else {DEFAULT_SEED}).",
 )
 @click.option(
     "--alpha",
@@ -95,7 +94,7 @@ def screen_command(
     time_limit: float,
     max_size: str,
     cluster: str | None,
-    seed: int,
+    seed: int | None,
     alpha: float | None,
     fresh: bool,
     follow_links: bool,

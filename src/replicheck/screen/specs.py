@@ -44,8 +44,10 @@ from pathlib import Path
 
 from replicheck.claim import LIST_KEYS, SPEC_KEYS, spec_beside
 from replicheck.errors import InputError
+from replicheck.options import OPTION_FIELDS, option_field
 
 INDEX_COLUMNS = ("file", *SPEC_KEYS)
+SETTING_KEYS = frozenset(f.key for f in OPTION_FIELDS)
 
 _GLOB_CHARS = frozenset("*?[")
 
@@ -171,13 +173,13 @@ def _read_csv_index(text: str, label: str, delimiter: str) -> list[IndexEntry]:
                 continue
             if key in LIST_KEYS:
                 spec[key] = list(_split(value))
-            elif key == "alpha":
-                try:
-                    spec[key] = float(value)
-                except ValueError:
+            elif key in SETTING_KEYS:
+                setting = option_field(key)
+                spec[key] = setting.from_text(value)
+                if setting.kind in ("number", "whole") and isinstance(spec[key], str):
                     raise InputError(
-                        f"spec index {label}, {where}: alpha must be a number, got {value!r}"
-                    ) from None
+                        f"spec index {label}, {where}: {key} must be a number, got {value!r}"
+                    )
             else:
                 spec[key] = value
         entries.append(_check_entry(cells.get("file", ""), spec, label, where))

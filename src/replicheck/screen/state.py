@@ -53,7 +53,7 @@ def task_key(
     sha256: str,
     spec_fingerprint: str,
     guess: bool,
-    seed: int,
+    seed: int | None,
     alpha: float | None,
 ) -> str:
     """The key of one file's result in the state."""

@@ -27,7 +27,8 @@ class Task:
         Without a spec: audit the best guessed response and treatment instead of
         stopping at ``needs-spec``.
     seed, alpha:
-        Passed to :func:`replicheck.api.audit` for every file alike.
+        Passed to :func:`replicheck.api.audit` for every file alike (None: each
+        spec's, else the default).
     """
 
     path: str
@@ -36,7 +37,7 @@ class Task:
     spec_path: str | None = None
     spec: Mapping[str, object] | None = None
     guess: bool = False
-    seed: int = 0
+    seed: int | None = None
     alpha: float | None = None
 
 

@@ -44,6 +44,7 @@ from typing import Literal
 import numpy as np
 from scipy import special
 
+from replicheck.partitions import group_means
 from replicheck.stats import dist
 from replicheck.stats.classic import DesignError, _as_codes, oneway_anova, two_sample_t
 
@@ -471,10 +472,8 @@ def unit_summary_test(y: np.ndarray, unit: np.ndarray, level: np.ndarray) -> Uni
             f"every treatment level has a single experimental unit ({g} units, {k} levels); "
             "treatment is confounded with unit and cannot be tested"
         )
-    values = np.bincount(ucodes, weights=arr, minlength=g) / np.bincount(ucodes, minlength=g)
-    level_means = np.bincount(per_unit, weights=values, minlength=k) / np.bincount(
-        per_unit, minlength=k
-    )
+    values, _ = group_means(ucodes, arr)
+    level_means, _ = group_means(per_unit, values)
     if float(np.sum((values - level_means[per_unit]) ** 2)) == 0.0:
         raise DesignError(
             "the unit values do not vary within any treatment level; "

@@ -141,11 +141,6 @@ class MixedFit:
     hessian_ok: bool
     messages: tuple[str, ...] = field(default=())
 
-    @property
-    def se_beta(self) -> np.ndarray:
-        """Standard errors of the fixed effects."""
-        return np.sqrt(np.diag(self.cov_beta))
-
 
 @dataclass(frozen=True, eq=False)
 class PolishPoint:

@@ -47,7 +47,7 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from replicheck.partitions import dense_codes, is_nested, pair_codes
+from replicheck.partitions import dense_codes, group_means, is_nested, pair_codes
 from replicheck.stats import dist
 from replicheck.stats.classic import DesignError, cell_term_f
 
@@ -125,10 +125,8 @@ def units_beyond_model(
         df2 = y.size - n_units
         if df1 < 1 or df2 < 1:
             return None
-        sizes = np.bincount(unit, minlength=n_units)
-        means = np.bincount(unit, weights=y, minlength=n_units) / sizes
-        csize = np.bincount(cells, minlength=n_cells)
-        cmean = np.bincount(cells, weights=y, minlength=n_cells) / csize
+        means, sizes = group_means(unit, y)
+        cmean, _ = group_means(cells, y)
         first = np.zeros(n_units, dtype=np.int64)
         first[unit] = cells
         ss_between = float(np.sum(sizes * (means - cmean[first]) ** 2))
@@ -154,8 +152,7 @@ def shared_label_effect(
     not allow the test (fewer than two labels sharing two parents).
     """
     cells_t = dense_codes(treatment_cells)
-    k_t = int(cells_t.max()) + 1
-    tmean = np.bincount(cells_t, weights=y, minlength=k_t) / np.bincount(cells_t, minlength=k_t)
+    tmean, _ = group_means(cells_t, y)
     r = y - tmean[cells_t]
     lab = dense_codes(label)
     par = dense_codes(parent)
@@ -163,7 +160,7 @@ def shared_label_effect(
     k = int(cell.max()) + 1
     if k > MAX_CELLS:
         return None
-    means = np.bincount(cell, weights=r, minlength=k) / np.bincount(cell, minlength=k)
+    means, _ = group_means(cell, r)
     one = np.empty(k, dtype=np.int64)
     one[cell] = np.arange(cell.size)
     lab_c = dense_codes(lab[one])

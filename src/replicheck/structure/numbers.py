@@ -38,7 +38,7 @@ import pandas as pd
 from replicheck.numbers import format_number
 from replicheck.partitions import dense_codes
 from replicheck.structure.relations import group_codes
-from replicheck.structure.units import Structure, UnitChoice
+from replicheck.structure.units import Structure, rows_choice
 
 __all__ = ["NumberReading", "read_numbers", "slope_units"]
 
@@ -150,17 +150,10 @@ def slope_units(structure: Structure, frame: pd.DataFrame, slopes: Collection[st
             elif not np.allclose(low, high):
                 # the number varies within the grouping: its values are not labels of that
                 # grouping's levels, and its slope is replicated below it (the rows)
-                n = len(frame)
-                fixed = UnitChoice(
+                fixed = rows_choice(
                     choice.treatment,
-                    None,
-                    (),
-                    "none",
-                    n,
-                    n,
-                    "rows",
-                    f"'{choice.treatment}' varies within every recorded grouping; each row is "
-                    "taken as its own replicate",
+                    len(frame),
+                    f"'{choice.treatment}' varies within every recorded grouping",
                 )
         units.append(fixed)
     return replace(structure, units=tuple(units))

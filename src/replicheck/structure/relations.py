@@ -28,6 +28,7 @@ import pandas as pd
 from replicheck.codebook import column_codes, combined_codes
 from replicheck.numbers import format_number
 from replicheck.structure.alignment import alignment, contingency_table, cramers_v
+from replicheck.vocab import FactorRelationName, RelationName
 
 # Common practice (no published threshold): at most 5% of the rows, and at
 # least one, may break an otherwise clean nesting before we call it partial.
@@ -53,7 +54,7 @@ class Relation:
 
     column: str
     treatment: str
-    relation: str
+    relation: RelationName
     n_levels: int
     levels_per_treatment: dict[str, int]
     exceptions: tuple[int, ...]  # 1-based data-row numbers that break a partial alignment
@@ -167,7 +168,7 @@ def classify(
     lpt = {t_labels[i]: int(n) for i, n in enumerate(ct.levels_per_treatment)}
     n_levels = ct.n_column_levels
 
-    def rel(name: str, detail: str, exceptions: tuple[int, ...] = ()) -> Relation:
+    def rel(name: RelationName, detail: str, exceptions: tuple[int, ...] = ()) -> Relation:
         if name != "partial":
             return Relation(column, treatment, name, n_levels, lpt, exceptions, detail)
 
@@ -241,7 +242,7 @@ class PairRelation:
 
     first: str
     second: str
-    relation: str  # aliased | nested | contains | crossed | partially aliased | unrelated
+    relation: FactorRelationName
 
 
 def pair_relation(first: str, second: str, a: pd.Series, b: pd.Series) -> PairRelation:
@@ -254,11 +255,11 @@ def pair_relation(first: str, second: str, a: pd.Series, b: pd.Series) -> PairRe
     """
     r = classify(first, second, a, b)
     same = r.relation == "confounded" and r.n_levels == len(r.levels_per_treatment)
-    name = {
+    names: dict[RelationName, FactorRelationName] = {
         "nested": "nested",
         "confounded": "aliased" if same else "contains",
         "partial": "partially aliased",
         "crossed": "crossed",
         "unrelated": "unrelated",
-    }[r.relation]
-    return PairRelation(first, second, name)
+    }
+    return PairRelation(first, second, names[r.relation])

@@ -31,7 +31,6 @@ import pandas as pd
 from replicheck.partitions import dense_codes, is_nested, pair_codes
 from replicheck.stats.classic import DesignError, cell_term_f
 from replicheck.structure.evidence import on_every_scale
-from replicheck.structure.names import name_hint
 from replicheck.structure.relations import classify, group_codes
 
 # Common practice (no published threshold): cells or blocks count as real
@@ -62,7 +61,7 @@ class CellGrouping:
     other_treatments_inside: bool  # another treatment varies within the cells
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Stratum:
     """A grouping of the rows that is a random effect of the corrected model."""
 
@@ -340,13 +339,26 @@ def build_strata(
         ]
         parent = max(parents, key=lambda h: int(groupings[h][1].max())) if parents else None
         terms = tuple(t for t, s in term_strata.items() if s == g)
-        out.append(Stratum(g, cols, int(codes.max()) + 1, kind, parent, terms))
+        out.append(
+            Stratum(
+                name=g,
+                columns=cols,
+                n_levels=int(codes.max()) + 1,
+                kind=kind,
+                parent=parent,
+                terms=terms,
+            )
+        )
     rows_terms = tuple(t for t, s in term_strata.items() if s is None)
     finest = [s.name for s in out]
-    out.append(Stratum("rows", (), n_rows, "rows", finest[-1] if finest else None, rows_terms))
+    out.append(
+        Stratum(
+            name="rows",
+            columns=(),
+            n_levels=n_rows,
+            kind="rows",
+            parent=finest[-1] if finest else None,
+            terms=rows_terms,
+        )
+    )
     return tuple(out)
-
-
-def is_blocklike(column: str) -> bool:
-    """Whether a crossed column's name suggests a grouping that carries its own effect."""
-    return name_hint(column).suggests_unit

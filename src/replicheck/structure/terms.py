@@ -24,17 +24,6 @@ class Term:
         return len(self.factors) > 1
 
 
-def term_values(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
-    """The levels of a term: a treatment column, or the observed combinations of several."""
-    if len(factors) == 1:
-        return data[factors[0]]
-    parts = [data[f].astype(str) for f in factors]
-    out = parts[0]
-    for part in parts[1:]:
-        out = out + " & " + part
-    return out
-
-
 def interaction_levels(data: pd.DataFrame, factors: Sequence[str]) -> pd.Series:
     """The levels of an interaction contrast: rows alike in its sum-to-zero coded columns.
 

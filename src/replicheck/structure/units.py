@@ -86,7 +86,7 @@ from replicheck.structure.strata import (
     build_strata,
     crossed_cells,
 )
-from replicheck.vocab import UNIT_LABEL_MODES
+from replicheck.vocab import UNIT_LABEL_MODES, RelationName, UnitRelationName
 
 __all__ = [
     "Alternative",
@@ -107,14 +107,14 @@ CLUSTER_EVIDENCE_P = 0.01
 CHANCE_NESTING_LOG10 = -3.0
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Candidate:
     """A grouping within which the treatment never (or almost never) varies."""
 
     treatment: str
     name: str  # column name, or "treatment:column" for labels local to each treatment level
     columns: tuple[str, ...]
-    relation: str  # nested | confounded | partial
+    relation: UnitRelationName  # nested | confounded | partial
     n_units: int
     mean_size: float
     hint: NameHint
@@ -129,14 +129,14 @@ class Candidate:
     support: str = "none"  # stated | structure | name | evidence | none
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class UnitChoice:
     """The experimental unit taken for one treatment factor."""
 
     treatment: str
     unit: str | None
     columns: tuple[str, ...]
-    relation: str  # nested | confounded | partial | none
+    relation: UnitRelationName
     n_units: int
     n_observations: int
     source: str  # stated | inferred | rows
@@ -144,7 +144,7 @@ class UnitChoice:
     single_unit_levels: tuple[str, ...] = ()
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Alternative:
     """Another reading of a term's unit that stays plausible, and what would settle it.
 
@@ -160,7 +160,7 @@ class Alternative:
     settle: str
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Structure:
     """Everything the structure stage found."""
 
@@ -185,9 +185,6 @@ class Structure:
                 return u
         raise KeyError(term)
 
-    def alternatives_of(self, term: str) -> tuple[Alternative, ...]:
-        return tuple(a for a in self.alternatives if a.term == term)
-
 
 # ------------------------------------------------------------------ candidates
 
@@ -201,6 +198,14 @@ HINT_WORDS = {
     "process": "a shared origin or setting (a batch, site, family or class)",
     "individual": "an individual",
 }
+
+
+def _unit_relation(relation: RelationName) -> UnitRelationName:
+    """A candidate's relation to its treatment: only nested, confounded and partially
+    aligned columns become candidates (crossed and unrelated ones never do)."""
+    if relation == "nested" or relation == "confounded" or relation == "partial":
+        return relation
+    raise ValueError(f"a {relation} column is no candidate unit")
 
 
 def _candidate(
@@ -274,7 +279,7 @@ def _candidate(
         treatment=treatment,
         name=name,
         columns=columns,
-        relation=relation.relation,
+        relation=_unit_relation(relation.relation),
         n_units=n_units,
         mean_size=mean_size,
         hint=hint,
@@ -419,19 +424,25 @@ def _weigh(
     return rel, None, False
 
 
+def rows_choice(treatment: str, n: int, why: str) -> UnitChoice:
+    """The rows as the replicates of a term (no grouping is its unit), with the reason."""
+    return UnitChoice(
+        treatment=treatment,
+        unit=None,
+        columns=(),
+        relation="none",
+        n_units=n,
+        n_observations=n,
+        source="rows",
+        reading=f"{why}; each row is taken as its own replicate",
+    )
+
+
 def _choice(data: pd.DataFrame, treatment: str, best: Candidate | None) -> UnitChoice:
     n = len(data)
     if best is None:
-        return UnitChoice(
-            treatment,
-            None,
-            (),
-            "none",
-            n,
-            n,
-            "rows",
-            "no grouping was found within which the treatment is constant; "
-            "each row is taken as its own replicate",
+        return rows_choice(
+            treatment, n, "no grouping was found within which the treatment is constant"
         )
     trt_codes, trt_labels = codes_of(data[treatment])
     if best.relation == "confounded":
@@ -729,12 +740,12 @@ def infer_structure(
             if inferred and inferred[0].n_units < best.n_units and main:
                 alternatives.append(
                     Alternative(
-                        term,
-                        _choice(data, term, inferred[0]),
-                        "stated",
-                        f"'{inferred[0].name}' is a coarser grouping within which '{term}' is "
+                        term=term,
+                        choice=_choice(data, term, inferred[0]),
+                        kind="stated",
+                        why=f"'{inferred[0].name}' is a coarser grouping within which '{term}' is "
                         f"also constant ({inferred[0].n_units} units against {best.n_units})",
-                        f"how '{term}' was applied: to each {best.name} on its own, or to "
+                        settle=f"how '{term}' was applied: to each {best.name} on its own, or to "
                         f"whole {inferred[0].name} units",
                     )
                 )
@@ -758,11 +769,11 @@ def infer_structure(
             )
             alternatives.append(
                 Alternative(
-                    term,
-                    _choice(data, term, inferred[0] if inferred else None),
-                    "stated",
-                    "the unit replicheck finds in the data",
-                    f"how '{term}' was applied, and to what",
+                    term=term,
+                    choice=_choice(data, term, inferred[0] if inferred else None),
+                    kind="stated",
+                    why="the unit replicheck finds in the data",
+                    settle=f"how '{term}' was applied, and to what",
                 )
             )
         elif inferred:
@@ -1013,14 +1024,14 @@ def _reading_alternatives(
             continue
         out.append(
             Alternative(
-                term,
-                alt,
-                "reading",
-                f"the {c.block} x {term} cells differ beyond the {c.block} and treatment "
+                term=term,
+                choice=alt,
+                kind="reading",
+                why=f"the {c.block} x {term} cells differ beyond the {c.block} and treatment "
                 f"effects on every scale ({p_phrase(c.p_value)}), as the plots of a "
                 f"randomised-block or split-plot design would; but nothing names '{c.block}' "
                 "as a block of plots",
-                f"whether each {c.block} x {term} cell was one plot that received its "
+                settle=f"whether each {c.block} x {term} cell was one plot that received its "
                 f"{term} (state {option('unit', f'{c.block}:{term}')}) or the rows were "
                 f"allocated one by one (state {option('block', c.block)})",
             )
@@ -1036,13 +1047,13 @@ def _reading_alternatives(
         p = "not computed" if r.cells_p is None else f"{p_phrase(r.cells_p)}"
         out.append(
             Alternative(
-                term,
-                alt,
-                "reading",
-                f"labels of '{r.column}' repeat under every level of '{term}' and the name "
+                term=term,
+                choice=alt,
+                kind="reading",
+                why=f"labels of '{r.column}' repeat under every level of '{term}' and the name "
                 f"says container, as if numbered afresh within each level ('{r.column}' 1 of "
                 f"every {term}); the data do not show it (cells {p})",
-                f"whether one physical {r.column} carries the same label under every {term} "
+                settle=f"whether one physical {r.column} carries the same label under every {term} "
                 f"({option('unit-labels', 'global')}) or each {term} had its own "
                 f"({option('unit-labels', 'local')})",
             )
@@ -1056,19 +1067,19 @@ def _plain_candidate(
     codes = group_codes(data, (term, *columns))
     n_units = int(codes.max()) + 1
     return Candidate(
-        term,
-        name,
-        columns,
-        "nested",
-        n_units,
-        len(data) / max(n_units, 1),
-        name_hint(columns[-1]),
-        None,
-        None,
-        False,
-        True,
-        0.0,
-        (),
+        treatment=term,
+        name=name,
+        columns=columns,
+        relation="nested",
+        n_units=n_units,
+        mean_size=len(data) / max(n_units, 1),
+        hint=name_hint(columns[-1]),
+        icc=None,
+        icc_p=None,
+        alias=False,
+        credible=True,
+        score=0.0,
+        reasons=(),
         recorded=False,
     )
 

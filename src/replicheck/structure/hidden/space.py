@@ -344,15 +344,6 @@ def clumping_test(
     )
 
 
-def morans_i(values: np.ndarray, weights: sp.csr_matrix) -> float:
-    """Moran's I = (n / S0) z'Wz / z'z with z the centred values (Moran 1950)."""
-    z = np.asarray(values, dtype=float)
-    z = z - z.mean()
-    n = len(z)
-    s0 = float(weights.sum())
-    return float(n / s0 * (z @ (weights @ z)) / (z @ z))
-
-
 def moran_test(
     values: np.ndarray,
     weights: sp.csr_matrix,
