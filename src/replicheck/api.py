@@ -44,7 +44,6 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from replicheck.claim import Claim, build_claim, load_spec, spec_beside
@@ -491,7 +490,7 @@ def _evidence(
         response_exponent=prepared.exponent,
         rescaled_columns=prepared.rescaled_columns,
         claimed_groupings=tuple(
-            (name, int(np.unique(codes[codes >= 0]).size), int((codes >= 0).sum()))
+            (name, int(codes.max()) + 1, int((codes >= 0).sum()))  # codes 0..k-1, -1 missing
             for name, codes in fitted.claimed_random.items()
         ),
     )
